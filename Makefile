@@ -1,0 +1,41 @@
+# keystrata: every target creates .venv on first use and installs what it needs.
+PYTHON ?= python3
+VENV   := .venv
+BIN    := $(VENV)/bin
+STAMP  := $(VENV)/.installed
+ARGS   ?=
+
+.PHONY: all test test-fast demo lint typecheck clean
+
+all: test
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+
+$(STAMP): pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install --quiet -e '.[dev]'
+	touch $(STAMP)
+
+## make test: the whole suite on SQLite and PostgreSQL (PostgreSQL is skipped
+## locally when no server answers; with CI set, a missing server fails the run)
+test: $(STAMP)
+	$(BIN)/python -m pytest $(ARGS)
+
+## make test-fast: domain and SQLite tests only, no server processes
+test-fast: $(STAMP)
+	$(BIN)/python -m pytest -m "not e2e" -k "not postgresql" $(ARGS)
+
+## make demo ARGS='--duration 30 --workdir /tmp/ks-demo'
+demo: $(STAMP)
+	$(BIN)/keystrata-demo $(ARGS)
+
+lint: $(STAMP)
+	$(BIN)/ruff check service clients tests
+	$(BIN)/ruff format --check service clients tests
+
+typecheck: $(STAMP)
+	$(BIN)/mypy
+
+clean:
+	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache build *.egg-info

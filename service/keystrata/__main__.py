@@ -1,0 +1,3 @@
+from keystrata.cli.main import main
+
+main()

@@ -1,0 +1,38 @@
+"""Build the FastAPI application of one node from its context."""
+
+from __future__ import annotations
+
+from cryptography import x509
+from fastapi import FastAPI
+
+from keystrata import __version__
+from keystrata.api import errors
+from keystrata.api.limits import BodyLimit
+from keystrata.api.routes import links, node, registry
+from keystrata.services.context import NodeContext
+
+#: Bodies of routes other than ingest are small JSON documents.
+DEFAULT_BODY_LIMIT = 1024 * 1024
+
+
+def create_app(ctx: NodeContext) -> FastAPI:
+    """Return the node's ASGI app; every route needs an authenticated caller."""
+    app = FastAPI(
+        title=f"keystrata node {ctx.node_id}",
+        version=__version__,
+        docs_url=None,
+        redoc_url=None,
+    )
+    app.state.ctx = ctx
+    app.state.ca_cert = x509.load_pem_x509_certificate(ctx.settings.tls.ca.read_bytes())
+    errors.install(app)
+    app.include_router(node.router)
+    app.include_router(registry.router)
+    app.include_router(links.router)
+    app.add_middleware(
+        BodyLimit,
+        default=DEFAULT_BODY_LIMIT,
+        large=ctx.settings.ingest.max_request_bytes,
+        large_prefixes=("/api/v1/links/",),
+    )
+    return app

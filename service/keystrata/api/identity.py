@@ -1,0 +1,107 @@
+"""Identity is one dependency: routes ask for a :class:`Caller` with a role they admit.
+
+The client certificate comes from the ASGI TLS extension that keystrata's own uvicorn
+protocol puts into every request scope (see :mod:`keystrata.api.tls`), or, only when a
+TLS-terminating proxy mode is configured, from a header the proxy sets. In proxy mode
+the certificate is checked against the CA here, since no TLS layer of ours did it.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Callable
+from functools import lru_cache
+from typing import Any
+from urllib.parse import unquote
+
+from cryptography import x509
+from cryptography.x509.oid import NameOID
+from fastapi import Request
+
+from keystrata.domain.registry import PrincipalRole
+from keystrata.errors import Forbidden, Unauthenticated
+from keystrata.services import principals
+from keystrata.services.context import NodeContext
+from keystrata.services.principals import Caller
+
+
+@lru_cache(maxsize=4096)
+def _parse(pem: str) -> tuple[str, str, x509.Certificate] | None:
+    try:
+        cert = x509.load_pem_x509_certificate(pem.encode())
+    except ValueError:
+        return None
+    names = cert.subject.get_attributes_for_oid(NameOID.COMMON_NAME)
+    if len(names) != 1:
+        return None
+    cn = names[0].value
+    cn = cn if isinstance(cn, str) else cn.decode()
+    from cryptography.hazmat.primitives.serialization import Encoding
+
+    return cn, hashlib.sha256(cert.public_bytes(Encoding.DER)).hexdigest(), cert
+
+
+def client_certificate_pem(request: Request, proxy_header: str | None) -> str | None:
+    """Return the leaf client certificate (PEM) of the request, or None."""
+    tls = request.scope.get("extensions", {}).get("tls")
+    if tls and tls.get("client_cert_chain"):
+        return str(tls["client_cert_chain"][0])
+    if proxy_header:
+        value = request.headers.get(proxy_header)
+        if value:
+            return unquote(value)
+    return None
+
+
+def _verify_from_proxy(cert: x509.Certificate, ca: x509.Certificate, now: Any) -> bool:
+    try:
+        cert.verify_directly_issued_by(ca)
+    except (ValueError, TypeError, Exception):  # InvalidSignature has no common base
+        return False
+    return bool(cert.not_valid_before_utc <= now <= cert.not_valid_after_utc)
+
+
+def admit(*roles: PrincipalRole) -> Callable[[Request], Caller]:
+    """Return a dependency that yields the caller if its role is one of ``roles``.
+
+    The returned function carries ``roles`` as an attribute so that tests and docs can
+    read each route's admitted roles from the app's route table.
+
+    Raises (from the dependency):
+        Unauthenticated: no certificate, or one that maps to no active principal (401,
+            the same answer for every reason).
+        Forbidden: a known principal whose role this route does not admit (403).
+    """
+
+    def dependency(request: Request) -> Caller:
+        ctx: NodeContext = request.app.state.ctx
+        proxy = ctx.settings.server.proxy_client_cert_header
+        pem = client_certificate_pem(request, proxy)
+        parsed = _parse(pem) if pem else None
+        method, path = request.method, request.url.path
+        if parsed is None:
+            principals.record_refusal(ctx, reason="no_certificate", subject=None,
+                                      principal_id=None, method=method, path=path)
+            raise Unauthenticated()
+        subject, sha256, cert = parsed
+        from_proxy = not request.scope.get("extensions", {}).get("tls")
+        if from_proxy and not _verify_from_proxy(cert, request.app.state.ca_cert,
+                                                 ctx.clock.now()):
+            principals.record_refusal(ctx, reason="certificate_not_from_ca", subject=subject,
+                                      principal_id=None, method=method, path=path)
+            raise Unauthenticated()
+        caller = principals.resolve(ctx, subject, sha256)
+        if caller is None:
+            principals.record_refusal(ctx, reason="unknown_certificate", subject=subject,
+                                      principal_id=None, method=method, path=path)
+            raise Unauthenticated()
+        if caller.role not in roles:
+            principals.record_refusal(ctx, reason="role_not_admitted", subject=subject,
+                                      principal_id=caller.principal_id, method=method,
+                                      path=path)
+            raise Forbidden()
+        request.state.caller = caller
+        return caller
+
+    dependency.roles = frozenset(roles)  # type: ignore[attr-defined]
+    return dependency

@@ -1,0 +1,23 @@
+"""What a node says about itself to any known principal."""
+
+from __future__ import annotations
+
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Depends, Request
+
+from keystrata import __version__
+from keystrata.api.identity import admit
+from keystrata.domain.registry import PrincipalRole
+from keystrata.services.context import NodeContext
+from keystrata.services.principals import Caller
+
+router = APIRouter(prefix="/api/v1", tags=["node"])
+
+Anyone = Annotated[Caller, Depends(admit(*PrincipalRole))]
+
+
+@router.get("/node", summary="This node's identity", operation_id="node_info")
+def node_info(request: Request, _: Anyone) -> dict[str, Any]:
+    ctx: NodeContext = request.app.state.ctx
+    return {"node_id": ctx.node_id, "role": ctx.role.value, "version": __version__}

@@ -1,0 +1,127 @@
+"""Local node administration: init, serve, schema, key-encryption key."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import click
+
+from keystrata.cli.common import config_option, console, handled, settings_from
+from keystrata.config import Settings
+from keystrata.crypto.kek import read_kek, write_new_kek
+from keystrata.domain.registry import Kind, PrincipalRole, PrincipalSpec
+from keystrata.errors import AlreadyExists
+from keystrata.services import kek as kek_service
+from keystrata.services import registry
+from keystrata.services.node import initialise, load_keyring, open_node
+from keystrata.storage import migrate
+from keystrata.storage.db import Database
+
+
+def _db(settings: Settings) -> Database:
+    return Database.from_url(settings.database.url,
+                             sqlite_synchronous=settings.database.sqlite_synchronous)
+
+
+@click.group("node")
+def node() -> None:
+    """Set up and run this node."""
+
+
+@node.command("init")
+@config_option
+@click.option("--operator-subject", help="certificate subject (CN) of a first operator")
+@click.option("--operator-id", default="operator-1", show_default=True)
+def node_init(config_path: Path, operator_subject: str | None, operator_id: str) -> None:
+    """Create the database schema and this node's secrets; optionally add an operator.
+
+    Safe to run again: an initialised node is only checked.
+    """
+    with handled():
+        settings = settings_from(config_path)
+        db = _db(settings)
+        created = initialise(settings, db, load_keyring(settings))
+        console.print(f"node {settings.node.id}: " + ("initialised" if created else
+                                                       "already initialised, checked"))
+        if operator_subject:
+            ctx = open_node(settings, db)
+            try:
+                registry.create(ctx, Kind.PRINCIPALS, PrincipalSpec(
+                    principal_id=operator_id, role=PrincipalRole.OPERATOR,
+                    cert_subject=operator_subject, description="first operator"),
+                    actor="local-admin")
+                console.print(f"operator {operator_id} ({operator_subject}) added")
+            except AlreadyExists:
+                console.print(f"operator {operator_id} already present")
+
+
+@click.command("serve")
+@config_option
+def serve(config_path: Path) -> None:
+    """Serve this node's API over HTTPS with required client certificates."""
+    from keystrata.server import serve as run
+
+    with handled():
+        run(settings_from(config_path), str(config_path.resolve()))
+
+
+@click.group("db")
+def db() -> None:
+    """Database schema."""
+
+
+@db.command("upgrade")
+@config_option
+def db_upgrade(config_path: Path) -> None:
+    """Apply pending schema migrations."""
+    with handled():
+        engine = _db(settings_from(config_path)).engine
+        migrate.upgrade(engine)
+        console.print(f"schema at revision {migrate.current_revision(engine)}")
+
+
+@db.command("status")
+@config_option
+def db_status(config_path: Path) -> None:
+    """Show the schema revision and whether it matches this version."""
+    with handled():
+        engine = _db(settings_from(config_path)).engine
+        cur, head = migrate.current_revision(engine), migrate.head_revision(engine)
+        console.print(f"current {cur}, this version needs {head}: "
+                      + ("up to date" if cur == head else "run `keystrata db upgrade`"))
+
+
+@click.group("kek")
+def kek() -> None:
+    """Key-encryption key (KEK) files and rotation."""
+
+
+@kek.command("new")
+@click.option("--out", required=True, type=click.Path(dir_okay=False, path_type=Path))
+def kek_new(out: Path) -> None:
+    """Write a new random KEK file, readable by its owner only."""
+    try:
+        write_new_kek(out)
+    except FileExistsError:
+        raise click.ClickException(f"{out} exists; a KEK file is never overwritten") from None
+    console.print(f"wrote {out} (mode 0600); keep a copy in your key custody procedure")
+
+
+@kek.command("rotate")
+@config_option
+@click.option("--new-kek", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="the new KEK file (make it with `keystrata kek new`)")
+@click.option("--batch", default=500, show_default=True, help="rows per transaction")
+def kek_rotate(config_path: Path, new_kek: Path, batch: int) -> None:
+    """Re-seal every row under a new KEK. Run with the node stopped; resumable.
+
+    When it finishes, point [kek] file in the node's config at the new KEK file.
+    """
+    with handled():
+        settings = settings_from(config_path)
+        report = kek_service.rotate(_db(settings), settings.node.id,
+                                    read_kek(settings.kek.file), read_kek(new_kek), batch=batch,
+                                    progress=lambda n: console.print(f"  {n} blocks done"))
+        console.print(f"re-sealed {report.resealed_blocks} blocks and {report.resealed_meta} "
+                      f"node secrets ({report.already_done} were already done). Now set "
+                      f"[kek] file = \"{new_kek}\" in {config_path}.")

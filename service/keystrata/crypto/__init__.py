@@ -1,0 +1,1 @@
+"""Cryptography for keystrata. Only :mod:`keystrata.crypto.hazmat` touches primitives."""

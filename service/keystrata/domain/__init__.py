@@ -1,0 +1,1 @@
+"""Domain logic: plain Python, no web framework, no ORM."""

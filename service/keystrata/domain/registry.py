@@ -1,0 +1,162 @@
+"""What operators provision: nodes, QKD links, station pairs with their policy, and
+principals (every caller, SAEs included). Input shapes and the rules that need no
+database; rules that need one (does the station exist?) live in the service layer.
+
+Types are strict: JSON ``true`` is not a number and ``"8"`` is not an integer.
+"""
+
+from __future__ import annotations
+
+from enum import StrEnum
+from typing import Annotated, Any, Self
+
+from pydantic import BaseModel, ConfigDict, Field, StringConstraints, model_validator
+
+from keystrata.ids import ID_PATTERN
+
+Ident = Annotated[str, StringConstraints(strict=True, pattern=ID_PATTERN)]
+Text = Annotated[str, StringConstraints(strict=True, max_length=1000)]
+Url = Annotated[str, StringConstraints(strict=True, pattern=r"^https://[^\s]{1,247}$")]
+Subject = Annotated[
+    str, StringConstraints(strict=True, min_length=1, max_length=255, pattern=r"^[^\x00-\x1f]+$")
+]
+Sha256Hex = Annotated[str, StringConstraints(strict=True, pattern=r"^[0-9a-f]{64}$")]
+Bits = Annotated[int, Field(strict=True, ge=0, le=2**53)]
+KeySize = Annotated[int, Field(strict=True, ge=8, le=1_048_576, multiple_of=8)]
+
+
+class Kind(StrEnum):
+    NODES = "nodes"
+    LINKS = "links"
+    PAIRS = "pairs"
+    PRINCIPALS = "principals"
+
+
+class NodeRole(StrEnum):
+    RELAY = "relay"
+    STATION = "station"
+
+
+class PrincipalRole(StrEnum):
+    SAE = "sae"
+    OPERATOR = "operator"
+    AUDITOR = "auditor"
+    PEER = "peer"
+    QKD_MODULE = "qkd-module"
+
+
+# Enumerations come as strings in JSON; strict mode would demand the Python enum itself.
+NodeRoleIn = Annotated[NodeRole, Field(strict=False)]
+PrincipalRoleIn = Annotated[PrincipalRole, Field(strict=False)]
+
+
+class _Input(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
+
+
+class NodeSpec(_Input):
+    node_id: Ident
+    role: NodeRoleIn
+    url: Url | None = None
+    description: Text = ""
+
+
+class NodeChange(_Input):
+    url: Url | None = None
+    description: Text | None = None
+
+
+class LinkSpec(_Input):
+    link_id: Ident
+    relay_id: Ident
+    station_id: Ident
+    description: Text = ""
+
+    @model_validator(mode="after")
+    def _distinct_ends(self) -> Self:
+        if self.relay_id == self.station_id:
+            raise ValueError("relay_id and station_id must name two different nodes")
+        return self
+
+
+class LinkChange(_Input):
+    description: Text | None = None
+
+
+class PairPolicy(_Input):
+    """Per-pair policy. Sizes in bits; buffer figures in bits of ready key per station."""
+
+    min_key_size: KeySize = 64
+    max_key_size: KeySize = 8192
+    default_key_size: KeySize = 256
+    buffer_min_bits: Bits = 262_144
+    buffer_target_bits: Bits = 1_048_576
+    buffer_max_bits: Bits = 16_777_216
+    daily_quota_bits: Annotated[int, Field(strict=True, gt=0, le=2**53)] | None = None
+    priority: Annotated[int, Field(strict=True, ge=1, le=1000)] = 100
+    max_epsilon: Annotated[float, Field(strict=True, gt=0, lt=1)] | None = None
+    key_ttl_seconds: Annotated[int, Field(strict=True, ge=1, le=30 * 86_400)] = 3600
+
+    @model_validator(mode="after")
+    def _consistent(self) -> Self:
+        if not self.min_key_size <= self.default_key_size <= self.max_key_size:
+            raise ValueError("key sizes must satisfy min_key_size <= default_key_size <= max_key_size")
+        if not self.buffer_min_bits <= self.buffer_target_bits <= self.buffer_max_bits:
+            raise ValueError(
+                "buffer must satisfy buffer_min_bits <= buffer_target_bits <= buffer_max_bits"
+            )
+        return self
+
+
+class PairSpec(_Input):
+    pair_id: Ident
+    relay_id: Ident
+    stations: Annotated[list[Ident], Field(min_length=2, max_length=2)]
+    policy: PairPolicy = PairPolicy()
+
+    @model_validator(mode="after")
+    def _two_stations(self) -> Self:
+        if self.stations[0] == self.stations[1]:
+            raise ValueError("stations must name two different stations")
+        if self.relay_id in self.stations:
+            raise ValueError("the relay cannot also be one of the pair's stations")
+        return self
+
+
+class PairChange(_Input):
+    """A partial policy: fields left out keep their value; the result is checked whole."""
+
+    policy: dict[str, Any] = {}
+
+
+class PrincipalSpec(_Input):
+    principal_id: Ident
+    role: PrincipalRoleIn
+    cert_subject: Subject
+    cert_sha256: Sha256Hex | None = None
+    station_id: Ident | None = None
+    link_id: Ident | None = None
+    node_id: Ident | None = None
+    description: Text = ""
+
+    @model_validator(mode="after")
+    def _binding_matches_role(self) -> Self:
+        wanted = {
+            PrincipalRole.SAE: "station_id",
+            PrincipalRole.QKD_MODULE: "link_id",
+            PrincipalRole.PEER: "node_id",
+        }.get(self.role)
+        for name in ("station_id", "link_id", "node_id"):
+            given = getattr(self, name) is not None
+            if name == wanted and not given:
+                raise ValueError(f"a principal with role {self.role.value} needs {name}")
+            if name != wanted and given:
+                raise ValueError(f"{name} is only for role " + {
+                    "station_id": "sae", "link_id": "qkd-module", "node_id": "peer"}[name])
+        return self
+
+
+class PrincipalChange(_Input):
+    cert_subject: Subject | None = None
+    cert_sha256: Sha256Hex | None = None
+    description: Text | None = None

@@ -1,0 +1,140 @@
+"""Bringing a node's database to life (init) and checking it at start (open)."""
+
+from __future__ import annotations
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from keystrata import __version__
+from keystrata.clock import Clock, SystemClock
+from keystrata.config import Settings
+from keystrata.crypto.hazmat import Keyring, generate_signing_key, random_bytes
+from keystrata.crypto.kek import read_kek
+from keystrata.domain.ledger import Event
+from keystrata.errors import SealBroken, StartupRefused
+from keystrata.services import ledger
+from keystrata.services.context import NodeContext
+from keystrata.storage import migrate
+from keystrata.storage.db import Database
+from keystrata.storage.models import NodeMeta, RegistryNode
+from keystrata.storage.sealed import meta_context
+
+KEK_CHECK_PLAINTEXT = b"keystrata key-encryption-key check v1"
+ROTATION_MARK = "kek_rotation_target"
+
+
+def load_keyring(settings: Settings) -> Keyring:
+    """Read the KEK (and the previous one, mid-rotation) with permission checks."""
+    current = read_kek(settings.kek.file)
+    older = [read_kek(settings.kek.previous_file)] if settings.kek.previous_file else []
+    return Keyring(current, older)
+
+
+def _meta(session: Session, name: str) -> bytes | None:
+    row = session.get(NodeMeta, name)
+    return None if row is None else row.value
+
+
+def check_kek(session: Session, keyring: Keyring) -> None:
+    """Raise StartupRefused unless ``keyring`` opens the stored KEK check value."""
+    sealed = _meta(session, "kek_check")
+    if sealed is None:
+        raise StartupRefused("this database was never initialised; run `keystrata node init`")
+    try:
+        value = keyring.open(sealed, meta_context("kek_check"))
+    except SealBroken as exc:
+        raise StartupRefused(
+            "the key-encryption key does not match this database (wrong [kek] file?)"
+        ) from exc
+    if value != KEK_CHECK_PLAINTEXT:
+        raise StartupRefused("the key-encryption-key check value is corrupt")
+
+
+def initialise(
+    settings: Settings, db: Database, keyring: Keyring, clock: Clock | None = None
+) -> bool:
+    """Migrate the schema and create this node's secrets and registry row.
+
+    Idempotent: on an initialised database it only checks the KEK.
+
+    Returns:
+        True when the node was initialised now, False when it already was.
+    Raises:
+        StartupRefused: the database belongs to another KEK or another node.
+    """
+    clock = clock or SystemClock()
+    migrate.upgrade(db.engine)
+    with db.write() as s:
+        if _meta(s, "kek_check") is not None:
+            check_kek(s, keyring)
+            self_row = s.get(RegistryNode, settings.node.id)
+            if self_row is None or self_row.role != settings.node.role:
+                raise StartupRefused(
+                    f"this database belongs to another node than {settings.node.id!r} "
+                    f"({settings.node.role})"
+                )
+            return False
+        now = clock.now()
+        for name, value in (
+            ("kek_check", KEK_CHECK_PLAINTEXT),
+            ("fingerprint_key", random_bytes(32)),
+            ("ledger_signing_key", generate_signing_key()),
+        ):
+            s.add(NodeMeta(name=name, value=keyring.seal(value, meta_context(name))))
+        s.add(
+            RegistryNode(
+                node_id=settings.node.id,
+                role=settings.node.role.value,
+                url=None,
+                description="this node",
+                created_at=now,
+                updated_at=now,
+            )
+        )
+        ledger.append(
+            s,
+            node_id=settings.node.id,
+            at=now,
+            event=Event.NODE_INITIALISED,
+            fields={"role": settings.node.role.value, "version": __version__},
+        )
+    return True
+
+
+def open_node(settings: Settings, db: Database, clock: Clock | None = None) -> NodeContext:
+    """Run every start-up check and return the node's context.
+
+    Raises:
+        StartupRefused: KEK file unsafe or wrong, schema not at the current revision, a
+            KEK rotation left unfinished, or the database belongs to another node.
+    """
+    keyring = load_keyring(settings)
+    current, head = migrate.current_revision(db.engine), migrate.head_revision(db.engine)
+    if current != head:
+        raise StartupRefused(
+            f"database schema is at revision {current}, this version needs {head}; "
+            "run `keystrata db upgrade --config ...`"
+        )
+    with db.read() as s:
+        check_kek(s, keyring)
+        if _meta(s, ROTATION_MARK) is not None and settings.kek.previous_file is None:
+            raise StartupRefused(
+                "a key-encryption-key rotation is unfinished; complete it with "
+                "`keystrata kek rotate` before starting the node"
+            )
+        self_row = s.get(RegistryNode, settings.node.id)
+        if self_row is None or self_row.role != settings.node.role:
+            raise StartupRefused(
+                f"this database does not belong to node {settings.node.id!r}; check [node] id"
+            )
+        fingerprint_sealed = s.execute(
+            select(NodeMeta.value).where(NodeMeta.name == "fingerprint_key")
+        ).scalar_one()
+    fingerprint_key = keyring.open(fingerprint_sealed, meta_context("fingerprint_key"))
+    return NodeContext(
+        settings=settings,
+        db=db,
+        keyring=keyring,
+        fingerprint_key=fingerprint_key,
+        clock=clock or SystemClock(),
+    )

@@ -1,0 +1,125 @@
+"""Engines and transactions for SQLite (embedded default) and PostgreSQL (psycopg 3).
+
+SQLite is opened in WAL mode with ``secure_delete`` (freed pages are zeroed, so destroyed
+key material does not linger in the file) and foreign keys on. The ``sqlite3`` module of
+Python 3.11 does not begin a transaction for a SELECT, so a select-then-update in two
+statements could hand one row to two workers. We therefore take SQLite's write lock at
+the start of every write transaction (``BEGIN IMMEDIATE``); read transactions use a plain
+deferred ``BEGIN`` so they never wait for writers.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from contextlib import contextmanager
+from typing import Any
+
+from sqlalchemy import Engine, create_engine, event, exc
+from sqlalchemy.engine import URL, make_url
+from sqlalchemy.orm import Session, sessionmaker
+
+from keystrata.errors import Unavailable
+
+_WRITE = "keystrata_write"
+
+
+def normalise_url(url: str) -> URL:
+    """Return the SQLAlchemy URL with the driver we support for each backend."""
+    parsed = make_url(url)
+    if parsed.get_backend_name() == "postgresql":
+        return parsed.set(drivername="postgresql+psycopg")
+    if parsed.get_backend_name() == "sqlite":
+        return parsed.set(drivername="sqlite+pysqlite")
+    raise ValueError(f"unsupported database backend {parsed.get_backend_name()!r}")
+
+
+def make_engine(url: str, *, sqlite_synchronous: str = "FULL", pool_size: int = 10) -> Engine:
+    """Create an engine with the pragmas and transaction behaviour described above."""
+    parsed = normalise_url(url)
+    if parsed.get_backend_name() == "sqlite":
+        engine = create_engine(
+            parsed,
+            connect_args={"check_same_thread": False, "timeout": 30},
+            pool_size=pool_size,
+            max_overflow=pool_size,
+        )
+        _install_sqlite_hooks(engine, sqlite_synchronous)
+        return engine
+    return create_engine(
+        parsed,
+        pool_size=pool_size,
+        max_overflow=pool_size,
+        pool_pre_ping=True,
+        connect_args={"connect_timeout": 5},
+    )
+
+
+def _install_sqlite_hooks(engine: Engine, synchronous: str) -> None:
+    if synchronous not in ("FULL", "NORMAL"):
+        raise ValueError("sqlite synchronous must be FULL or NORMAL")
+
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_conn: Any, _record: Any) -> None:
+        # Let SQLAlchemy's "begin" hook below issue BEGIN, not the sqlite3 module.
+        dbapi_conn.isolation_level = None
+        cur = dbapi_conn.cursor()
+        cur.execute("PRAGMA journal_mode=WAL")
+        cur.execute(f"PRAGMA synchronous={synchronous}")
+        cur.execute("PRAGMA foreign_keys=ON")
+        cur.execute("PRAGMA secure_delete=ON")
+        cur.execute("PRAGMA busy_timeout=30000")
+        cur.close()
+
+    @event.listens_for(engine, "begin")
+    def _on_begin(conn: Any) -> None:
+        if conn.get_execution_options().get(_WRITE):
+            conn.exec_driver_sql("BEGIN IMMEDIATE")
+        else:
+            conn.exec_driver_sql("BEGIN")
+
+
+class Database:
+    """One node's database: an engine and the two kinds of transaction it offers."""
+
+    def __init__(self, engine: Engine) -> None:
+        self.engine = engine
+        self.backend = engine.dialect.name
+        self._writer = sessionmaker(
+            bind=engine.execution_options(**{_WRITE: True}), expire_on_commit=False
+        )
+        self._reader = sessionmaker(bind=engine, expire_on_commit=False)
+
+    @classmethod
+    def from_url(cls, url: str, **kw: Any) -> Database:
+        return cls(make_engine(url, **kw))
+
+    @contextmanager
+    def write(self) -> Iterator[Session]:
+        """Yield a session in a write transaction; commit on success, roll back on error.
+
+        Raises:
+            Unavailable: the database cannot be reached or is locked for too long.
+        """
+        with _translate_db_errors(), self._writer() as session, session.begin():
+            yield session
+
+    @contextmanager
+    def read(self) -> Iterator[Session]:
+        """Yield a session for reading; whatever it wrote is rolled back."""
+        with _translate_db_errors(), self._reader() as session:
+            # Closing the session rolls back its transaction.
+            yield session
+
+    def dispose(self) -> None:
+        self.engine.dispose()
+
+
+@contextmanager
+def _translate_db_errors() -> Iterator[None]:
+    try:
+        yield
+    except exc.OperationalError as err:
+        # Connection refused, server gone, database locked past the busy timeout.
+        raise Unavailable("the database is not available; try again later") from err
+    except exc.InterfaceError as err:
+        raise Unavailable("the database is not available; try again later") from err

@@ -1,0 +1,231 @@
+"""SQLAlchemy models of one node's database.
+
+Migrations in ``migrations/versions`` are the source of the schema in production; a test
+compares them with these models and fails on any drift.
+"""
+
+from __future__ import annotations
+
+from datetime import UTC, datetime
+from typing import Any
+
+from sqlalchemy import (
+    BigInteger,
+    CheckConstraint,
+    DateTime,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    LargeBinary,
+    MetaData,
+    String,
+    Text,
+    UniqueConstraint,
+    text,
+)
+from sqlalchemy.engine import Dialect
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
+from sqlalchemy.types import TypeDecorator
+
+NAMING = {
+    "ix": "ix_%(column_0_label)s",
+    "uq": "uq_%(table_name)s_%(column_0_name)s",
+    "ck": "ck_%(table_name)s_%(constraint_name)s",
+    "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s",
+    "pk": "pk_%(table_name)s",
+}
+
+ID_LEN = 64
+
+
+class UTCDateTime(TypeDecorator[datetime]):
+    """A timestamp that is always timezone-aware UTC in Python, whatever the backend."""
+
+    impl = DateTime(timezone=True)
+    cache_ok = True
+
+    def process_bind_param(self, value: datetime | None, dialect: Dialect) -> datetime | None:
+        if value is None:
+            return None
+        if value.tzinfo is None:
+            raise ValueError("naive datetimes are not stored; pass a UTC-aware value")
+        value = value.astimezone(UTC)
+        return value.replace(tzinfo=None) if dialect.name == "sqlite" else value
+
+    def process_result_value(self, value: datetime | None, dialect: Dialect) -> datetime | None:
+        if value is None:
+            return None
+        return value.replace(tzinfo=UTC) if value.tzinfo is None else value.astimezone(UTC)
+
+
+class Base(DeclarativeBase):
+    metadata = MetaData(naming_convention=NAMING)
+    type_annotation_map: dict[Any, Any] = {datetime: UTCDateTime}
+
+
+class _Lifecycle:
+    created_at: Mapped[datetime]
+    updated_at: Mapped[datetime]
+    retired_at: Mapped[datetime | None] = mapped_column(
+        comment="set when retired; retired rows stay for the record and are never reused"
+    )
+
+
+class NodeMeta(Base):
+    """Small named values of this node (sealed secrets, check values)."""
+
+    __tablename__ = "node_meta"
+    name: Mapped[str] = mapped_column(String(64), primary_key=True)
+    value: Mapped[bytes] = mapped_column(LargeBinary)
+
+
+class RegistryNode(_Lifecycle, Base):
+    __tablename__ = "registry_node"
+    __table_args__ = (CheckConstraint("role IN ('relay', 'station')", name="role"),)
+    node_id: Mapped[str] = mapped_column(String(ID_LEN), primary_key=True)
+    role: Mapped[str] = mapped_column(String(16))
+    url: Mapped[str | None] = mapped_column(String(255), comment="base HTTPS URL of the node")
+    description: Mapped[str] = mapped_column(Text, default="")
+
+
+class QkdLink(_Lifecycle, Base):
+    __tablename__ = "qkd_link"
+    __table_args__ = (CheckConstraint("relay_id <> station_id", name="distinct_ends"),)
+    link_id: Mapped[str] = mapped_column(String(ID_LEN), primary_key=True)
+    relay_id: Mapped[str] = mapped_column(ForeignKey("registry_node.node_id"))
+    station_id: Mapped[str] = mapped_column(ForeignKey("registry_node.node_id"))
+    description: Mapped[str] = mapped_column(Text, default="")
+
+
+class Pair(_Lifecycle, Base):
+    """Two stations provisioned to share end-to-end key through a relay, with a policy."""
+
+    __tablename__ = "pair"
+    __table_args__ = (
+        CheckConstraint("station_a < station_b", name="ordered_stations"),
+        CheckConstraint(
+            "min_key_size >= 8 AND min_key_size % 8 = 0 AND max_key_size % 8 = 0 "
+            "AND default_key_size % 8 = 0 AND min_key_size <= default_key_size "
+            "AND default_key_size <= max_key_size",
+            name="key_sizes",
+        ),
+        CheckConstraint(
+            "buffer_min_bits >= 0 AND buffer_min_bits <= buffer_target_bits "
+            "AND buffer_target_bits <= buffer_max_bits",
+            name="buffer",
+        ),
+        CheckConstraint("priority BETWEEN 1 AND 1000", name="priority"),
+        CheckConstraint("daily_quota_bits IS NULL OR daily_quota_bits > 0", name="quota"),
+        CheckConstraint("key_ttl_seconds > 0", name="ttl"),
+        CheckConstraint("max_epsilon IS NULL OR max_epsilon > 0", name="epsilon"),
+    )
+    pair_id: Mapped[str] = mapped_column(String(ID_LEN), primary_key=True)
+    relay_id: Mapped[str] = mapped_column(ForeignKey("registry_node.node_id"))
+    station_a: Mapped[str] = mapped_column(ForeignKey("registry_node.node_id"))
+    station_b: Mapped[str] = mapped_column(ForeignKey("registry_node.node_id"))
+    min_key_size: Mapped[int] = mapped_column(Integer, comment="bits")
+    max_key_size: Mapped[int] = mapped_column(Integer, comment="bits")
+    default_key_size: Mapped[int] = mapped_column(Integer, comment="bits")
+    buffer_min_bits: Mapped[int] = mapped_column(BigInteger)
+    buffer_target_bits: Mapped[int] = mapped_column(BigInteger)
+    buffer_max_bits: Mapped[int] = mapped_column(BigInteger)
+    daily_quota_bits: Mapped[int | None] = mapped_column(
+        BigInteger, comment="bits of key each station may hand out per UTC day; NULL: no quota"
+    )
+    priority: Mapped[int] = mapped_column(Integer, comment="weight in max-min fair sharing")
+    max_epsilon: Mapped[float | None] = mapped_column(
+        Float, comment="segments whose composed security parameter exceeds this are not made"
+    )
+    key_ttl_seconds: Mapped[int] = mapped_column(Integer)
+
+
+class Principal(_Lifecycle, Base):
+    """A caller identified by its client certificate: its role and what it is bound to."""
+
+    __tablename__ = "principal"
+    __table_args__ = (
+        CheckConstraint(
+            "role IN ('sae', 'operator', 'auditor', 'peer', 'qkd-module')", name="role"
+        ),
+        CheckConstraint("(role = 'sae') = (station_id IS NOT NULL)", name="sae_station"),
+        CheckConstraint("(role = 'qkd-module') = (link_id IS NOT NULL)", name="module_link"),
+        CheckConstraint("(role = 'peer') = (node_id IS NOT NULL)", name="peer_node"),
+        Index(
+            "uq_principal_active_subject",
+            "cert_subject",
+            unique=True,
+            sqlite_where=text("retired_at IS NULL"),
+            postgresql_where=text("retired_at IS NULL"),
+        ),
+    )
+    principal_id: Mapped[str] = mapped_column(String(ID_LEN), primary_key=True)
+    role: Mapped[str] = mapped_column(String(16))
+    cert_subject: Mapped[str] = mapped_column(
+        String(255), comment="subject common name of the client certificate"
+    )
+    cert_sha256: Mapped[str | None] = mapped_column(
+        String(64), comment="optional pin: hex SHA-256 of the certificate (DER)"
+    )
+    station_id: Mapped[str | None] = mapped_column(ForeignKey("registry_node.node_id"))
+    link_id: Mapped[str | None] = mapped_column(ForeignKey("qkd_link.link_id"))
+    node_id: Mapped[str | None] = mapped_column(ForeignKey("registry_node.node_id"))
+    description: Mapped[str] = mapped_column(Text, default="")
+
+
+class LinkBlock(Base):
+    """A block of link key from a QKD module; bytes [used:length] are still sealed."""
+
+    __tablename__ = "link_block"
+    __table_args__ = (
+        UniqueConstraint("link_id", "block_id", name="uq_link_block_link_block"),
+        CheckConstraint("used >= 0 AND used <= length", name="used"),
+        CheckConstraint("(used = length) = (sealed IS NULL)", name="sealed_iff_left"),
+        CheckConstraint("qber >= 0 AND qber <= 0.5", name="qber"),
+        CheckConstraint("epsilon >= 0 AND epsilon < 1", name="epsilon"),
+        Index(
+            "ix_link_block_available",
+            "link_id",
+            "seq",
+            sqlite_where=text("used < length"),
+            postgresql_where=text("used < length"),
+        ),
+        Index("ix_link_block_received", "link_id", "received_at"),
+    )
+    seq: Mapped[int] = mapped_column(
+        BigInteger().with_variant(Integer, "sqlite"), primary_key=True, autoincrement=True
+    )
+    link_id: Mapped[str] = mapped_column(ForeignKey("qkd_link.link_id"))
+    block_id: Mapped[str] = mapped_column(String(36), comment="UUID given by the QKD module")
+    length: Mapped[int] = mapped_column(Integer, comment="bytes as received")
+    used: Mapped[int] = mapped_column(Integer, default=0, comment="bytes consumed, from the front")
+    qber: Mapped[float] = mapped_column(Float)
+    epsilon: Mapped[float] = mapped_column(Float)
+    produced_at: Mapped[datetime]
+    received_at: Mapped[datetime]
+    fingerprint: Mapped[bytes] = mapped_column(
+        LargeBinary(32), comment="HMAC of the bytes under a sealed node secret; spots re-sends"
+    )
+    sealed: Mapped[bytes | None] = mapped_column(
+        LargeBinary, comment="bytes [used:length], sealed under the KEK; NULL once all used"
+    )
+
+
+class LedgerHead(Base):
+    """Single row serialising ledger appends; holds the number of entries."""
+
+    __tablename__ = "ledger_head"
+    __table_args__ = (CheckConstraint("id = 1", name="single_row"),)
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    size: Mapped[int] = mapped_column(BigInteger)
+
+
+class LedgerEntry(Base):
+    """An audit entry: RFC 8785 canonical JSON, written in the transaction it records."""
+
+    __tablename__ = "ledger_entry"
+    __table_args__ = (Index("ix_ledger_entry_event", "event", "idx"),)
+    idx: Mapped[int] = mapped_column(BigInteger, primary_key=True, autoincrement=False)
+    recorded_at: Mapped[datetime] = mapped_column(index=True)
+    event: Mapped[str] = mapped_column(String(64))
+    entry: Mapped[bytes] = mapped_column(LargeBinary, comment="canonical JSON bytes (RFC 8785)")
