@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 from cryptography import x509
-from fastapi import FastAPI
+from fastapi import APIRouter, FastAPI
+from fastapi.routing import APIRoute
 
 from keystrata import __version__
 from keystrata.api import errors
@@ -13,6 +14,14 @@ from keystrata.services.context import NodeContext
 
 #: Bodies of routes other than ingest are small JSON documents.
 DEFAULT_BODY_LIMIT = 1024 * 1024
+
+
+ROUTERS: tuple[APIRouter, ...] = (node.router, registry.router, links.router)
+
+
+def route_table() -> list[APIRoute]:
+    """Every API route of a node, with its path and the roles it admits (for tests/docs)."""
+    return [r for router in ROUTERS for r in router.routes if isinstance(r, APIRoute)]
 
 
 def create_app(ctx: NodeContext) -> FastAPI:
@@ -26,9 +35,8 @@ def create_app(ctx: NodeContext) -> FastAPI:
     app.state.ctx = ctx
     app.state.ca_cert = x509.load_pem_x509_certificate(ctx.settings.tls.ca.read_bytes())
     errors.install(app)
-    app.include_router(node.router)
-    app.include_router(registry.router)
-    app.include_router(links.router)
+    for router in ROUTERS:
+        app.include_router(router)
     app.add_middleware(
         BodyLimit,
         default=DEFAULT_BODY_LIMIT,

@@ -81,7 +81,7 @@ def _store(ctx: NodeContext, s: Session, link_id: str, blocks: list[BlockIn],
         raise NotFound(f"no active QKD link {link_id!r} ends at this node")
     ids = [b.block_id for b in blocks]
     known = dict(s.execute(select(LinkBlock.block_id, LinkBlock.fingerprint).where(
-        LinkBlock.link_id == link_id, LinkBlock.block_id.in_(set(ids)))).tuples())
+        LinkBlock.link_id == link_id, LinkBlock.block_id.in_(set(ids)))).all())
     conflicts: list[str] = []
     fresh: dict[str, tuple[BlockIn, bytes]] = {}
     duplicates = 0

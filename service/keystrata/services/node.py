@@ -50,6 +50,15 @@ def check_kek(session: Session, keyring: Keyring) -> None:
         raise StartupRefused("the key-encryption-key check value is corrupt")
 
 
+def _check_identity(session: Session, settings: Settings) -> None:
+    node_id, role = _meta(session, "node_id"), _meta(session, "node_role")
+    if node_id != settings.node.id.encode() or role != settings.node.role.value.encode():
+        raise StartupRefused(
+            f"this database does not belong to node {settings.node.id!r} "
+            f"({settings.node.role.value}); check [node] id and role"
+        )
+
+
 def initialise(
     settings: Settings, db: Database, keyring: Keyring, clock: Clock | None = None
 ) -> bool:
@@ -67,12 +76,7 @@ def initialise(
     with db.write() as s:
         if _meta(s, "kek_check") is not None:
             check_kek(s, keyring)
-            self_row = s.get(RegistryNode, settings.node.id)
-            if self_row is None or self_row.role != settings.node.role:
-                raise StartupRefused(
-                    f"this database belongs to another node than {settings.node.id!r} "
-                    f"({settings.node.role})"
-                )
+            _check_identity(s, settings)
             return False
         now = clock.now()
         for name, value in (
@@ -81,6 +85,8 @@ def initialise(
             ("ledger_signing_key", generate_signing_key()),
         ):
             s.add(NodeMeta(name=name, value=keyring.seal(value, meta_context(name))))
+        s.add(NodeMeta(name="node_id", value=settings.node.id.encode()))
+        s.add(NodeMeta(name="node_role", value=settings.node.role.value.encode()))
         s.add(
             RegistryNode(
                 node_id=settings.node.id,
@@ -122,11 +128,7 @@ def open_node(settings: Settings, db: Database, clock: Clock | None = None) -> N
                 "a key-encryption-key rotation is unfinished; complete it with "
                 "`keystrata kek rotate` before starting the node"
             )
-        self_row = s.get(RegistryNode, settings.node.id)
-        if self_row is None or self_row.role != settings.node.role:
-            raise StartupRefused(
-                f"this database does not belong to node {settings.node.id!r}; check [node] id"
-            )
+        _check_identity(s, settings)
         fingerprint_sealed = s.execute(
             select(NodeMeta.value).where(NodeMeta.name == "fingerprint_key")
         ).scalar_one()

@@ -1,6 +1,7 @@
 """Registry routes: operators provision, auditors read."""
 
-from __future__ import annotations
+# No `from __future__ import annotations` here: FastAPI must see the body classes
+# bound in _routes() as real objects, not as names it cannot resolve.
 
 from typing import Annotated, Any
 

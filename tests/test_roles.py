@@ -1,0 +1,85 @@
+"""Every route x every role x no certificate, generated from the app's own route table:
+each role reaches only the routes that admit it; unknown callers get the same 401."""
+
+from __future__ import annotations
+
+import pytest
+from fastapi.routing import APIRoute
+
+from keystrata.api.app import route_table
+from keystrata.domain.registry import PrincipalRole
+
+#: Test certificate of each role (see conftest.CLIENTS).
+CERT_OF_ROLE = {
+    PrincipalRole.OPERATOR: "ops-ada",
+    PrincipalRole.AUDITOR: "aud-ben",
+    PrincipalRole.QKD_MODULE: "mod-link-a",
+    PrincipalRole.SAE: "sae-a1",
+    PrincipalRole.PEER: "peer-relay",
+}
+
+
+def _admitted(route: APIRoute) -> frozenset[PrincipalRole]:
+    roles: set[PrincipalRole] = set()
+    for dep in route.dependant.dependencies:
+        roles |= getattr(dep.call, "roles", frozenset())
+    return frozenset(roles)
+
+
+def test_every_route_states_its_roles(station) -> None:
+    routes = route_table()
+    assert routes
+    for route in routes:
+        assert _admitted(route), f"{route.path} admits no role: every route must state them"
+
+
+def test_role_matrix(station, api) -> None:
+    clients = {name: api(station)(name) for name in [*CERT_OF_ROLE.values(), "stranger"]}
+    nobody = api(station)(None)
+    checked = 0
+    for route in route_table():
+        path = route.path.replace("{link_id}", "link-a").replace("{entry_id}", "x")
+        admitted = _admitted(route)
+        for method in route.methods:
+            for role, cert in CERT_OF_ROLE.items():
+                status = clients[cert].request(method, path, json={}).status_code
+                if role in admitted:
+                    assert status not in (401, 403), (method, path, role, status)
+                else:
+                    assert status == 403, (method, path, role, status)
+            for who in (clients["stranger"], nobody):
+                r = who.request(method, path, json={})
+                assert r.status_code == 401, (method, path)
+                assert r.json() == {"message": "unauthorized"}
+            checked += 1
+    assert checked >= 20
+
+
+@pytest.mark.parametrize("name", ["stranger", None])
+def test_refusals_are_in_the_ledger(station, api, name: str | None) -> None:
+    from helpers import ledger_events
+
+    before = len(ledger_events(station.ctx))
+    assert api(station)(name).get("/api/v1/node").status_code == 401
+    events = ledger_events(station.ctx)
+    assert len(events) == before + 1 and events[-1] == "auth.refused"
+
+
+def test_retired_principal_is_unknown(station, api) -> None:
+    ops = api(station)("ops-ada")
+    assert ops.delete("/api/v1/registry/principals/aud-ben").status_code == 200
+    assert api(station)("aud-ben").get("/api/v1/node").status_code == 401
+
+
+def test_pinned_fingerprint_must_match(station, api, pki) -> None:
+    from keystrata.crypto.pki import fingerprint_sha256
+
+    ops = api(station)("ops-ada")
+    wrong = "0" * 64
+    assert ops.patch("/api/v1/registry/principals/aud-ben",
+                     json={"cert_sha256": wrong}).status_code == 200
+    assert api(station)("aud-ben").get("/api/v1/node").status_code == 401
+    right = fingerprint_sha256(pki.cert("aud-ben").read_bytes())
+    assert ops.patch("/api/v1/registry/principals/aud-ben",
+                     json={"cert_sha256": right}).status_code == 200
+    assert api(station)("aud-ben").get("/api/v1/node").status_code == 200
