@@ -38,7 +38,7 @@ _counter = itertools.count()
 # ---------------------------------------------------------------- PKI
 
 @dataclass(frozen=True)
-class TestPki:
+class PkiFiles:
     dir: Path
     foreign_dir: Path
 
@@ -70,7 +70,7 @@ NODES = ("relay-1", "station-a", "station-b", "station-c")
 
 
 @pytest.fixture(scope="session")
-def pki(tmp_path_factory: pytest.TempPathFactory) -> TestPki:
+def pki(tmp_path_factory: pytest.TempPathFactory) -> PkiFiles:
     base = tmp_path_factory.mktemp("pki")
     ours = PkiDir(base / "ca")
     ours.init("Test Network CA")
@@ -81,7 +81,7 @@ def pki(tmp_path_factory: pytest.TempPathFactory) -> TestPki:
     foreign = PkiDir(base / "foreign")
     foreign.init("Some Other CA")
     foreign.issue_client("ops-ada", "operator")  # same subject, wrong CA
-    return TestPki(dir=ours.path, foreign_dir=foreign.path)
+    return PkiFiles(dir=ours.path, foreign_dir=foreign.path)
 
 
 # ---------------------------------------------------------------- databases
@@ -148,7 +148,7 @@ def db_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
 
 # ---------------------------------------------------------------- nodes
 
-def write_config(folder: Path, *, node_id: str, role: str, db_url: str, pki: TestPki,
+def write_config(folder: Path, *, node_id: str, role: str, db_url: str, pki: PkiFiles,
                  port: int = 8443, extra: str = "") -> Path:
     """Write a node's TOML file (and a fresh KEK) into ``folder``; return the TOML path."""
     folder.mkdir(parents=True, exist_ok=True)
@@ -192,7 +192,7 @@ NodeFactory = Callable[..., Node]
 
 
 @pytest.fixture
-def make_node(tmp_path: Path, pki: TestPki) -> Iterator[NodeFactory]:
+def make_node(tmp_path: Path, pki: PkiFiles) -> Iterator[NodeFactory]:
     made: list[Database] = []
 
     def factory(node_id: str = "station-a", role: str = "station", *,
@@ -307,7 +307,7 @@ ApiFactory = Callable[[str | None], AsgiClient]
 
 
 @pytest.fixture
-def api(pki: TestPki) -> Iterator[Callable[[Node], ApiFactory]]:
+def api(pki: PkiFiles) -> Iterator[Callable[[Node], ApiFactory]]:
     """``api(node)(name)`` is a client presenting test certificate ``name`` (None: none)."""
     from keystrata.api.app import create_app
 

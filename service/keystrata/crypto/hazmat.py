@@ -98,17 +98,26 @@ class Keyring:
 
     @staticmethod
     def sealed_kek_id(sealed: bytes) -> bytes:
-        """Return the KEK identifier a sealed value was made under."""
+        """Return the KEK identifier a sealed value was made under. Raises SealBroken."""
+        if len(sealed) < SEAL_OVERHEAD or sealed[0] != SEAL_VERSION:
+            raise SealBroken()
         return sealed[1 : 1 + KEK_ID_BYTES]
 
 
 def one_time_mac(key: bytes, message: bytes) -> bytes:
     """Return the 16-byte Poly1305 tag of ``message`` under a 32-byte one-time ``key``."""
+    _check_mac_key(key)
     return poly1305.Poly1305.generate_tag(key, message)
+
+
+def _check_mac_key(key: bytes) -> None:
+    if len(key) != MAC_KEY_BYTES:
+        raise CryptoError("a one-time MAC key must be exactly 32 bytes")
 
 
 def verify_one_time_mac(key: bytes, message: bytes, tag: bytes) -> None:
     """Check a Poly1305 tag in constant time. Raises CryptoError when it does not match."""
+    _check_mac_key(key)
     try:
         poly1305.Poly1305.verify_tag(key, message, tag)
     except InvalidSignature as exc:
@@ -117,7 +126,6 @@ def verify_one_time_mac(key: bytes, message: bytes, tag: bytes) -> None:
 
 def generate_signing_key() -> bytes:
     """Return a new Ed25519 private key as its 32 raw bytes."""
-
     return Ed25519PrivateKey.generate().private_bytes(
         serialization.Encoding.Raw, serialization.PrivateFormat.Raw, serialization.NoEncryption()
     )
@@ -125,17 +133,23 @@ def generate_signing_key() -> bytes:
 
 def public_key_of(private_key: bytes) -> bytes:
     """Return the raw 32-byte Ed25519 public key for a raw private key."""
-
     return (
-        Ed25519PrivateKey.from_private_bytes(private_key)
+        _private(private_key)
         .public_key()
         .public_bytes(serialization.Encoding.Raw, serialization.PublicFormat.Raw)
     )
 
 
+def _private(raw: bytes) -> Ed25519PrivateKey:
+    try:
+        return Ed25519PrivateKey.from_private_bytes(raw)
+    except ValueError as exc:
+        raise CryptoError("an Ed25519 private key must be exactly 32 bytes") from exc
+
+
 def sign(private_key: bytes, message: bytes) -> bytes:
     """Return the 64-byte Ed25519 signature of ``message``."""
-    return Ed25519PrivateKey.from_private_bytes(private_key).sign(message)
+    return _private(private_key).sign(message)
 
 
 def verify_signature(public_key: bytes, message: bytes, signature: bytes) -> None:

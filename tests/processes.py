@@ -1,0 +1,87 @@
+"""Real node processes for end-to-end tests: `keystrata serve` on loopback ports."""
+
+from __future__ import annotations
+
+import os
+import signal
+import socket
+import ssl
+import subprocess
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import httpx
+
+from conftest import PkiFiles, write_config
+
+KEYSTRATA = [sys.executable, "-m", "keystrata"]
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def run_cli(*args: str, check: bool = True, env: dict[str, str] | None = None,
+            timeout: float = 60) -> subprocess.CompletedProcess[str]:
+    result = subprocess.run([*KEYSTRATA, *args], capture_output=True, text=True,
+                            timeout=timeout, env={**os.environ, **(env or {})})
+    if check and result.returncode != 0:
+        raise AssertionError(f"keystrata {' '.join(args)} failed:\n{result.stdout}\n"
+                             f"{result.stderr}")
+    return result
+
+
+@dataclass
+class NodeProcess:
+    node_id: str
+    config: Path
+    port: int
+    log: Path
+    proc: subprocess.Popen[bytes] | None = field(default=None, repr=False)
+
+    @property
+    def url(self) -> str:
+        return f"https://127.0.0.1:{self.port}"
+
+    def start(self, pki: PkiFiles, timeout: float = 20) -> NodeProcess:
+        with open(self.log, "ab") as log:
+            self.proc = subprocess.Popen([*KEYSTRATA, "serve", "--config", str(self.config)],
+                                         stdout=log, stderr=subprocess.STDOUT)
+        ctx = ssl.create_default_context(cafile=str(pki.ca))
+        ctx.load_cert_chain(str(pki.cert("ops-ada")), str(pki.key("ops-ada")))
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if self.proc.poll() is not None:
+                self.proc = None
+                raise AssertionError(f"{self.node_id} exited:\n{self.log.read_text()}")
+            try:
+                httpx.get(self.url + "/api/v1/node", verify=ctx, timeout=1)
+                return self
+            except httpx.HTTPError:
+                time.sleep(0.1)
+        self.stop(signal.SIGKILL)
+        raise AssertionError(f"{self.node_id} did not answer:\n{self.log.read_text()}")
+
+    def stop(self, sig: int = signal.SIGTERM) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.send_signal(sig)
+            try:
+                self.proc.wait(10)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(10)
+        self.proc = None
+
+
+def prepare_node(folder: Path, pki: PkiFiles, node_id: str, role: str, db_url: str,
+                 operator: str = "ops-ada") -> NodeProcess:
+    port = free_port()
+    config = write_config(folder, node_id=node_id, role=role, db_url=db_url, pki=pki,
+                          port=port)
+    run_cli("node", "init", "--config", str(config), "--operator-subject", operator,
+            "--operator-id", operator)
+    return NodeProcess(node_id=node_id, config=config, port=port, log=folder / f"{node_id}.log")

@@ -1,0 +1,98 @@
+"""End to end over real mutual TLS on loopback: a `keystrata serve` process, the SDK,
+httpx and curl (a general-purpose client from the OS packages)."""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import ssl
+import subprocess
+import uuid
+from collections.abc import Iterator
+from datetime import UTC, datetime
+
+import httpx
+import pytest
+
+from conftest import PkiFiles
+from keystrata_client import (
+    ApiError,
+    LinkBlock,
+    ModuleClient,
+    OperatorClient,
+    TlsIdentity,
+)
+from processes import NodeProcess, prepare_node
+
+pytestmark = pytest.mark.e2e
+
+
+def identity(pki: PkiFiles, name: str) -> TlsIdentity:
+    return TlsIdentity(ca=pki.ca, cert=pki.cert(name), key=pki.key(name))
+
+
+@pytest.fixture
+def station_process(tmp_path, pki: PkiFiles, db_url: str) -> Iterator[NodeProcess]:
+    node = prepare_node(tmp_path, pki, "station-a", "station", db_url).start(pki)
+    try:
+        with OperatorClient(node.url, identity(pki, "ops-ada")) as ops:
+            ops.create("nodes", {"node_id": "relay-1", "role": "relay"})
+            ops.create("links", {"link_id": "link-a", "relay_id": "relay-1",
+                                 "station_id": "station-a"})
+            ops.create("principals", {"principal_id": "mod-link-a", "role": "qkd-module",
+                                      "cert_subject": "mod-link-a", "link_id": "link-a"})
+        yield node
+    finally:
+        node.stop()
+
+
+def _handshake_refused(url: str, pki: PkiFiles, cert: tuple[str, str] | None) -> bool:
+    ctx = ssl.create_default_context(cafile=str(pki.ca))
+    if cert:
+        ctx.load_cert_chain(*cert)
+    try:
+        r = httpx.get(url + "/api/v1/node", verify=ctx, timeout=5)
+    except (httpx.ConnectError, httpx.ReadError, httpx.RemoteProtocolError):
+        # With TLS 1.3 the server's refusal arrives after the client's handshake ends,
+        # so httpx sees a dropped connection rather than a handshake error.
+        return True
+    raise AssertionError(f"expected the handshake to fail, got {r.status_code}")
+
+
+def test_client_without_certificate_is_refused(station_process, pki) -> None:
+    assert _handshake_refused(station_process.url, pki, None)
+
+
+def test_certificate_from_another_ca_is_refused(station_process, pki) -> None:
+    foreign = (str(pki.foreign_dir / "ops-ada.crt"), str(pki.foreign_dir / "ops-ada.key"))
+    assert _handshake_refused(station_process.url, pki, foreign)
+
+
+def test_unregistered_certificate_gets_401(station_process, pki) -> None:
+    with OperatorClient(station_process.url, identity(pki, "stranger")) as who:
+        with pytest.raises(ApiError) as caught:
+            who.node_info()
+    assert caught.value.status == 401
+
+
+def test_module_pushes_binary_blocks_and_operator_sees_the_pool(station_process, pki) -> None:
+    blocks = [LinkBlock(block_id=str(uuid.uuid4()), key=os.urandom(2048), qber=0.02,
+                        epsilon=1e-10, produced_at=datetime.now(UTC)) for _ in range(8)]
+    with ModuleClient(station_process.url, identity(pki, "mod-link-a")) as mod:
+        first = mod.push_blocks("link-a", blocks)
+        again = mod.push_blocks("link-a", blocks, binary=False)
+    assert (first.accepted, first.accepted_bits) == (8, 8 * 2048 * 8)
+    assert (again.accepted, again.duplicates) == (0, 8)
+    with OperatorClient(station_process.url, identity(pki, "ops-ada")) as ops:
+        pool = ops.pool("link-a")
+    assert pool["bits_available"] == 8 * 2048 * 8
+
+
+@pytest.mark.skipif(shutil.which("curl") is None, reason="curl is not installed")
+def test_curl_with_the_operator_certificate(station_process, pki) -> None:
+    out = subprocess.run(
+        ["curl", "-sS", "--cacert", str(pki.ca), "--cert", str(pki.cert("ops-ada")),
+         "--key", str(pki.key("ops-ada")), station_process.url + "/api/v1/registry/links"],
+        capture_output=True, text=True, timeout=30, check=True)
+    assert [x["link_id"] for x in json.loads(out.stdout)["items"]] == ["link-a"]
