@@ -28,7 +28,7 @@ test-fast: $(STAMP)
 
 ## make demo ARGS='--duration 30 --workdir /tmp/ks-demo'
 demo: $(STAMP)
-	$(BIN)/keystrata-demo $(ARGS)
+	$(BIN)/keystrata demo $(ARGS)
 
 lint: $(STAMP)
 	$(BIN)/ruff check service clients tests

@@ -1,0 +1,1 @@
+"""`keystrata demo`: a whole invented network on loopback (one relay, three stations)."""

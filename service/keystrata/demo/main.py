@@ -1,0 +1,191 @@
+"""`keystrata demo`: build the invented Lowmarch network, run it, show the pools."""
+
+from __future__ import annotations
+
+import asyncio
+import signal
+import sys
+import time
+from datetime import UTC, datetime
+from pathlib import Path
+
+import click
+from rich.console import Console
+from rich.live import Live
+
+from keystrata.demo import scenario
+from keystrata.demo.nodes import NodeProcesses, free_ports
+from keystrata.demo.provision import operator_identity, provision
+from keystrata.demo.view import Snapshot, links_table
+from keystrata.demo.workdir import (
+    DemoNode,
+    build_pki,
+    init_databases,
+    prepare_folder,
+    write_configs,
+    write_manifest,
+)
+from keystrata_client import OperatorClient, TlsIdentity
+from keystrata_client.emulators import LinkEmulator, LinkSpec, LinkStats, ModelParams
+
+# Wide enough for the pool table when the output goes to a file or a pipe.
+console = Console(width=None if sys.stdout.isatty() else 140)
+
+#: Emulated sky: one day every two minutes, starting at dusk.
+TIME_SCALE = 720.0
+SKY_START = datetime(2026, 6, 21, 17, 0, tzinfo=UTC)
+
+
+def _nodes(workdir: Path) -> list[DemoNode]:
+    ids = [(scenario.RELAY, "relay")] + [(s.node_id, "station") for s in scenario.STATIONS]
+    ports = free_ports(len(ids))
+    return [DemoNode(node_id=n, role=r, port=p, config=workdir / n / "node.toml")
+            for (n, r), p in zip(ids, ports, strict=True)]
+
+
+def _link_specs(workdir: Path, nodes: list[DemoNode]) -> list[LinkSpec]:
+    url = {n.node_id: n.url for n in nodes}
+    specs = []
+    for i, st in enumerate(scenario.STATIONS):
+        ident = TlsIdentity(ca=workdir / "pki/ca.crt", cert=workdir / f"pki/{st.module}.crt",
+                            key=workdir / f"pki/{st.module}.key")
+        specs.append(LinkSpec(
+            link_id=st.link_id, relay_url=url[scenario.RELAY], station_url=url[st.node_id],
+            relay_identity=ident, station_identity=ident, seed=11 + i, block_bytes=4096,
+            model=ModelParams(base_rate_bps=st.base_rate_bps, day_factor=0.1,
+                              longitude_deg=0.0, mean_clear_s=st.mean_clear_s,
+                              mean_cloud_s=st.mean_cloud_s)))
+    return specs
+
+
+def _read_pools(nodes: list[DemoNode], identity: TlsIdentity) -> dict[tuple[str, str], dict]:
+    out = {}
+    for node in nodes:
+        try:
+            with OperatorClient(node.url, identity, timeout=3.0) as client:
+                for pool in client.pools()["pools"]:
+                    out[(node.node_id, pool["link_id"])] = pool
+        except Exception:  # noqa: BLE001, S112 - a node that does not answer shows as "-"
+            continue
+    return out
+
+
+async def _watch(emulator: LinkEmulator, procs: NodeProcesses, nodes: list[DemoNode],
+                 identity: TlsIdentity, duration: float | None, live: Live | None) -> Snapshot:
+    started = time.monotonic()
+    last_print = 0.0
+    snap = Snapshot(pools={}, elapsed=0.0, dead=[])
+    while True:
+        elapsed = time.monotonic() - started
+        pools = await asyncio.to_thread(_read_pools, nodes, identity)
+        snap = Snapshot(pools=pools, elapsed=elapsed, dead=procs.dead())
+        title = _title(emulator.stats, elapsed, duration)
+        if live is not None:
+            live.update(links_table(snap, emulator.stats, title))
+        elif elapsed - last_print >= 5.0:
+            console.print(links_table(snap, emulator.stats, title))
+            last_print = elapsed
+        if snap.dead:
+            return snap
+        if duration is not None and elapsed >= duration:
+            return snap
+        await asyncio.sleep(1.0)
+
+
+def _title(stats: dict[str, LinkStats], elapsed: float, duration: float | None) -> str:
+    sky = next((s.emulated_at for s in stats.values() if s.emulated_at), None)
+    clock = f"sky over Lowmarch {sky:%H:%M}" if sky else "starting"
+    left = f", {duration - elapsed:.0f} s left" if duration is not None else ", Ctrl-C stops"
+    return f"{scenario.ORGANISATION}: link key pools ({clock}{left})"
+
+
+async def _run(workdir: Path, nodes: list[DemoNode], procs: NodeProcesses,
+               duration: float | None) -> tuple[Snapshot, dict[str, LinkStats]]:
+    identity = operator_identity(workdir)
+    emulator = LinkEmulator(_link_specs(workdir, nodes), time_scale=TIME_SCALE,
+                            start=SKY_START.timestamp(), drain_seconds=5.0)
+    loop = asyncio.get_running_loop()
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        loop.add_signal_handler(sig, emulator.stop)
+    emulating = asyncio.create_task(emulator.run())
+    try:
+        if sys.stdout.isatty():
+            with Live(console=console, refresh_per_second=2) as live:
+                watching = asyncio.create_task(
+                    _watch(emulator, procs, nodes, identity, duration, live))
+                await asyncio.wait({emulating, watching}, return_when=asyncio.FIRST_COMPLETED)
+        else:
+            watching = asyncio.create_task(
+                _watch(emulator, procs, nodes, identity, duration, None))
+            await asyncio.wait({emulating, watching}, return_when=asyncio.FIRST_COMPLETED)
+    finally:
+        watching.cancel()
+        emulator.stop()
+        stats = await emulating
+    # After the emulator drained its queues, both ends of each link must agree.
+    pools = await asyncio.to_thread(_read_pools, nodes, identity)
+    return Snapshot(pools=pools, elapsed=0.0, dead=procs.dead()), stats
+
+
+def _disagreements(snap: Snapshot) -> list[str]:
+    out = []
+    for st in scenario.STATIONS:
+        relay = snap.pools.get((scenario.RELAY, st.link_id), {}).get("bits_received")
+        station = snap.pools.get((st.node_id, st.link_id), {}).get("bits_received")
+        if relay is None or station is None or relay != station:
+            out.append(f"{st.link_id}: relay holds {relay} bits, station {station}")
+    return out
+
+
+@click.command("demo")
+@click.option("--duration", type=click.FloatRange(min=1), default=None, metavar="SECONDS",
+              help="run this long, print a summary and exit (default: until Ctrl-C)")
+@click.option("--workdir", type=click.Path(file_okay=False, path_type=Path),
+              default=Path("demo-work"), show_default=True,
+              help="folder for PKI, configs, databases, logs and demo.json")
+def demo(duration: float | None, workdir: Path) -> None:
+    """Run one relay and three stations on loopback, fed by emulated QKD links."""
+    workdir = workdir.resolve()
+    try:
+        prepare_folder(workdir)
+    except ValueError as exc:
+        raise click.ClickException(str(exc)) from None
+    nodes = _nodes(workdir)
+    procs = NodeProcesses(nodes, workdir / "logs")
+    with console.status("creating the network CA and certificates") as status:
+        build_pki(workdir, nodes)
+        status.update("writing node configs and key-encryption keys")
+        write_configs(workdir, nodes)
+        status.update("initialising node databases")
+        init_databases(nodes)
+        manifest = write_manifest(workdir, nodes)
+        status.update("starting nodes")
+        procs.start()
+    try:
+        with console.status("waiting for the nodes to answer"):
+            procs.wait_ready(operator_identity(workdir))
+        with console.status("provisioning links, pairs and principals"):
+            sent = provision(workdir, nodes)
+        _intro(workdir, nodes, manifest, sent)
+        snap, stats = asyncio.run(_run(workdir, nodes, procs, duration))
+    finally:
+        procs.stop()
+    console.print(links_table(snap, stats, "final pool levels (emulator drained)"))
+    problems = [f"node {n} stopped unexpectedly" for n in snap.dead] + _disagreements(snap)
+    if problems:
+        for p in problems:
+            console.print(f"[red]problem:[/red] {p}")
+        sys.exit(1)
+    total = sum(s.bits_generated for s in stats.values())
+    console.print(f"[green]ok:[/green] {total:,} bits of link key delivered to both ends of "
+                  f"{len(stats)} QKD links; every relay pool matches its station's.")
+
+
+def _intro(workdir: Path, nodes: list[DemoNode], manifest: Path, sent: int) -> None:
+    console.print(f"[bold]{scenario.ORGANISATION}[/bold] demo in {workdir}")
+    for n in nodes:
+        console.print(f"  {n.role:8} {n.node_id:10} {n.url}")
+    console.print(f"  {sent} registry entries provisioned; manifest: {manifest}")
+    op = f"pki/{scenario.OPERATOR}"
+    console.print(f"  try: cd {workdir} && curl --cacert pki/ca.crt --cert {op}.crt "
+                  f"--key {op}.key {nodes[0].url}/api/v1/links/pools", soft_wrap=True)

@@ -1,0 +1,142 @@
+"""Create the demo's work folder: PKI, key-encryption keys, node configs and databases,
+and the manifest ``demo.json`` that people and scripts use to reach the running demo."""
+
+from __future__ import annotations
+
+import json
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from keystrata.config import load_settings
+from keystrata.crypto.kek import write_new_kek
+from keystrata.crypto.pki import PkiDir
+from keystrata.demo import scenario
+from keystrata.services.node import initialise, load_keyring
+from keystrata.storage.db import Database
+
+MANIFEST = "demo.json"
+
+
+@dataclass(frozen=True)
+class DemoNode:
+    node_id: str
+    role: str
+    port: int
+    config: Path
+
+    @property
+    def url(self) -> str:
+        return f"https://127.0.0.1:{self.port}"
+
+
+def prepare_folder(workdir: Path) -> None:
+    """Empty ``workdir`` if it holds an earlier demo; refuse a folder holding anything else.
+
+    Raises:
+        click-free ValueError: the folder has files that no demo wrote.
+    """
+    if workdir.exists() and any(workdir.iterdir()):
+        if not (workdir / MANIFEST).exists() and not (workdir / "pki").exists():
+            raise ValueError(f"{workdir} is not empty and holds no earlier demo; "
+                             "choose another --workdir")
+        shutil.rmtree(workdir)
+    workdir.mkdir(parents=True, exist_ok=True)
+
+
+def build_pki(workdir: Path, nodes: list[DemoNode]) -> PkiDir:
+    pki = PkiDir(workdir / "pki")
+    pki.init(scenario.CA_NAME)
+    for node in nodes:
+        pki.issue_node(node.node_id, ["127.0.0.1", "localhost"])
+    pki.issue_client(scenario.OPERATOR, "operator")
+    pki.issue_client(scenario.AUDITOR, "auditor")
+    for st in scenario.STATIONS:
+        pki.issue_client(st.module, "qkd-module")
+        for sae in st.saes:
+            pki.issue_client(sae, "sae")
+    return pki
+
+
+def _peers(node_id: str, nodes: list[DemoNode]) -> list[DemoNode]:
+    if node_id == scenario.RELAY:
+        return [n for n in nodes if n.node_id != node_id]
+    wanted = {scenario.RELAY, *scenario.partners(node_id)}
+    return [n for n in nodes if n.node_id in wanted]
+
+
+def write_configs(workdir: Path, nodes: list[DemoNode]) -> None:
+    for node in nodes:
+        folder = node.config.parent
+        folder.mkdir(parents=True, exist_ok=True)
+        write_new_kek(folder / "kek.b64")
+        peers = "".join(f'\n[[peers]]\nid = "{p.node_id}"\nurl = "{p.url}"\n'
+                        for p in _peers(node.node_id, nodes))
+        node.config.write_text(f"""# {scenario.ORGANISATION}: node {node.node_id} (demo)
+[node]
+id = "{node.node_id}"
+role = "{node.role}"
+
+[server]
+host = "127.0.0.1"
+port = {node.port}
+
+[tls]
+ca = "../pki/ca.crt"
+cert = "../pki/{node.node_id}.crt"
+key = "../pki/{node.node_id}.key"
+
+[database]
+url = "sqlite:///{node.node_id}.db"
+
+[kek]
+file = "kek.b64"
+{peers}""")
+
+
+def init_databases(nodes: list[DemoNode]) -> None:
+    """Migrate each node's database, create its secrets, and add the first operator."""
+    from keystrata.domain.registry import Kind, PrincipalRole, PrincipalSpec
+    from keystrata.services import registry
+    from keystrata.services.node import open_node
+
+    for node in nodes:
+        settings = load_settings(node.config, env={})
+        db = Database.from_url(settings.database.url)
+        try:
+            initialise(settings, db, load_keyring(settings))
+            registry.create(open_node(settings, db), Kind.PRINCIPALS, PrincipalSpec(
+                principal_id=scenario.OPERATOR, role=PrincipalRole.OPERATOR,
+                cert_subject=scenario.OPERATOR, description="Ida Varga, network operator"),
+                actor="local-admin")
+        finally:
+            db.dispose()
+
+
+def write_manifest(workdir: Path, nodes: list[DemoNode]) -> Path:
+    """Write ``demo.json``; every path in it is relative to ``workdir``."""
+    principals: list[dict[str, Any]] = [
+        {"id": scenario.OPERATOR, "role": "operator"},
+        {"id": scenario.AUDITOR, "role": "auditor"},
+    ]
+    for st in scenario.STATIONS:
+        principals.append({"id": st.module, "role": "qkd-module", "link": st.link_id})
+        principals += [{"id": sae, "role": "sae", "station": st.node_id} for sae in st.saes]
+    for p in principals:
+        p["cert"] = f"pki/{p['id']}.crt"
+        p["key"] = f"pki/{p['id']}.key"
+    manifest = {
+        "scenario": scenario.ORGANISATION,
+        "ca": "pki/ca.crt",
+        "nodes": [{"id": n.node_id, "role": n.role, "url": n.url,
+                   "config": str(n.config.relative_to(workdir))} for n in nodes],
+        "principals": principals,
+        "links": [{"id": st.link_id, "relay": scenario.RELAY, "station": st.node_id}
+                  for st in scenario.STATIONS],
+        "pairs": [{"id": scenario.pair_id(a, b), "stations": sorted([a, b])}
+                  for a, b in scenario.PAIRS],
+    }
+    path = workdir / MANIFEST
+    path.write_text(json.dumps(manifest, indent=2) + "\n")
+    return path
