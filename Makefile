@@ -20,6 +20,9 @@ $(STAMP): pyproject.toml | $(BIN)/python
 ## make test: the whole suite on SQLite and PostgreSQL (PostgreSQL is skipped
 ## locally when no server answers; with CI set, a missing server fails the run)
 test: $(STAMP)
+	$(BIN)/ruff check service clients tests
+	$(BIN)/ruff format --check service clients tests
+	$(BIN)/mypy
 	$(BIN)/python -m pytest $(ARGS)
 
 ## make test-fast: domain and SQLite tests only, no server processes

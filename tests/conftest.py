@@ -16,9 +16,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+import httpx
 import psycopg
 import pytest
-import httpx
 from anyio.from_thread import BlockingPortal, start_blocking_portal
 
 from keystrata.config import Settings, load_settings
@@ -36,6 +36,7 @@ _counter = itertools.count()
 
 
 # ---------------------------------------------------------------- PKI
+
 
 @dataclass(frozen=True)
 class PkiFiles:
@@ -85,6 +86,7 @@ def pki(tmp_path_factory: pytest.TempPathFactory) -> PkiFiles:
 
 
 # ---------------------------------------------------------------- databases
+
 
 def _pg_admin() -> psycopg.Connection[Any]:
     url = PG_URL.replace("postgresql+psycopg://", "postgresql://")
@@ -148,8 +150,17 @@ def db_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
 
 # ---------------------------------------------------------------- nodes
 
-def write_config(folder: Path, *, node_id: str, role: str, db_url: str, pki: PkiFiles,
-                 port: int = 8443, extra: str = "") -> Path:
+
+def write_config(
+    folder: Path,
+    *,
+    node_id: str,
+    role: str,
+    db_url: str,
+    pki: PkiFiles,
+    port: int = 8443,
+    extra: str = "",
+) -> Path:
     """Write a node's TOML file (and a fresh KEK) into ``folder``; return the TOML path."""
     folder.mkdir(parents=True, exist_ok=True)
     kek = folder / f"{node_id}.kek"
@@ -195,10 +206,12 @@ NodeFactory = Callable[..., Node]
 def make_node(tmp_path: Path, pki: PkiFiles) -> Iterator[NodeFactory]:
     made: list[Database] = []
 
-    def factory(node_id: str = "station-a", role: str = "station", *,
-                db_url: str, extra: str = "") -> Node:
-        path = write_config(tmp_path / node_id, node_id=node_id, role=role, db_url=db_url,
-                            pki=pki, extra=extra)
+    def factory(
+        node_id: str = "station-a", role: str = "station", *, db_url: str, extra: str = ""
+    ) -> Node:
+        path = write_config(
+            tmp_path / node_id, node_id=node_id, role=role, db_url=db_url, pki=pki, extra=extra
+        )
         settings = load_settings(path, env={})
         db = Database.from_url(settings.database.url, sqlite_synchronous="NORMAL")
         made.append(db)
@@ -216,27 +229,56 @@ def seed_registry(ctx: NodeContext) -> None:
     from keystrata.domain.registry import Kind, LinkSpec, NodeSpec, PrincipalSpec
     from keystrata.services import registry
 
-    nodes = [("relay-1", "relay"), ("station-a", "station"), ("station-b", "station"),
-             ("station-c", "station")]
+    nodes = [
+        ("relay-1", "relay"),
+        ("station-a", "station"),
+        ("station-b", "station"),
+        ("station-c", "station"),
+    ]
     for node_id, role in nodes:
         if node_id != ctx.node_id:
-            registry.create(ctx, Kind.NODES, NodeSpec.model_validate(
-                {"node_id": node_id, "role": role,
-                 "url": f"https://127.0.0.1/{node_id}"}), actor="test")
+            registry.create(
+                ctx,
+                Kind.NODES,
+                NodeSpec.model_validate(
+                    {"node_id": node_id, "role": role, "url": f"https://127.0.0.1/{node_id}"}
+                ),
+                actor="test",
+            )
     for link, station in (("link-a", "station-a"), ("link-b", "station-b")):
-        registry.create(ctx, Kind.LINKS, LinkSpec(link_id=link, relay_id="relay-1",
-                                                  station_id=station), actor="test")
+        registry.create(
+            ctx,
+            Kind.LINKS,
+            LinkSpec(link_id=link, relay_id="relay-1", station_id=station),
+            actor="test",
+        )
     principals: list[dict[str, Any]] = [
         {"principal_id": "ops-ada", "role": "operator", "cert_subject": "ops-ada"},
         {"principal_id": "aud-ben", "role": "auditor", "cert_subject": "aud-ben"},
-        {"principal_id": "mod-link-a", "role": "qkd-module", "cert_subject": "mod-link-a",
-         "link_id": "link-a"},
-        {"principal_id": "mod-link-b", "role": "qkd-module", "cert_subject": "mod-link-b",
-         "link_id": "link-b"},
-        {"principal_id": "sae-a1", "role": "sae", "cert_subject": "sae-a1",
-         "station_id": "station-a"},
-        {"principal_id": "peer-relay", "role": "peer", "cert_subject": "peer-relay",
-         "node_id": "relay-1"},
+        {
+            "principal_id": "mod-link-a",
+            "role": "qkd-module",
+            "cert_subject": "mod-link-a",
+            "link_id": "link-a",
+        },
+        {
+            "principal_id": "mod-link-b",
+            "role": "qkd-module",
+            "cert_subject": "mod-link-b",
+            "link_id": "link-b",
+        },
+        {
+            "principal_id": "sae-a1",
+            "role": "sae",
+            "cert_subject": "sae-a1",
+            "station_id": "station-a",
+        },
+        {
+            "principal_id": "peer-relay",
+            "role": "peer",
+            "cert_subject": "peer-relay",
+            "node_id": "relay-1",
+        },
     ]
     for body in principals:
         registry.create(ctx, Kind.PRINCIPALS, PrincipalSpec.model_validate(body), actor="test")
@@ -260,6 +302,7 @@ def relay(make_node: NodeFactory, db_url: str) -> Node:
 
 # ---------------------------------------------------------------- API clients
 
+
 class _WithClientCert:
     """ASGI wrapper standing in for the TLS layer: puts a client certificate into the
     scope's TLS extension, as keystrata's uvicorn protocol does after a handshake."""
@@ -270,8 +313,10 @@ class _WithClientCert:
 
     async def __call__(self, scope: Any, receive: Any, send: Any) -> None:
         if scope["type"] == "http" and self.pem is not None:
-            scope["extensions"] = {**(scope.get("extensions") or {}),
-                                   "tls": {"client_cert_chain": [self.pem]}}
+            scope["extensions"] = {
+                **(scope.get("extensions") or {}),
+                "tls": {"client_cert_chain": [self.pem]},
+            }
         await self.app(scope, receive, send)
 
 
@@ -281,8 +326,9 @@ class AsgiClient:
 
     def __init__(self, portal: BlockingPortal, app: Any) -> None:
         self._portal = portal
-        self._client = httpx.AsyncClient(transport=httpx.ASGITransport(app=app),
-                                         base_url="https://testserver")
+        self._client = httpx.AsyncClient(
+            transport=httpx.ASGITransport(app=app), base_url="https://testserver"
+        )
 
     def request(self, method: str, url: str, **kw: Any) -> httpx.Response:
         return self._portal.call(lambda: self._client.request(method, url, **kw))

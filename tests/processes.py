@@ -25,13 +25,20 @@ def free_port() -> int:
         return int(s.getsockname()[1])
 
 
-def run_cli(*args: str, check: bool = True, env: dict[str, str] | None = None,
-            timeout: float = 60) -> subprocess.CompletedProcess[str]:
-    result = subprocess.run([*KEYSTRATA, *args], capture_output=True, text=True,
-                            timeout=timeout, env={**os.environ, **(env or {})})
+def run_cli(
+    *args: str, check: bool = True, env: dict[str, str] | None = None, timeout: float = 60
+) -> subprocess.CompletedProcess[str]:
+    result = subprocess.run(
+        [*KEYSTRATA, *args],
+        capture_output=True,
+        text=True,
+        timeout=timeout,
+        env={**os.environ, **(env or {})},
+    )
     if check and result.returncode != 0:
-        raise AssertionError(f"keystrata {' '.join(args)} failed:\n{result.stdout}\n"
-                             f"{result.stderr}")
+        raise AssertionError(
+            f"keystrata {' '.join(args)} failed:\n{result.stdout}\n{result.stderr}"
+        )
     return result
 
 
@@ -49,8 +56,11 @@ class NodeProcess:
 
     def start(self, pki: PkiFiles, timeout: float = 20) -> NodeProcess:
         with open(self.log, "ab") as log:
-            self.proc = subprocess.Popen([*KEYSTRATA, "serve", "--config", str(self.config)],
-                                         stdout=log, stderr=subprocess.STDOUT)
+            self.proc = subprocess.Popen(
+                [*KEYSTRATA, "serve", "--config", str(self.config)],
+                stdout=log,
+                stderr=subprocess.STDOUT,
+            )
         ctx = ssl.create_default_context(cafile=str(pki.ca))
         ctx.load_cert_chain(str(pki.cert("ops-ada")), str(pki.key("ops-ada")))
         deadline = time.monotonic() + timeout
@@ -77,11 +87,19 @@ class NodeProcess:
         self.proc = None
 
 
-def prepare_node(folder: Path, pki: PkiFiles, node_id: str, role: str, db_url: str,
-                 operator: str = "ops-ada") -> NodeProcess:
+def prepare_node(
+    folder: Path, pki: PkiFiles, node_id: str, role: str, db_url: str, operator: str = "ops-ada"
+) -> NodeProcess:
     port = free_port()
-    config = write_config(folder, node_id=node_id, role=role, db_url=db_url, pki=pki,
-                          port=port)
-    run_cli("node", "init", "--config", str(config), "--operator-subject", operator,
-            "--operator-id", operator)
+    config = write_config(folder, node_id=node_id, role=role, db_url=db_url, pki=pki, port=port)
+    run_cli(
+        "node",
+        "init",
+        "--config",
+        str(config),
+        "--operator-subject",
+        operator,
+        "--operator-id",
+        operator,
+    )
     return NodeProcess(node_id=node_id, config=config, port=port, log=folder / f"{node_id}.log")

@@ -44,11 +44,14 @@ def test_relative_paths_resolve_against_the_file(tmp_path: Path) -> None:
 
 
 def test_environment_overrides_the_file(tmp_path: Path) -> None:
-    s = load_settings(write(tmp_path, GOOD), env={
-        "KEYSTRATA_SERVER__PORT": "9443",
-        "KEYSTRATA_DATABASE__URL": "postgresql://ks@127.0.0.1/ks",
-        "UNRELATED": "x",
-    })
+    s = load_settings(
+        write(tmp_path, GOOD),
+        env={
+            "KEYSTRATA_SERVER__PORT": "9443",
+            "KEYSTRATA_DATABASE__URL": "postgresql://ks@127.0.0.1/ks",
+            "UNRELATED": "x",
+        },
+    )
     assert s.server.port == 9443
     assert s.database.url == "postgresql://ks@127.0.0.1/ks"
 
@@ -56,17 +59,17 @@ def test_environment_overrides_the_file(tmp_path: Path) -> None:
 @pytest.mark.parametrize(
     ("change", "names"),
     [
-        (("role = \"station\"", "role = \"satellite\""), ["node.role", "relay"]),
-        (("id = \"station-a\"", "id = \"bad id!\""), ["node.id", "letters, digits"]),
-        (("url = \"sqlite:///data/a.db\"", "url = \"mysql://x\""), ["database.url"]),
-        (("[kek]\nfile = \"secrets/a.kek\"", ""), ["kek", "is required"]),
-        (("[node]", "[node]\ncolour = \"blue\""), ["node.colour", "not a known setting"]),
-        (("url = \"https://127.0.0.1:8440\"", "url = \"http://127.0.0.1:8440\""),
-         ["peers.0.url"]),
+        (('role = "station"', 'role = "satellite"'), ["node.role", "relay"]),
+        (('id = "station-a"', 'id = "bad id!"'), ["node.id", "letters, digits"]),
+        (('url = "sqlite:///data/a.db"', 'url = "mysql://x"'), ["database.url"]),
+        (('[kek]\nfile = "secrets/a.kek"', ""), ["kek", "is required"]),
+        (("[node]", '[node]\ncolour = "blue"'), ["node.colour", "not a known setting"]),
+        (('url = "https://127.0.0.1:8440"', 'url = "http://127.0.0.1:8440"'), ["peers.0.url"]),
     ],
 )
-def test_bad_values_name_the_setting_and_the_fix(tmp_path: Path, change: tuple[str, str],
-                                                 names: list[str]) -> None:
+def test_bad_values_name_the_setting_and_the_fix(
+    tmp_path: Path, change: tuple[str, str], names: list[str]
+) -> None:
     with pytest.raises(ConfigError) as caught:
         load_settings(write(tmp_path, GOOD.replace(*change)), env={})
     for name in names:

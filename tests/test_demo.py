@@ -33,8 +33,11 @@ def _wait_for_manifest(workdir: Path, proc: subprocess.Popen[str], timeout: floa
 def test_demo_runs_and_its_manifest_reaches_the_operator_api(tmp_path: Path) -> None:
     workdir = tmp_path / "demo"
     proc = subprocess.Popen(
-        [sys.executable, "-m", "keystrata", "demo", "--duration", "12", "--workdir",
-         str(workdir)], stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+        [sys.executable, "-m", "keystrata", "demo", "--duration", "12", "--workdir", str(workdir)],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.STDOUT,
+        text=True,
+    )
     try:
         manifest = _wait_for_manifest(workdir, proc, 60)
         assert {n["role"] for n in manifest["nodes"]} == {"relay", "station"}
@@ -49,9 +52,23 @@ def test_demo_runs_and_its_manifest_reaches_the_operator_api(tmp_path: Path) -> 
         deadline = time.monotonic() + 30
         while True:
             out = subprocess.run(
-                ["curl", "-sS", "--fail", "--cacert", manifest["ca"], "--cert",
-                 operator["cert"], "--key", operator["key"], relay["url"] + "/api/v1/links/pools"],
-                cwd=workdir, capture_output=True, text=True, timeout=30)
+                [
+                    "curl",
+                    "-sS",
+                    "--fail",
+                    "--cacert",
+                    manifest["ca"],
+                    "--cert",
+                    operator["cert"],
+                    "--key",
+                    operator["key"],
+                    relay["url"] + "/api/v1/links/pools",
+                ],
+                cwd=workdir,
+                capture_output=True,
+                text=True,
+                timeout=30,
+            )
             # The nodes answer before the demo has provisioned the links; wait for them.
             ready = out.returncode == 0 and len(json.loads(out.stdout)["pools"]) == 3
             if ready or time.monotonic() > deadline:

@@ -38,10 +38,18 @@ def station_process(tmp_path, pki: PkiFiles, db_url: str) -> Iterator[NodeProces
     try:
         with OperatorClient(node.url, identity(pki, "ops-ada")) as ops:
             ops.create("nodes", {"node_id": "relay-1", "role": "relay"})
-            ops.create("links", {"link_id": "link-a", "relay_id": "relay-1",
-                                 "station_id": "station-a"})
-            ops.create("principals", {"principal_id": "mod-link-a", "role": "qkd-module",
-                                      "cert_subject": "mod-link-a", "link_id": "link-a"})
+            ops.create(
+                "links", {"link_id": "link-a", "relay_id": "relay-1", "station_id": "station-a"}
+            )
+            ops.create(
+                "principals",
+                {
+                    "principal_id": "mod-link-a",
+                    "role": "qkd-module",
+                    "cert_subject": "mod-link-a",
+                    "link_id": "link-a",
+                },
+            )
         yield node
     finally:
         node.stop()
@@ -70,15 +78,25 @@ def test_certificate_from_another_ca_is_refused(station_process, pki) -> None:
 
 
 def test_unregistered_certificate_gets_401(station_process, pki) -> None:
-    with OperatorClient(station_process.url, identity(pki, "stranger")) as who:
-        with pytest.raises(ApiError) as caught:
-            who.node_info()
+    with (
+        OperatorClient(station_process.url, identity(pki, "stranger")) as who,
+        pytest.raises(ApiError) as caught,
+    ):
+        who.node_info()
     assert caught.value.status == 401
 
 
 def test_module_pushes_binary_blocks_and_operator_sees_the_pool(station_process, pki) -> None:
-    blocks = [LinkBlock(block_id=str(uuid.uuid4()), key=os.urandom(2048), qber=0.02,
-                        epsilon=1e-10, produced_at=datetime.now(UTC)) for _ in range(8)]
+    blocks = [
+        LinkBlock(
+            block_id=str(uuid.uuid4()),
+            key=os.urandom(2048),
+            qber=0.02,
+            epsilon=1e-10,
+            produced_at=datetime.now(UTC),
+        )
+        for _ in range(8)
+    ]
     with ModuleClient(station_process.url, identity(pki, "mod-link-a")) as mod:
         first = mod.push_blocks("link-a", blocks)
         again = mod.push_blocks("link-a", blocks, binary=False)
@@ -92,7 +110,20 @@ def test_module_pushes_binary_blocks_and_operator_sees_the_pool(station_process,
 @pytest.mark.skipif(shutil.which("curl") is None, reason="curl is not installed")
 def test_curl_with_the_operator_certificate(station_process, pki) -> None:
     out = subprocess.run(
-        ["curl", "-sS", "--cacert", str(pki.ca), "--cert", str(pki.cert("ops-ada")),
-         "--key", str(pki.key("ops-ada")), station_process.url + "/api/v1/registry/links"],
-        capture_output=True, text=True, timeout=30, check=True)
+        [
+            "curl",
+            "-sS",
+            "--cacert",
+            str(pki.ca),
+            "--cert",
+            str(pki.cert("ops-ada")),
+            "--key",
+            str(pki.key("ops-ada")),
+            station_process.url + "/api/v1/registry/links",
+        ],
+        capture_output=True,
+        text=True,
+        timeout=30,
+        check=True,
+    )
     assert [x["link_id"] for x in json.loads(out.stdout)["items"]] == ["link-a"]

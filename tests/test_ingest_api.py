@@ -30,8 +30,12 @@ def test_json_blocks_are_stored_and_counted(station, api) -> None:
     blocks = [_json_block(os.urandom(1024)) for _ in range(3)]
     r = mod.post(URL, json={"blocks": blocks})
     assert r.status_code == 200, r.text
-    assert r.json() == {"link_id": "link-a", "accepted": 3, "duplicates": 0,
-                        "accepted_bits": 3 * 8192}
+    assert r.json() == {
+        "link_id": "link-a",
+        "accepted": 3,
+        "duplicates": 0,
+        "accepted_bits": 3 * 8192,
+    }
     pool = api(station)("ops-ada").get("/api/v1/links/link-a/pool").json()
     assert pool["bits_available"] == 3 * 8192
     assert pool["bits_used"] == 0
@@ -52,8 +56,7 @@ def test_binary_blocks_and_harmless_resend(station, api) -> None:
     assert r.json()["accepted"] == 5
     before = snapshot(station.ctx)
     r = mod.post(URL, content=body, headers=headers)  # the module retries the same batch
-    assert r.json() == {"link_id": "link-a", "accepted": 0, "duplicates": 5,
-                        "accepted_bits": 0}
+    assert r.json() == {"link_id": "link-a", "accepted": 0, "duplicates": 5, "accepted_bits": 0}
     after = snapshot(station.ctx)
     assert after["link_block"] == before["link_block"]
 
@@ -73,8 +76,9 @@ def test_same_id_with_other_bytes_is_refused_and_recorded(station, api) -> None:
     assert ledger_events(station.ctx)[-1] == "link_key.refused"
     # The same conflict inside one request.
     twin_id = str(uuid.uuid4())
-    r = mod.post(URL, json={"blocks": [_json_block(b"a" * 32, twin_id),
-                                       _json_block(b"b" * 32, twin_id)]})
+    r = mod.post(
+        URL, json={"blocks": [_json_block(b"a" * 32, twin_id), _json_block(b"b" * 32, twin_id)]}
+    )
     assert r.status_code == 409
 
 
@@ -84,8 +88,9 @@ def test_module_of_another_link_is_refused(station, api) -> None:
 
 
 def test_link_not_ending_here_is_not_found(station, api) -> None:
-    r = api(station)("mod-link-b").post("/api/v1/links/link-b/blocks",
-                                        json={"blocks": [_json_block(os.urandom(32))]})
+    r = api(station)("mod-link-b").post(
+        "/api/v1/links/link-b/blocks", json={"blocks": [_json_block(os.urandom(32))]}
+    )
     assert r.status_code == 404
 
 
@@ -109,10 +114,13 @@ def test_bad_blocks_change_nothing(station, api) -> None:
         assert r.status_code == status, (body, r.text)
         assert "message" in r.json()
     binary = {"content-type": "application/octet-stream"}
-    record = encode_record(BlockIn(str(uuid.uuid4()), b"k" * 64, 0.01, 1e-9,
-                                   datetime.now(UTC)))
-    for body in (record[:30], record[:-1], b"\x02" + record[1:],
-                 record[:41] + struct.pack(">I", 2**31) + record[45:]):
+    record = encode_record(BlockIn(str(uuid.uuid4()), b"k" * 64, 0.01, 1e-9, datetime.now(UTC)))
+    for body in (
+        record[:30],
+        record[:-1],
+        b"\x02" + record[1:],
+        record[:41] + struct.pack(">I", 2**31) + record[45:],
+    ):
         r = mod.post(URL, content=body, headers=binary)
         assert r.status_code == 400, r.text
     r = mod.post(URL, content=b"x", headers={"content-type": "text/plain"})

@@ -102,13 +102,13 @@ def test_rotation_reseals_every_row_and_resumes(station, tmp_path: Path) -> None
     # The old KEK no longer opens the database; the new one does and every block reads back.
     with pytest.raises(StartupRefused, match="does not match"):
         open_node(ctx.settings, ctx.db)
-    new_settings = load_settings(station.config_path,
-                                 env={"KEYSTRATA_KEK__FILE": str(new_path)})
+    new_settings = load_settings(station.config_path, env={"KEYSTRATA_KEK__FILE": str(new_path)})
     reopened = open_node(new_settings, Database(ctx.db.engine))
     with ctx.db.read() as s:
         for row in s.execute(select(LinkBlock)).scalars():
-            opened = reopened.keyring.open(row.sealed, block_context(row.link_id, row.block_id,
-                                                                     row.used))
+            opened = reopened.keyring.open(
+                row.sealed, block_context(row.link_id, row.block_id, row.used)
+            )
             assert opened == keys[row.block_id]
         assert s.get(NodeMeta, "kek_rotation_target") is None
         events = list(s.execute(select(LedgerEntry.event).order_by(LedgerEntry.idx)).scalars())

@@ -22,8 +22,10 @@ def test_create_list_change_retire_a_pair(station, api) -> None:
     assert pair["policy"]["priority"] == 7
     assert pair["policy"]["default_key_size"] == 256
 
-    r = ops.patch("/api/v1/registry/pairs/pair-ab",
-                  json={"policy": {"daily_quota_bits": 1_000_000, "priority": 9}})
+    r = ops.patch(
+        "/api/v1/registry/pairs/pair-ab",
+        json={"policy": {"daily_quota_bits": 1_000_000, "priority": 9}},
+    )
     assert r.status_code == 200, r.text
     assert r.json()["policy"]["daily_quota_bits"] == 1_000_000
     assert r.json()["policy"]["priority"] == 9
@@ -50,8 +52,9 @@ def test_auditor_reads_but_cannot_write(station, api) -> None:
     assert r.json() == {"message": "this route is not open to your role"}
     after = snapshot(station.ctx)
     # Only the refusal was recorded.
-    assert {k: v for k, v in after.items() if not k.startswith("ledger")} == \
-        {k: v for k, v in before.items() if not k.startswith("ledger")}
+    assert {k: v for k, v in after.items() if not k.startswith("ledger")} == {
+        k: v for k, v in before.items() if not k.startswith("ledger")
+    }
     assert ledger_events(station.ctx)[-1] == "auth.refused"
 
 
@@ -65,18 +68,32 @@ def test_retire_refuses_while_used(station, api) -> None:
 
 def test_principal_for_sae_needs_its_station(station, api) -> None:
     ops = api(station)("ops-ada")
-    r = ops.post("/api/v1/registry/principals",
-                 json={"principal_id": "sae-x", "role": "sae", "cert_subject": "sae-x"})
+    r = ops.post(
+        "/api/v1/registry/principals",
+        json={"principal_id": "sae-x", "role": "sae", "cert_subject": "sae-x"},
+    )
     assert r.status_code == 400
     assert "station_id" in r.json()["message"]
-    r = ops.post("/api/v1/registry/principals",
-                 json={"principal_id": "sae-x", "role": "sae", "cert_subject": "sae-x",
-                       "station_id": "station-b"})
+    r = ops.post(
+        "/api/v1/registry/principals",
+        json={
+            "principal_id": "sae-x",
+            "role": "sae",
+            "cert_subject": "sae-x",
+            "station_id": "station-b",
+        },
+    )
     assert r.status_code == 201, r.text
     # One active principal per certificate subject.
-    r = ops.post("/api/v1/registry/principals",
-                 json={"principal_id": "sae-y", "role": "sae", "cert_subject": "sae-x",
-                       "station_id": "station-b"})
+    r = ops.post(
+        "/api/v1/registry/principals",
+        json={
+            "principal_id": "sae-y",
+            "role": "sae",
+            "cert_subject": "sae-x",
+            "station_id": "station-b",
+        },
+    )
     assert r.status_code == 409
 
 
@@ -86,29 +103,64 @@ BAD: list[tuple[str, str, Any, int, str]] = [
     ("POST", "nodes", {"node_id": "n1", "role": "station", "url": "http://x"}, 400, "url"),
     ("POST", "nodes", {"node_id": "n1", "role": "station", "extra": 1}, 400, "extra"),
     ("POST", "nodes", {"node_id": "station-b", "role": "station"}, 409, "exists"),
-    ("POST", "links", {"link_id": "l9", "relay_id": "station-b", "station_id": "station-c"},
-     400, "relay"),
-    ("POST", "links", {"link_id": "l9", "relay_id": "relay-1", "station_id": "nowhere"},
-     400, "unknown node"),
-    ("POST", "links", {"link_id": "l9", "relay_id": "relay-1", "station_id": "relay-1"},
-     400, "different"),
+    (
+        "POST",
+        "links",
+        {"link_id": "l9", "relay_id": "station-b", "station_id": "station-c"},
+        400,
+        "relay",
+    ),
+    (
+        "POST",
+        "links",
+        {"link_id": "l9", "relay_id": "relay-1", "station_id": "nowhere"},
+        400,
+        "unknown node",
+    ),
+    (
+        "POST",
+        "links",
+        {"link_id": "l9", "relay_id": "relay-1", "station_id": "relay-1"},
+        400,
+        "different",
+    ),
     ("POST", "pairs", PAIR | {"stations": ["station-a", "station-a"]}, 400, "different"),
     ("POST", "pairs", PAIR | {"stations": ["station-a"]}, 400, "stations"),
     ("POST", "pairs", PAIR | {"policy": {"min_key_size": 12}}, 400, "multiple"),
-    ("POST", "pairs", PAIR | {"policy": {"min_key_size": 512, "default_key_size": 256}},
-     400, "min_key_size <= default_key_size"),
+    (
+        "POST",
+        "pairs",
+        PAIR | {"policy": {"min_key_size": 512, "default_key_size": 256}},
+        400,
+        "min_key_size <= default_key_size",
+    ),
     ("POST", "pairs", PAIR | {"policy": {"priority": True}}, 400, "priority"),
     ("POST", "pairs", PAIR | {"policy": {"priority": "5"}}, 400, "priority"),
     ("POST", "pairs", PAIR | {"policy": {"priority": 0}}, 400, "priority"),
     ("POST", "pairs", PAIR | {"policy": {"buffer_target_bits": -1}}, 400, "buffer"),
     ("POST", "pairs", PAIR | {"policy": {"daily_quota_bits": 2**70}}, 400, "daily_quota"),
     ("POST", "pairs", PAIR | {"policy": {"max_epsilon": 2.0}}, 400, "max_epsilon"),
-    ("POST", "principals", {"principal_id": "m", "role": "qkd-module", "cert_subject": "m",
-                            "link_id": "no-such-link"}, 400, "unknown link"),
-    ("POST", "principals", {"principal_id": "p", "role": "operator", "cert_subject": "p",
-                            "station_id": "station-a"}, 400, "only for role sae"),
-    ("POST", "principals", {"principal_id": "p", "role": "operator", "cert_subject": "p",
-                            "cert_sha256": "XYZ"}, 400, "cert_sha256"),
+    (
+        "POST",
+        "principals",
+        {"principal_id": "m", "role": "qkd-module", "cert_subject": "m", "link_id": "no-such-link"},
+        400,
+        "unknown link",
+    ),
+    (
+        "POST",
+        "principals",
+        {"principal_id": "p", "role": "operator", "cert_subject": "p", "station_id": "station-a"},
+        400,
+        "only for role sae",
+    ),
+    (
+        "POST",
+        "principals",
+        {"principal_id": "p", "role": "operator", "cert_subject": "p", "cert_sha256": "XYZ"},
+        400,
+        "cert_sha256",
+    ),
     ("PATCH", "nodes/nowhere", {"description": "x"}, 404, "no entry"),
     ("PATCH", "nodes/station-b", {"role": "relay"}, 400, "role"),
     ("PATCH", "links/link-a", {"station_id": "station-c"}, 400, "station_id"),
@@ -116,10 +168,14 @@ BAD: list[tuple[str, str, Any, int, str]] = [
 ]
 
 
-@pytest.mark.parametrize(("method", "path", "body", "status", "words"), BAD,
-                         ids=[f"{m}-{p}-{i}" for i, (m, p, *_ ) in enumerate(BAD)])
-def test_bad_input_is_refused_and_changes_nothing(station, api, method: str, path: str,
-                                                  body: Any, status: int, words: str) -> None:
+@pytest.mark.parametrize(
+    ("method", "path", "body", "status", "words"),
+    BAD,
+    ids=[f"{m}-{p}-{i}" for i, (m, p, *_) in enumerate(BAD)],
+)
+def test_bad_input_is_refused_and_changes_nothing(
+    station, api, method: str, path: str, body: Any, status: int, words: str
+) -> None:
     ops = api(station)("ops-ada")
     before = snapshot(station.ctx)
     r = ops.request(method, f"/api/v1/registry/{path}", json=body)
@@ -133,15 +189,25 @@ def test_bad_input_is_refused_and_changes_nothing(station, api, method: str, pat
 def test_malformed_json_and_huge_bodies(station, api) -> None:
     ops = api(station)("ops-ada")
     before = snapshot(station.ctx)
-    r = ops.post("/api/v1/registry/nodes", content=b"{not json",
-                 headers={"content-type": "application/json"})
+    r = ops.post(
+        "/api/v1/registry/nodes", content=b"{not json", headers={"content-type": "application/json"}
+    )
     assert r.status_code == 400 and "message" in r.json()
-    r = ops.post("/api/v1/registry/nodes", content=b"[" + b"1," * 700_000 + b"1]",
-                 headers={"content-type": "application/json"})
+    r = ops.post(
+        "/api/v1/registry/nodes",
+        content=b"[" + b"1," * 700_000 + b"1]",
+        headers={"content-type": "application/json"},
+    )
     assert r.status_code == 413
-    r = ops.post("/api/v1/registry/pairs", json={"pair_id": "p", "relay_id": "relay-1",
-                                                 "stations": ["station-a", "station-b"],
-                                                 "policy": {"priority": 10**30}})
+    r = ops.post(
+        "/api/v1/registry/pairs",
+        json={
+            "pair_id": "p",
+            "relay_id": "relay-1",
+            "stations": ["station-a", "station-b"],
+            "policy": {"priority": 10**30},
+        },
+    )
     assert r.status_code == 400
     assert snapshot(station.ctx) == before
 

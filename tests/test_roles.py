@@ -76,10 +76,14 @@ def test_pinned_fingerprint_must_match(station, api, pki) -> None:
 
     ops = api(station)("ops-ada")
     wrong = "0" * 64
-    assert ops.patch("/api/v1/registry/principals/aud-ben",
-                     json={"cert_sha256": wrong}).status_code == 200
+    assert (
+        ops.patch("/api/v1/registry/principals/aud-ben", json={"cert_sha256": wrong}).status_code
+        == 200
+    )
     assert api(station)("aud-ben").get("/api/v1/node").status_code == 401
     right = fingerprint_sha256(pki.cert("aud-ben").read_bytes())
-    assert ops.patch("/api/v1/registry/principals/aud-ben",
-                     json={"cert_sha256": right}).status_code == 200
+    assert (
+        ops.patch("/api/v1/registry/principals/aud-ben", json={"cert_sha256": right}).status_code
+        == 200
+    )
     assert api(station)("aud-ben").get("/api/v1/node").status_code == 200

@@ -75,7 +75,7 @@ def _ingest_two(station) -> tuple[bytes, bytes]:
 
 
 def test_sealed_row_opens_only_in_place(station) -> None:
-    k1, k2 = _ingest_two(station)
+    k1, _ = _ingest_two(station)
     ctx = station.ctx
     with ctx.db.read() as s:
         a, b = s.execute(select(LinkBlock).order_by(LinkBlock.seq)).scalars().all()
@@ -89,8 +89,7 @@ def test_sealed_row_opens_only_in_place(station) -> None:
     with ctx.db.read() as s:
         moved = s.get(LinkBlock, a.seq)
         with pytest.raises(SealBroken):
-            ctx.keyring.open(moved.sealed, block_context(moved.link_id, moved.block_id,
-                                                         moved.used))
+            ctx.keyring.open(moved.sealed, block_context(moved.link_id, moved.block_id, moved.used))
     # The same row with another offset is another identity as well.
     with pytest.raises(SealBroken):
         ctx.keyring.open(a.sealed, block_context(a.link_id, a.block_id, a.used + 1))
@@ -100,6 +99,5 @@ def test_block_rows_refuse_impossible_states(station) -> None:
     _ingest_two(station)
     with station.ctx.db.read() as s:
         seq = s.execute(select(LinkBlock.seq)).scalars().first()
-    with pytest.raises(Exception, match="(?i)check|constraint"):
-        with station.ctx.db.write() as s:
-            s.execute(update(LinkBlock).where(LinkBlock.seq == seq).values(used=10_000))
+    with pytest.raises(Exception, match=r"(?i)check|constraint"), station.ctx.db.write() as s:
+        s.execute(update(LinkBlock).where(LinkBlock.seq == seq).values(used=10_000))

@@ -25,9 +25,11 @@ def build_app(settings: Settings) -> FastAPI:
     Raises:
         StartupRefused / ConfigError: the node must not serve.
     """
-    db = Database.from_url(settings.database.url,
-                           sqlite_synchronous=settings.database.sqlite_synchronous,
-                           pool_size=settings.database.pool_size)
+    db = Database.from_url(
+        settings.database.url,
+        sqlite_synchronous=settings.database.sqlite_synchronous,
+        pool_size=settings.database.pool_size,
+    )
     ctx = open_node(settings, db)
     return create_app(ctx)
 
@@ -39,8 +41,11 @@ def app_factory() -> FastAPI:
 
 def serve(settings: Settings, config_path: str) -> None:
     """Check the node once in this process, then serve until interrupted."""
-    for path, what in ((settings.tls.cert, "certificate"), (settings.tls.key, "private key"),
-                       (settings.tls.ca, "CA certificate")):
+    for path, what in (
+        (settings.tls.cert, "certificate"),
+        (settings.tls.key, "private key"),
+        (settings.tls.ca, "CA certificate"),
+    ):
         if not path.is_file():
             raise ConfigError(f"setting tls: {what} file {path} does not exist")
     build_app(settings)  # refuse to start here, with a clear message, not in each worker

@@ -49,8 +49,9 @@ def install(app: FastAPI) -> None:
     @app.exception_handler(HTTPException)
     async def _http(_: Request, exc: HTTPException) -> JSONResponse:
         message = exc.detail if isinstance(exc.detail, str) else "request refused"
-        return JSONResponse(error_body(message), status_code=exc.status_code,
-                            headers=getattr(exc, "headers", None))
+        return JSONResponse(
+            error_body(message), status_code=exc.status_code, headers=getattr(exc, "headers", None)
+        )
 
     @app.exception_handler(Exception)
     async def _unexpected(_: Request, exc: Exception) -> JSONResponse:

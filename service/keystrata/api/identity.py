@@ -80,25 +80,47 @@ def admit(*roles: PrincipalRole) -> Callable[[Request], Caller]:
         parsed = _parse(pem) if pem else None
         method, path = request.method, request.url.path
         if parsed is None:
-            principals.record_refusal(ctx, reason="no_certificate", subject=None,
-                                      principal_id=None, method=method, path=path)
+            principals.record_refusal(
+                ctx,
+                reason="no_certificate",
+                subject=None,
+                principal_id=None,
+                method=method,
+                path=path,
+            )
             raise Unauthenticated()
         subject, sha256, cert = parsed
         from_proxy = not request.scope.get("extensions", {}).get("tls")
-        if from_proxy and not _verify_from_proxy(cert, request.app.state.ca_cert,
-                                                 ctx.clock.now()):
-            principals.record_refusal(ctx, reason="certificate_not_from_ca", subject=subject,
-                                      principal_id=None, method=method, path=path)
+        if from_proxy and not _verify_from_proxy(cert, request.app.state.ca_cert, ctx.clock.now()):
+            principals.record_refusal(
+                ctx,
+                reason="certificate_not_from_ca",
+                subject=subject,
+                principal_id=None,
+                method=method,
+                path=path,
+            )
             raise Unauthenticated()
         caller = principals.resolve(ctx, subject, sha256)
         if caller is None:
-            principals.record_refusal(ctx, reason="unknown_certificate", subject=subject,
-                                      principal_id=None, method=method, path=path)
+            principals.record_refusal(
+                ctx,
+                reason="unknown_certificate",
+                subject=subject,
+                principal_id=None,
+                method=method,
+                path=path,
+            )
             raise Unauthenticated()
         if caller.role not in roles:
-            principals.record_refusal(ctx, reason="role_not_admitted", subject=subject,
-                                      principal_id=caller.principal_id, method=method,
-                                      path=path)
+            principals.record_refusal(
+                ctx,
+                reason="role_not_admitted",
+                subject=subject,
+                principal_id=caller.principal_id,
+                method=method,
+                path=path,
+            )
             raise Forbidden()
         request.state.caller = caller
         return caller

@@ -69,7 +69,14 @@ class _BodyTooLarge(HTTPException):
 
 async def _too_large(send: Any, limit: int) -> None:
     body = json.dumps({"message": f"request body larger than {limit} bytes"}).encode()
-    await send({"type": "http.response.start", "status": 413,
-                "headers": [(b"content-type", b"application/json"),
-                            (b"content-length", str(len(body)).encode())]})
+    await send(
+        {
+            "type": "http.response.start",
+            "status": 413,
+            "headers": [
+                (b"content-type", b"application/json"),
+                (b"content-length", str(len(body)).encode()),
+            ],
+        }
+    )
     await send({"type": "http.response.body", "body": body})

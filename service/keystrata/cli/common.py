@@ -24,8 +24,12 @@ err_console = Console(stderr=True)
 
 def config_option(f: F) -> F:
     return click.option(
-        "--config", "config_path", required=True, envvar="KEYSTRATA_CONFIG",
-        type=click.Path(dir_okay=False, path_type=Path), help="the node's TOML file",
+        "--config",
+        "config_path",
+        required=True,
+        envvar="KEYSTRATA_CONFIG",
+        type=click.Path(dir_okay=False, path_type=Path),
+        help="the node's TOML file",
     )(f)
 
 

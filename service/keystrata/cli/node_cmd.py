@@ -19,8 +19,9 @@ from keystrata.storage.db import Database
 
 
 def _db(settings: Settings) -> Database:
-    return Database.from_url(settings.database.url,
-                             sqlite_synchronous=settings.database.sqlite_synchronous)
+    return Database.from_url(
+        settings.database.url, sqlite_synchronous=settings.database.sqlite_synchronous
+    )
 
 
 @click.group("node")
@@ -41,15 +42,24 @@ def node_init(config_path: Path, operator_subject: str | None, operator_id: str)
         settings = settings_from(config_path)
         db = _db(settings)
         created = initialise(settings, db, load_keyring(settings))
-        console.print(f"node {settings.node.id}: " + ("initialised" if created else
-                                                       "already initialised, checked"))
+        console.print(
+            f"node {settings.node.id}: "
+            + ("initialised" if created else "already initialised, checked")
+        )
         if operator_subject:
             ctx = open_node(settings, db)
             try:
-                registry.create(ctx, Kind.PRINCIPALS, PrincipalSpec(
-                    principal_id=operator_id, role=PrincipalRole.OPERATOR,
-                    cert_subject=operator_subject, description="first operator"),
-                    actor="local-admin")
+                registry.create(
+                    ctx,
+                    Kind.PRINCIPALS,
+                    PrincipalSpec(
+                        principal_id=operator_id,
+                        role=PrincipalRole.OPERATOR,
+                        cert_subject=operator_subject,
+                        description="first operator",
+                    ),
+                    actor="local-admin",
+                )
                 console.print(f"operator {operator_id} ({operator_subject}) added")
             except AlreadyExists:
                 console.print(f"operator {operator_id} already present")
@@ -87,8 +97,10 @@ def db_status(config_path: Path) -> None:
     with handled():
         engine = _db(settings_from(config_path)).engine
         cur, head = migrate.current_revision(engine), migrate.head_revision(engine)
-        console.print(f"current {cur}, this version needs {head}: "
-                      + ("up to date" if cur == head else "run `keystrata db upgrade`"))
+        console.print(
+            f"current {cur}, this version needs {head}: "
+            + ("up to date" if cur == head else "run `keystrata db upgrade`")
+        )
 
 
 @click.group("kek")
@@ -109,8 +121,12 @@ def kek_new(out: Path) -> None:
 
 @kek.command("rotate")
 @config_option
-@click.option("--new-kek", required=True, type=click.Path(dir_okay=False, path_type=Path),
-              help="the new KEK file (make it with `keystrata kek new`)")
+@click.option(
+    "--new-kek",
+    required=True,
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="the new KEK file (make it with `keystrata kek new`)",
+)
 @click.option("--batch", default=500, show_default=True, help="rows per transaction")
 def kek_rotate(config_path: Path, new_kek: Path, batch: int) -> None:
     """Re-seal every row under a new KEK. Run with the node stopped; resumable.
@@ -119,9 +135,16 @@ def kek_rotate(config_path: Path, new_kek: Path, batch: int) -> None:
     """
     with handled():
         settings = settings_from(config_path)
-        report = kek_service.rotate(_db(settings), settings.node.id,
-                                    read_kek(settings.kek.file), read_kek(new_kek), batch=batch,
-                                    progress=lambda n: console.print(f"  {n} blocks done"))
-        console.print(f"re-sealed {report.resealed_blocks} blocks and {report.resealed_meta} "
-                      f"node secrets ({report.already_done} were already done). Now set "
-                      f"[kek] file = \"{new_kek}\" in {config_path}.")
+        report = kek_service.rotate(
+            _db(settings),
+            settings.node.id,
+            read_kek(settings.kek.file),
+            read_kek(new_kek),
+            batch=batch,
+            progress=lambda n: console.print(f"  {n} blocks done"),
+        )
+        console.print(
+            f"re-sealed {report.resealed_blocks} blocks and {report.resealed_meta} "
+            f"node secrets ({report.already_done} were already done). Now set "
+            f'[kek] file = "{new_kek}" in {config_path}.'
+        )

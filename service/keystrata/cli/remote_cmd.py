@@ -23,20 +23,29 @@ _COLUMNS = {
     "nodes": ("node_id", "role", "url", "description", "retired_at"),
     "links": ("link_id", "relay_id", "station_id", "description", "retired_at"),
     "pairs": ("pair_id", "relay_id", "stations", "policy", "retired_at"),
-    "principals": ("principal_id", "role", "cert_subject", "station_id", "link_id", "node_id",
-                   "retired_at"),
+    "principals": (
+        "principal_id",
+        "role",
+        "cert_subject",
+        "station_id",
+        "link_id",
+        "node_id",
+        "retired_at",
+    ),
 }
 
 
 def connection_options(f: F) -> F:
     """--url, --ca, --cert, --key (also from KEYSTRATA_URL, _CA, _CERT, _KEY)."""
     path = click.Path(exists=True, dir_okay=False, path_type=Path)
-    for name, envvar, kind, text in reversed((
-        ("--url", "KEYSTRATA_URL", str, "node base URL, https://host:port"),
-        ("--ca", "KEYSTRATA_CA", path, "network CA certificate (PEM)"),
-        ("--cert", "KEYSTRATA_CERT", path, "your client certificate (PEM)"),
-        ("--key", "KEYSTRATA_KEY", path, "your client private key (PEM)"),
-    )):
+    for name, envvar, kind, text in reversed(
+        (
+            ("--url", "KEYSTRATA_URL", str, "node base URL, https://host:port"),
+            ("--ca", "KEYSTRATA_CA", path, "network CA certificate (PEM)"),
+            ("--cert", "KEYSTRATA_CERT", path, "your client certificate (PEM)"),
+            ("--key", "KEYSTRATA_KEY", path, "your client private key (PEM)"),
+        )
+    ):
         f = click.option(name, envvar=envvar, required=True, type=kind, help=text)(f)
     return click.option("--json", "as_json", is_flag=True, help="print JSON for scripts")(f)
 
@@ -85,8 +94,13 @@ def registry() -> None:
 
 
 kind_arg = click.argument("kind", type=click.Choice(KINDS))
-set_opt = click.option("--set", "sets", multiple=True, metavar="FIELD=VALUE",
-                       help="a field; VALUE is JSON when it parses (5, null, [\"a\",\"b\"])")
+set_opt = click.option(
+    "--set",
+    "sets",
+    multiple=True,
+    metavar="FIELD=VALUE",
+    help='a field; VALUE is JSON when it parses (5, null, ["a","b"])',
+)
 body_opt = click.option("--body", "body_json", help="the whole body as a JSON object")
 
 
@@ -94,8 +108,9 @@ body_opt = click.option("--body", "body_json", help="the whole body as a JSON ob
 @kind_arg
 @click.option("--all", "include_retired", is_flag=True, help="include retired entries")
 @connection_options
-def list_cmd(kind: str, include_retired: bool, url: str, ca: Path, cert: Path, key: Path,
-             as_json: bool) -> None:
+def list_cmd(
+    kind: str, include_retired: bool, url: str, ca: Path, cert: Path, key: Path, as_json: bool
+) -> None:
     """List the entries of KIND."""
     with operator(url, ca, cert, key) as client:
         items = client.list(kind, include_retired=include_retired)
@@ -109,8 +124,9 @@ def list_cmd(kind: str, include_retired: bool, url: str, ca: Path, cert: Path, k
 @kind_arg
 @click.argument("entry_id")
 @connection_options
-def show_cmd(kind: str, entry_id: str, url: str, ca: Path, cert: Path, key: Path,
-             as_json: bool) -> None:
+def show_cmd(
+    kind: str, entry_id: str, url: str, ca: Path, cert: Path, key: Path, as_json: bool
+) -> None:
     """Show one entry."""
     with operator(url, ca, cert, key) as client:
         print_json(client.get(kind, entry_id))
@@ -121,8 +137,16 @@ def show_cmd(kind: str, entry_id: str, url: str, ca: Path, cert: Path, key: Path
 @set_opt
 @body_opt
 @connection_options
-def create_cmd(kind: str, sets: tuple[str, ...], body_json: str | None, url: str, ca: Path,
-               cert: Path, key: Path, as_json: bool) -> None:
+def create_cmd(
+    kind: str,
+    sets: tuple[str, ...],
+    body_json: str | None,
+    url: str,
+    ca: Path,
+    cert: Path,
+    key: Path,
+    as_json: bool,
+) -> None:
     """Create an entry, e.g. `create nodes --set node_id=station-a --set role=station`."""
     with operator(url, ca, cert, key) as client:
         print_json(client.create(kind, _body(sets, body_json)))
@@ -134,8 +158,17 @@ def create_cmd(kind: str, sets: tuple[str, ...], body_json: str | None, url: str
 @set_opt
 @body_opt
 @connection_options
-def change_cmd(kind: str, entry_id: str, sets: tuple[str, ...], body_json: str | None,
-               url: str, ca: Path, cert: Path, key: Path, as_json: bool) -> None:
+def change_cmd(
+    kind: str,
+    entry_id: str,
+    sets: tuple[str, ...],
+    body_json: str | None,
+    url: str,
+    ca: Path,
+    cert: Path,
+    key: Path,
+    as_json: bool,
+) -> None:
     """Change fields of an entry, e.g. `change pairs P1 --set policy.priority=5`."""
     with operator(url, ca, cert, key) as client:
         print_json(client.change(kind, entry_id, _body(sets, body_json)))
@@ -145,8 +178,9 @@ def change_cmd(kind: str, entry_id: str, sets: tuple[str, ...], body_json: str |
 @kind_arg
 @click.argument("entry_id")
 @connection_options
-def retire_cmd(kind: str, entry_id: str, url: str, ca: Path, cert: Path, key: Path,
-               as_json: bool) -> None:
+def retire_cmd(
+    kind: str, entry_id: str, url: str, ca: Path, cert: Path, key: Path, as_json: bool
+) -> None:
     """Retire an entry (it stays in the registry for the record)."""
     with operator(url, ca, cert, key) as client:
         print_json(client.retire(kind, entry_id))
@@ -157,14 +191,25 @@ def pools_table(answer: dict[str, Any]) -> Table:
     for col in ("link", "peer", "available (bit)", "used (bit)", "rate (bit/s)", "last block"):
         table.add_column(col, justify="right" if "bit" in col else "left")
     for p in answer["pools"]:
-        table.add_row(p["link_id"], p["peer_node_id"], f"{p['bits_available']:,}",
-                      f"{p['bits_used']:,}", f"{p['rate_bps']:,.0f}", p["last_block_at"] or "-")
+        table.add_row(
+            p["link_id"],
+            p["peer_node_id"],
+            f"{p['bits_available']:,}",
+            f"{p['bits_used']:,}",
+            f"{p['rate_bps']:,.0f}",
+            p["last_block_at"] or "-",
+        )
     return table
 
 
 @click.command("pools")
-@click.option("--watch", type=float, default=None, metavar="SECONDS",
-              help="refresh every SECONDS until interrupted")
+@click.option(
+    "--watch",
+    type=float,
+    default=None,
+    metavar="SECONDS",
+    help="refresh every SECONDS until interrupted",
+)
 @connection_options
 def pools(watch: float | None, url: str, ca: Path, cert: Path, key: Path, as_json: bool) -> None:
     """Show the link key pool of every QKD link ending at the node."""

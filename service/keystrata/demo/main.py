@@ -8,6 +8,7 @@ import sys
 import time
 from datetime import UTC, datetime
 from pathlib import Path
+from typing import Any
 
 import click
 from rich.console import Console
@@ -39,39 +40,64 @@ SKY_START = datetime(2026, 6, 21, 17, 0, tzinfo=UTC)
 def _nodes(workdir: Path) -> list[DemoNode]:
     ids = [(scenario.RELAY, "relay")] + [(s.node_id, "station") for s in scenario.STATIONS]
     ports = free_ports(len(ids))
-    return [DemoNode(node_id=n, role=r, port=p, config=workdir / n / "node.toml")
-            for (n, r), p in zip(ids, ports, strict=True)]
+    return [
+        DemoNode(node_id=n, role=r, port=p, config=workdir / n / "node.toml")
+        for (n, r), p in zip(ids, ports, strict=True)
+    ]
 
 
 def _link_specs(workdir: Path, nodes: list[DemoNode]) -> list[LinkSpec]:
     url = {n.node_id: n.url for n in nodes}
     specs = []
     for i, st in enumerate(scenario.STATIONS):
-        ident = TlsIdentity(ca=workdir / "pki/ca.crt", cert=workdir / f"pki/{st.module}.crt",
-                            key=workdir / f"pki/{st.module}.key")
-        specs.append(LinkSpec(
-            link_id=st.link_id, relay_url=url[scenario.RELAY], station_url=url[st.node_id],
-            relay_identity=ident, station_identity=ident, seed=11 + i, block_bytes=4096,
-            model=ModelParams(base_rate_bps=st.base_rate_bps, day_factor=0.1,
-                              longitude_deg=0.0, mean_clear_s=st.mean_clear_s,
-                              mean_cloud_s=st.mean_cloud_s)))
+        ident = TlsIdentity(
+            ca=workdir / "pki/ca.crt",
+            cert=workdir / f"pki/{st.module}.crt",
+            key=workdir / f"pki/{st.module}.key",
+        )
+        specs.append(
+            LinkSpec(
+                link_id=st.link_id,
+                relay_url=url[scenario.RELAY],
+                station_url=url[st.node_id],
+                relay_identity=ident,
+                station_identity=ident,
+                seed=11 + i,
+                block_bytes=4096,
+                model=ModelParams(
+                    base_rate_bps=st.base_rate_bps,
+                    day_factor=0.1,
+                    longitude_deg=0.0,
+                    mean_clear_s=st.mean_clear_s,
+                    mean_cloud_s=st.mean_cloud_s,
+                ),
+            )
+        )
     return specs
 
 
-def _read_pools(nodes: list[DemoNode], identity: TlsIdentity) -> dict[tuple[str, str], dict]:
+def _read_pools(
+    nodes: list[DemoNode], identity: TlsIdentity
+) -> dict[tuple[str, str], dict[str, Any]]:
     out = {}
     for node in nodes:
         try:
             with OperatorClient(node.url, identity, timeout=3.0) as client:
                 for pool in client.pools()["pools"]:
                     out[(node.node_id, pool["link_id"])] = pool
-        except Exception:  # noqa: BLE001, S112 - a node that does not answer shows as "-"
+        except Exception:  # noqa: S112 - a node that does not answer shows as "-"
             continue
     return out
 
 
-async def _watch(emulator: LinkEmulator, procs: NodeProcesses, nodes: list[DemoNode],
-                 identity: TlsIdentity, duration: float | None, live: Live | None) -> Snapshot:
+async def _watch(
+    emulator: LinkEmulator,
+    procs: NodeProcesses,
+    nodes: list[DemoNode],
+    identity: TlsIdentity,
+    duration: float | None,
+    live: Live | None,
+) -> Snapshot:
     started = time.monotonic()
     last_print = 0.0
     snap = Snapshot(pools={}, elapsed=0.0, dead=[])
@@ -99,11 +125,16 @@ def _title(stats: dict[str, LinkStats], elapsed: float, duration: float | None) 
     return f"{scenario.ORGANISATION}: link key pools ({clock}{left})"
 
 
-async def _run(workdir: Path, nodes: list[DemoNode], procs: NodeProcesses,
-               duration: float | None) -> tuple[Snapshot, dict[str, LinkStats]]:
+async def _run(
+    workdir: Path, nodes: list[DemoNode], procs: NodeProcesses, duration: float | None
+) -> tuple[Snapshot, dict[str, LinkStats]]:
     identity = operator_identity(workdir)
-    emulator = LinkEmulator(_link_specs(workdir, nodes), time_scale=TIME_SCALE,
-                            start=SKY_START.timestamp(), drain_seconds=5.0)
+    emulator = LinkEmulator(
+        _link_specs(workdir, nodes),
+        time_scale=TIME_SCALE,
+        start=SKY_START.timestamp(),
+        drain_seconds=5.0,
+    )
     loop = asyncio.get_running_loop()
     for sig in (signal.SIGINT, signal.SIGTERM):
         loop.add_signal_handler(sig, emulator.stop)
@@ -112,11 +143,11 @@ async def _run(workdir: Path, nodes: list[DemoNode], procs: NodeProcesses,
         if sys.stdout.isatty():
             with Live(console=console, refresh_per_second=2) as live:
                 watching = asyncio.create_task(
-                    _watch(emulator, procs, nodes, identity, duration, live))
+                    _watch(emulator, procs, nodes, identity, duration, live)
+                )
                 await asyncio.wait({emulating, watching}, return_when=asyncio.FIRST_COMPLETED)
         else:
-            watching = asyncio.create_task(
-                _watch(emulator, procs, nodes, identity, duration, None))
+            watching = asyncio.create_task(_watch(emulator, procs, nodes, identity, duration, None))
             await asyncio.wait({emulating, watching}, return_when=asyncio.FIRST_COMPLETED)
     finally:
         watching.cancel()
@@ -138,11 +169,20 @@ def _disagreements(snap: Snapshot) -> list[str]:
 
 
 @click.command("demo")
-@click.option("--duration", type=click.FloatRange(min=1), default=None, metavar="SECONDS",
-              help="run this long, print a summary and exit (default: until Ctrl-C)")
-@click.option("--workdir", type=click.Path(file_okay=False, path_type=Path),
-              default=Path("demo-work"), show_default=True,
-              help="folder for PKI, configs, databases, logs and demo.json")
+@click.option(
+    "--duration",
+    type=click.FloatRange(min=1),
+    default=None,
+    metavar="SECONDS",
+    help="run this long, print a summary and exit (default: until Ctrl-C)",
+)
+@click.option(
+    "--workdir",
+    type=click.Path(file_okay=False, path_type=Path),
+    default=Path("demo-work"),
+    show_default=True,
+    help="folder for PKI, configs, databases, logs and demo.json",
+)
 def demo(duration: float | None, workdir: Path) -> None:
     """Run one relay and three stations on loopback, fed by emulated QKD links."""
     workdir = workdir.resolve()
@@ -177,8 +217,10 @@ def demo(duration: float | None, workdir: Path) -> None:
             console.print(f"[red]problem:[/red] {p}")
         sys.exit(1)
     total = sum(s.bits_generated for s in stats.values())
-    console.print(f"[green]ok:[/green] {total:,} bits of link key delivered to both ends of "
-                  f"{len(stats)} QKD links; every relay pool matches its station's.")
+    console.print(
+        f"[green]ok:[/green] {total:,} bits of link key delivered to both ends of "
+        f"{len(stats)} QKD links; every relay pool matches its station's."
+    )
 
 
 def _intro(workdir: Path, nodes: list[DemoNode], manifest: Path, sent: int) -> None:
@@ -187,5 +229,8 @@ def _intro(workdir: Path, nodes: list[DemoNode], manifest: Path, sent: int) -> N
         console.print(f"  {n.role:8} {n.node_id:10} {n.url}")
     console.print(f"  {sent} registry entries provisioned; manifest: {manifest}")
     op = f"pki/{scenario.OPERATOR}"
-    console.print(f"  try: cd {workdir} && curl --cacert pki/ca.crt --cert {op}.crt "
-                  f"--key {op}.key {nodes[0].url}/api/v1/links/pools", soft_wrap=True)
+    console.print(
+        f"  try: cd {workdir} && curl --cacert pki/ca.crt --cert {op}.crt "
+        f"--key {op}.key {nodes[0].url}/api/v1/links/pools",
+        soft_wrap=True,
+    )

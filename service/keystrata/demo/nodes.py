@@ -42,9 +42,11 @@ class NodeProcesses:
         self.logs.mkdir(parents=True, exist_ok=True)
         for node in self.nodes:
             with open(self.logs / f"{node.node_id}.log", "ab") as log:
-                self.procs[node.node_id] = subprocess.Popen(
+                self.procs[node.node_id] = subprocess.Popen(  # noqa: S603 - our own CLI
                     [sys.executable, "-m", "keystrata", "serve", "--config", str(node.config)],
-                    stdout=log, stderr=subprocess.STDOUT)
+                    stdout=log,
+                    stderr=subprocess.STDOUT,
+                )
 
     def wait_ready(self, identity: TlsIdentity, timeout: float = 30.0) -> None:
         """Wait until every node answers. Raises RuntimeError naming a node that died."""
@@ -54,14 +56,17 @@ class NodeProcesses:
         while waiting:
             node = waiting[0]
             if self.procs[node.node_id].poll() is not None:
-                raise RuntimeError(f"node {node.node_id} exited; see "
-                                   f"{self.logs / (node.node_id + '.log')}")
+                raise RuntimeError(
+                    f"node {node.node_id} exited; see {self.logs / (node.node_id + '.log')}"
+                )
             try:
                 httpx.get(node.url + "/api/v1/node", verify=ctx, timeout=1.0)
                 waiting.pop(0)
-            except (httpx.HTTPError, ssl.SSLError):
+            except (httpx.HTTPError, ssl.SSLError) as exc:
                 if time.monotonic() > deadline:
-                    raise RuntimeError(f"node {node.node_id} did not answer in {timeout:.0f} s")
+                    raise RuntimeError(
+                        f"node {node.node_id} did not answer in {timeout:.0f} s"
+                    ) from exc
                 time.sleep(0.1)
 
     def dead(self) -> list[str]:

@@ -13,13 +13,16 @@ from keystrata_client import ApiError, OperatorClient, TlsIdentity
 
 def operator_identity(workdir: Path) -> TlsIdentity:
     pki = workdir / "pki"
-    return TlsIdentity(ca=pki / "ca.crt", cert=pki / f"{scenario.OPERATOR}.crt",
-                       key=pki / f"{scenario.OPERATOR}.key")
+    return TlsIdentity(
+        ca=pki / "ca.crt",
+        cert=pki / f"{scenario.OPERATOR}.crt",
+        key=pki / f"{scenario.OPERATOR}.key",
+    )
 
 
 def _create(client: OperatorClient, kind: str, body: dict[str, Any]) -> None:
     try:
-        client.create(kind, body)  # type: ignore[arg-type]
+        client.create(kind, body)
     except ApiError as exc:
         if exc.status != 409:  # already there from an earlier step: fine
             raise
@@ -28,36 +31,94 @@ def _create(client: OperatorClient, kind: str, body: dict[str, Any]) -> None:
 def _facts_for(node_id: str) -> list[tuple[str, dict[str, Any]]]:
     """The registry entries node ``node_id`` needs, in an order that satisfies references."""
     relay = node_id == scenario.RELAY
-    stations = scenario.STATIONS if relay else [
-        scenario.station(s) for s in sorted({node_id, *scenario.partners(node_id)})]
+    stations = (
+        scenario.STATIONS
+        if relay
+        else [scenario.station(s) for s in sorted({node_id, *scenario.partners(node_id)})]
+    )
     facts: list[tuple[str, dict[str, Any]]] = []
     if not relay:
-        facts.append(("nodes", {"node_id": scenario.RELAY, "role": "relay",
-                                "description": "airship Vela, trusted relay"}))
-    facts += [("nodes", {"node_id": st.node_id, "role": "station", "description": st.place})
-              for st in stations if st.node_id != node_id]
+        facts.append(
+            (
+                "nodes",
+                {
+                    "node_id": scenario.RELAY,
+                    "role": "relay",
+                    "description": "airship Vela, trusted relay",
+                },
+            )
+        )
+    facts += [
+        ("nodes", {"node_id": st.node_id, "role": "station", "description": st.place})
+        for st in stations
+        if st.node_id != node_id
+    ]
     own_links = [st for st in stations if relay or st.node_id == node_id]
-    facts += [("links", {"link_id": st.link_id, "relay_id": scenario.RELAY,
-                         "station_id": st.node_id, "description": f"Vela to {st.place}"})
-              for st in own_links]
+    facts += [
+        (
+            "links",
+            {
+                "link_id": st.link_id,
+                "relay_id": scenario.RELAY,
+                "station_id": st.node_id,
+                "description": f"Vela to {st.place}",
+            },
+        )
+        for st in own_links
+    ]
     for a, b in scenario.PAIRS:
         if relay or node_id in (a, b):
-            facts.append(("pairs", {"pair_id": scenario.pair_id(a, b),
-                                    "relay_id": scenario.RELAY, "stations": [a, b]}))
-    facts.append(("principals", {"principal_id": scenario.AUDITOR, "role": "auditor",
-                                 "cert_subject": scenario.AUDITOR,
-                                 "description": "Marek Olwen, auditor"}))
-    facts += [("principals", {"principal_id": st.module, "role": "qkd-module",
-                              "cert_subject": st.module, "link_id": st.link_id})
-              for st in own_links]
+            facts.append(
+                (
+                    "pairs",
+                    {
+                        "pair_id": scenario.pair_id(a, b),
+                        "relay_id": scenario.RELAY,
+                        "stations": [a, b],
+                    },
+                )
+            )
+    facts.append(
+        (
+            "principals",
+            {
+                "principal_id": scenario.AUDITOR,
+                "role": "auditor",
+                "cert_subject": scenario.AUDITOR,
+                "description": "Marek Olwen, auditor",
+            },
+        )
+    )
+    facts += [
+        (
+            "principals",
+            {
+                "principal_id": st.module,
+                "role": "qkd-module",
+                "cert_subject": st.module,
+                "link_id": st.link_id,
+            },
+        )
+        for st in own_links
+    ]
     peers = [scenario.RELAY] if not relay else []
     peers += [st.node_id for st in stations if st.node_id != node_id]
-    facts += [("principals", {"principal_id": f"peer-{p}", "role": "peer",
-                              "cert_subject": p, "node_id": p}) for p in peers]
+    facts += [
+        (
+            "principals",
+            {"principal_id": f"peer-{p}", "role": "peer", "cert_subject": p, "node_id": p},
+        )
+        for p in peers
+    ]
     if not relay:
-        facts += [("principals", {"principal_id": sae, "role": "sae", "cert_subject": sae,
-                                  "station_id": st.node_id})
-                  for st in stations for sae in st.saes]
+        facts += [
+            (
+                "principals",
+                {"principal_id": sae, "role": "sae", "cert_subject": sae, "station_id": st.node_id},
+            )
+            for st in stations
+            for sae in st.saes
+        ]
     return facts
 
 

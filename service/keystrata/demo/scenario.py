@@ -28,12 +28,36 @@ class Station:
 
 
 STATIONS = (
-    Station("karsvik", "Karsvik harbour", "link-karsvik", "qkd-karsvik",
-            240_000.0, 6 * 3600, 0.0, ("enc-karsvik-1", "enc-karsvik-2")),
-    Station("tollmere", "Tollmere data centre", "link-tollmere", "qkd-tollmere",
-            160_000.0, 5 * 3600, 1800.0, ("enc-tollmere-1", "enc-tollmere-2")),
-    Station("brenhaven", "Brenhaven records office", "link-brenhaven", "qkd-brenhaven",
-            120_000.0, 2 * 3600, 2 * 3600.0, ("enc-brenhaven-1", "enc-brenhaven-2")),
+    Station(
+        "karsvik",
+        "Karsvik harbour",
+        "link-karsvik",
+        "qkd-karsvik",
+        240_000.0,
+        6 * 3600,
+        0.0,
+        ("enc-karsvik-1", "enc-karsvik-2"),
+    ),
+    Station(
+        "tollmere",
+        "Tollmere data centre",
+        "link-tollmere",
+        "qkd-tollmere",
+        160_000.0,
+        5 * 3600,
+        1800.0,
+        ("enc-tollmere-1", "enc-tollmere-2"),
+    ),
+    Station(
+        "brenhaven",
+        "Brenhaven records office",
+        "link-brenhaven",
+        "qkd-brenhaven",
+        120_000.0,
+        2 * 3600,
+        2 * 3600.0,
+        ("enc-brenhaven-1", "enc-brenhaven-2"),
+    ),
 )
 
 #: Station pairs that share end-to-end key through the relay.

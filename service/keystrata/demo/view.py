@@ -31,10 +31,17 @@ def _bits(n: int | None) -> str:
 
 def links_table(snap: Snapshot, stats: dict[str, LinkStats], title: str) -> Table:
     table = Table(title=title, title_justify="left")
-    for col, just in (("QKD link", "left"), ("station", "left"), ("sky", "left"),
-                      ("key rate", "right"), ("relay pool", "right"),
-                      ("station pool", "right"), ("ends agree", "left"), ("blocks", "right"),
-                      ("errors", "right")):
+    for col, just in (
+        ("QKD link", "left"),
+        ("station", "left"),
+        ("sky", "left"),
+        ("key rate", "right"),
+        ("relay pool", "right"),
+        ("station pool", "right"),
+        ("ends agree", "left"),
+        ("blocks", "right"),
+        ("errors", "right"),
+    ):
         table.add_column(col, justify=just, no_wrap=True)  # type: ignore[arg-type]
     for st in scenario.STATIONS:
         link = stats.get(st.link_id)
@@ -47,10 +54,18 @@ def links_table(snap: Snapshot, stats: dict[str, LinkStats], title: str) -> Tabl
             sky = f"{link.weather}, {night}"
             rate = f"{_bits(int(link.rate_bps))}/s"
             blocks = f"{link.blocks_generated:,}"
-            errors = str(link.relay.errors + link.station.errors + link.relay.rejected
-                         + link.station.rejected)
-        agree = "-" if relay is None or station is None else (
-            "yes" if relay == station else "catching up")
-        table.add_row(st.link_id, st.place, sky, rate, _bits(relay), _bits(station),
-                      agree, blocks, errors)
+            errors = str(
+                link.relay.errors
+                + link.station.errors
+                + link.relay.rejected
+                + link.station.rejected
+            )
+        agree = (
+            "-"
+            if relay is None or station is None
+            else ("yes" if relay == station else "catching up")
+        )
+        table.add_row(
+            st.link_id, st.place, sky, rate, _bits(relay), _bits(station), agree, blocks, errors
+        )
     return table

@@ -39,8 +39,9 @@ def prepare_folder(workdir: Path) -> None:
     """
     if workdir.exists() and any(workdir.iterdir()):
         if not (workdir / MANIFEST).exists() and not (workdir / "pki").exists():
-            raise ValueError(f"{workdir} is not empty and holds no earlier demo; "
-                             "choose another --workdir")
+            raise ValueError(
+                f"{workdir} is not empty and holds no earlier demo; choose another --workdir"
+            )
         shutil.rmtree(workdir)
     workdir.mkdir(parents=True, exist_ok=True)
 
@@ -71,8 +72,10 @@ def write_configs(workdir: Path, nodes: list[DemoNode]) -> None:
         folder = node.config.parent
         folder.mkdir(parents=True, exist_ok=True)
         write_new_kek(folder / "kek.b64")
-        peers = "".join(f'\n[[peers]]\nid = "{p.node_id}"\nurl = "{p.url}"\n'
-                        for p in _peers(node.node_id, nodes))
+        peers = "".join(
+            f'\n[[peers]]\nid = "{p.node_id}"\nurl = "{p.url}"\n'
+            for p in _peers(node.node_id, nodes)
+        )
         node.config.write_text(f"""# {scenario.ORGANISATION}: node {node.node_id} (demo)
 [node]
 id = "{node.node_id}"
@@ -106,10 +109,17 @@ def init_databases(nodes: list[DemoNode]) -> None:
         db = Database.from_url(settings.database.url)
         try:
             initialise(settings, db, load_keyring(settings))
-            registry.create(open_node(settings, db), Kind.PRINCIPALS, PrincipalSpec(
-                principal_id=scenario.OPERATOR, role=PrincipalRole.OPERATOR,
-                cert_subject=scenario.OPERATOR, description="Ida Varga, network operator"),
-                actor="local-admin")
+            registry.create(
+                open_node(settings, db),
+                Kind.PRINCIPALS,
+                PrincipalSpec(
+                    principal_id=scenario.OPERATOR,
+                    role=PrincipalRole.OPERATOR,
+                    cert_subject=scenario.OPERATOR,
+                    description="Ida Varga, network operator",
+                ),
+                actor="local-admin",
+            )
         finally:
             db.dispose()
 
@@ -129,13 +139,23 @@ def write_manifest(workdir: Path, nodes: list[DemoNode]) -> Path:
     manifest = {
         "scenario": scenario.ORGANISATION,
         "ca": "pki/ca.crt",
-        "nodes": [{"id": n.node_id, "role": n.role, "url": n.url,
-                   "config": str(n.config.relative_to(workdir))} for n in nodes],
+        "nodes": [
+            {
+                "id": n.node_id,
+                "role": n.role,
+                "url": n.url,
+                "config": str(n.config.relative_to(workdir)),
+            }
+            for n in nodes
+        ],
         "principals": principals,
-        "links": [{"id": st.link_id, "relay": scenario.RELAY, "station": st.node_id}
-                  for st in scenario.STATIONS],
-        "pairs": [{"id": scenario.pair_id(a, b), "stations": sorted([a, b])}
-                  for a, b in scenario.PAIRS],
+        "links": [
+            {"id": st.link_id, "relay": scenario.RELAY, "station": st.node_id}
+            for st in scenario.STATIONS
+        ],
+        "pairs": [
+            {"id": scenario.pair_id(a, b), "stations": sorted([a, b])} for a, b in scenario.PAIRS
+        ],
     }
     path = workdir / MANIFEST
     path.write_text(json.dumps(manifest, indent=2) + "\n")

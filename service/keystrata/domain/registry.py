@@ -100,7 +100,9 @@ class PairPolicy(_Input):
     @model_validator(mode="after")
     def _consistent(self) -> Self:
         if not self.min_key_size <= self.default_key_size <= self.max_key_size:
-            raise ValueError("key sizes must satisfy min_key_size <= default_key_size <= max_key_size")
+            raise ValueError(
+                "key sizes must satisfy min_key_size <= default_key_size <= max_key_size"
+            )
         if not self.buffer_min_bits <= self.buffer_target_bits <= self.buffer_max_bits:
             raise ValueError(
                 "buffer must satisfy buffer_min_bits <= buffer_target_bits <= buffer_max_bits"
@@ -151,8 +153,10 @@ class PrincipalSpec(_Input):
             if name == wanted and not given:
                 raise ValueError(f"a principal with role {self.role.value} needs {name}")
             if name != wanted and given:
-                raise ValueError(f"{name} is only for role " + {
-                    "station_id": "sae", "link_id": "qkd-module", "node_id": "peer"}[name])
+                raise ValueError(
+                    f"{name} is only for role "
+                    + {"station_id": "sae", "link_id": "qkd-module", "node_id": "peer"}[name]
+                )
         return self
 
 

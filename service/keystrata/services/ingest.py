@@ -9,6 +9,8 @@ secret), so no bytes need to be kept in the clear and consumed blocks are still 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
+
 from sqlalchemy import insert, select
 from sqlalchemy.orm import Session
 
@@ -36,12 +38,14 @@ class IngestResult:
 
 
 def _fingerprint(ctx: NodeContext, link_id: str, block: BlockIn) -> bytes:
-    return keyed_fingerprint(ctx.fingerprint_key, link_id.encode(), block.block_id.encode(),
-                             block.key)
+    return keyed_fingerprint(
+        ctx.fingerprint_key, link_id.encode(), block.block_id.encode(), block.key
+    )
 
 
-def ingest(ctx: NodeContext, link_id: str, blocks: list[BlockIn], *,
-           actor: str, actor_link: str | None) -> IngestResult:
+def ingest(
+    ctx: NodeContext, link_id: str, blocks: list[BlockIn], *, actor: str, actor_link: str | None
+) -> IngestResult:
     """Store a batch of blocks for ``link_id`` in one transaction.
 
     Raises:
@@ -57,31 +61,54 @@ def ingest(ctx: NodeContext, link_id: str, blocks: list[BlockIn], *,
     now = ctx.clock.now()
     problems = []
     for i, block in enumerate(blocks):
-        problems += validate_block(block, where=f"blocks.{i}",
-                                   max_block_bytes=ctx.settings.ingest.max_block_bytes, now=now)
+        problems += validate_block(
+            block, where=f"blocks.{i}", max_block_bytes=ctx.settings.ingest.max_block_bytes, now=now
+        )
     if problems:
-        raise InvalidInput("; ".join(f"{p['field']}: {p['problem']}" for p in problems[:5]),
-                           details=problems)
+        raise InvalidInput(
+            "; ".join(f"{p['field']}: {p['problem']}" for p in problems[:5]), details=problems
+        )
     prints = [_fingerprint(ctx, link_id, b) for b in blocks]
     try:
         with ctx.db.write() as s:
             return _store(ctx, s, link_id, blocks, prints, actor=actor)
     except BlockConflict as exc:
         with ctx.db.write() as s:
-            ledger.append(s, node_id=ctx.node_id, at=now, event=Event.LINK_KEY_REFUSED,
-                          fields={"link": link_id, "actor": actor, "reason": "block_conflict",
-                                  "block_ids": [d["block_id"] for d in exc.details][:16]})
+            ledger.append(
+                s,
+                node_id=ctx.node_id,
+                at=now,
+                event=Event.LINK_KEY_REFUSED,
+                fields={
+                    "link": link_id,
+                    "actor": actor,
+                    "reason": "block_conflict",
+                    "block_ids": [d["block_id"] for d in exc.details][:16],
+                },
+            )
         raise
 
 
-def _store(ctx: NodeContext, s: Session, link_id: str, blocks: list[BlockIn],
-           prints: list[bytes], *, actor: str) -> IngestResult:
+def _store(
+    ctx: NodeContext,
+    s: Session,
+    link_id: str,
+    blocks: list[BlockIn],
+    prints: list[bytes],
+    *,
+    actor: str,
+) -> IngestResult:
     link = s.get(QkdLink, link_id)
     if link is None or link.retired_at is not None or not ends_here(ctx, link):
         raise NotFound(f"no active QKD link {link_id!r} ends at this node")
     ids = [b.block_id for b in blocks]
-    known = dict(s.execute(select(LinkBlock.block_id, LinkBlock.fingerprint).where(
-        LinkBlock.link_id == link_id, LinkBlock.block_id.in_(set(ids)))).all())
+    known = dict(
+        s.execute(
+            select(LinkBlock.block_id, LinkBlock.fingerprint).where(
+                LinkBlock.link_id == link_id, LinkBlock.block_id.in_(set(ids))
+            )
+        ).all()
+    )
     conflicts: list[str] = []
     fresh: dict[str, tuple[BlockIn, bytes]] = {}
     duplicates = 0
@@ -100,25 +127,40 @@ def _store(ctx: NodeContext, s: Session, link_id: str, blocks: list[BlockIn],
         raise BlockConflict(
             f"{len(conflicts)} block ID(s) were already received with different key bytes; "
             "nothing from this request was stored",
-            details=[{"block_id": b} for b in conflicts[:16]])
+            details=[{"block_id": b} for b in conflicts[:16]],
+        )
     now = ctx.clock.now()
-    rows = [
-        {"link_id": link_id, "block_id": b.block_id, "length": len(b.key), "used": 0,
-         "qber": b.qber, "epsilon": b.epsilon, "produced_at": b.produced_at,
-         "received_at": now, "fingerprint": fp,
-         "sealed": ctx.keyring.seal(b.key, block_context(link_id, b.block_id, 0))}
+    rows: list[dict[str, Any]] = [
+        {
+            "link_id": link_id,
+            "block_id": b.block_id,
+            "length": len(b.key),
+            "used": 0,
+            "qber": b.qber,
+            "epsilon": b.epsilon,
+            "produced_at": b.produced_at,
+            "received_at": now,
+            "fingerprint": fp,
+            "sealed": ctx.keyring.seal(b.key, block_context(link_id, b.block_id, 0)),
+        }
         for b, fp in fresh.values()
     ]
     if rows:
         s.execute(insert(LinkBlock), rows)
     bits = 8 * sum(r["length"] for r in rows)
     new_ids = list(fresh)
-    fields: dict[str, object] = {"link": link_id, "actor": actor, "blocks": len(rows),
-                                 "bits": bits, "duplicates": duplicates}
+    fields: dict[str, object] = {
+        "link": link_id,
+        "actor": actor,
+        "blocks": len(rows),
+        "bits": bits,
+        "duplicates": duplicates,
+    }
     if len(new_ids) <= LEDGER_ID_LIST_MAX:
         fields["block_ids"] = new_ids
     else:
         fields |= {"first_block_id": new_ids[0], "last_block_id": new_ids[-1]}
     ledger.append(s, node_id=ctx.node_id, at=now, event=Event.LINK_KEY_INGESTED, fields=fields)
-    return IngestResult(link_id=link_id, accepted=len(rows), duplicates=duplicates,
-                        accepted_bits=bits)
+    return IngestResult(
+        link_id=link_id, accepted=len(rows), duplicates=duplicates, accepted_bits=bits
+    )

@@ -32,9 +32,16 @@ class RotationReport:
     already_done: int
 
 
-def rotate(db: Database, node_id: str, old: bytes, new: bytes, *, batch: int = 500,
-           clock: Clock | None = None,
-           progress: Callable[[int], None] | None = None) -> RotationReport:
+def rotate(
+    db: Database,
+    node_id: str,
+    old: bytes,
+    new: bytes,
+    *,
+    batch: int = 500,
+    clock: Clock | None = None,
+    progress: Callable[[int], None] | None = None,
+) -> RotationReport:
     """Re-seal every sealed value under ``new``. Safe to run again after an interruption.
 
     Raises:
@@ -49,20 +56,33 @@ def rotate(db: Database, node_id: str, old: bytes, new: bytes, *, batch: int = 5
         if mark is None:
             check_kek(s, Keyring(old))
             s.add(NodeMeta(name=ROTATION_MARK, value=target))
-            ledger.append(s, node_id=node_id, at=clock.now(), event=Event.KEK_ROTATION_STARTED,
-                          fields={"to_kek": target.hex()})
+            ledger.append(
+                s,
+                node_id=node_id,
+                at=clock.now(),
+                event=Event.KEK_ROTATION_STARTED,
+                fields={"to_kek": target.hex()},
+            )
         elif mark.value != target:
-            raise StartupRefused("a rotation to another key-encryption key is in progress; "
-                                 "finish it with that key first")
+            raise StartupRefused(
+                "a rotation to another key-encryption key is in progress; "
+                "finish it with that key first"
+            )
     done_before = 0
     blocks = 0
     last_seq = 0
     while True:
         with db.write() as s:
-            rows = s.execute(
-                select(LinkBlock).where(LinkBlock.seq > last_seq, LinkBlock.sealed.is_not(None))
-                .order_by(LinkBlock.seq).limit(batch)
-            ).scalars().all()
+            rows = (
+                s.execute(
+                    select(LinkBlock)
+                    .where(LinkBlock.seq > last_seq, LinkBlock.sealed.is_not(None))
+                    .order_by(LinkBlock.seq)
+                    .limit(batch)
+                )
+                .scalars()
+                .all()
+            )
             if not rows:
                 break
             for row in rows:
@@ -79,16 +99,20 @@ def rotate(db: Database, node_id: str, old: bytes, new: bytes, *, batch: int = 5
     meta = 0
     with db.write() as s:
         for name in SEALED_META:
-            row = s.get(NodeMeta, name)
-            if row is None or Keyring.sealed_kek_id(row.value) == target:
+            meta_row = s.get(NodeMeta, name)
+            if meta_row is None or Keyring.sealed_kek_id(meta_row.value) == target:
                 continue
             ctx = meta_context(name)
-            row.value = both.seal(both.open(row.value, ctx), ctx)
+            meta_row.value = both.seal(both.open(meta_row.value, ctx), ctx)
             meta += 1
         mark = s.get(NodeMeta, ROTATION_MARK)
         if mark is not None:
             s.delete(mark)
-        ledger.append(s, node_id=node_id, at=clock.now(), event=Event.KEK_ROTATED,
-                      fields={"to_kek": target.hex(), "resealed_blocks": blocks,
-                              "resealed_values": meta})
+        ledger.append(
+            s,
+            node_id=node_id,
+            at=clock.now(),
+            event=Event.KEK_ROTATED,
+            fields={"to_kek": target.hex(), "resealed_blocks": blocks, "resealed_values": meta},
+        )
     return RotationReport(resealed_blocks=blocks, resealed_meta=meta, already_done=done_before)

@@ -53,20 +53,30 @@ def pool_levels(ctx: NodeContext, link_id: str | None = None) -> list[PoolLevel]
                 select(
                     func.coalesce(func.sum(LinkBlock.length), 0),
                     func.coalesce(func.sum(LinkBlock.used), 0),
-                    func.coalesce(func.sum(case((LinkBlock.used < LinkBlock.length, 1),
-                                                else_=0)), 0),
-                    func.coalesce(func.sum(case((LinkBlock.received_at >= since,
-                                                 LinkBlock.length), else_=0)), 0),
+                    func.coalesce(
+                        func.sum(case((LinkBlock.used < LinkBlock.length, 1), else_=0)), 0
+                    ),
+                    func.coalesce(
+                        func.sum(case((LinkBlock.received_at >= since, LinkBlock.length), else_=0)),
+                        0,
+                    ),
                     func.max(LinkBlock.received_at),
                 ).where(LinkBlock.link_id == link.link_id)
             ).one()
             peer = link.station_id if ctx.node_id == link.relay_id else link.relay_id
-            out.append(PoolLevel(
-                link_id=link.link_id, peer_node_id=peer,
-                bits_available=8 * (int(total) - int(used)), bits_used=8 * int(used),
-                bits_received=8 * int(total), blocks_available=int(avail_blocks),
-                rate_bps=8 * int(recent) / window, window_seconds=window,
-                last_block_at=_iso(last)))
+            out.append(
+                PoolLevel(
+                    link_id=link.link_id,
+                    peer_node_id=peer,
+                    bits_available=8 * (int(total) - int(used)),
+                    bits_used=8 * int(used),
+                    bits_received=8 * int(total),
+                    blocks_available=int(avail_blocks),
+                    rate_bps=8 * int(recent) / window,
+                    window_seconds=window,
+                    last_block_at=_iso(last),
+                )
+            )
     return out
 
 

@@ -32,22 +32,45 @@ def resolve(ctx: NodeContext, subject: str, cert_sha256: str) -> Caller | None:
     match it as well.
     """
     with ctx.db.read() as s:
-        row = s.execute(select(Principal).where(
-            Principal.cert_subject == subject, Principal.retired_at.is_(None))).scalar()
+        row = s.execute(
+            select(Principal).where(
+                Principal.cert_subject == subject, Principal.retired_at.is_(None)
+            )
+        ).scalar()
     if row is None:
         return None
-    if row.cert_sha256 and not constant_time_equal(row.cert_sha256.encode(),
-                                                    cert_sha256.encode()):
+    if row.cert_sha256 and not constant_time_equal(row.cert_sha256.encode(), cert_sha256.encode()):
         return None
-    return Caller(principal_id=row.principal_id, role=PrincipalRole(row.role),
-                  station_id=row.station_id, link_id=row.link_id, node_id=row.node_id)
+    return Caller(
+        principal_id=row.principal_id,
+        role=PrincipalRole(row.role),
+        station_id=row.station_id,
+        link_id=row.link_id,
+        node_id=row.node_id,
+    )
 
 
-def record_refusal(ctx: NodeContext, *, reason: str, subject: str | None,
-                   principal_id: str | None, method: str, path: str) -> None:
+def record_refusal(
+    ctx: NodeContext,
+    *,
+    reason: str,
+    subject: str | None,
+    principal_id: str | None,
+    method: str,
+    path: str,
+) -> None:
     """Write an ``auth.refused`` ledger entry in its own transaction."""
     with ctx.db.write() as s:
-        ledger.append(s, node_id=ctx.node_id, at=ctx.clock.now(), event=Event.AUTH_REFUSED,
-                      fields={"reason": reason, "subject": (subject or "")[:255],
-                              "principal": principal_id, "method": method,
-                              "path": path[:255]})
+        ledger.append(
+            s,
+            node_id=ctx.node_id,
+            at=ctx.clock.now(),
+            event=Event.AUTH_REFUSED,
+            fields={
+                "reason": reason,
+                "subject": (subject or "")[:255],
+                "principal": principal_id,
+                "method": method,
+                "path": path[:255],
+            },
+        )

@@ -32,7 +32,8 @@ class BlockJson(BaseModel):
     model_config = ConfigDict(extra="forbid", strict=True)
     block_id: Annotated[str, StringConstraints(pattern=UUID_PATTERN)]
     key: Annotated[str, StringConstraints(min_length=4, max_length=64 * 1024 * 1024)] = Field(
-        description="key bytes, Base64 (RFC 4648 section 4)")
+        description="key bytes, Base64 (RFC 4648 section 4)"
+    )
     qber: Annotated[float, Field(ge=0, le=0.5)]
     epsilon: Annotated[float, Field(ge=0, lt=1)]
     produced_at: AwareDatetime
@@ -71,10 +72,13 @@ def _from_json(raw: bytes, max_blocks: int) -> list[BlockIn]:
     try:
         doc = BlocksJson.model_validate_json(raw)
     except ValidationError as exc:
-        details = [{"field": ".".join(map(str, e["loc"])), "problem": e["msg"]}
-                   for e in exc.errors()[:20]]
-        raise InvalidInput("invalid request: " + "; ".join(
-            f"{d['field']}: {d['problem']}" for d in details[:3]), details=details) from None
+        details = [
+            {"field": ".".join(map(str, e["loc"])), "problem": e["msg"]} for e in exc.errors()[:20]
+        ]
+        raise InvalidInput(
+            "invalid request: " + "; ".join(f"{d['field']}: {d['problem']}" for d in details[:3]),
+            details=details,
+        ) from None
     if len(doc.blocks) > max_blocks:
         raise InvalidInput(f"blocks: at most {max_blocks} blocks per request")
     out = []
@@ -82,11 +86,19 @@ def _from_json(raw: bytes, max_blocks: int) -> list[BlockIn]:
         try:
             key = base64.b64decode(b.key, validate=True)
         except (binascii.Error, ValueError):
-            raise InvalidInput(f"blocks.{i}.key: not valid Base64 (RFC 4648 section 4)",
-                               details=[{"field": f"blocks.{i}.key",
-                                         "problem": "not valid Base64"}]) from None
-        out.append(BlockIn(block_id=b.block_id.lower(), key=key, qber=b.qber,
-                           epsilon=b.epsilon, produced_at=b.produced_at))
+            raise InvalidInput(
+                f"blocks.{i}.key: not valid Base64 (RFC 4648 section 4)",
+                details=[{"field": f"blocks.{i}.key", "problem": "not valid Base64"}],
+            ) from None
+        out.append(
+            BlockIn(
+                block_id=b.block_id.lower(),
+                key=key,
+                qber=b.qber,
+                epsilon=b.epsilon,
+                produced_at=b.produced_at,
+            )
+        )
     return out
 
 
@@ -94,18 +106,28 @@ _INGEST_BODY = {
     "requestBody": {
         "required": True,
         "content": {
-            "application/json": {"schema": BlocksJson.model_json_schema(
-                ref_template="#/components/schemas/{model}")},
-            "application/octet-stream": {"schema": {
-                "type": "string", "format": "binary",
-                "description": "version-1 binary block records (see DEVELOPERS.md)"}},
+            "application/json": {
+                "schema": BlocksJson.model_json_schema(ref_template="#/components/schemas/{model}")
+            },
+            "application/octet-stream": {
+                "schema": {
+                    "type": "string",
+                    "format": "binary",
+                    "description": "version-1 binary block records (see DEVELOPERS.md)",
+                }
+            },
         },
     }
 }
 
 
-@router.post("/{link_id}/blocks", response_model=IngestAnswer, openapi_extra=_INGEST_BODY,
-             summary="Push link key blocks", operation_id="push_blocks")
+@router.post(
+    "/{link_id}/blocks",
+    response_model=IngestAnswer,
+    openapi_extra=_INGEST_BODY,
+    summary="Push link key blocks",
+    operation_id="push_blocks",
+)
 async def push_blocks(link_id: str, request: Request, caller: Module) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx
     limits = ctx.settings.ingest
@@ -114,25 +136,37 @@ async def push_blocks(link_id: str, request: Request, caller: Module) -> dict[st
     if media == "application/json":
         blocks = _from_json(raw, limits.max_blocks_per_request)
     elif media == "application/octet-stream":
-        blocks = list(decode_batch(raw, max_block_bytes=limits.max_block_bytes,
-                                   max_blocks=limits.max_blocks_per_request))
+        blocks = list(
+            decode_batch(
+                raw,
+                max_block_bytes=limits.max_block_bytes,
+                max_blocks=limits.max_blocks_per_request,
+            )
+        )
     else:
         raise UnsupportedMediaType(
-            "send application/json or application/octet-stream (binary block records)")
-    result = await run_in_threadpool(ingest.ingest, ctx, link_id, blocks,
-                                     actor=caller.principal_id, actor_link=caller.link_id)
+            "send application/json or application/octet-stream (binary block records)"
+        )
+    result = await run_in_threadpool(
+        ingest.ingest, ctx, link_id, blocks, actor=caller.principal_id, actor_link=caller.link_id
+    )
     return asdict(result)
 
 
-@router.get("/pools", response_model=PoolsAnswer, summary="Link key pool levels",
-            operation_id="list_pools")
+@router.get(
+    "/pools", response_model=PoolsAnswer, summary="Link key pool levels", operation_id="list_pools"
+)
 def list_pools(request: Request, _: Reader) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx
     return {"node_id": ctx.node_id, "pools": [asdict(p) for p in pools.pool_levels(ctx)]}
 
 
-@router.get("/{link_id}/pool", response_model=PoolAnswer, summary="One link's pool level",
-            operation_id="get_pool")
+@router.get(
+    "/{link_id}/pool",
+    response_model=PoolAnswer,
+    summary="One link's pool level",
+    operation_id="get_pool",
+)
 def get_pool(link_id: str, request: Request, _: Reader) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx
     return asdict(pools.pool_levels(ctx, link_id)[0])

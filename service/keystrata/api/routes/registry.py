@@ -7,6 +7,7 @@ from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Query, Request, status
 
+from keystrata.api.identity import admit
 from keystrata.domain.registry import (
     Kind,
     LinkChange,
@@ -19,7 +20,6 @@ from keystrata.domain.registry import (
     PrincipalRole,
     PrincipalSpec,
 )
-from keystrata.api.identity import admit
 from keystrata.services import registry
 from keystrata.services.context import NodeContext
 from keystrata.services.principals import Caller
@@ -43,16 +43,22 @@ def _routes(kind: Kind, key: str, spec: type[Any], change: type[Any]) -> None:
     def create_entry(request: Request, caller: Operator, body: spec) -> dict[str, Any]:  # type: ignore[valid-type]
         return registry.create(_ctx(request), kind, body, actor=caller.principal_id)
 
-    def list_entries(request: Request, _: Reader,
-                     include_retired: IncludeRetired = False) -> dict[str, Any]:
-        return {"items": registry.list_entries(_ctx(request), kind,
-                                               include_retired=include_retired)}
+    def list_entries(
+        request: Request, _: Reader, include_retired: IncludeRetired = False
+    ) -> dict[str, Any]:
+        return {
+            "items": registry.list_entries(_ctx(request), kind, include_retired=include_retired)
+        }
 
     def get_entry(request: Request, _: Reader, entry_id: str) -> dict[str, Any]:
         return registry.get(_ctx(request), kind, entry_id)
 
-    def change_entry(request: Request, caller: Operator, entry_id: str,
-                     body: change) -> dict[str, Any]:  # type: ignore[valid-type]
+    def change_entry(
+        request: Request,
+        caller: Operator,
+        entry_id: str,
+        body: change,  # type: ignore[valid-type]
+    ) -> dict[str, Any]:
         return registry.change(_ctx(request), kind, entry_id, body, actor=caller.principal_id)
 
     def retire_entry(request: Request, caller: Operator, entry_id: str) -> dict[str, Any]:
@@ -61,16 +67,38 @@ def _routes(kind: Kind, key: str, spec: type[Any], change: type[Any]) -> None:
     base = f"/{kind.value}"
     item = base + "/{entry_id}"
     noun = kind.value.rstrip("s")
-    router.add_api_route(base, create_entry, methods=["POST"], status_code=status.HTTP_201_CREATED,
-                         summary=f"Create a {noun}", operation_id=f"create_{noun}")
-    router.add_api_route(base, list_entries, methods=["GET"], summary=f"List {kind.value}",
-                         operation_id=f"list_{kind.value}")
-    router.add_api_route(item, get_entry, methods=["GET"], summary=f"Get a {noun}",
-                         operation_id=f"get_{noun}")
-    router.add_api_route(item, change_entry, methods=["PATCH"], summary=f"Change a {noun}",
-                         operation_id=f"change_{noun}")
-    router.add_api_route(item, retire_entry, methods=["DELETE"], summary=f"Retire a {noun}",
-                         operation_id=f"retire_{noun}")
+    router.add_api_route(
+        base,
+        create_entry,
+        methods=["POST"],
+        status_code=status.HTTP_201_CREATED,
+        summary=f"Create a {noun}",
+        operation_id=f"create_{noun}",
+    )
+    router.add_api_route(
+        base,
+        list_entries,
+        methods=["GET"],
+        summary=f"List {kind.value}",
+        operation_id=f"list_{kind.value}",
+    )
+    router.add_api_route(
+        item, get_entry, methods=["GET"], summary=f"Get a {noun}", operation_id=f"get_{noun}"
+    )
+    router.add_api_route(
+        item,
+        change_entry,
+        methods=["PATCH"],
+        summary=f"Change a {noun}",
+        operation_id=f"change_{noun}",
+    )
+    router.add_api_route(
+        item,
+        retire_entry,
+        methods=["DELETE"],
+        summary=f"Retire a {noun}",
+        operation_id=f"retire_{noun}",
+    )
 
 
 _routes(Kind.NODES, "node_id", NodeSpec, NodeChange)
