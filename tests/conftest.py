@@ -130,22 +130,39 @@ def sqlite_template(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 
 @pytest.fixture(params=["sqlite", "postgresql"])
-def db_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
+def db_factory(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Callable[[], str]]:
+    """Make fresh, migrated databases of one backend (each test runs once per backend)."""
+    made: list[str] = []
+    if request.param == "postgresql":
+        template = request.getfixturevalue("pg_template")
+        if template is None:
+            pytest.skip(f"no PostgreSQL at {PG_URL} (set CI=1 to make this a failure)")
+    else:
+        template_file = request.getfixturevalue("sqlite_template")
+
+    def make() -> str:
+        n = next(_counter)
+        if request.param == "sqlite":
+            path = tmp_path / f"node-{n}.db"
+            shutil.copy(template_file, path)
+            return f"sqlite:///{path}"
+        name = f"ks_t_{os.getpid()}_{n}"
+        with _pg_admin() as admin:
+            admin.execute(f'CREATE DATABASE "{name}" TEMPLATE "{template}"')
+        made.append(name)
+        return _pg_url(name)
+
+    yield make
+    if made:
+        with _pg_admin() as admin:
+            for name in made:
+                admin.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+
+
+@pytest.fixture
+def db_url(db_factory: Callable[[], str]) -> str:
     """URL of a fresh, migrated database of each backend."""
-    if request.param == "sqlite":
-        path = tmp_path / "node.db"
-        shutil.copy(request.getfixturevalue("sqlite_template"), path)
-        yield f"sqlite:///{path}"
-        return
-    template = request.getfixturevalue("pg_template")
-    if template is None:
-        pytest.skip(f"no PostgreSQL at {PG_URL} (set CI=1 to make this a failure)")
-    name = f"ks_t_{os.getpid()}_{next(_counter)}"
-    with _pg_admin() as admin:
-        admin.execute(f'CREATE DATABASE "{name}" TEMPLATE "{template}"')
-    yield _pg_url(name)
-    with _pg_admin() as admin:
-        admin.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+    return db_factory()
 
 
 # ---------------------------------------------------------------- nodes
@@ -160,6 +177,7 @@ def write_config(
     pki: PkiFiles,
     port: int = 8443,
     extra: str = "",
+    server_extra: str = "",
 ) -> Path:
     """Write a node's TOML file (and a fresh KEK) into ``folder``; return the TOML path."""
     folder.mkdir(parents=True, exist_ok=True)
@@ -175,6 +193,7 @@ role = "{role}"
 [server]
 host = "127.0.0.1"
 port = {port}
+{server_extra}
 
 [tls]
 ca = "{pki.ca}"

@@ -2,8 +2,11 @@
 
 Two ``keystrata serve`` processes (``relay-1`` and ``station-a``) run on loopback with
 mutual TLS, each on its own database, both provisioned through ``OperatorClient`` with
-link ``link-a`` and the QKD module principal ``mod-link-a``. The emulator
-(``keystrata_client.emulators``) plays that module and pushes to both ends.
+QKD links between them and one QKD module principal per link (``mod-link-a`` for
+``link-a``, ...). The emulator (``keystrata_client.emulators``) plays a module and pushes
+to both ends. Node processes are slow to start, so each backend's pair of nodes is
+started once for this module; every test has a link of its own, so no test sees the
+blocks of another.
 
 What the nodes hold is read from their own databases through keystrata's storage layer
 and opened with each node's KEK. Keys are compared by SHA-256 digest only: no test here
@@ -38,6 +41,7 @@ from sqlalchemy import select
 
 from conftest import PkiFiles, _pg_admin, _pg_url
 from keystrata.config import load_settings
+from keystrata.crypto.pki import PkiDir, issue_client_cert
 from keystrata.services.node import load_keyring
 from keystrata.storage.db import Database
 from keystrata.storage.models import LinkBlock
@@ -48,7 +52,8 @@ from processes import NodeProcess, prepare_node
 
 pytestmark = pytest.mark.e2e
 
-LINK = "link-a"
+#: The link each test pushes on, and the client certificate of its QKD module.
+MODULES = {"link-a": "mod-link-a", "link-b": "mod-link-b", "link-c": "mod-link-c"}
 BLOCK_BYTES = 1024
 BLOCK_BITS = 8 * BLOCK_BYTES
 #: Bits per real second; about 49 blocks a second, so a few seconds give 100+ blocks.
@@ -66,34 +71,47 @@ def identity(pki: PkiFiles, name: str) -> TlsIdentity:
 
 @dataclass
 class Network:
-    """A running relay and station that share QKD link ``link-a``."""
+    """A running relay and station joined by the links of :data:`MODULES`."""
 
     relay: NodeProcess
     station: NodeProcess
+    modules: dict[str, TlsIdentity]
 
     def ends(self) -> tuple[tuple[str, NodeProcess], ...]:
         return (("relay", self.relay), ("station", self.station))
+
+    def ensure_running(self, pki: PkiFiles) -> Network:
+        # A test that stops a node and fails before restarting it must not take the
+        # tests after it down too.
+        for _, node in self.ends():
+            if node.proc is None or node.proc.poll() is not None:
+                node.stop()
+                node.start(pki)
+        return self
 
 
 def _provision(node: NodeProcess, peer: NodeProcess, pki: PkiFiles) -> None:
     peer_role = "relay" if peer.node_id == "relay-1" else "station"
     with OperatorClient(node.url, identity(pki, "ops-ada")) as ops:
         ops.create("nodes", {"node_id": peer.node_id, "role": peer_role, "url": peer.url})
-        ops.create("links", {"link_id": LINK, "relay_id": "relay-1", "station_id": "station-a"})
-        ops.create(
-            "principals",
-            {
-                "principal_id": "mod-link-a",
-                "role": "qkd-module",
-                "cert_subject": "mod-link-a",
-                "link_id": LINK,
-            },
-        )
+        for link_id, module in MODULES.items():
+            ops.create(
+                "links", {"link_id": link_id, "relay_id": "relay-1", "station_id": "station-a"}
+            )
+            ops.create(
+                "principals",
+                {
+                    "principal_id": module,
+                    "role": "qkd-module",
+                    "cert_subject": module,
+                    "link_id": link_id,
+                },
+            )
 
 
 @contextmanager
 def running_network(
-    folder: Path, pki: PkiFiles, relay_db: str, station_db: str
+    folder: Path, pki: PkiFiles, modules: dict[str, TlsIdentity], relay_db: str, station_db: str
 ) -> Iterator[Network]:
     """Initialise, start and provision both nodes (the two in parallel); stop them after."""
     with ThreadPoolExecutor(2) as pool:
@@ -101,7 +119,7 @@ def running_network(
         station_job = pool.submit(
             prepare_node, folder / "station-a", pki, "station-a", "station", station_db
         )
-        net = Network(relay=relay_job.result(), station=station_job.result())
+        net = Network(relay=relay_job.result(), station=station_job.result(), modules=modules)
     try:
         with ThreadPoolExecutor(2) as pool:
             list(pool.map(lambda node: node.start(pki), (net.relay, net.station)))
@@ -113,40 +131,71 @@ def running_network(
         net.station.stop()
 
 
-def _sqlite_copy(template: Path, path: Path) -> str:
-    shutil.copy(template, path)
-    return f"sqlite:///{path}"
+@pytest.fixture(scope="module")
+def modules(pki: PkiFiles, tmp_path_factory: pytest.TempPathFactory) -> dict[str, TlsIdentity]:
+    """The QKD module identity of every link; the session PKI lacks ``mod-link-c``, so it
+    is issued here by the same CA, into a folder of this module's own."""
+    folder = tmp_path_factory.mktemp("modules")
+    issued = issue_client_cert(PkiDir(pki.dir).load_ca(), "mod-link-c", "qkd-module")
+    cert, key = folder / "mod-link-c.crt", folder / "mod-link-c.key"
+    cert.write_bytes(issued.cert_pem)
+    key.touch(mode=0o600)
+    key.write_bytes(issued.key_pem)
+    out = {link: identity(pki, name) for link, name in MODULES.items() if name != "mod-link-c"}
+    out["link-c"] = TlsIdentity(ca=pki.ca, cert=cert, key=key)
+    return out
 
 
-@pytest.fixture
-def relay_db_url(request: pytest.FixtureRequest, db_url: str, tmp_path: Path) -> Iterator[str]:
-    """A second fresh database on the backend of ``db_url`` (which the station uses)."""
-    if db_url.startswith("sqlite"):
-        yield _sqlite_copy(request.getfixturevalue("sqlite_template"), tmp_path / "relay.db")
-        return
-    template = request.getfixturevalue("pg_template")
-    name = f"ks_t_{os.getpid()}_relay_{uuid.uuid4().hex[:12]}"
-    with _pg_admin() as admin:
-        admin.execute(f'CREATE DATABASE "{name}" TEMPLATE "{template}"')
-    yield _pg_url(name)
-    with _pg_admin() as admin:
-        admin.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
-
-
-@pytest.fixture
-def network(tmp_path: Path, pki: PkiFiles, db_url: str, relay_db_url: str) -> Iterator[Network]:
-    """Both nodes on the backend of ``db_url`` (SQLite files, or two PostgreSQL databases)."""
-    with running_network(tmp_path, pki, relay_db_url, db_url) as net:
+@pytest.fixture(scope="module")
+def sqlite_network(
+    pki: PkiFiles,
+    modules: dict[str, TlsIdentity],
+    sqlite_template: Path,
+    tmp_path_factory: pytest.TempPathFactory,
+) -> Iterator[Network]:
+    """Both nodes on SQLite files."""
+    folder = tmp_path_factory.mktemp("sqlite-network")
+    dbs = [shutil.copy(sqlite_template, folder / f"{n}.db") for n in ("relay", "station")]
+    with running_network(folder, pki, modules, *(f"sqlite:///{db}" for db in dbs)) as net:
         yield net
 
 
+@pytest.fixture(scope="module")
+def postgresql_network(
+    pki: PkiFiles,
+    modules: dict[str, TlsIdentity],
+    pg_template: str | None,
+    tmp_path_factory: pytest.TempPathFactory,
+) -> Iterator[Network]:
+    """Both nodes on PostgreSQL, each on a database of its own cloned from the migrated
+    template (as conftest's ``db_url`` does); skipped without a server, unless CI is set."""
+    if pg_template is None:
+        pytest.skip("no PostgreSQL server (set CI=1 to make this a failure)")
+    names = [f"ks_t_{os.getpid()}_{n}_{uuid.uuid4().hex[:8]}" for n in ("relay", "station")]
+    with _pg_admin() as admin:
+        for name in names:
+            admin.execute(f'CREATE DATABASE "{name}" TEMPLATE "{pg_template}"')
+    try:
+        folder = tmp_path_factory.mktemp("postgresql-network")
+        with running_network(folder, pki, modules, *(_pg_url(n) for n in names)) as net:
+            yield net
+    finally:
+        with _pg_admin() as admin:
+            for name in names:
+                admin.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+
+
+@pytest.fixture(params=["sqlite", "postgresql"])
+def network(request: pytest.FixtureRequest, pki: PkiFiles) -> Network:
+    """The module's pair of nodes on each backend."""
+    net: Network = request.getfixturevalue(f"{request.param}_network")
+    return net.ensure_running(pki)
+
+
 @pytest.fixture
-def sqlite_network(tmp_path: Path, pki: PkiFiles, sqlite_template: Path) -> Iterator[Network]:
-    """Both nodes on SQLite files, for the tests that need one backend only."""
-    relay_db = _sqlite_copy(sqlite_template, tmp_path / "relay.db")
-    station_db = _sqlite_copy(sqlite_template, tmp_path / "station.db")
-    with running_network(tmp_path, pki, relay_db, station_db) as net:
-        yield net
+def sqlite_nodes(sqlite_network: Network, pki: PkiFiles) -> Network:
+    """The module's pair of nodes on SQLite, for tests that need one backend only."""
+    return sqlite_network.ensure_running(pki)
 
 
 # ---------------------------------------------------------------- what the nodes hold

@@ -73,6 +73,9 @@ class ServerSection(_Section):
     #: Read the client certificate from a header set by a TLS-terminating proxy.
     #: Off by default; only for deployments where the proxy is the sole way in.
     proxy_client_cert_header: str | None = None
+    #: Run the background workers (outbox, relay scheduler, expiry) in this process.
+    #: Tests that drive them by hand turn this off.
+    background_work: bool = True
 
 
 class TlsSection(_Section):
@@ -113,6 +116,31 @@ class IngestSection(_Section):
     rate_window_seconds: Annotated[int, Field(ge=10, le=86_400)] = 300
 
 
+class RelaySection(_Section):
+    """The relay's scheduler: how it turns link key into pair key."""
+
+    segment_bytes: Annotated[int, Field(ge=64, le=64 * 1024 * 1024)] = 262_144
+    min_segment_bytes: Annotated[int, Field(ge=32, le=64 * 1024 * 1024)] = 4096
+    #: Ready key a pair should hold, in seconds of its measured consumption.
+    horizon_seconds: Annotated[float, Field(gt=0, le=7 * 86_400)] = 600.0
+    cycle_seconds: Annotated[float, Field(gt=0, le=3600)] = 1.0
+    #: Segments a pair may have on their way (made, not yet settled) at once.
+    max_in_flight_segments: Annotated[int, Field(ge=1, le=10_000)] = 16
+
+
+class SegmentsSection(_Section):
+    """A station's handling of segments."""
+
+    #: A segment not confirmed by the partner station within this time is discarded.
+    confirm_timeout_seconds: Annotated[float, Field(gt=0, le=7 * 86_400)] = 900.0
+
+
+class OutboxSection(_Section):
+    batch: Annotated[int, Field(ge=1, le=10_000)] = 64
+    idle_seconds: Annotated[float, Field(gt=0, le=60)] = 0.2
+    timeout_seconds: Annotated[float, Field(gt=0, le=300)] = 10.0
+
+
 class Settings(_Section):
     node: NodeSection
     server: ServerSection = ServerSection()
@@ -121,6 +149,9 @@ class Settings(_Section):
     kek: KekSection
     peers: list[PeerSection] = []
     ingest: IngestSection = IngestSection()
+    relay: RelaySection = RelaySection()
+    segments: SegmentsSection = SegmentsSection()
+    outbox: OutboxSection = OutboxSection()
     #: Folder of the TOML file; relative paths above were resolved against it.
     base_dir: Path = Path(".")
 

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+
 from cryptography import x509
 from fastapi import APIRouter, FastAPI
 from fastapi.routing import APIRoute
@@ -9,14 +12,21 @@ from fastapi.routing import APIRoute
 from keystrata import __version__
 from keystrata.api import errors
 from keystrata.api.limits import BodyLimit
-from keystrata.api.routes import links, node, registry
+from keystrata.api.routes import links, node, pairs, peer, registry
 from keystrata.services.context import NodeContext
+from keystrata.workers.runner import Background
 
 #: Bodies of routes other than ingest are small JSON documents.
 DEFAULT_BODY_LIMIT = 1024 * 1024
 
 
-ROUTERS: tuple[APIRouter, ...] = (node.router, registry.router, links.router)
+ROUTERS: tuple[APIRouter, ...] = (
+    node.router,
+    registry.router,
+    links.router,
+    pairs.router,
+    peer.router,
+)
 
 
 def route_table() -> list[APIRoute]:
@@ -26,7 +36,20 @@ def route_table() -> list[APIRoute]:
 
 def create_app(ctx: NodeContext) -> FastAPI:
     """Return the node's ASGI app; every route needs an authenticated caller."""
+
+    @asynccontextmanager
+    async def lifespan(_: FastAPI) -> AsyncIterator[None]:
+        background = Background(ctx) if ctx.settings.server.background_work else None
+        if background:
+            background.start()
+        try:
+            yield
+        finally:
+            if background:
+                background.stop()
+
     app = FastAPI(
+        lifespan=lifespan,
         title=f"keystrata node {ctx.node_id}",
         version=__version__,
         docs_url=None,
@@ -41,6 +64,6 @@ def create_app(ctx: NodeContext) -> FastAPI:
         BodyLimit,
         default=DEFAULT_BODY_LIMIT,
         large=ctx.settings.ingest.max_request_bytes,
-        large_prefixes=("/api/v1/links/",),
+        large_prefixes=("/api/v1/links/", "/api/v1/peer/"),
     )
     return app

@@ -27,6 +27,12 @@ class Event(StrEnum):
     LINK_KEY_INGESTED = "link_key.ingested"
     LINK_KEY_REFUSED = "link_key.refused"
     AUTH_REFUSED = "auth.refused"
+    RELAY_SEGMENT_MADE = "relay.segment_made"
+    RELAY_SEGMENT_SETTLED = "relay.segment_settled"
+    SEGMENT_RECEIVED = "segment.received"
+    SEGMENT_READY = "segment.ready"
+    SEGMENT_DISCARDED = "segment.discarded"
+    RELAY_MESSAGE_REFUSED = "segment.message_refused"
     KEK_ROTATION_STARTED = "kek.rotation_started"
     KEK_ROTATED = "kek.rotated"
 

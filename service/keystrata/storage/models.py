@@ -229,3 +229,106 @@ class LedgerEntry(Base):
     recorded_at: Mapped[datetime] = mapped_column(index=True)
     event: Mapped[str] = mapped_column(String(64))
     entry: Mapped[bytes] = mapped_column(LargeBinary, comment="canonical JSON bytes (RFC 8785)")
+
+
+class RelayOp(Base):
+    """A relay operation (at the relay): which link bytes made which segment. The key
+    bytes themselves were destroyed in the transaction that wrote this row."""
+
+    __tablename__ = "relay_op"
+    __table_args__ = (
+        CheckConstraint("state IN ('sent', 'ready', 'discarded')", name="state"),
+        CheckConstraint("notice_station <> cipher_station", name="two_stations"),
+        Index("ix_relay_op_pair_state", "pair_id", "state"),
+    )
+    segment_id: Mapped[str] = mapped_column(String(36), primary_key=True)
+    pair_id: Mapped[str] = mapped_column(ForeignKey("pair.pair_id"))
+    notice_station: Mapped[str] = mapped_column(
+        String(ID_LEN), comment="station A: told which of its link bytes form the segment"
+    )
+    cipher_station: Mapped[str] = mapped_column(
+        String(ID_LEN), comment="station B: sent the ciphertext KA xor KB and its tag"
+    )
+    owner: Mapped[str] = mapped_column(String(ID_LEN))
+    length: Mapped[int] = mapped_column(Integer, comment="bytes of pair key")
+    epsilon: Mapped[float] = mapped_column(Float)
+    ranges: Mapped[str] = mapped_column(Text, comment="JSON: link bytes used, per link")
+    state: Mapped[str] = mapped_column(String(16))
+    made_at: Mapped[datetime]
+    settled_at: Mapped[datetime | None]
+
+
+class PairSegment(Base):
+    """A segment of pair key at a station; bytes [used:length] are still sealed."""
+
+    __tablename__ = "pair_segment"
+    __table_args__ = (
+        CheckConstraint("state IN ('pending', 'ready', 'discarded')", name="state"),
+        CheckConstraint("used >= 0 AND used <= length", name="used"),
+        CheckConstraint(
+            "(sealed IS NULL) = (state = 'discarded' OR used = length)", name="sealed_iff_live"
+        ),
+        CheckConstraint("side IN ('notice', 'cipher')", name="side"),
+        Index("ix_pair_segment_pair_state", "pair_id", "state", "owner"),
+    )
+    segment_id: Mapped[str] = mapped_column(String(36), primary_key=True)
+    pair_id: Mapped[str] = mapped_column(ForeignKey("pair.pair_id"))
+    side: Mapped[str] = mapped_column(
+        String(8), comment="notice: this station decides ready/discarded; cipher: it follows"
+    )
+    partner: Mapped[str] = mapped_column(String(ID_LEN), comment="the other station")
+    owner: Mapped[str] = mapped_column(String(ID_LEN), comment="station that serves it as master")
+    length: Mapped[int] = mapped_column(Integer, comment="bytes of pair key")
+    used: Mapped[int] = mapped_column(Integer, default=0)
+    epsilon: Mapped[float] = mapped_column(Float)
+    state: Mapped[str] = mapped_column(String(16))
+    reason: Mapped[str | None] = mapped_column(String(64), comment="why it was discarded")
+    link_applied: Mapped[bool] = mapped_column(
+        comment="the relay's message naming this station's link bytes has been applied"
+    )
+    made_at: Mapped[datetime] = mapped_column(comment="when the relay made it")
+    received_at: Mapped[datetime]
+    settled_at: Mapped[datetime | None]
+    sealed: Mapped[bytes | None] = mapped_column(LargeBinary)
+
+
+class OutboxMessage(Base):
+    """A message to a peer node, written in the transaction that decided to send it."""
+
+    __tablename__ = "outbox"
+    __table_args__ = (Index("ix_outbox_due", "due_at"),)
+    id: Mapped[int] = mapped_column(
+        BigInteger().with_variant(Integer, "sqlite"), primary_key=True, autoincrement=True
+    )
+    destination: Mapped[str] = mapped_column(String(ID_LEN))
+    kind: Mapped[str] = mapped_column(String(32))
+    segment_id: Mapped[str | None] = mapped_column(String(36))
+    body: Mapped[bytes] = mapped_column(LargeBinary, comment="JSON; never holds key material")
+    attempts: Mapped[int] = mapped_column(Integer, default=0)
+    due_at: Mapped[datetime]
+    claimed_until: Mapped[datetime | None]
+    last_error: Mapped[str | None] = mapped_column(String(255))
+    created_at: Mapped[datetime]
+
+
+class Lease(Base):
+    """Named leases: exactly one worker process holds each at a time (e.g. the scheduler)."""
+
+    __tablename__ = "lease"
+    name: Mapped[str] = mapped_column(String(64), primary_key=True)
+    holder: Mapped[str] = mapped_column(String(128))
+    expires_at: Mapped[datetime]
+
+
+class PairBuffer(Base):
+    """At the relay: a station's last report on a pair's key buffer."""
+
+    __tablename__ = "pair_buffer"
+    pair_id: Mapped[str] = mapped_column(ForeignKey("pair.pair_id"), primary_key=True)
+    station: Mapped[str] = mapped_column(String(ID_LEN), primary_key=True)
+    ready_bits: Mapped[int] = mapped_column(BigInteger)
+    owned_ready_bits: Mapped[int] = mapped_column(BigInteger)
+    pending_bits: Mapped[int] = mapped_column(BigInteger)
+    delivered_bits: Mapped[int] = mapped_column(BigInteger, comment="in the report's window")
+    window_seconds: Mapped[int] = mapped_column(Integer)
+    reported_at: Mapped[datetime]

@@ -25,3 +25,8 @@ def block_context(link_id: str, block_id: str, used: int) -> bytes:
 
 #: node_meta rows that hold sealed values (the others are plain).
 SEALED_META = ("kek_check", "fingerprint_key", "ledger_signing_key")
+
+
+def segment_context(segment_id: str, used: int) -> bytes:
+    """Context of a pair key segment's remaining bytes, which start at offset ``used``."""
+    return _context("pair_segment", segment_id, used)

@@ -1,0 +1,34 @@
+"""Operator view of station pairs: buffers, relay rate, targets."""
+
+from __future__ import annotations
+
+from dataclasses import asdict
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Depends, Request
+
+from keystrata.api.identity import admit
+from keystrata.config import Role
+from keystrata.domain.registry import PrincipalRole
+from keystrata.services import buffers
+from keystrata.services.context import NodeContext
+from keystrata.services.principals import Caller
+
+router = APIRouter(prefix="/api/v1", tags=["pairs"])
+
+Reader = Annotated[Caller, Depends(admit(PrincipalRole.OPERATOR, PrincipalRole.AUDITOR))]
+
+
+@router.get("/pairs", summary="Pair key buffers", operation_id="list_pair_buffers")
+def list_pair_buffers(request: Request, _: Reader) -> dict[str, Any]:
+    """At a relay: every pair's buffers at both stations (last reports), key on its
+    way, relay rate, target and time until empty. At a station: this station's ready
+    key per pair, by owner, and key waiting for confirmation."""
+    ctx: NodeContext = request.app.state.ctx
+    if ctx.role is Role.RELAY:
+        return {
+            "node_id": ctx.node_id,
+            "role": "relay",
+            "pairs": [asdict(v) for v in buffers.relay_view(ctx)],
+        }
+    return {"node_id": ctx.node_id, "role": "station", "pairs": buffers.station_view(ctx)}

@@ -1,0 +1,50 @@
+"""Node-to-node routes (role ``peer``): relay and segment messages, buffer reports.
+
+Answers: 200 with ``{"segment_id", "status"}`` when the message is applied (or was
+already); 409 when it cannot be applied yet (the sender's outbox retries) or would
+reuse link key; 400 for a malformed message.
+"""
+
+from __future__ import annotations
+
+import json
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Depends, Request
+from starlette.concurrency import run_in_threadpool
+
+from keystrata.api.identity import admit
+from keystrata.config import Role
+from keystrata.domain.registry import PrincipalRole
+from keystrata.errors import InvalidInput, NotFound
+from keystrata.services import buffers, messages
+from keystrata.services.context import NodeContext
+from keystrata.services.principals import Caller
+
+router = APIRouter(prefix="/api/v1/peer", tags=["peer"])
+
+Peer = Annotated[Caller, Depends(admit(PrincipalRole.PEER))]
+
+
+@router.post("/messages", summary="Deliver a relay or segment message", operation_id="peer_message")
+async def peer_message(request: Request, caller: Peer) -> dict[str, Any]:
+    ctx: NodeContext = request.app.state.ctx
+    try:
+        body = json.loads(await request.body())
+    except ValueError:
+        raise InvalidInput("body: not JSON") from None
+    assert caller.node_id is not None  # peers are bound to a node (registry rule)
+    outcome = await run_in_threadpool(messages.handle, ctx, caller.node_id, body)
+    return {"segment_id": outcome.segment_id, "status": outcome.status}
+
+
+@router.get(
+    "/pairs/{pair_id}/buffer",
+    summary="A station's key buffer for a pair",
+    operation_id="peer_pair_buffer",
+)
+def pair_buffer(pair_id: str, request: Request, caller: Peer) -> dict[str, Any]:
+    ctx: NodeContext = request.app.state.ctx
+    if ctx.role is not Role.STATION:
+        raise NotFound("only stations keep pair buffers")
+    return buffers.station_report(ctx, pair_id).to_json()

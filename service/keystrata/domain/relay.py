@@ -1,0 +1,156 @@
+"""The trusted-node key relay, per segment, as plain arithmetic (ITU-T Y.3800 series
+describes the key relay through trusted nodes; the names here are ours).
+
+For a pair (A, B) and a segment of n bytes the relay takes
+
+* KA: the next n bytes of link R-A,
+* KB: the next n bytes of link R-B, and M: the next 32 bytes of link R-B,
+
+sends A a *notice* naming the link R-A bytes (A then holds KA), and sends B the
+ciphertext C = KA xor KB with tag = Poly1305(M, header || C) (RFC 8439 section 2.5) and
+the link R-B bytes used. B checks the tag and recovers KA = C xor KB. A and B then
+confirm the segment to each other with check values before either serves it.
+
+The security parameter of a segment is the sum of the epsilons of every link block it
+touched (its key bytes and its MAC key). This is the union bound over the composable
+(trace-distance) security of the blocks, common practice for composing QKD keys.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import hmac
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import rfc8785
+
+HEADER_VERSION = 1
+MAC_KEY_BYTES = 32
+CHECK_BYTES = 16
+
+
+@dataclass(frozen=True, slots=True)
+class Range:
+    """Bytes [offset, offset + length) of one link key block."""
+
+    block_id: str
+    offset: int
+    length: int
+
+    def to_json(self) -> dict[str, Any]:
+        return {"block": self.block_id, "offset": self.offset, "length": self.length}
+
+    @staticmethod
+    def from_json(raw: Mapping[str, Any]) -> Range:
+        return Range(
+            block_id=str(raw["block"]), offset=int(raw["offset"]), length=int(raw["length"])
+        )
+
+
+@dataclass(frozen=True, slots=True)
+class Available:
+    """What a link block still holds: bytes [used, length)."""
+
+    block_id: str
+    used: int
+    length: int
+    epsilon: float
+
+
+def take_ranges(blocks: Iterable[Available], n: int) -> list[Range]:
+    """Return ranges covering the next ``n`` bytes of ``blocks`` in the given order.
+
+    Raises:
+        ValueError: the blocks hold fewer than ``n`` bytes.
+    """
+    out: list[Range] = []
+    need = n
+    for b in blocks:
+        if need == 0:
+            break
+        free = b.length - b.used
+        if free <= 0:
+            continue
+        take = min(free, need)
+        out.append(Range(b.block_id, b.used, take))
+        need -= take
+    if need:
+        raise ValueError(f"link holds {n - need} of the {n} bytes asked for")
+    return out
+
+
+def split_after(ranges: Sequence[Range], n: int) -> tuple[list[Range], list[Range]]:
+    """Split ranges covering some bytes into the first ``n`` bytes and the rest."""
+    first: list[Range] = []
+    rest: list[Range] = []
+    left = n
+    for r in ranges:
+        if left >= r.length:
+            first.append(r)
+            left -= r.length
+        elif left > 0:
+            first.append(Range(r.block_id, r.offset, left))
+            rest.append(Range(r.block_id, r.offset + left, r.length - left))
+            left = 0
+        else:
+            rest.append(r)
+    return first, rest
+
+
+def total(ranges: Iterable[Range]) -> int:
+    return sum(r.length for r in ranges)
+
+
+def compose_epsilon(epsilons: Iterable[float]) -> float:
+    """Union bound over the blocks a segment touched (see the module docstring)."""
+    return float(sum(epsilons))
+
+
+def encode_header(fields: Mapping[str, Any]) -> bytes:
+    """Canonical bytes (RFC 8785) of a ciphertext header; the MAC covers them as sent."""
+    return rfc8785.dumps({"v": HEADER_VERSION, **fields})
+
+
+def mac_input(header: bytes, ciphertext: bytes) -> bytes:
+    """header || C, with the header's length in front so the split is unambiguous."""
+    return len(header).to_bytes(4, "big") + header + ciphertext
+
+
+def check_value(key: bytes, segment_id: str, station: str) -> bytes:
+    """Key confirmation value of one station for a segment: HMAC-SHA-256 (RFC 2104) under
+    the segment key, over the segment ID and the station's own ID (so the two stations'
+    values differ and a reflected value proves nothing), truncated to 16 bytes."""
+    msg = b"keystrata/confirm/v1\x00" + segment_id.encode() + b"\x00" + station.encode()
+    return hmac.new(key, msg, hashlib.sha256).digest()[:CHECK_BYTES]
+
+
+def choose_owner(
+    a: str, b: str, demand_a: float, demand_b: float, owned_a: int, owned_b: int
+) -> str:
+    """Owner of a new segment: the side furthest below its share of owned key, where the
+    shares are proportional to recent demand (equal while neither side has demand).
+
+    Ties go to the first station in ID order, so the choice is deterministic.
+    """
+    if demand_a <= 0 and demand_b <= 0:
+        demand_a = demand_b = 1.0
+    total_owned = owned_a + owned_b
+    # Deficit of each side against its proportional share of what is owned so far.
+    share_a = demand_a / (demand_a + demand_b)
+    gap_a = share_a * (total_owned + 1) - owned_a
+    gap_b = (1 - share_a) * (total_owned + 1) - owned_b
+    if gap_a > gap_b or (gap_a == gap_b and a < b):
+        return a
+    return b
+
+
+def buffer_target(
+    *, consumption_bps: float | None, horizon_s: float, minimum: int, default: int, maximum: int
+) -> int:
+    """Ready key (bits) a pair should hold: enough for ``horizon_s`` at its measured
+    consumption, within the policy's bounds; ``default`` while nothing was measured."""
+    if consumption_bps is None:
+        return max(minimum, min(default, maximum))
+    return int(max(minimum, min(consumption_bps * horizon_s, maximum)))

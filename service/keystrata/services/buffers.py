@@ -1,0 +1,220 @@
+"""Pair key buffers: what a station holds for each pair, and the relay's view of them."""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+from datetime import datetime, timedelta
+from typing import Any
+
+from sqlalchemy import case, func, select
+from sqlalchemy.dialects.postgresql import insert as pg_insert
+from sqlalchemy.dialects.sqlite import insert as sqlite_insert
+from sqlalchemy.orm import Session
+
+from keystrata.domain import relay as method
+from keystrata.errors import NotFound
+from keystrata.services.context import NodeContext
+from keystrata.storage.models import Pair, PairBuffer, PairSegment, RelayOp
+
+
+@dataclass(frozen=True)
+class BufferReport:
+    """A station's key buffer for one pair (bits)."""
+
+    pair_id: str
+    station: str
+    ready_bits: int
+    owned_ready_bits: int
+    pending_bits: int
+    #: Bits of this pair's key handed to SAEs at this station in the window. Key
+    #: delivery (ETSI GS QKD 014) feeds it; until a station delivers, it is 0.
+    delivered_bits: int
+    window_seconds: int
+    reported_at: datetime
+
+    def to_json(self) -> dict[str, Any]:
+        out = asdict(self)
+        out["reported_at"] = self.reported_at.isoformat()
+        return out
+
+    @staticmethod
+    def from_json(raw: dict[str, Any]) -> BufferReport:
+        return BufferReport(
+            pair_id=str(raw["pair_id"]),
+            station=str(raw["station"]),
+            ready_bits=int(raw["ready_bits"]),
+            owned_ready_bits=int(raw["owned_ready_bits"]),
+            pending_bits=int(raw["pending_bits"]),
+            delivered_bits=int(raw["delivered_bits"]),
+            window_seconds=int(raw["window_seconds"]),
+            reported_at=datetime.fromisoformat(str(raw["reported_at"])),
+        )
+
+
+def _levels(s: Session, pair_id: str, me: str) -> tuple[int, int, int]:
+    left = PairSegment.length - PairSegment.used
+    ready, owned, pending = s.execute(
+        select(
+            func.coalesce(func.sum(case((PairSegment.state == "ready", left), else_=0)), 0),
+            func.coalesce(
+                func.sum(
+                    case(
+                        ((PairSegment.state == "ready") & (PairSegment.owner == me), left), else_=0
+                    )
+                ),
+                0,
+            ),
+            func.coalesce(func.sum(case((PairSegment.state == "pending", left), else_=0)), 0),
+        ).where(PairSegment.pair_id == pair_id)
+    ).one()
+    return 8 * int(ready), 8 * int(owned), 8 * int(pending)
+
+
+def station_report(ctx: NodeContext, pair_id: str) -> BufferReport:
+    """This station's buffer for ``pair_id``. Raises NotFound for a pair not here."""
+    window = ctx.settings.ingest.rate_window_seconds
+    with ctx.db.read() as s:
+        pair = s.get(Pair, pair_id)
+        if pair is None or ctx.node_id not in (pair.station_a, pair.station_b):
+            raise NotFound(f"no pair {pair_id!r} at this station")
+        ready, owned, pending = _levels(s, pair_id, ctx.node_id)
+    return BufferReport(
+        pair_id=pair_id,
+        station=ctx.node_id,
+        ready_bits=ready,
+        owned_ready_bits=owned,
+        pending_bits=pending,
+        delivered_bits=0,
+        window_seconds=window,
+        reported_at=ctx.clock.now(),
+    )
+
+
+def record_report(ctx: NodeContext, report: BufferReport) -> None:
+    """At the relay: keep a station's latest report (upsert)."""
+    values = {k: v for k, v in asdict(report).items() if k != "station"}
+    values["station"] = report.station
+    with ctx.db.write() as s:
+        insert = pg_insert if ctx.db.backend == "postgresql" else sqlite_insert
+        stmt = insert(PairBuffer).values(**values)
+        s.execute(
+            stmt.on_conflict_do_update(
+                index_elements=["pair_id", "station"],
+                set_={k: stmt.excluded[k] for k in values if k not in ("pair_id", "station")},
+            )
+        )
+
+
+@dataclass(frozen=True)
+class PairView:
+    pair_id: str
+    stations: list[str]
+    priority: int
+    sides: list[dict[str, Any]]
+    in_flight_bits: int
+    relay_rate_bps: float
+    consumption_bps: float | None
+    target_bits: int
+    time_until_empty_s: float | None
+
+
+def relay_view(ctx: NodeContext, *, now: datetime | None = None) -> list[PairView]:
+    """Every active pair through this relay, as its scheduler sees it."""
+    now = now or ctx.clock.now()
+    cfg = ctx.settings.relay
+    window = ctx.settings.ingest.rate_window_seconds
+    since = now - timedelta(seconds=window)
+    out: list[PairView] = []
+    with ctx.db.read() as s:
+        pairs = (
+            s.execute(
+                select(Pair)
+                .where(Pair.relay_id == ctx.node_id, Pair.retired_at.is_(None))
+                .order_by(Pair.pair_id)
+            )
+            .scalars()
+            .all()
+        )
+        for pair in pairs:
+            reports = {
+                r.station: r
+                for r in s.execute(
+                    select(PairBuffer).where(PairBuffer.pair_id == pair.pair_id)
+                ).scalars()
+            }
+            in_flight, made = s.execute(
+                select(
+                    func.coalesce(
+                        func.sum(case((RelayOp.state == "sent", RelayOp.length), else_=0)), 0
+                    ),
+                    func.coalesce(
+                        func.sum(case((RelayOp.made_at >= since, RelayOp.length), else_=0)), 0
+                    ),
+                ).where(RelayOp.pair_id == pair.pair_id)
+            ).one()
+            sides = []
+            for st in (pair.station_a, pair.station_b):
+                r = reports.get(st)
+                sides.append(
+                    {
+                        "station": st,
+                        "ready_bits": r.ready_bits if r else None,
+                        "owned_ready_bits": r.owned_ready_bits if r else None,
+                        "pending_bits": r.pending_bits if r else None,
+                        "reported_at": r.reported_at.isoformat() if r else None,
+                    }
+                )
+            consumption = None
+            if len(reports) == 2 and any(r.delivered_bits for r in reports.values()):
+                consumption = sum(
+                    r.delivered_bits / max(r.window_seconds, 1) for r in reports.values()
+                )
+            ready = min(int(side["ready_bits"] or 0) for side in sides)
+            target = method.buffer_target(
+                consumption_bps=consumption,
+                horizon_s=cfg.horizon_seconds,
+                minimum=pair.buffer_min_bits,
+                default=pair.buffer_target_bits,
+                maximum=pair.buffer_max_bits,
+            )
+            out.append(
+                PairView(
+                    pair_id=pair.pair_id,
+                    stations=[pair.station_a, pair.station_b],
+                    priority=pair.priority,
+                    sides=sides,
+                    in_flight_bits=8 * int(in_flight),
+                    relay_rate_bps=8 * int(made) / window,
+                    consumption_bps=consumption,
+                    target_bits=target,
+                    time_until_empty_s=(ready / consumption) if consumption else None,
+                )
+            )
+    return out
+
+
+def station_view(ctx: NodeContext) -> list[dict[str, Any]]:
+    """Every active pair of this station: ready key by owner, pending key."""
+    out = []
+    with ctx.db.read() as s:
+        pairs = (
+            s.execute(select(Pair).where(Pair.retired_at.is_(None)).order_by(Pair.pair_id))
+            .scalars()
+            .all()
+        )
+        for pair in pairs:
+            if ctx.node_id not in (pair.station_a, pair.station_b):
+                continue
+            ready, owned, pending = _levels(s, pair.pair_id, ctx.node_id)
+            partner = pair.station_b if pair.station_a == ctx.node_id else pair.station_a
+            out.append(
+                {
+                    "pair_id": pair.pair_id,
+                    "partner": partner,
+                    "ready_bits": ready,
+                    "owned_ready_bits": owned,
+                    "partner_owned_ready_bits": ready - owned,
+                    "pending_bits": pending,
+                }
+            )
+    return out

@@ -1,0 +1,234 @@
+"""The relay operation: turn link key shared with two stations into a segment of pair key
+those stations share (see :mod:`keystrata.domain.relay` for the method).
+
+One transaction takes KA, KB and the one-time MAC key M, destroys them, records the
+operation (no key bytes), and queues the notice to A and the ciphertext to B in the
+outbox. The relay never stores pair key: the outbox holds only C = KA xor KB, which
+without KB (destroyed here) says nothing about KA.
+"""
+
+from __future__ import annotations
+
+import base64
+import json
+import uuid
+from dataclasses import dataclass
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from keystrata.crypto.hazmat import one_time_mac, xor_bytes
+from keystrata.domain import relay as method
+from keystrata.domain.ledger import Event
+from keystrata.errors import Conflict, NotFound
+from keystrata.services import ledger, linkbytes, outbox
+from keystrata.services.context import NodeContext
+from keystrata.storage.models import Pair, QkdLink, RelayOp
+
+
+@dataclass(frozen=True)
+class SegmentMade:
+    segment_id: str
+    pair_id: str
+    length: int
+    owner: str
+    epsilon: float
+
+
+class EpsilonTooLarge(Conflict):
+    default_message = "the segment's security parameter would exceed the pair's maximum"
+
+
+class LinkKeyShort(Conflict):
+    default_message = "not enough link key for this segment"
+
+
+def link_of(session: Session, relay_id: str, station: str) -> str:
+    """The active QKD link between this relay and ``station``. Raises NotFound."""
+    link = session.execute(
+        select(QkdLink.link_id)
+        .where(
+            QkdLink.relay_id == relay_id,
+            QkdLink.station_id == station,
+            QkdLink.retired_at.is_(None),
+        )
+        .order_by(QkdLink.link_id)
+    ).scalar()
+    if link is None:
+        raise NotFound(f"no active QKD link from {relay_id} to {station}")
+    return str(link)
+
+
+def make_segment(
+    ctx: NodeContext,
+    pair_id: str,
+    n: int,
+    *,
+    owner: str | None = None,
+    cipher_station: str | None = None,
+) -> SegmentMade:
+    """Run one relay operation of ``n`` bytes for a pair, in one transaction.
+
+    ``cipher_station`` (B) receives the ciphertext and spends 32 more link bytes for the
+    MAC key; by default the station whose link holds more key. ``owner`` defaults to A.
+
+    Raises:
+        NotFound: no such active pair at this relay, or a link is missing.
+        LinkKeyShort: a link holds too little key.
+        EpsilonTooLarge: the segment would exceed the pair's maximum epsilon.
+    """
+    segment_id = str(uuid.uuid4())
+    with ctx.db.write() as s:
+        pair = s.get(Pair, pair_id)
+        if pair is None or pair.retired_at is not None or pair.relay_id != ctx.node_id:
+            raise NotFound(f"no active pair {pair_id!r} through this relay")
+        stations = (pair.station_a, pair.station_b)
+        links = {st: link_of(s, ctx.node_id, st) for st in stations}
+        avail = {st: linkbytes.available(s, links[st], n + method.MAC_KEY_BYTES) for st in stations}
+        if cipher_station is None:
+            # B pays the 32-byte MAC key: pick the side with more key on its link.
+            free = {st: sum(b.length - b.used for b in avail[st]) for st in stations}
+            cipher_station = max(stations, key=lambda st: (free[st], st))
+        notice_station = stations[1] if cipher_station == stations[0] else stations[0]
+        try:
+            ranges_a = method.take_ranges(avail[notice_station], n)
+            ranges_b, ranges_m = method.split_after(
+                method.take_ranges(avail[cipher_station], n + method.MAC_KEY_BYTES), n
+            )
+        except ValueError as exc:
+            raise LinkKeyShort(str(exc)) from exc
+        key_a, eps_a = linkbytes.take(s, ctx.keyring, links[notice_station], ranges_a)
+        key_bm, eps_b = linkbytes.take(s, ctx.keyring, links[cipher_station], ranges_b + ranges_m)
+        epsilon = method.compose_epsilon(eps_a + eps_b)
+        if pair.max_epsilon is not None and epsilon > pair.max_epsilon:
+            raise EpsilonTooLarge(
+                f"segment epsilon {epsilon:.3g} exceeds the pair's maximum {pair.max_epsilon:.3g}"
+            )
+        owner = owner or notice_station
+        now = ctx.clock.now()
+        header = method.encode_header(
+            {
+                "segment": segment_id,
+                "pair": pair_id,
+                "relay": ctx.node_id,
+                "notice_station": notice_station,
+                "cipher_station": cipher_station,
+                "owner": owner,
+                "link": links[cipher_station],
+                "bytes": n,
+                "epsilon": epsilon,
+                "key_ranges": [r.to_json() for r in ranges_b],
+                "mac_ranges": [r.to_json() for r in ranges_m],
+                "made_at": now.isoformat(),
+            }
+        )
+        ciphertext = xor_bytes(key_a, key_bm[:n])
+        tag = one_time_mac(key_bm[n:], method.mac_input(header, ciphertext))
+        del key_a, key_bm  # nothing of KA, KB or M outlives this transaction
+        used = {
+            links[notice_station]: [r.to_json() for r in ranges_a],
+            links[cipher_station]: [r.to_json() for r in ranges_b + ranges_m],
+        }
+        s.add(
+            RelayOp(
+                segment_id=segment_id,
+                pair_id=pair_id,
+                notice_station=notice_station,
+                cipher_station=cipher_station,
+                owner=owner,
+                length=n,
+                epsilon=epsilon,
+                ranges=json.dumps(used),
+                state="sent",
+                made_at=now,
+                settled_at=None,
+            )
+        )
+        outbox.enqueue(
+            s,
+            destination=notice_station,
+            kind="relay.notice",
+            segment_id=segment_id,
+            now=now,
+            body={
+                "segment_id": segment_id,
+                "pair_id": pair_id,
+                "owner": owner,
+                "partner": cipher_station,
+                "link_id": links[notice_station],
+                "ranges": [r.to_json() for r in ranges_a],
+                "bytes": n,
+                "epsilon": epsilon,
+                "made_at": now.isoformat(),
+            },
+        )
+        outbox.enqueue(
+            s,
+            destination=cipher_station,
+            kind="relay.ciphertext",
+            segment_id=segment_id,
+            now=now,
+            body={
+                "segment_id": segment_id,
+                "header": base64.b64encode(header).decode(),
+                "ciphertext": base64.b64encode(ciphertext).decode(),
+                "tag": base64.b64encode(tag).decode(),
+            },
+        )
+        ledger.append(
+            s,
+            node_id=ctx.node_id,
+            at=now,
+            event=Event.RELAY_SEGMENT_MADE,
+            fields={
+                "segment": segment_id,
+                "pair": pair_id,
+                "bytes": n,
+                "owner": owner,
+                "notice_station": notice_station,
+                "cipher_station": cipher_station,
+                "epsilon": epsilon,
+                "link_bytes": used,
+            },
+        )
+    return SegmentMade(segment_id, pair_id, n, owner, epsilon)
+
+
+def settle(ctx: NodeContext, segment_id: str, outcome: str, reason: str | None) -> bool:
+    """Record at the relay how a segment ended (reported by its notice station).
+
+    Returns True when this call changed the record (False: already settled).
+    """
+    if outcome not in ("ready", "discarded"):
+        raise ValueError("outcome must be ready or discarded")
+    with ctx.db.write() as s:
+        op = s.get(RelayOp, segment_id, with_for_update=True)
+        if op is None:
+            raise NotFound(f"no relay operation {segment_id}")
+        if op.state != "sent":
+            return False
+        now = ctx.clock.now()
+        op.state = outcome
+        op.settled_at = now
+        ledger.append(
+            s,
+            node_id=ctx.node_id,
+            at=now,
+            event=Event.RELAY_SEGMENT_SETTLED,
+            fields={
+                "segment": segment_id,
+                "pair": op.pair_id,
+                "outcome": outcome,
+                "reason": reason,
+            },
+        )
+    return True
+
+
+def notice_station_of(ctx: NodeContext, segment_id: str) -> str:
+    """The station that decides a segment's fate. Raises NotFound."""
+    with ctx.db.read() as s:
+        op = s.get(RelayOp, segment_id)
+        if op is None:
+            raise NotFound(f"no relay operation {segment_id}")
+        return op.notice_station

@@ -1,0 +1,58 @@
+"""HTTPS client a node uses to reach its peers, with its own certificate (mutual TLS)."""
+
+from __future__ import annotations
+
+import ssl
+from typing import Any
+
+import httpx
+
+from keystrata.config import Settings
+
+
+class PeerUnavailable(Exception):
+    """The peer did not answer (connection, TLS or timeout)."""
+
+
+class PeerClient:
+    """Talks to the peers listed in the node's ``[[peers]]`` settings."""
+
+    def __init__(self, settings: Settings, *, transport: httpx.BaseTransport | None = None):
+        ctx = ssl.create_default_context(cafile=str(settings.tls.ca))
+        ctx.load_cert_chain(str(settings.tls.cert), str(settings.tls.key))
+        self.urls = {p.id: p.url.rstrip("/") for p in settings.peers}
+        self._client = httpx.Client(
+            verify=ctx, timeout=settings.outbox.timeout_seconds, transport=transport
+        )
+
+    def close(self) -> None:
+        self._client.close()
+
+    def _url(self, node_id: str, path: str) -> str:
+        base = self.urls.get(node_id)
+        if base is None:
+            raise PeerUnavailable(f"no [[peers]] entry for node {node_id}")
+        return base + path
+
+    def post_message(self, node_id: str, body: dict[str, Any]) -> tuple[int, dict[str, Any]]:
+        """POST a message; return (status, answer object)."""
+        try:
+            r = self._client.post(self._url(node_id, "/api/v1/peer/messages"), json=body)
+        except httpx.HTTPError as exc:
+            raise PeerUnavailable(f"{node_id}: {type(exc).__name__}") from exc
+        try:
+            answer = r.json()
+        except ValueError:
+            answer = {}
+        return r.status_code, answer if isinstance(answer, dict) else {}
+
+    def pair_buffer(self, node_id: str, pair_id: str) -> dict[str, Any] | None:
+        """A station's buffer report for a pair, or None when it cannot be had now."""
+        try:
+            r = self._client.get(self._url(node_id, f"/api/v1/peer/pairs/{pair_id}/buffer"))
+        except (httpx.HTTPError, PeerUnavailable):
+            return None
+        if r.status_code != 200:
+            return None
+        answer = r.json()
+        return answer if isinstance(answer, dict) else None

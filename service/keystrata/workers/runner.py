@@ -1,0 +1,83 @@
+"""Start and stop a node's background loops (threads) with the web app's lifespan."""
+
+from __future__ import annotations
+
+import logging
+import os
+import socket
+import threading
+from collections.abc import Callable
+from datetime import timedelta
+
+from keystrata.config import Role
+from keystrata.services import leases, segments
+from keystrata.services.context import NodeContext
+from keystrata.workers import outbox, scheduler
+from keystrata.workers.peer_client import PeerClient
+
+log = logging.getLogger("keystrata.workers")
+
+
+class Background:
+    """The loops of one worker process: outbox delivery everywhere, the scheduler on a
+    relay (only while this process holds the lease), segment expiry on a station."""
+
+    def __init__(self, ctx: NodeContext) -> None:
+        self.ctx = ctx
+        self.holder = f"{socket.gethostname()}:{os.getpid()}:{id(self):x}"
+        self.stop_event = threading.Event()
+        self.wake = threading.Event()
+        self.threads: list[threading.Thread] = []
+        self.peers = PeerClient(ctx.settings)
+
+    def start(self) -> None:
+        loops: list[tuple[str, Callable[[], object], float]] = [
+            ("outbox", self._outbox, self.ctx.settings.outbox.idle_seconds)
+        ]
+        if self.ctx.role is Role.RELAY:
+            loops.append(("scheduler", self._schedule, self.ctx.settings.relay.cycle_seconds))
+        else:
+            loops.append(("expiry", self._expire, 5.0))
+        for name, step, idle in loops:
+            t = threading.Thread(
+                target=self._loop, args=(name, step, idle), name=f"keystrata-{name}", daemon=True
+            )
+            t.start()
+            self.threads.append(t)
+
+    def stop(self) -> None:
+        self.stop_event.set()
+        self.wake.set()
+        for t in self.threads:
+            t.join(timeout=10)
+        self.peers.close()
+
+    def _loop(self, name: str, step: Callable[[], object], idle: float) -> None:
+        while not self.stop_event.is_set():
+            try:
+                busy = step()
+            except Exception:  # a loop must survive a bad moment (database restart...)
+                log.exception("%s: step failed; retrying", name)
+                busy = False
+            if not busy:
+                self.stop_event.wait(idle)
+
+    def _outbox(self) -> bool:
+        return outbox.deliver_once(self.ctx, self.peers) > 0
+
+    def _schedule(self) -> bool:
+        cfg = self.ctx.settings.relay
+        ttl = timedelta(seconds=max(10.0, 5 * cfg.cycle_seconds))
+        if not leases.acquire(
+            self.ctx.db, scheduler.LEASE, self.holder, now=self.ctx.clock.now(), ttl=ttl
+        ):
+            return False
+        report = scheduler.schedule_once(self.ctx, self.peers)
+        if report.made:
+            log.info("scheduler: made %d segments", len(report.made))
+        return False  # one cycle per cycle_seconds
+
+    def _expire(self) -> bool:
+        timeout = timedelta(seconds=self.ctx.settings.segments.confirm_timeout_seconds)
+        segments.expire_pending(self.ctx, self.ctx.clock.now() - timeout)
+        return False

@@ -1,0 +1,177 @@
+"""An in-process relay network for tests: a relay and two stations, each with its own
+real database, and a "network" that carries outbox messages between them by calling the
+same dispatcher the peer route calls. Tests choose when messages move, so they can lose
+replies, resend, reorder and stop nodes between any two transactions."""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import uuid
+from collections.abc import Callable
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from typing import Any
+
+from sqlalchemy import select
+
+from conftest import Node, NodeFactory
+from keystrata.domain.blocks import BlockIn
+from keystrata.domain.registry import (
+    Kind,
+    LinkSpec,
+    NodeSpec,
+    PairPolicy,
+    PairSpec,
+    PrincipalSpec,
+)
+from keystrata.errors import KeystrataError
+from keystrata.services import ingest, messages, outbox, registry
+from keystrata.services.buffers import record_report, station_report
+from keystrata.storage.models import PairSegment
+from keystrata.storage.sealed import segment_context
+
+PAIR = "pair-ab"
+LINKS = {"station-a": "link-a", "station-b": "link-b"}
+
+
+@dataclass
+class RelayNet:
+    relay: Node
+    a: Node
+    b: Node
+
+    @property
+    def nodes(self) -> dict[str, Node]:
+        return {"relay-1": self.relay, "station-a": self.a, "station-b": self.b}
+
+    def feed(
+        self, station: str, n_blocks: int, block_bytes: int = 4096, epsilon: float = 1e-10
+    ) -> None:
+        """Push identical random blocks of the station's link to the relay and station."""
+        link = LINKS[station]
+        now = datetime.now(UTC)
+        blocks = [
+            BlockIn(str(uuid.uuid4()), os.urandom(block_bytes), 0.02, epsilon, now)
+            for _ in range(n_blocks)
+        ]
+        for node in (self.relay, self.nodes[station]):
+            ingest.ingest(node.ctx, link, blocks, actor="test-module", actor_link=link)
+
+    def pending(self) -> list[tuple[str, outbox.Pending]]:
+        """Every due message of every node, as (sender, message), oldest first."""
+        out: list[tuple[str, outbox.Pending]] = []
+        far = datetime(9999, 1, 1, tzinfo=UTC)
+        for name, node in self.nodes.items():
+            out += [(name, m) for m in outbox.claim(node.ctx.db, now=far, limit=10_000)]
+            _release(node, [m.id for _, m in out if _ == name])
+        return out
+
+    def deliver(self, sender: str, message: outbox.Pending, *, lose_reply: bool = False) -> str:
+        """Carry one message to its destination; return the outcome status, or the
+        error's status code when the receiver refused. On success the sender forgets the
+        message unless the reply is "lost"."""
+        target = self.nodes[message.destination]
+        try:
+            status = messages.handle(target.ctx, sender, dict(message.body)).status
+        except KeystrataError as exc:
+            return str(exc.status)
+        if not lose_reply:
+            outbox.delivered(self.nodes[sender].ctx.db, [message.id])
+        return status
+
+    def drain(self, max_rounds: int = 50) -> None:
+        """Deliver everything until no node has anything left that can be applied."""
+        for _ in range(max_rounds):
+            progress = False
+            for sender, message in self.pending():
+                if self.deliver(sender, message) in ("applied", "already", "discarded"):
+                    progress = True
+            if not progress:
+                return
+
+    def report_buffers(self) -> None:
+        """What the scheduler's poll does, without HTTP."""
+        for station in ("station-a", "station-b"):
+            record_report(self.relay.ctx, station_report(self.nodes[station].ctx, PAIR))
+
+    def segments(self, station: str) -> dict[str, PairSegment]:
+        with self.nodes[station].ctx.db.read() as s:
+            return {r.segment_id: r for r in s.execute(select(PairSegment)).scalars()}
+
+    def key_digest(self, station: str, segment_id: str) -> str:
+        """SHA-256 of a segment's remaining key at a station (tests compare digests)."""
+        row = self.segments(station)[segment_id]
+        assert row.sealed is not None
+        ctx = self.nodes[station].ctx
+        key = ctx.keyring.open(row.sealed, segment_context(segment_id, row.used))
+        return hashlib.sha256(key).hexdigest()
+
+
+def _release(node: Node, ids: list[int]) -> None:
+    from sqlalchemy import update
+
+    from keystrata.storage.models import OutboxMessage
+
+    with node.ctx.db.write() as s:
+        s.execute(update(OutboxMessage).where(OutboxMessage.id.in_(ids)).values(claimed_until=None))
+
+
+def provision(node: Node, policy: dict[str, Any] | None = None) -> None:
+    ctx = node.ctx
+    for node_id, role in (("relay-1", "relay"), ("station-a", "station"), ("station-b", "station")):
+        if node_id != ctx.node_id:
+            registry.create(
+                ctx,
+                Kind.NODES,
+                NodeSpec.model_validate({"node_id": node_id, "role": role}),
+                actor="test",
+            )
+    for station, link in LINKS.items():
+        if ctx.node_id in ("relay-1", station):
+            registry.create(
+                ctx,
+                Kind.LINKS,
+                LinkSpec(link_id=link, relay_id="relay-1", station_id=station),
+                actor="test",
+            )
+    registry.create(
+        ctx,
+        Kind.PAIRS,
+        PairSpec(
+            pair_id=PAIR,
+            relay_id="relay-1",
+            stations=["station-a", "station-b"],
+            policy=PairPolicy.model_validate(policy or {}),
+        ),
+        actor="test",
+    )
+    for peer in ("relay-1", "station-a", "station-b"):
+        if peer != ctx.node_id:
+            registry.create(
+                ctx,
+                Kind.PRINCIPALS,
+                PrincipalSpec.model_validate(
+                    {
+                        "principal_id": f"peer-{peer}",
+                        "role": "peer",
+                        "cert_subject": peer,
+                        "node_id": peer,
+                    }
+                ),
+                actor="test",
+            )
+
+
+def build(
+    make_node: NodeFactory,
+    new_db: Callable[[], str],
+    policy: dict[str, Any] | None = None,
+    relay_extra: str = "",
+) -> RelayNet:
+    relay = make_node("relay-1", "relay", db_url=new_db(), extra=relay_extra)
+    a = make_node("station-a", "station", db_url=new_db())
+    b = make_node("station-b", "station", db_url=new_db())
+    for node in (relay, a, b):
+        provision(node, policy)
+    return RelayNet(relay=relay, a=a, b=b)

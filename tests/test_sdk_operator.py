@@ -1,0 +1,262 @@
+"""``OperatorClient``: what it sends and how it reads answers.
+
+Pure client-side behaviour (path building, the mapping of answers onto the SDK's error
+tree, client ownership) runs on ``httpx.MockTransport``: the thing under test is the
+client, and a mock server lets each test give exactly the answer it needs, including
+ones no keystrata node would give (HTML from a proxy, a JSON list). How the client and
+a real node understand each other is checked once against a ``keystrata serve``
+process over mutual TLS.
+"""
+
+from __future__ import annotations
+
+import shutil
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from urllib.parse import unquote
+
+import httpx
+import pytest
+
+from conftest import PkiFiles
+from keystrata_client import (
+    ApiError,
+    KeystrataClientError,
+    OperatorClient,
+    TlsIdentity,
+    TransportError,
+)
+from processes import NodeProcess, free_port, prepare_node
+
+Handler = Callable[[httpx.Request], httpx.Response]
+
+
+@pytest.fixture
+def sent() -> list[httpx.Request]:
+    return []
+
+
+@pytest.fixture
+def mock_client(sent: list[httpx.Request]) -> Iterator[Callable[[Handler], OperatorClient]]:
+    """``mock_client(handler)``: an OperatorClient whose requests ``handler`` answers."""
+    clients: list[httpx.Client] = []
+
+    def make(handler: Handler) -> OperatorClient:
+        def record(request: httpx.Request) -> httpx.Response:
+            sent.append(request)
+            return handler(request)
+
+        http = httpx.Client(transport=httpx.MockTransport(record))
+        clients.append(http)
+        return OperatorClient("https://relay.test:8443/", client=http)
+
+    yield make
+    for http in clients:
+        http.close()
+
+
+def ok(request: httpx.Request) -> httpx.Response:
+    return httpx.Response(200, json={"items": []})
+
+
+# ---------------------------------------------------------------- requests
+
+
+def test_identifiers_stay_in_one_path_segment(mock_client, sent) -> None:
+    ops = mock_client(ok)
+    ops.get("nodes", "a/b c?d#e%f")
+    ops.change("pairs", "p/1", {"description": "x"})
+    ops.retire("principals", "x y")
+    ops.pool("link a/b")
+    assert [(r.method, r.url.raw_path) for r in sent] == [
+        ("GET", b"/api/v1/registry/nodes/a%2Fb%20c%3Fd%23e%25f"),
+        ("PATCH", b"/api/v1/registry/pairs/p%2F1"),
+        ("DELETE", b"/api/v1/registry/principals/x%20y"),
+        ("GET", b"/api/v1/links/link%20a%2Fb/pool"),
+    ]
+    # The trailing slash of the base URL does not double up.
+    assert all(r.url.host == "relay.test" and r.url.port == 8443 for r in sent)
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="client bug: _segment() leaves '.' and '..' as they are and httpx resolves "
+    "them as dot segments, so get('nodes', '.') lists every node instead of failing",
+)
+@pytest.mark.parametrize("object_id", [".", ".."])
+def test_dot_identifiers_do_not_address_another_resource(mock_client, sent, object_id) -> None:
+    ops = mock_client(ok)
+    try:
+        ops.get("nodes", object_id)
+    except ValueError:
+        return  # refusing such an ID is one acceptable fix
+    segments = sent[0].url.raw_path.decode().split("/")
+    assert segments[:5] == ["", "api", "v1", "registry", "nodes"]
+    assert len(segments) == 6 and unquote(segments[5]) == object_id
+
+
+def test_unknown_kind_is_refused_before_anything_is_sent(mock_client, sent) -> None:
+    ops = mock_client(ok)
+    with pytest.raises(ValueError, match="kind must be one of"):
+        ops.create("widgets", {})
+    with pytest.raises(ValueError):
+        ops.get("node", "relay-1")
+    assert sent == []
+
+
+def test_list_asks_for_retired_entries_only_when_told(mock_client, sent) -> None:
+    ops = mock_client(lambda r: httpx.Response(200, json={"items": [{"link_id": "a"}, 7]}))
+    assert ops.list("links") == [{"link_id": "a"}]
+    ops.list("links", include_retired=True)
+    assert [str(r.url.params) for r in sent] == ["", "include_retired=true"]
+
+
+# ---------------------------------------------------------------- answers
+
+HTML = "<html><body>upstream sent garbage</body></html>"
+
+
+@pytest.mark.parametrize(
+    ("answer", "status", "message", "details", "retryable"),
+    [
+        (
+            httpx.Response(404, json={"message": "nodes: no entry 'x'", "details": [{"f": 1}, 2]}),
+            404,
+            "nodes: no entry 'x'",
+            [{"f": 1}],
+            False,
+        ),
+        (httpx.Response(502, text=HTML), 502, "Bad Gateway", [], False),
+        (httpx.Response(503, text=HTML), 503, "Service Unavailable", [], True),
+        (httpx.Response(400, json=["not", "an", "object"]), 400, "Bad Request", [], False),
+        (httpx.Response(409, json={"message": 12}), 409, "Conflict", [], False),
+    ],
+    ids=["json-error", "html-502", "html-503", "json-list", "message-not-text"],
+)
+def test_error_answers_become_api_errors(
+    mock_client, answer, status, message, details, retryable
+) -> None:
+    ops = mock_client(lambda _: answer)
+    with pytest.raises(ApiError) as caught:
+        ops.node_info()
+    err = caught.value
+    assert (err.status, err.message, err.details, err.retryable) == (
+        status,
+        message,
+        details,
+        retryable,
+    )
+    assert str(err) == f"HTTP {status}: {message}"
+    assert "garbage" not in str(err) + repr(err)  # a foreign body is never repeated
+
+
+@pytest.mark.parametrize(
+    "answer",
+    [httpx.Response(200, text=HTML), httpx.Response(200, json=[1, 2]), httpx.Response(200)],
+    ids=["html", "json-list", "empty"],
+)
+def test_a_success_that_is_not_a_json_object_is_a_client_error(mock_client, answer) -> None:
+    ops = mock_client(lambda _: answer)
+    with pytest.raises(KeystrataClientError) as caught:
+        ops.pools()
+    assert not isinstance(caught.value, ApiError)
+    assert "GET /api/v1/links/pools" in str(caught.value)
+
+
+def test_list_without_items_is_a_client_error(mock_client) -> None:
+    ops = mock_client(lambda _: httpx.Response(200, json={"items": "nope"}))
+    with pytest.raises(KeystrataClientError, match="no items list"):
+        ops.list("pairs")
+
+
+def test_no_answer_is_a_transport_error() -> None:
+    port = free_port()  # bound and released: nothing listens on it now
+    with (
+        OperatorClient(f"http://127.0.0.1:{port}", timeout=2) as ops,
+        pytest.raises(TransportError) as caught,
+    ):
+        ops.node_info()
+    assert isinstance(caught.value.__cause__, httpx.ConnectError)
+    assert str(caught.value).startswith("ConnectError")
+
+
+def test_close_leaves_a_caller_owned_client_open() -> None:
+    with httpx.Client(transport=httpx.MockTransport(ok)) as http:
+        with OperatorClient("https://relay.test", client=http) as ops:
+            ops.list("nodes")
+        assert not http.is_closed
+        ops2 = OperatorClient("https://relay.test", client=http)
+        ops2.close()
+        assert not http.is_closed
+
+
+def test_base_url_must_be_http() -> None:
+    with pytest.raises(ValueError, match="https://"):
+        OperatorClient("relay.test:8443")
+
+
+# ---------------------------------------------------------------- against a real node
+
+
+def identity(pki: PkiFiles, name: str) -> TlsIdentity:
+    return TlsIdentity(ca=pki.ca, cert=pki.cert(name), key=pki.key(name))
+
+
+@pytest.fixture
+def station_process(tmp_path: Path, pki: PkiFiles, sqlite_template: Path) -> Iterator[NodeProcess]:
+    db = tmp_path / "station.db"
+    shutil.copy(sqlite_template, db)
+    node = prepare_node(tmp_path, pki, "station-a", "station", f"sqlite:///{db}").start(pki)
+    try:
+        yield node
+    finally:
+        node.stop()
+
+
+@pytest.mark.e2e
+def test_registry_round_trip_and_errors_from_a_real_node(
+    station_process: NodeProcess, pki: PkiFiles
+) -> None:
+    url = station_process.url
+    with OperatorClient(url, identity(pki, "ops-ada")) as ops:
+        assert ops.node_info()["node_id"] == "station-a"
+        relay = ops.create("nodes", {"node_id": "relay-1", "role": "relay"})
+        assert (relay["node_id"], relay["role"], relay["retired_at"]) == ("relay-1", "relay", None)
+        ops.create("links", {"link_id": "link-a", "relay_id": "relay-1", "station_id": "station-a"})
+        ops.create(
+            "principals",
+            {"principal_id": "aud-ben", "role": "auditor", "cert_subject": "aud-ben"},
+        )
+        changed = ops.change("links", "link-a", {"description": "relay-1 to station-a"})
+        assert changed["description"] == "relay-1 to station-a"
+        assert ops.get("links", "link-a") == changed
+        assert [n["node_id"] for n in ops.list("nodes")] == ["relay-1", "station-a"]
+        pools = ops.pools()
+        assert pools["node_id"] == "station-a"
+        assert [(p["link_id"], p["bits_available"]) for p in pools["pools"]] == [("link-a", 0)]
+        assert ops.pool("link-a")["peer_node_id"] == "relay-1"
+
+        with pytest.raises(ApiError) as unknown:
+            ops.get("nodes", "relay-9")
+        assert (unknown.value.status, unknown.value.message) == (404, "nodes: no entry 'relay-9'")
+        with pytest.raises(ApiError) as again:
+            ops.create("nodes", {"node_id": "relay-1", "role": "relay"})
+        assert again.value.status == 409
+        with pytest.raises(ApiError) as invalid:
+            ops.create("nodes", {"node_id": "relay-2", "role": "relay", "colour": "red"})
+        assert invalid.value.status == 400
+        assert any(d.get("field") == "body.colour" for d in invalid.value.details)
+        with pytest.raises(ApiError) as busy:
+            ops.retire("nodes", "relay-1")  # link-a still uses it
+        assert busy.value.status == 409 and "link link-a" in busy.value.message
+
+    with OperatorClient(url, identity(pki, "aud-ben")) as auditor:
+        assert [x["link_id"] for x in auditor.list("links")] == ["link-a"]
+        with pytest.raises(ApiError) as refused:
+            auditor.create("nodes", {"node_id": "relay-2", "role": "relay"})
+        assert refused.value.status == 403
+
+    with OperatorClient(url, identity(pki, "stranger")) as stranger:
+        with pytest.raises(ApiError) as unauthenticated:
+            stranger.pools()
+        assert unauthenticated.value.status == 401
