@@ -176,3 +176,12 @@ class OperatorClient:
         ``bits_received``, ``blocks_available``, ``rate_bps``, ``window_seconds``,
         ``last_block_at``."""
         return self._call("GET", f"/api/v1/links/{_segment(link_id)}/pool")
+
+    def pairs(self) -> dict[str, Any]:
+        """Return ``{"node_id", "role", "pairs": [...]}``: pair key buffers.
+
+        At a relay each pair lists both stations' last reports, key on its way, relay
+        rate, target and time until empty; at a station, its ready key per pair by owner
+        and key waiting for confirmation.
+        """
+        return self._call("GET", "/api/v1/pairs")

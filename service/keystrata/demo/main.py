@@ -12,12 +12,14 @@ from typing import Any
 
 import click
 from rich.console import Console
+from rich.console import Group
 from rich.live import Live
 
 from keystrata.demo import scenario
 from keystrata.demo.nodes import NodeProcesses, free_ports
 from keystrata.demo.provision import operator_identity, provision
-from keystrata.demo.view import Snapshot, links_table
+from keystrata.demo.verify import check_network
+from keystrata.demo.view import Snapshot, links_table, pairs_table
 from keystrata.demo.workdir import (
     DemoNode,
     build_pki,
@@ -76,18 +78,28 @@ def _link_specs(workdir: Path, nodes: list[DemoNode]) -> list[LinkSpec]:
     return specs
 
 
-def _read_pools(
-    nodes: list[DemoNode], identity: TlsIdentity
-) -> dict[tuple[str, str], dict[str, Any]]:
-    out = {}
+def _read_nodes(
+    nodes: list[DemoNode], identity: TlsIdentity, procs: NodeProcesses, elapsed: float
+) -> Snapshot:
+    """Pool levels and pair buffers, as an operator reads them from each node."""
+    snap = Snapshot(pools={}, elapsed=elapsed, dead=procs.dead())
     for node in nodes:
         try:
             with OperatorClient(node.url, identity, timeout=3.0) as client:
                 for pool in client.pools()["pools"]:
-                    out[(node.node_id, pool["link_id"])] = pool
+                    snap.pools[(node.node_id, pool["link_id"])] = pool
+                pairs = client.pairs()["pairs"]
         except Exception:  # noqa: S112 - a node that does not answer shows as "-"
             continue
-    return out
+        if node.role == "relay":
+            snap.relay_pairs = pairs
+        else:
+            snap.station_pairs[node.node_id] = pairs
+    return snap
+
+
+def _view(snap: Snapshot, stats: dict[str, LinkStats], title: str) -> Group:
+    return Group(links_table(snap, stats, title), pairs_table(snap.relay_pairs, snap.station_pairs))
 
 
 async def _watch(
@@ -103,13 +115,12 @@ async def _watch(
     snap = Snapshot(pools={}, elapsed=0.0, dead=[])
     while True:
         elapsed = time.monotonic() - started
-        pools = await asyncio.to_thread(_read_pools, nodes, identity)
-        snap = Snapshot(pools=pools, elapsed=elapsed, dead=procs.dead())
+        snap = await asyncio.to_thread(_read_nodes, nodes, identity, procs, elapsed)
         title = _title(emulator.stats, elapsed, duration)
         if live is not None:
-            live.update(links_table(snap, emulator.stats, title))
+            live.update(_view(snap, emulator.stats, title))
         elif elapsed - last_print >= 5.0:
-            console.print(links_table(snap, emulator.stats, title))
+            console.print(_view(snap, emulator.stats, title))
             last_print = elapsed
         if snap.dead:
             return snap
@@ -154,8 +165,7 @@ async def _run(
         emulator.stop()
         stats = await emulating
     # After the emulator drained its queues, both ends of each link must agree.
-    pools = await asyncio.to_thread(_read_pools, nodes, identity)
-    return Snapshot(pools=pools, elapsed=0.0, dead=procs.dead()), stats
+    return await asyncio.to_thread(_read_nodes, nodes, identity, procs, 0.0), stats
 
 
 def _disagreements(snap: Snapshot) -> list[str]:
@@ -210,16 +220,23 @@ def demo(duration: float | None, workdir: Path) -> None:
         snap, stats = asyncio.run(_run(workdir, nodes, procs, duration))
     finally:
         procs.stop()
-    console.print(links_table(snap, stats, "final pool levels (emulator drained)"))
+    console.print(_view(snap, stats, "final levels (emulator drained)"))
+    with console.status("checking every relay record and segment in the node databases"):
+        check = check_network(
+            nodes[0].config, {n.node_id: n.config for n in nodes if n.role == "station"}
+        )
     problems = [f"node {n} stopped unexpectedly" for n in snap.dead] + _disagreements(snap)
+    problems += check.problems
     if problems:
         for p in problems:
             console.print(f"[red]problem:[/red] {p}")
         sys.exit(1)
     total = sum(s.bits_generated for s in stats.values())
     console.print(
-        f"[green]ok:[/green] {total:,} bits of link key delivered to both ends of "
-        f"{len(stats)} QKD links; every relay pool matches its station's."
+        f"[green]ok:[/green] {total:,} bits of link key reached both ends of {len(stats)} "
+        f"QKD links alike; {check.relay_ops} relay operations used no link byte twice; "
+        f"{check.segments_ready_both} segments are ready at both stations of their pair, "
+        "byte-identical."
     )
 
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from rich.table import Table
@@ -18,6 +18,9 @@ class Snapshot:
     pools: dict[tuple[str, str], dict[str, Any]]
     elapsed: float
     dead: list[str]
+    #: The relay's view of every pair, and each station's own view.
+    relay_pairs: list[dict[str, Any]] = field(default_factory=list)
+    station_pairs: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
 
 
 def _bits(n: int | None) -> str:
@@ -38,15 +41,16 @@ def links_table(snap: Snapshot, stats: dict[str, LinkStats], title: str) -> Tabl
         ("key rate", "right"),
         ("relay pool", "right"),
         ("station pool", "right"),
-        ("ends agree", "left"),
+        ("received alike", "left"),
         ("blocks", "right"),
         ("errors", "right"),
     ):
         table.add_column(col, justify=just, no_wrap=True)  # type: ignore[arg-type]
     for st in scenario.STATIONS:
         link = stats.get(st.link_id)
-        relay = snap.pools.get((scenario.RELAY, st.link_id), {}).get("bits_available")
-        station = snap.pools.get((st.node_id, st.link_id), {}).get("bits_available")
+        relay_pool = snap.pools.get((scenario.RELAY, st.link_id), {})
+        station_pool = snap.pools.get((st.node_id, st.link_id), {})
+        relay, station = relay_pool.get("bits_available"), station_pool.get("bits_available")
         if link is None:
             sky, rate, blocks, errors = "-", "-", "-", "-"
         else:
@@ -60,12 +64,48 @@ def links_table(snap: Snapshot, stats: dict[str, LinkStats], title: str) -> Tabl
                 + link.relay.rejected
                 + link.station.rejected
             )
-        agree = (
-            "-"
-            if relay is None or station is None
-            else ("yes" if relay == station else "catching up")
-        )
+        # Both ends must have received the same link key (what is left differs while
+        # relay messages are on their way).
+        got = (relay_pool.get("bits_received"), station_pool.get("bits_received"))
+        agree = "-" if None in got else ("yes" if got[0] == got[1] else "catching up")
         table.add_row(
             st.link_id, st.place, sky, rate, _bits(relay), _bits(station), agree, blocks, errors
+        )
+    return table
+
+
+def pairs_table(
+    relay_pairs: list[dict[str, Any]], station_pairs: dict[str, list[dict[str, Any]]]
+) -> Table:
+    """Pair key buffers: ready key at each station (and how much of it each owns)."""
+    table = Table(
+        title="pair key (ready at each station; owned share in brackets)", title_justify="left"
+    )
+    for col, just in (
+        ("pair", "left"),
+        ("first station", "right"),
+        ("second station", "right"),
+        ("on its way", "right"),
+        ("relay rate", "right"),
+        ("target", "right"),
+    ):
+        table.add_column(col, justify=just, no_wrap=True)  # type: ignore[arg-type]
+    for pair in relay_pairs:
+        cells = []
+        for station in pair["stations"]:
+            mine = next(
+                (p for p in station_pairs.get(station, []) if p["pair_id"] == pair["pair_id"]), None
+            )
+            cells.append(
+                "-"
+                if mine is None
+                else f"{station}: {_bits(mine['ready_bits'])} ({_bits(mine['owned_ready_bits'])})"
+            )
+        table.add_row(
+            pair["pair_id"],
+            *cells,
+            _bits(pair["in_flight_bits"]),
+            f"{_bits(int(pair['relay_rate_bps']))}/s",
+            _bits(pair["target_bits"]),
         )
     return table

@@ -1,0 +1,107 @@
+"""After a demo run: check the network's key from the nodes' own databases.
+
+* every relay record: no byte of any link block used by two relay operations, and each
+  block's consumption point equals the bytes the records took from it (invariant 1);
+* every segment ready at a station is held by its partner station with the same bytes
+  (compared by SHA-256 digest, never printed), and no segment is ready on one side
+  while discarded on the other (invariant 3).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from collections import defaultdict
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from sqlalchemy import select
+
+from keystrata.config import load_settings
+from keystrata.services.node import open_node
+from keystrata.storage.db import Database
+from keystrata.storage.models import LinkBlock, PairSegment, RelayOp
+from keystrata.storage.sealed import segment_context
+
+
+@dataclass
+class NetworkCheck:
+    relay_ops: int = 0
+    segments_ready_both: int = 0
+    problems: list[str] = field(default_factory=list)
+
+
+def _relay_records(config: Path, check: NetworkCheck) -> None:
+    settings = load_settings(config, env={})
+    db = Database.from_url(settings.database.url)
+    try:
+        with db.read() as s:
+            taken: dict[tuple[str, str], list[tuple[int, int]]] = defaultdict(list)
+            for op in s.execute(select(RelayOp)).scalars():
+                check.relay_ops += 1
+                for link, ranges in json.loads(op.ranges).items():
+                    for r in ranges:
+                        taken[(link, r["block"])].append((r["offset"], r["length"]))
+            used = {(b.link_id, b.block_id): b.used for b in s.execute(select(LinkBlock)).scalars()}
+    finally:
+        db.dispose()
+    for (link, block), spans in taken.items():
+        spans.sort()
+        end = 0
+        for offset, length in spans:
+            if offset != end:  # a gap or an overlap: bytes skipped or used twice
+                check.problems.append(
+                    f"relay: block {block} of {link} taken out of order "
+                    f"at byte {offset} (expected {end})"
+                )
+            end = offset + length
+        if used.get((link, block)) != end:
+            check.problems.append(
+                f"relay: block {block} of {link} consumed to "
+                f"{used.get((link, block))}, records say {end}"
+            )
+
+
+def _station_segments(config: Path) -> dict[str, tuple[str, str, str | None]]:
+    """segment -> (pair, state, digest of its remaining key or None)."""
+    settings = load_settings(config, env={})
+    db = Database.from_url(settings.database.url)
+    try:
+        ctx = open_node(settings, db)
+        out = {}
+        with db.read() as s:
+            for row in s.execute(select(PairSegment)).scalars():
+                digest = None
+                if row.sealed is not None:
+                    key = ctx.keyring.open(row.sealed, segment_context(row.segment_id, row.used))
+                    digest = hashlib.sha256(key).hexdigest()
+                out[row.segment_id] = (row.pair_id, row.state, digest)
+        return out
+    finally:
+        db.dispose()
+
+
+def check_network(relay_config: Path, station_configs: dict[str, Path]) -> NetworkCheck:
+    """Run every check with the nodes stopped; problems are listed, never key bytes."""
+    check = NetworkCheck()
+    _relay_records(relay_config, check)
+    seen = {name: _station_segments(path) for name, path in station_configs.items()}
+    names = sorted(seen)
+    for i, x in enumerate(names):
+        for y in names[i + 1 :]:
+            for seg in seen[x].keys() & seen[y].keys():
+                (pair, sx, dx), (_, sy, dy) = seen[x][seg], seen[y][seg]
+                if {sx, sy} == {"ready", "discarded"}:
+                    check.problems.append(
+                        f"segment {seg} of {pair}: ready at one station, discarded at the other"
+                    )
+                if sx != "discarded" and sy != "discarded" and dx != dy:
+                    check.problems.append(f"segment {seg} of {pair}: the stations' key differ")
+                if sx == sy == "ready":
+                    check.segments_ready_both += 1
+    for name in names:
+        for seg, (pair, state, _) in seen[name].items():
+            partners = [n for n in names if n != name and seg in seen[n]]
+            if state == "ready" and not partners:
+                check.problems.append(f"segment {seg} of {pair} is ready at {name} only")
+    return check
