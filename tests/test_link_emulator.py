@@ -206,8 +206,8 @@ def _digest(key: bytes) -> tuple[str, int]:
     return hashlib.sha256(key).hexdigest(), len(key)
 
 
-def stored_blocks(node: NodeProcess) -> dict[str, str]:
-    """Return block ID -> SHA-256 (hex) of the key bytes, for every block of ``link-a``
+def stored_blocks(node: NodeProcess, link_id: str) -> dict[str, str]:
+    """Return block ID -> SHA-256 (hex) of the key bytes, for every block of ``link_id``
     in ``node``'s database, each opened with the node's KEK and its row's context."""
     settings = load_settings(node.config, env={})
     keyring = load_keyring(settings)
@@ -216,7 +216,7 @@ def stored_blocks(node: NodeProcess) -> dict[str, str]:
         with db.read() as s:
             rows = s.execute(
                 select(LinkBlock.block_id, LinkBlock.used, LinkBlock.length, LinkBlock.sealed)
-                .where(LinkBlock.link_id == LINK)
+                .where(LinkBlock.link_id == link_id)
                 .order_by(LinkBlock.seq)
             ).all()
     finally:
@@ -226,16 +226,16 @@ def stored_blocks(node: NodeProcess) -> dict[str, str]:
         # No relay operation ran, so every block is still whole.
         assert used == 0, f"block {block_id} was consumed"
         assert sealed is not None, f"block {block_id} has no sealed bytes"
-        digest, size = _digest(keyring.open(sealed, block_context(LINK, block_id, used)))
+        digest, size = _digest(keyring.open(sealed, block_context(link_id, block_id, used)))
         assert size == length == BLOCK_BYTES, f"block {block_id}: {size} bytes, row says {length}"
         assert block_id not in out, f"block {block_id} is stored twice"
         out[block_id] = digest
     return out
 
 
-def pool_level(node: NodeProcess, pki: PkiFiles) -> dict[str, object]:
+def pool_level(node: NodeProcess, pki: PkiFiles, link_id: str) -> dict[str, object]:
     with OperatorClient(node.url, identity(pki, "ops-ada")) as ops:
-        return ops.pool(LINK)
+        return ops.pool(link_id)
 
 
 class RecordingRandom:
@@ -251,10 +251,10 @@ class RecordingRandom:
         return key
 
 
-def link_spec(net: Network, pki: PkiFiles) -> LinkSpec:
-    module = identity(pki, "mod-link-a")
+def link_spec(net: Network, link_id: str) -> LinkSpec:
+    module = net.modules[link_id]
     return LinkSpec(
-        link_id=LINK,
+        link_id=link_id,
         relay_url=net.relay.url,
         station_url=net.station.url,
         relay_identity=module,
@@ -265,7 +265,7 @@ def link_spec(net: Network, pki: PkiFiles) -> LinkSpec:
     )
 
 
-def emulator(net: Network, pki: PkiFiles, keys: RecordingRandom, **kw: object) -> LinkEmulator:
+def emulator(net: Network, link_id: str, keys: RecordingRandom, **kw: object) -> LinkEmulator:
     options: dict[str, object] = {
         "time_scale": 3600.0,
         "start": START.timestamp(),
@@ -276,11 +276,13 @@ def emulator(net: Network, pki: PkiFiles, keys: RecordingRandom, **kw: object) -
         "urandom": keys,
     }
     options.update(kw)
-    return LinkEmulator([link_spec(net, pki)], **options)  # type: ignore[arg-type]
+    return LinkEmulator([link_spec(net, link_id)], **options)  # type: ignore[arg-type]
 
 
-def assert_both_ends_hold_what_was_made(net: Network, keys: RecordingRandom) -> dict[str, str]:
-    relay, station = stored_blocks(net.relay), stored_blocks(net.station)
+def assert_both_ends_hold_what_was_made(
+    net: Network, link_id: str, keys: RecordingRandom
+) -> dict[str, str]:
+    relay, station = stored_blocks(net.relay, link_id), stored_blocks(net.station, link_id)
     assert set(relay) == set(station), (
         f"block IDs differ: {len(set(relay) - set(station))} only at the relay, "
         f"{len(set(station) - set(relay))} only at the station"
@@ -299,15 +301,16 @@ def assert_both_ends_hold_what_was_made(net: Network, keys: RecordingRandom) -> 
 def test_both_ends_hold_identical_blocks_and_pools_match_stats(
     network: Network, pki: PkiFiles
 ) -> None:
+    link = "link-a"
     keys = RecordingRandom()
     duration = 3.0
-    stats = asyncio.run(emulator(network, pki, keys).run(duration))[LINK]
+    stats = asyncio.run(emulator(network, link, keys).run(duration))[link]
 
     expected = RATE_BPS * duration / BLOCK_BITS
     assert 0.5 * expected <= stats.blocks_generated <= 1.5 * expected, stats
     assert stats.blocks_generated == len(keys.digests)
     assert stats.blocks_discarded == 0
-    blocks = assert_both_ends_hold_what_was_made(network, keys)
+    blocks = assert_both_ends_hold_what_was_made(network, link, keys)
     assert len(blocks) == stats.blocks_generated
 
     for name, node in network.ends():
@@ -317,7 +320,7 @@ def test_both_ends_hold_identical_blocks_and_pools_match_stats(
         )
         assert end.blocks_acked == end.blocks_accepted == stats.blocks_generated
         assert end.bits_accepted == BLOCK_BITS * stats.blocks_generated
-        pool = pool_level(node, pki)
+        pool = pool_level(node, pki, link)
         assert pool["bits_received"] == pool["bits_available"] == end.bits_accepted, name
         assert pool["bits_used"] == 0
         assert pool["blocks_available"] == end.blocks_accepted
@@ -364,11 +367,11 @@ async def _until(what: str, check: Callable[[], bool], timeout: float) -> None:
 
 
 def test_station_restart_mid_run_drains_the_backlog_and_duplicates_are_harmless(
-    sqlite_network: Network, pki: PkiFiles
+    sqlite_nodes: Network, pki: PkiFiles
 ) -> None:
-    net = sqlite_network
+    net, link = sqlite_nodes, "link-b"
     keys = RecordingRandom()
-    module = identity(pki, "mod-link-a")
+    module = net.modules[link]
     lossy = LoseOneAnswer(httpx.AsyncHTTPTransport(verify=module.ssl_context()), which=2)
     made: list[httpx.AsyncClient] = []
 
@@ -380,10 +383,10 @@ def test_station_restart_mid_run_drains_the_backlog_and_duplicates_are_harmless(
         return AsyncModuleClient(url, client=http, attempts=1)
 
     # JSON form here, binary in the clean run: both reach the nodes for real.
-    emu = emulator(net, pki, keys, client_factory=clients, binary=False)
+    emu = emulator(net, link, keys, client_factory=clients, binary=False)
 
     def now() -> LinkStats:
-        return emu.stats[LINK]
+        return emu.stats[link]
 
     async def scenario() -> tuple[LinkStats, LinkStats]:
         run = asyncio.create_task(emu.run())
@@ -416,7 +419,7 @@ def test_station_restart_mid_run_drains_the_backlog_and_duplicates_are_harmless(
             final = await run
             for http in made:
                 await http.aclose()
-        return outage, final[LINK]
+        return outage, final[link]
 
     outage, stats = asyncio.run(scenario())
 
@@ -426,7 +429,7 @@ def test_station_restart_mid_run_drains_the_backlog_and_duplicates_are_harmless(
     # Afterwards every block reached both ends, once.
     assert stats.blocks_discarded == 0
     assert stats.relay.backlog == stats.station.backlog == 0
-    blocks = assert_both_ends_hold_what_was_made(net, keys)
+    blocks = assert_both_ends_hold_what_was_made(net, link, keys)
     assert len(blocks) == stats.blocks_generated > outage.blocks_generated
     # The relay saw a clean run; the station saw the outage and the lost answer.
     assert (stats.relay.errors, stats.relay.duplicates, stats.relay.rejected) == (0, 0, 0)
@@ -438,7 +441,7 @@ def test_station_restart_mid_run_drains_the_backlog_and_duplicates_are_harmless(
     assert stats.station.blocks_accepted + stats.station.duplicates >= stats.blocks_generated
     # Re-sent blocks did not inflate either pool.
     for name, node in net.ends():
-        pool = pool_level(node, pki)
+        pool = pool_level(node, pki, link)
         assert pool["bits_received"] == BLOCK_BITS * stats.blocks_generated, name
         assert pool["blocks_available"] == stats.blocks_generated, name
     assert stats.relay.bits_accepted == BLOCK_BITS * stats.blocks_generated
@@ -469,9 +472,10 @@ def _keystrata_links() -> str:
 
 
 def test_cli_pushes_to_both_ends_and_prints_no_key_bytes(
-    sqlite_network: Network, pki: PkiFiles, tmp_path: Path
+    sqlite_nodes: Network, pki: PkiFiles, tmp_path: Path
 ) -> None:
-    net = sqlite_network
+    net, link = sqlite_nodes, "link-c"
+    module = net.modules[link]
     config = tmp_path / "links.toml"
     config.write_text(f"""
 [emulator]
@@ -483,12 +487,12 @@ summary_seconds = 1.0
 drain_seconds = 15.0
 
 [defaults]
-ca = "{pki.ca}"
-cert = "{pki.cert("mod-link-a")}"
-key = "{pki.key("mod-link-a")}"
+ca = "{module.ca}"
+cert = "{module.cert}"
+key = "{module.key}"
 
 [[link]]
-link_id = "{LINK}"
+link_id = "{link}"
 relay_url = "{net.relay.url}"
 station_url = "{net.station.url}"
 base_rate_bps = 200000.0
@@ -510,14 +514,14 @@ block_bytes = {BLOCK_BYTES}
         runs = [len(m.group()) for m in pattern.finditer(output)]
         assert not runs, f"output holds {len(runs)} key-like run(s) of lengths {runs[:10]}"
 
-    summaries = [line for line in result.stdout.splitlines() if f" {LINK} " in line]
+    summaries = [line for line in result.stdout.splitlines() if f" {link} " in line]
     assert summaries, "no summary line names the link"
     final = re.search(r"relay acked (\d+) .* station acked (\d+) ", summaries[-1])
     assert final is not None, summaries[-1]
     relay_acked, station_acked = map(int, final.groups())
 
-    relay, station = stored_blocks(net.relay), stored_blocks(net.station)
+    relay, station = stored_blocks(net.relay, link), stored_blocks(net.station, link)
     assert relay == station
     assert relay_acked == station_acked == len(relay) > 0
     for _, node in net.ends():
-        assert pool_level(node, pki)["bits_received"] == BLOCK_BITS * len(relay)
+        assert pool_level(node, pki, link)["bits_received"] == BLOCK_BITS * len(relay)
