@@ -377,6 +377,7 @@ def test_allocation_is_feasible(
     pairs, available = scenario
     got = allocate(pairs, available, granularity=granularity)
     assert set(got) == {p.pair_id for p in pairs}
+    assert list(got) == sorted(got)  # documented: keyed by pair_id in sorted order
     for p in pairs:
         assert isinstance(got[p.pair_id], int)
         assert 0 <= got[p.pair_id] <= p.demand
@@ -414,6 +415,7 @@ def test_allocation_is_pareto_efficient_up_to_granularity(
     pairs, available = scenario
     got = allocate(pairs, available, granularity=granularity)
     left = leftover(pairs, available, got)
+    assert list(left) == sorted(left)  # documented: keyed by link in sorted order
     for p in pairs:
         if p.demand - got[p.pair_id] >= granularity:
             assert any(left[link] < granularity * pairs_on(pairs, link) for link in p.links)

@@ -7,7 +7,7 @@ import click
 from keystrata import __version__
 from keystrata.cli.node_cmd import db, kek, node, serve
 from keystrata.cli.pki_cmd import pki
-from keystrata.cli.remote_cmd import pools, registry
+from keystrata.cli.remote_cmd import pairs, pools, registry
 from keystrata.demo.main import demo
 
 
@@ -17,7 +17,7 @@ def cli() -> None:
     """keystrata: key manager for QKD networks with an airborne trusted relay."""
 
 
-for command in (node, serve, db, kek, pki, registry, pools, demo):
+for command in (node, serve, db, kek, pki, registry, pools, pairs, demo):
     cli.add_command(command)
 
 

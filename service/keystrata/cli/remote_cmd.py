@@ -223,3 +223,85 @@ def pools(watch: float | None, url: str, ca: Path, cert: Path, key: Path, as_jso
                 while True:
                     time.sleep(watch)
                     live.update(pools_table(client.pools()))
+
+
+def pairs_table(answer: dict[str, Any]) -> Table:
+    """The pair buffers a node reports, as a table (relay and station views differ)."""
+    table = Table(title=f"pair key at {answer['node_id']} ({answer['role']})")
+    if answer["role"] == "relay":
+        cols = (
+            "pair",
+            "station",
+            "ready (bit)",
+            "owned (bit)",
+            "pending (bit)",
+            "on its way (bit)",
+            "relay rate (bit/s)",
+            "target (bit)",
+            "until empty",
+        )
+        for col in cols:
+            table.add_column(col, justify="left" if col in ("pair", "station") else "right")
+        for p in answer["pairs"]:
+            for i, side in enumerate(p["sides"]):
+                first = i == 0
+                empty = p["time_until_empty_s"]
+                table.add_row(
+                    p["pair_id"] if first else "",
+                    side["station"],
+                    _num(side["ready_bits"]),
+                    _num(side["owned_ready_bits"]),
+                    _num(side["pending_bits"]),
+                    _num(p["in_flight_bits"]) if first else "",
+                    f"{p['relay_rate_bps']:,.0f}" if first else "",
+                    _num(p["target_bits"]) if first else "",
+                    ("-" if empty is None else f"{empty:,.0f} s") if first else "",
+                )
+    else:
+        for col in (
+            "pair",
+            "partner",
+            "ready (bit)",
+            "owned here (bit)",
+            "owned by partner (bit)",
+            "pending (bit)",
+        ):
+            table.add_column(col, justify="left" if col in ("pair", "partner") else "right")
+        for p in answer["pairs"]:
+            table.add_row(
+                p["pair_id"],
+                p["partner"],
+                _num(p["ready_bits"]),
+                _num(p["owned_ready_bits"]),
+                _num(p["partner_owned_ready_bits"]),
+                _num(p["pending_bits"]),
+            )
+    return table
+
+
+def _num(value: int | None) -> str:
+    return "-" if value is None else f"{value:,}"
+
+
+@click.command("pairs")
+@click.option(
+    "--watch",
+    type=float,
+    default=None,
+    metavar="SECONDS",
+    help="refresh every SECONDS until interrupted",
+)
+@connection_options
+def pairs(watch: float | None, url: str, ca: Path, cert: Path, key: Path, as_json: bool) -> None:
+    """Show pair key buffers: at a relay both stations' buffers, relay rate and target;
+    at a station its ready key per pair by owner."""
+    with operator(url, ca, cert, key) as client:
+        if as_json:
+            print_json(client.pairs())
+        elif watch is None:
+            console.print(pairs_table(client.pairs()))
+        else:
+            with Live(pairs_table(client.pairs()), console=console) as live:
+                while True:
+                    time.sleep(watch)
+                    live.update(pairs_table(client.pairs()))
