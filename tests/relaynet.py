@@ -46,7 +46,12 @@ class RelayNet:
         return {"relay-1": self.relay, "station-a": self.a, "station-b": self.b}
 
     def feed(
-        self, station: str, n_blocks: int, block_bytes: int = 4096, epsilon: float = 1e-10
+        self,
+        station: str,
+        n_blocks: int,
+        block_bytes: int = 4096,
+        epsilon: float = 1e-10,
+        retries: int = 0,
     ) -> None:
         """Push identical random blocks of the station's link to the relay and station."""
         link = LINKS[station]
@@ -56,7 +61,15 @@ class RelayNet:
             for _ in range(n_blocks)
         ]
         for node in (self.relay, self.nodes[station]):
-            ingest.ingest(node.ctx, link, blocks, actor="test-module", actor_link=link)
+            # A QKD module re-sends until each end has stored the batch (a failed
+            # attempt stored nothing; a repeated one counts as duplicates).
+            for attempt in range(retries + 1):
+                try:
+                    ingest.ingest(node.ctx, link, blocks, actor="test-module", actor_link=link)
+                    break
+                except Exception:
+                    if attempt == retries:
+                        raise
 
     def pending(self) -> list[tuple[str, outbox.Pending]]:
         """Every due message of every node, as (sender, message), oldest first."""

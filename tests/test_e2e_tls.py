@@ -132,20 +132,51 @@ def test_curl_with_the_operator_certificate(station_process, pki) -> None:
 def test_operator_cli_against_a_running_node(station_process, pki) -> None:
     from processes import run_cli
 
-    env = {"KEYSTRATA_URL": station_process.url, "KEYSTRATA_CA": str(pki.ca),
-           "KEYSTRATA_CERT": str(pki.cert("ops-ada")), "KEYSTRATA_KEY": str(pki.key("ops-ada"))}
-    out = run_cli("registry", "create", "nodes", "--set", "node_id=station-b",
-                  "--set", "role=station", env=env)
+    env = {
+        "KEYSTRATA_URL": station_process.url,
+        "KEYSTRATA_CA": str(pki.ca),
+        "KEYSTRATA_CERT": str(pki.cert("ops-ada")),
+        "KEYSTRATA_KEY": str(pki.key("ops-ada")),
+    }
+    out = run_cli(
+        "registry",
+        "create",
+        "nodes",
+        "--set",
+        "node_id=station-b",
+        "--set",
+        "role=station",
+        env=env,
+    )
     assert json.loads(out.stdout)["node_id"] == "station-b"
     listed = json.loads(run_cli("registry", "list", "nodes", "--json", env=env).stdout)
     assert {n["node_id"] for n in listed} == {"relay-1", "station-a", "station-b"}
-    run_cli("registry", "create", "pairs", "--set", "pair_id=p1", "--set", "relay_id=relay-1",
-            "--set", 'stations=["station-a","station-b"]', "--set", "policy.priority=5", env=env)
+    run_cli(
+        "registry",
+        "create",
+        "pairs",
+        "--set",
+        "pair_id=p1",
+        "--set",
+        "relay_id=relay-1",
+        "--set",
+        'stations=["station-a","station-b"]',
+        "--set",
+        "policy.priority=5",
+        env=env,
+    )
     pairs = json.loads(run_cli("pairs", "--json", env=env).stdout)
     assert pairs["role"] == "station"
-    assert pairs["pairs"] == [{"pair_id": "p1", "partner": "station-b", "ready_bits": 0,
-                               "owned_ready_bits": 0, "partner_owned_ready_bits": 0,
-                               "pending_bits": 0}]
+    assert pairs["pairs"] == [
+        {
+            "pair_id": "p1",
+            "partner": "station-b",
+            "ready_bits": 0,
+            "owned_ready_bits": 0,
+            "partner_owned_ready_bits": 0,
+            "pending_bits": 0,
+        }
+    ]
     table = run_cli("pairs", env=env).stdout
     assert "p1" in table and "station-b" in table
     refused = run_cli("registry", "create", "pairs", "--set", "pair_id=p2", env=env, check=False)

@@ -78,12 +78,7 @@ def test_identifiers_stay_in_one_path_segment(mock_client, sent) -> None:
     assert all(r.url.host == "relay.test" and r.url.port == 8443 for r in sent)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="client bug: _segment() leaves '.' and '..' as they are and httpx resolves "
-    "them as dot segments, so get('nodes', '.') lists every node instead of failing",
-)
-@pytest.mark.parametrize("object_id", [".", ".."])
+@pytest.mark.parametrize("object_id", [".", "..", ""])
 def test_dot_identifiers_do_not_address_another_resource(mock_client, sent, object_id) -> None:
     ops = mock_client(ok)
     try:

@@ -7,6 +7,7 @@ tree lives here, so the public clients only say which request to make.
 from __future__ import annotations
 
 from typing import Any
+from urllib.parse import quote
 
 import httpx
 
@@ -102,3 +103,15 @@ def json_object(response: httpx.Response) -> dict[str, Any]:
             f"{response.request.method} {response.request.url.path}: answer is not a JSON object"
         )
     return body
+
+
+def path_segment(value: str) -> str:
+    """Quote an identifier as one URL path segment.
+
+    Raises:
+        ValueError: empty, ``.`` or ``..``, which a URL would resolve as a path step
+            rather than send as a name (node identifiers never look like that).
+    """
+    if value in ("", ".", ".."):
+        raise ValueError(f"{value!r} is not a usable identifier")
+    return quote(value, safe="")

@@ -14,7 +14,6 @@ import time
 from collections.abc import Awaitable, Callable, Iterable
 from dataclasses import dataclass
 from types import TracebackType
-from urllib.parse import quote
 
 import anyio
 import httpx
@@ -26,6 +25,7 @@ from keystrata_client._http import (
     build_client,
     check_base_url,
     json_object,
+    path_segment,
     wrap_transport,
 )
 from keystrata_client._tls import TlsIdentity
@@ -56,7 +56,7 @@ def _prepare(
 ) -> tuple[str, bytes, dict[str, str], int]:
     """Return the path, body, headers and block count of a push."""
     batch = list(blocks)
-    path = f"/api/v1/links/{quote(link_id, safe='')}/blocks"
+    path = f"/api/v1/links/{path_segment(link_id)}/blocks"
     if binary:
         return path, encode_binary(batch), {"Content-Type": BINARY_MEDIA_TYPE}, len(batch)
     body = json.dumps(to_json(batch), separators=(",", ":")).encode("ascii")

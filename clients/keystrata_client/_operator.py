@@ -5,7 +5,6 @@ from __future__ import annotations
 from collections.abc import Mapping
 from types import TracebackType
 from typing import Any, Final, Literal
-from urllib.parse import quote
 
 import httpx
 
@@ -14,6 +13,7 @@ from keystrata_client._http import (
     build_client,
     check_base_url,
     json_object,
+    path_segment,
     wrap_transport,
 )
 from keystrata_client._tls import TlsIdentity
@@ -26,9 +26,7 @@ REGISTRY_KINDS: Final = frozenset({"nodes", "links", "pairs", "principals"})
 _Items = list[dict[str, Any]]
 
 
-def _segment(value: str) -> str:
-    # Identifiers go into one path segment; quote everything that could end it early.
-    return quote(value, safe="")
+_segment = path_segment
 
 
 class OperatorClient:
