@@ -54,13 +54,21 @@ class NodeProcess:
     def url(self) -> str:
         return f"https://127.0.0.1:{self.port}"
 
-    def start(self, pki: PkiFiles, timeout: float = 20) -> NodeProcess:
+    def launch(self) -> NodeProcess:
+        """Start the process without waiting for it to answer."""
         with open(self.log, "ab") as log:
             self.proc = subprocess.Popen(
                 [*KEYSTRATA, "serve", "--config", str(self.config)],
                 stdout=log,
                 stderr=subprocess.STDOUT,
             )
+        return self
+
+    def start(self, pki: PkiFiles, timeout: float = 20) -> NodeProcess:
+        """Start the process (unless launched already) and wait until it answers."""
+        if self.proc is None:
+            self.launch()
+        assert self.proc is not None
         ctx = ssl.create_default_context(cafile=str(pki.ca))
         ctx.load_cert_chain(str(pki.cert("ops-ada")), str(pki.key("ops-ada")))
         deadline = time.monotonic() + timeout
@@ -76,6 +84,10 @@ class NodeProcess:
         self.stop(signal.SIGKILL)
         raise AssertionError(f"{self.node_id} did not answer:\n{self.log.read_text()}")
 
+    def send(self, sig: int = signal.SIGTERM) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.send_signal(sig)
+
     def stop(self, sig: int = signal.SIGTERM) -> None:
         if self.proc is not None and self.proc.poll() is None:
             self.proc.send_signal(sig)
@@ -88,10 +100,20 @@ class NodeProcess:
 
 
 def prepare_node(
-    folder: Path, pki: PkiFiles, node_id: str, role: str, db_url: str, operator: str = "ops-ada"
+    folder: Path,
+    pki: PkiFiles,
+    node_id: str,
+    role: str,
+    db_url: str,
+    operator: str = "ops-ada",
+    *,
+    port: int | None = None,
+    extra: str = "",
 ) -> NodeProcess:
-    port = free_port()
-    config = write_config(folder, node_id=node_id, role=role, db_url=db_url, pki=pki, port=port)
+    port = port or free_port()
+    config = write_config(
+        folder, node_id=node_id, role=role, db_url=db_url, pki=pki, port=port, extra=extra
+    )
     run_cli(
         "node",
         "init",
@@ -103,3 +125,19 @@ def prepare_node(
         operator,
     )
     return NodeProcess(node_id=node_id, config=config, port=port, log=folder / f"{node_id}.log")
+
+
+def start_all(nodes: list[NodeProcess], pki: PkiFiles) -> None:
+    """Start several nodes at once and wait until each answers."""
+    for node in nodes:
+        node.launch()
+    for node in nodes:
+        node.start(pki)
+
+
+def stop_all(nodes: list[NodeProcess]) -> None:
+    """Stop several nodes at once (SIGTERM to all, then wait for each)."""
+    for node in nodes:
+        node.send(signal.SIGTERM)
+    for node in nodes:
+        node.stop()

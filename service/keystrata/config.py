@@ -139,6 +139,8 @@ class OutboxSection(_Section):
     batch: Annotated[int, Field(ge=1, le=10_000)] = 64
     idle_seconds: Annotated[float, Field(gt=0, le=60)] = 0.2
     timeout_seconds: Annotated[float, Field(gt=0, le=300)] = 10.0
+    #: Longest wait between two attempts at one message (backoff doubles up to it).
+    max_backoff_seconds: Annotated[float, Field(gt=0, le=3600)] = 30.0
 
 
 class Settings(_Section):

@@ -64,5 +64,5 @@ def serve(settings: Settings, config_path: str) -> None:
         log_level="info",
         proxy_headers=False,
         server_header=False,
-        timeout_graceful_shutdown=5,
+        timeout_graceful_shutdown=2,
     )

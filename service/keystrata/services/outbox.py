@@ -18,8 +18,6 @@ from keystrata.storage.models import OutboxMessage
 
 #: How long a worker may hold a claimed message before another may take it over.
 CLAIM = timedelta(seconds=30)
-#: Longest wait between two attempts at one message.
-MAX_BACKOFF = timedelta(seconds=30)
 
 
 @dataclass(frozen=True)
@@ -97,9 +95,16 @@ def delivered(db: Database, ids: list[int]) -> None:
             s.execute(delete(OutboxMessage).where(OutboxMessage.id.in_(ids)))
 
 
-def retry_later(db: Database, message: Pending, *, now: datetime, error: str) -> None:
+def retry_later(
+    db: Database,
+    message: Pending,
+    *,
+    now: datetime,
+    error: str,
+    max_backoff: timedelta = timedelta(seconds=30),
+) -> None:
     """Release a message for another attempt after an exponential backoff."""
-    wait = min(MAX_BACKOFF, timedelta(seconds=0.25 * 2 ** min(message.attempts, 10)))
+    wait = min(max_backoff, timedelta(seconds=0.25 * 2 ** min(message.attempts, 10)))
     with db.write() as s:
         s.execute(
             update(OutboxMessage)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+from datetime import timedelta
 
 from keystrata.services import outbox
 from keystrata.services.context import NodeContext
@@ -20,11 +21,14 @@ def deliver_once(ctx: NodeContext, peers: PeerClient) -> int:
     message shows its last error in the outbox until an operator sees to it.
     """
     done: list[int] = []
+    cap = timedelta(seconds=ctx.settings.outbox.max_backoff_seconds)
     for message in outbox.claim(ctx.db, now=ctx.clock.now(), limit=ctx.settings.outbox.batch):
         try:
             status, answer = peers.post_message(message.destination, message.body)
         except PeerUnavailable as exc:
-            outbox.retry_later(ctx.db, message, now=ctx.clock.now(), error=str(exc))
+            outbox.retry_later(
+                ctx.db, message, now=ctx.clock.now(), error=str(exc), max_backoff=cap
+            )
             continue
         if status == 200:
             done.append(message.id)
@@ -34,6 +38,6 @@ def deliver_once(ctx: NodeContext, peers: PeerClient) -> int:
                 log.warning(
                     "outbox: %s to %s refused (%s)", message.kind, message.destination, error
                 )
-            outbox.retry_later(ctx.db, message, now=ctx.clock.now(), error=error)
+            outbox.retry_later(ctx.db, message, now=ctx.clock.now(), error=error, max_backoff=cap)
     outbox.delivered(ctx.db, done)
     return len(done)
