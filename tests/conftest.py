@@ -160,6 +160,27 @@ def db_factory(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Calla
 
 
 @pytest.fixture
+def pg_factory(request: pytest.FixtureRequest) -> Iterator[Callable[[], str]]:
+    """Make fresh, migrated PostgreSQL databases (for tests that need PostgreSQL)."""
+    template = request.getfixturevalue("pg_template")
+    if template is None:
+        pytest.skip(f"no PostgreSQL at {PG_URL} (set CI=1 to make this a failure)")
+    made: list[str] = []
+
+    def make() -> str:
+        name = f"ks_t_{os.getpid()}_{next(_counter)}"
+        with _pg_admin() as admin:
+            admin.execute(f'CREATE DATABASE "{name}" TEMPLATE "{template}"')
+        made.append(name)
+        return _pg_url(name)
+
+    yield make
+    with _pg_admin() as admin:
+        for name in made:
+            admin.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+
+
+@pytest.fixture
 def db_url(db_factory: Callable[[], str]) -> str:
     """URL of a fresh, migrated database of each backend."""
     return db_factory()

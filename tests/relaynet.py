@@ -9,7 +9,7 @@ import hashlib
 import os
 import uuid
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from typing import Any
 
@@ -40,10 +40,12 @@ class RelayNet:
     relay: Node
     a: Node
     b: Node
+    extra: dict[str, Node] = field(default_factory=dict)
+    links: dict[str, str] = field(default_factory=lambda: dict(LINKS))
 
     @property
     def nodes(self) -> dict[str, Node]:
-        return {"relay-1": self.relay, "station-a": self.a, "station-b": self.b}
+        return {"relay-1": self.relay, "station-a": self.a, "station-b": self.b, **self.extra}
 
     def feed(
         self,
@@ -54,7 +56,7 @@ class RelayNet:
         retries: int = 0,
     ) -> None:
         """Push identical random blocks of the station's link to the relay and station."""
-        link = LINKS[station]
+        link = self.links[station]
         now = datetime.now(UTC)
         blocks = [
             BlockIn(str(uuid.uuid4()), os.urandom(block_bytes), 0.02, epsilon, now)
@@ -188,3 +190,63 @@ def build(
     for node in (relay, a, b):
         provision(node, policy)
     return RelayNet(relay=relay, a=a, b=b)
+
+
+def add_third_station(net: RelayNet, c: Node, *, priority: int) -> None:
+    """Add station-c with link-c and pair-bc (station-b with station-c) at the relay, at
+    station-b and at station-c itself."""
+    LINKS_C = {"station-c": "link-c"}
+    for node in (net.relay, net.b, c):
+        ctx = node.ctx
+        for node_id, role in (
+            ("relay-1", "relay"),
+            ("station-b", "station"),
+            ("station-c", "station"),
+        ):
+            if node_id != ctx.node_id and not _has(ctx, Kind.NODES, node_id):
+                registry.create(
+                    ctx,
+                    Kind.NODES,
+                    NodeSpec.model_validate({"node_id": node_id, "role": role}),
+                    actor="test",
+                )
+        if ctx.node_id in ("relay-1", "station-c"):
+            registry.create(
+                ctx,
+                Kind.LINKS,
+                LinkSpec(link_id="link-c", relay_id="relay-1", station_id="station-c"),
+                actor="test",
+            )
+        registry.create(
+            ctx,
+            Kind.PAIRS,
+            PairSpec(
+                pair_id="pair-bc",
+                relay_id="relay-1",
+                stations=["station-b", "station-c"],
+                policy=PairPolicy.model_validate(
+                    {
+                        "priority": priority,
+                        "buffer_min_bits": 0,
+                        "buffer_target_bits": 10**9,
+                        "buffer_max_bits": 10**9,
+                    }
+                ),
+            ),
+            actor="test",
+        )
+    net.links.update(LINKS_C)
+    net.extra["station-c"] = c
+
+
+def _has(ctx: Any, kind: Kind, key: str) -> bool:
+    try:
+        registry.get(ctx, kind, key)
+        return True
+    except KeystrataError:
+        return False
+
+
+def report_third(net: RelayNet, c: Node) -> None:
+    for node in (net.b, c):
+        record_report(net.relay.ctx, station_report(node.ctx, "pair-bc"))

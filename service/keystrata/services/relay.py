@@ -66,8 +66,11 @@ def make_segment(
     *,
     owner: str | None = None,
     cipher_station: str | None = None,
+    actor: str = "operator",
 ) -> SegmentMade:
     """Run one relay operation of ``n`` bytes for a pair, in one transaction.
+
+    ``actor`` names who asked (the scheduler records its worker identity) in the ledger.
 
     ``cipher_station`` (B) receives the ciphertext and spends 32 more link bytes for the
     MAC key; by default the station whose link holds more key. ``owner`` defaults to A.
@@ -189,6 +192,7 @@ def make_segment(
                 "cipher_station": cipher_station,
                 "epsilon": epsilon,
                 "link_bytes": used,
+                "actor": actor,
             },
         )
     return SegmentMade(segment_id, pair_id, n, owner, epsilon)

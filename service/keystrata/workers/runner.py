@@ -72,7 +72,7 @@ class Background:
             self.ctx.db, scheduler.LEASE, self.holder, now=self.ctx.clock.now(), ttl=ttl
         ):
             return False
-        report = scheduler.schedule_once(self.ctx, self.peers)
+        report = scheduler.schedule_once(self.ctx, self.peers, actor=f"scheduler@{self.holder}")
         if report.made:
             log.info("scheduler: made %d segments", len(report.made))
         return False  # one cycle per cycle_seconds

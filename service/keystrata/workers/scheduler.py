@@ -27,6 +27,9 @@ from keystrata.workers.peer_client import PeerClient
 log = logging.getLogger("keystrata.scheduler")
 
 LEASE = "relay-scheduler"
+#: No segment is smaller than this, whatever the deficit (a few bytes are not worth three
+#: messages and a confirmation).
+MIN_BYTES = 64
 
 
 @dataclass(frozen=True)
@@ -50,7 +53,9 @@ def _poll_stations(ctx: NodeContext, peers: PeerClient, pairs: list[Pair]) -> No
                 buffers.record_report(ctx, report)
 
 
-def schedule_once(ctx: NodeContext, peers: PeerClient | None) -> CycleReport:
+def schedule_once(
+    ctx: NodeContext, peers: PeerClient | None, *, actor: str = "scheduler"
+) -> CycleReport:
     """Run one scheduling cycle (the caller holds the lease). ``peers=None`` skips
     polling and uses the last reports (tests drive stations by hand)."""
     cfg = ctx.settings.relay
@@ -114,7 +119,7 @@ def schedule_once(ctx: NodeContext, peers: PeerClient | None) -> CycleReport:
         for link in free
     }
     budget = {link: max(0, free[link] - reserve[link]) for link in free}
-    shares = allocate(demands, budget, granularity=cfg.min_segment_bytes)
+    shares = allocate(demands, budget)
     made: list[relay.SegmentMade] = []
     for demand in sorted(demands, key=lambda d: d.pair_id):
         left = shares.get(demand.pair_id, 0)
@@ -125,14 +130,18 @@ def schedule_once(ctx: NodeContext, peers: PeerClient | None) -> CycleReport:
             a["station"]: int(a["owned_ready_bits"] or 0),
             b["station"]: int(b["owned_ready_bits"] or 0),
         }
-        while left >= cfg.min_segment_bytes and count < cfg.max_in_flight_segments:
+        while left >= MIN_BYTES and count < cfg.max_in_flight_segments:
             n = min(cfg.segment_bytes, left)
+            if n < cfg.min_segment_bytes and left < demand.demand:
+                # Key is scarce: wait for enough to make a segment worth its messages,
+                # unless this small piece is all the pair still needs.
+                break
             # Recent demand per side comes with key delivery; until then it is equal.
             owner = method.choose_owner(
                 a["station"], b["station"], 0.0, 0.0, owned[a["station"]], owned[b["station"]]
             )
             try:
-                made.append(relay.make_segment(ctx, demand.pair_id, n, owner=owner))
+                made.append(relay.make_segment(ctx, demand.pair_id, n, owner=owner, actor=actor))
             except Conflict as exc:  # link key short, or epsilon above the pair's limit
                 skipped[demand.pair_id] = exc.message
                 break
