@@ -5,7 +5,7 @@ BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 ARGS   ?=
 
-.PHONY: all test test-fast demo lint typecheck clean
+.PHONY: all test test-fast faults demo lint typecheck clean
 
 all: test
 
@@ -28,6 +28,11 @@ test: $(STAMP)
 ## make test-fast: domain and SQLite tests only, no server processes
 test-fast: $(STAMP)
 	$(BIN)/python -m pytest -m "not e2e" -k "not postgresql" $(ARGS)
+
+## make faults: the long crash series (30 SIGKILLs per backend), run before resolving
+## an issue that touches relaying; KEYSTRATA_KILLS sets the number of kills
+faults: $(STAMP)
+	KEYSTRATA_KILLS=$${KEYSTRATA_KILLS:-30} $(BIN)/python -m pytest tests/test_crash.py $(ARGS)
 
 ## make demo ARGS='--duration 30 --workdir /tmp/ks-demo'
 demo: $(STAMP)

@@ -191,3 +191,25 @@ def test_epsilon_is_composed_and_capped(make_node, db_factory) -> None:
     # 500 bytes: one block on each link: 1e-10 + 2e-10 = 3e-10 (union bound).
     made = relay.make_segment(net.relay.ctx, relaynet.PAIR, 500, cipher_station="station-b")
     assert made.epsilon == pytest.approx(3e-10)
+
+
+def test_kek_rotation_reseals_pair_key_segments(net, tmp_path) -> None:
+    from keystrata.config import load_settings
+    from keystrata.crypto.kek import read_kek, write_new_kek
+    from keystrata.services import kek
+    from keystrata.services.node import open_node
+
+    net.feed("station-a", 2)
+    net.feed("station-b", 2)
+    made = relay.make_segment(net.relay.ctx, relaynet.PAIR, 3000)
+    net.drain()
+    before = net.key_digest("station-a", made.segment_id)
+    ctx = net.a.ctx
+    new_path = tmp_path / "a-new.kek"
+    write_new_kek(new_path)
+    report = kek.rotate(ctx.db, ctx.node_id, read_kek(ctx.settings.kek.file), read_kek(new_path))
+    assert report.resealed_segments == 1
+    net.a.ctx = open_node(
+        load_settings(net.a.config_path, env={"KEYSTRATA_KEK__FILE": str(new_path)}), ctx.db
+    )
+    assert net.key_digest("station-a", made.segment_id) == before

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
 from sqlalchemy import select
 
@@ -21,13 +22,14 @@ from keystrata.errors import StartupRefused
 from keystrata.services import ledger
 from keystrata.services.node import ROTATION_MARK, check_kek
 from keystrata.storage.db import Database
-from keystrata.storage.models import LinkBlock, NodeMeta
-from keystrata.storage.sealed import SEALED_META, block_context, meta_context
+from keystrata.storage.models import LinkBlock, NodeMeta, PairSegment
+from keystrata.storage.sealed import SEALED_META, block_context, meta_context, segment_context
 
 
 @dataclass(frozen=True)
 class RotationReport:
     resealed_blocks: int
+    resealed_segments: int
     resealed_meta: int
     already_done: int
 
@@ -68,34 +70,27 @@ def rotate(
                 "a rotation to another key-encryption key is in progress; "
                 "finish it with that key first"
             )
-    done_before = 0
-    blocks = 0
-    last_seq = 0
-    while True:
-        with db.write() as s:
-            rows = (
-                s.execute(
-                    select(LinkBlock)
-                    .where(LinkBlock.seq > last_seq, LinkBlock.sealed.is_not(None))
-                    .order_by(LinkBlock.seq)
-                    .limit(batch)
-                )
-                .scalars()
-                .all()
-            )
-            if not rows:
-                break
-            for row in rows:
-                assert row.sealed is not None
-                if Keyring.sealed_kek_id(row.sealed) == target:
-                    done_before += 1
-                    continue
-                ctx = block_context(row.link_id, row.block_id, row.used)
-                row.sealed = both.seal(both.open(row.sealed, ctx), ctx)
-                blocks += 1
-            last_seq = rows[-1].seq
-        if progress:
-            progress(blocks + done_before)
+    blocks, done_before = _reseal_all(
+        db,
+        both,
+        target,
+        batch,
+        progress,
+        model=LinkBlock,
+        key=LinkBlock.seq,
+        context=lambda r: block_context(r.link_id, r.block_id, r.used),
+    )
+    segments, done_segments = _reseal_all(
+        db,
+        both,
+        target,
+        batch,
+        progress,
+        model=PairSegment,
+        key=PairSegment.segment_id,
+        context=lambda r: segment_context(r.segment_id, r.used),
+    )
+    done_before += done_segments
     meta = 0
     with db.write() as s:
         for name in SEALED_META:
@@ -115,4 +110,46 @@ def rotate(
             event=Event.KEK_ROTATED,
             fields={"to_kek": target.hex(), "resealed_blocks": blocks, "resealed_values": meta},
         )
-    return RotationReport(resealed_blocks=blocks, resealed_meta=meta, already_done=done_before)
+    return RotationReport(
+        resealed_blocks=blocks,
+        resealed_segments=segments,
+        resealed_meta=meta,
+        already_done=done_before,
+    )
+
+
+def _reseal_all(
+    db: Database,
+    both: Keyring,
+    target: bytes,
+    batch: int,
+    progress: Callable[[int], None] | None,
+    *,
+    model: Any,
+    key: Any,
+    context: Callable[[Any], bytes],
+) -> tuple[int, int]:
+    """Re-seal every sealed row of ``model`` in batches ordered by ``key``.
+
+    Returns (rows re-sealed now, rows found already under the new KEK).
+    """
+    resealed = already = 0
+    last: Any = None
+    while True:
+        with db.write() as s:
+            query = select(model).where(model.sealed.is_not(None)).order_by(key).limit(batch)
+            if last is not None:
+                query = query.where(key > last)
+            rows = s.execute(query).scalars().all()
+            if not rows:
+                return resealed, already
+            for row in rows:
+                if Keyring.sealed_kek_id(row.sealed) == target:
+                    already += 1
+                    continue
+                ctx = context(row)
+                row.sealed = both.seal(both.open(row.sealed, ctx), ctx)
+                resealed += 1
+            last = getattr(rows[-1], key.key)
+        if progress:
+            progress(resealed + already)
