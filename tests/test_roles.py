@@ -87,3 +87,44 @@ def test_pinned_fingerprint_must_match(station, api, pki) -> None:
         == 200
     )
     assert api(station)("aud-ben").get("/api/v1/node").status_code == 200
+
+
+def test_proxy_mode_reads_and_checks_a_forwarded_certificate(station, pki) -> None:
+    """Behind a TLS-terminating proxy (off by default), the certificate comes in a header
+    and is checked against the network CA here."""
+    import dataclasses
+    from urllib.parse import quote
+
+    import httpx
+    from anyio.from_thread import start_blocking_portal
+
+    from keystrata.api.app import create_app
+
+    settings = station.ctx.settings
+    proxied = settings.model_copy(
+        update={
+            "server": settings.server.model_copy(
+                update={"proxy_client_cert_header": "x-client-cert"}
+            )
+        }
+    )
+    app = create_app(dataclasses.replace(station.ctx, settings=proxied))
+
+    async def call(pem: str | None) -> int:
+        headers = {} if pem is None else {"x-client-cert": quote(pem)}
+        async with httpx.AsyncClient(
+            transport=httpx.ASGITransport(app=app), base_url="https://testserver"
+        ) as client:
+            return (await client.get("/api/v1/node", headers=headers)).status_code
+
+    foreign = (pki.foreign_dir / "ops-ada.crt").read_text()  # same subject, other CA
+    with start_blocking_portal() as portal:
+        assert portal.call(call, pki.pem("ops-ada")) == 200
+        assert portal.call(call, foreign) == 401
+        assert portal.call(call, None) == 401
+        assert portal.call(call, "not a certificate") == 401
+    # Without proxy mode the same header is ignored.
+    plain = create_app(station.ctx)
+    app = plain
+    with start_blocking_portal() as portal:
+        assert portal.call(call, pki.pem("ops-ada")) == 401

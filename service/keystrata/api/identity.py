@@ -8,13 +8,14 @@ the certificate is checked against the CA here, since no TLS layer of ours did i
 
 from __future__ import annotations
 
-import hashlib
 from collections.abc import Callable
 from functools import lru_cache
 from typing import Any
 from urllib.parse import unquote
 
 from cryptography import x509
+from cryptography.exceptions import InvalidSignature
+from cryptography.hazmat.primitives import hashes
 from cryptography.x509.oid import NameOID
 from fastapi import Request
 
@@ -36,9 +37,7 @@ def _parse(pem: str) -> tuple[str, str, x509.Certificate] | None:
         return None
     cn = names[0].value
     cn = cn if isinstance(cn, str) else cn.decode()
-    from cryptography.hazmat.primitives.serialization import Encoding
-
-    return cn, hashlib.sha256(cert.public_bytes(Encoding.DER)).hexdigest(), cert
+    return cn, cert.fingerprint(hashes.SHA256()).hex(), cert
 
 
 def client_certificate_pem(request: Request, proxy_header: str | None) -> str | None:
@@ -56,7 +55,7 @@ def client_certificate_pem(request: Request, proxy_header: str | None) -> str | 
 def _verify_from_proxy(cert: x509.Certificate, ca: x509.Certificate, now: Any) -> bool:
     try:
         cert.verify_directly_issued_by(ca)
-    except (ValueError, TypeError, Exception):  # InvalidSignature has no common base
+    except (ValueError, TypeError, InvalidSignature):
         return False
     return bool(cert.not_valid_before_utc <= now <= cert.not_valid_after_utc)
 
