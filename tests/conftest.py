@@ -64,6 +64,9 @@ CLIENTS = {
     "mod-link-a": "qkd-module",
     "mod-link-b": "qkd-module",
     "sae-a1": "sae",
+    "sae-a2": "sae",
+    "sae-b1": "sae",
+    "sae-b2": "sae",
     "peer-relay": "peer",
     "stranger": "operator",  # issued by our CA but never registered as a principal
 }
@@ -320,8 +323,25 @@ def seed_registry(ctx: NodeContext) -> None:
             "node_id": "relay-1",
         },
     ]
+    principals.append(
+        {
+            "principal_id": "sae-c1",
+            "role": "sae",
+            "cert_subject": "sae-c1",
+            "station_id": "station-c",
+        }
+    )
     for body in principals:
         registry.create(ctx, Kind.PRINCIPALS, PrincipalSpec.model_validate(body), actor="test")
+    # One pair, so that every route has something real to answer about.
+    from keystrata.domain.registry import PairSpec
+
+    registry.create(
+        ctx,
+        Kind.PAIRS,
+        PairSpec(pair_id="pair-ac", relay_id="relay-1", stations=["station-a", "station-c"]),
+        actor="test",
+    )
 
 
 @pytest.fixture

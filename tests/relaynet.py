@@ -26,7 +26,7 @@ from keystrata.domain.registry import (
     PrincipalSpec,
 )
 from keystrata.errors import KeystrataError
-from keystrata.services import ingest, messages, outbox, registry
+from keystrata.services import ingest, messages, outbox, registry, relay
 from keystrata.services.buffers import record_report, station_report
 from keystrata.storage.models import PairSegment
 from keystrata.storage.sealed import segment_context
@@ -250,3 +250,34 @@ def _has(ctx: Any, kind: Kind, key: str) -> bool:
 def report_third(net: RelayNet, c: Node) -> None:
     for node in (net.b, c):
         record_report(net.relay.ctx, station_report(node.ctx, "pair-bc"))
+
+
+SAES = {"sae-a1": "station-a", "sae-a2": "station-a", "sae-b1": "station-b", "sae-b2": "station-b"}
+
+
+def provision_saes(net: RelayNet) -> None:
+    """The test SAEs at both stations (each station knows its partner's SAEs)."""
+    for node in (net.a, net.b):
+        for sae, station in SAES.items():
+            registry.create(
+                node.ctx,
+                Kind.PRINCIPALS,
+                PrincipalSpec.model_validate(
+                    {"principal_id": sae, "role": "sae", "cert_subject": sae, "station_id": station}
+                ),
+                actor="test",
+            )
+
+
+def ready_key(net: RelayNet, segments: int = 6, size: int = 4096) -> None:
+    """Make ready pair key at both stations: several segments, owners alternating."""
+    from keystrata.domain.relay import choose_owner
+
+    net.feed("station-a", segments * 2)
+    net.feed("station-b", segments * 2)
+    owned = {"station-a": 0, "station-b": 0}
+    for _ in range(segments):
+        owner = choose_owner("station-a", "station-b", 0, 0, owned["station-a"], owned["station-b"])
+        relay.make_segment(net.relay.ctx, PAIR, size, owner=owner)
+        owned[owner] += size
+    net.drain()

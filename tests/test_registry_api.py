@@ -31,12 +31,12 @@ def test_create_list_change_retire_a_pair(station, api) -> None:
     assert r.json()["policy"]["priority"] == 9
 
     listed = ops.get("/api/v1/registry/pairs").json()["items"]
-    assert [p["pair_id"] for p in listed] == ["pair-ab"]
+    assert [p["pair_id"] for p in listed] == ["pair-ab", "pair-ac"]  # pair-ac: seeded
 
     r = ops.delete("/api/v1/registry/pairs/pair-ab")
     assert r.status_code == 200 and r.json()["retired_at"] is not None
-    assert ops.get("/api/v1/registry/pairs").json()["items"] == []
-    assert len(ops.get("/api/v1/registry/pairs?include_retired=true").json()["items"]) == 1
+    assert [p["pair_id"] for p in ops.get("/api/v1/registry/pairs").json()["items"]] == ["pair-ac"]
+    assert len(ops.get("/api/v1/registry/pairs?include_retired=true").json()["items"]) == 2
     # IDs are never reused.
     assert ops.post("/api/v1/registry/pairs", json=PAIR).status_code == 409
     events = ledger_events(station.ctx)

@@ -24,6 +24,14 @@ from keystrata_client._errors import ApiError, KeystrataClientError, TransportEr
 from keystrata_client._module import AsyncModuleClient, IngestResult, ModuleClient
 from keystrata_client._operator import REGISTRY_KINDS, OperatorClient, RegistryKind
 from keystrata_client._tls import TlsIdentity
+from keystrata_client.keys import (
+    AsyncKeyClient,
+    Key,
+    KeyClient,
+    KeyContainer,
+    KeyStatus,
+    UncertainDeliveryError,
+)
 
 __version__ = "0.1.0"
 
@@ -32,8 +40,13 @@ __all__ = [
     "RECORD_VERSION",
     "REGISTRY_KINDS",
     "ApiError",
+    "AsyncKeyClient",
     "AsyncModuleClient",
     "IngestResult",
+    "Key",
+    "KeyClient",
+    "KeyContainer",
+    "KeyStatus",
     "KeystrataClientError",
     "LinkBlock",
     "ModuleClient",
@@ -41,6 +54,7 @@ __all__ = [
     "RegistryKind",
     "TlsIdentity",
     "TransportError",
+    "UncertainDeliveryError",
     "__version__",
     "encode_binary",
     "to_json",

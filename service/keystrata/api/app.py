@@ -12,8 +12,9 @@ from fastapi.routing import APIRoute
 from keystrata import __version__
 from keystrata.api import errors
 from keystrata.api.limits import BodyLimit
-from keystrata.api.routes import links, node, pairs, peer, registry
+from keystrata.api.routes import etsi, links, node, pairs, peer, registry
 from keystrata.services.context import NodeContext
+from keystrata.workers.peer_client import PeerClient
 from keystrata.workers.runner import Background
 
 #: Bodies of routes other than ingest are small JSON documents.
@@ -26,6 +27,7 @@ ROUTERS: tuple[APIRouter, ...] = (
     links.router,
     pairs.router,
     peer.router,
+    etsi.router,
 )
 
 
@@ -56,6 +58,7 @@ def create_app(ctx: NodeContext) -> FastAPI:
         redoc_url=None,
     )
     app.state.ctx = ctx
+    app.state.peers = PeerClient(ctx.settings)
     app.state.ca_cert = x509.load_pem_x509_certificate(ctx.settings.tls.ca.read_bytes())
     errors.install(app)
     for router in ROUTERS:
@@ -65,5 +68,6 @@ def create_app(ctx: NodeContext) -> FastAPI:
         default=DEFAULT_BODY_LIMIT,
         large=ctx.settings.ingest.max_request_bytes,
         large_prefixes=("/api/v1/links/", "/api/v1/peer/"),
+        as_400_prefixes=("/api/v1/keys/",),
     )
     return app

@@ -60,11 +60,12 @@ def _verify_from_proxy(cert: x509.Certificate, ca: x509.Certificate, now: Any) -
     return bool(cert.not_valid_before_utc <= now <= cert.not_valid_after_utc)
 
 
-def admit(*roles: PrincipalRole) -> Callable[[Request], Caller]:
+def admit(*roles: PrincipalRole, hide_role: bool = False) -> Callable[[Request], Caller]:
     """Return a dependency that yields the caller if its role is one of ``roles``.
 
-    The returned function carries ``roles`` as an attribute so that tests and docs can
-    read each route's admitted roles from the app's route table.
+    The returned function carries ``roles`` (and ``refusal_status``) as attributes so
+    that tests and docs can read each route's admitted roles from the app's route table.
+    ``hide_role`` answers a role the route does not admit with 401 instead of 403.
 
     Raises (from the dependency):
         Unauthenticated: no certificate, or one that maps to no active principal (401,
@@ -120,9 +121,11 @@ def admit(*roles: PrincipalRole) -> Callable[[Request], Caller]:
                 method=method,
                 path=path,
             )
-            raise Forbidden()
+            # ETSI GS QKD 014 knows no 403: its routes answer every refusal with 401.
+            raise Unauthenticated() if hide_role else Forbidden()
         request.state.caller = caller
         return caller
 
     dependency.roles = frozenset(roles)  # type: ignore[attr-defined]
+    dependency.refusal_status = 401 if hide_role else 403  # type: ignore[attr-defined]
     return dependency

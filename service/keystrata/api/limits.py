@@ -11,13 +11,23 @@ Scope = dict[str, Any]
 
 
 class BodyLimit:
-    """ASGI middleware: answer 413 when a body exceeds the limit for its path."""
+    """ASGI middleware: refuse a body that exceeds the limit for its path: 413, or 400
+    on ``as_400_prefixes`` (ETSI GS QKD 014 routes know only 400, 401 and 503)."""
 
-    def __init__(self, app: Any, *, default: int, large: int, large_prefixes: tuple[str, ...]):
+    def __init__(
+        self,
+        app: Any,
+        *,
+        default: int,
+        large: int,
+        large_prefixes: tuple[str, ...],
+        as_400_prefixes: tuple[str, ...] = (),
+    ):
         self.app = app
         self.default = default
         self.large = large
         self.large_prefixes = large_prefixes
+        self.as_400_prefixes = as_400_prefixes
 
     async def __call__(self, scope: Scope, receive: Any, send: Any) -> None:
         if scope["type"] != "http":
@@ -25,6 +35,7 @@ class BodyLimit:
             return
         path: str = scope.get("path", "")
         limit = self.large if path.startswith(self.large_prefixes) else self.default
+        status = 400 if path.startswith(self.as_400_prefixes) else 413
         for name, value in scope.get("headers", ()):
             if name == b"content-length":
                 try:
@@ -32,7 +43,7 @@ class BodyLimit:
                 except ValueError:
                     declared = limit + 1
                 if declared > limit:
-                    await _too_large(send, limit)
+                    await _too_large(send, limit, status)
                     return
         seen = 0
         started = False
@@ -43,7 +54,7 @@ class BodyLimit:
             if message["type"] == "http.request":
                 seen += len(message.get("body", b""))
                 if seen > limit:
-                    raise _BodyTooLarge()
+                    raise _BodyTooLarge(status)
             return message
 
         async def tracking_send(message: Any) -> None:
@@ -56,23 +67,23 @@ class BodyLimit:
             await self.app(scope, limited_receive, tracking_send)
         except _BodyTooLarge:
             if not started:
-                await _too_large(send, limit)
+                await _too_large(send, limit, status)
 
 
 class _BodyTooLarge(HTTPException):
     """Raised from ``receive``; an HTTPException so that the framework's body reading
     passes it on (as 413) instead of turning it into a parse error."""
 
-    def __init__(self) -> None:
-        super().__init__(status_code=413, detail="request body too large")
+    def __init__(self, status: int = 413) -> None:
+        super().__init__(status_code=status, detail="request body too large")
 
 
-async def _too_large(send: Any, limit: int) -> None:
+async def _too_large(send: Any, limit: int, status: int) -> None:
     body = json.dumps({"message": f"request body larger than {limit} bytes"}).encode()
     await send(
         {
             "type": "http.response.start",
-            "status": 413,
+            "status": status,
             "headers": [
                 (b"content-type", b"application/json"),
                 (b"content-length", str(len(body)).encode()),

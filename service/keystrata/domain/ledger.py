@@ -33,6 +33,10 @@ class Event(StrEnum):
     SEGMENT_READY = "segment.ready"
     SEGMENT_DISCARDED = "segment.discarded"
     RELAY_MESSAGE_REFUSED = "segment.message_refused"
+    KEY_ALLOCATED = "key.allocated"
+    KEY_DELIVERED = "key.delivered"
+    KEY_EXPIRED = "key.expired"
+    KEY_REFUSED = "key.refused"
     KEK_ROTATION_STARTED = "kek.rotation_started"
     KEK_ROTATED = "kek.rotated"
 

@@ -7,7 +7,7 @@ from typing import Any
 
 from keystrata.config import Role
 from keystrata.errors import Forbidden, InvalidInput
-from keystrata.services import relay, segments
+from keystrata.services import delivery, relay, segments
 from keystrata.services.context import NodeContext
 from keystrata.services.segments import Outcome
 
@@ -29,6 +29,8 @@ HANDLERS: dict[Role, dict[str, Handler]] = {
         "segment.check": segments.apply_check,
         "segment.confirmed": segments.apply_confirmed,
         "segment.discarded": segments.apply_discarded,
+        "key.allocated": delivery.apply_allocated,
+        "key.expired": delivery.apply_expired,
     },
     Role.RELAY: {"segment.settled": _settle},
 }

@@ -125,3 +125,15 @@ def backlog(db: Database) -> dict[str, int]:
             select(OutboxMessage.destination, func.count()).group_by(OutboxMessage.destination)
         ).all()
         return {str(dest): int(n) for dest, n in rows}
+
+
+def pending_bodies(db: Database, *, destination: str, kind: str) -> list[dict[str, Any]]:
+    """Bodies of messages of ``kind`` still waiting for ``destination``, oldest first
+    (a peer may pull them when it needs one before the outbox delivers it)."""
+    with db.read() as s:
+        rows = s.execute(
+            select(OutboxMessage.body)
+            .where(OutboxMessage.destination == destination, OutboxMessage.kind == kind)
+            .order_by(OutboxMessage.id)
+        ).scalars()
+        return [json.loads(b) for b in rows]

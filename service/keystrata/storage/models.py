@@ -332,3 +332,34 @@ class PairBuffer(Base):
     delivered_bits: Mapped[int] = mapped_column(BigInteger, comment="in the report's window")
     window_seconds: Mapped[int] = mapped_column(Integer)
     reported_at: Mapped[datetime]
+
+
+class KeyAlloc(Base):
+    """A key allocated from a pair's ready key, at both stations of the pair.
+
+    At the owner (the master's station) the key is handed to the master when allocated
+    and its bytes are gone at once. At the other station the bytes wait, sealed, until
+    every slave has fetched them or the pair's time-to-live ends.
+    """
+
+    __tablename__ = "key_alloc"
+    __table_args__ = (
+        CheckConstraint("state IN ('waiting', 'delivered', 'expired')", name="state"),
+        CheckConstraint("(sealed IS NULL) = (state <> 'waiting')", name="sealed_iff_waiting"),
+        CheckConstraint("size_bits > 0 AND size_bits % 8 = 0", name="size"),
+        Index("ix_key_alloc_pair_owner_time", "pair_id", "owner", "allocated_at"),
+        Index("ix_key_alloc_expiry", "state", "expires_at"),
+    )
+    key_id: Mapped[str] = mapped_column(String(36), primary_key=True)
+    pair_id: Mapped[str] = mapped_column(ForeignKey("pair.pair_id"))
+    owner: Mapped[str] = mapped_column(String(ID_LEN), comment="station that allocated it")
+    master_sae: Mapped[str] = mapped_column(String(ID_LEN))
+    slaves: Mapped[str] = mapped_column(Text, comment="JSON list of slave SAE IDs")
+    fetched_by: Mapped[str] = mapped_column(Text, comment="JSON list of slaves served here")
+    ranges: Mapped[str] = mapped_column(Text, comment="JSON: segment byte ranges it came from")
+    size_bits: Mapped[int] = mapped_column(Integer)
+    state: Mapped[str] = mapped_column(String(16))
+    allocated_at: Mapped[datetime]
+    expires_at: Mapped[datetime]
+    settled_at: Mapped[datetime | None]
+    sealed: Mapped[bytes | None] = mapped_column(LargeBinary)

@@ -30,3 +30,8 @@ SEALED_META = ("kek_check", "fingerprint_key", "ledger_signing_key")
 def segment_context(segment_id: str, used: int) -> bytes:
     """Context of a pair key segment's remaining bytes, which start at offset ``used``."""
     return _context("pair_segment", segment_id, used)
+
+
+def key_context(key_id: str) -> bytes:
+    """Context of a key waiting at the slave's station for its slaves."""
+    return _context("key_alloc", key_id)

@@ -56,3 +56,15 @@ class PeerClient:
             return None
         answer = r.json()
         return answer if isinstance(answer, dict) else None
+
+    def pending_allocations(self, node_id: str) -> list[dict[str, Any]]:
+        """Key allocation messages ``node_id`` still holds for this node ([] if none or
+        the peer cannot be reached now)."""
+        try:
+            r = self._client.get(self._url(node_id, "/api/v1/peer/allocations"))
+        except (httpx.HTTPError, PeerUnavailable):
+            return []
+        if r.status_code != 200:
+            return []
+        messages = r.json().get("messages", [])
+        return [m for m in messages if isinstance(m, dict)]

@@ -10,7 +10,7 @@ from collections.abc import Callable
 from datetime import timedelta
 
 from keystrata.config import Role
-from keystrata.services import leases, segments
+from keystrata.services import delivery, leases, segments
 from keystrata.services.context import NodeContext
 from keystrata.workers import outbox, scheduler
 from keystrata.workers.peer_client import PeerClient
@@ -80,4 +80,5 @@ class Background:
     def _expire(self) -> bool:
         timeout = timedelta(seconds=self.ctx.settings.segments.confirm_timeout_seconds)
         segments.expire_pending(self.ctx, self.ctx.clock.now() - timeout)
+        delivery.expire(self.ctx)
         return False

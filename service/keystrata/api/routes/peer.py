@@ -17,7 +17,7 @@ from keystrata.api.identity import admit
 from keystrata.config import Role
 from keystrata.domain.registry import PrincipalRole
 from keystrata.errors import InvalidInput, NotFound
-from keystrata.services import buffers, messages
+from keystrata.services import buffers, messages, outbox
 from keystrata.services.context import NodeContext
 from keystrata.services.principals import Caller
 
@@ -48,3 +48,18 @@ def pair_buffer(pair_id: str, request: Request, caller: Peer) -> dict[str, Any]:
     if ctx.role is not Role.STATION:
         raise NotFound("only stations keep pair buffers")
     return buffers.station_report(ctx, pair_id).to_json()
+
+
+@router.get(
+    "/allocations",
+    summary="Key allocations still on their way to the calling station",
+    operation_id="peer_pending_allocations",
+)
+def pending_allocations(request: Request, caller: Peer) -> dict[str, Any]:
+    """A station asked for a key ID it has not heard of pulls them here (issue: the
+    ``key.allocated`` message may still be in this node's outbox)."""
+    ctx: NodeContext = request.app.state.ctx
+    assert caller.node_id is not None
+    return {
+        "messages": outbox.pending_bodies(ctx.db, destination=caller.node_id, kind="key.allocated")
+    }

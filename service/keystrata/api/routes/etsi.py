@@ -1,0 +1,146 @@
+"""Key delivery to SAEs: the REST API of ETSI GS QKD 014 V1.1.1, base ``/api/v1/keys``.
+
+Get status, Get key (POST and GET) and Get key with key IDs (POST and GET), with the
+standard's objects and status codes: 200, 400 (bad request format), 401 (unauthorized,
+the same answer for every reason) and 503 (error on the server side). Clause numbers and
+wording of the standard are cited from memory in the conformance tests.
+"""
+
+# No `from __future__ import annotations`: FastAPI reads the body model classes here.
+
+import base64
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Depends, Query, Request
+from starlette.concurrency import run_in_threadpool
+
+from keystrata.api.identity import admit
+from keystrata.config import Role
+from keystrata.domain.etsi import ErrorBody, KeyContainer, KeyIds, KeyRequest, Status
+from keystrata.domain.registry import PrincipalRole
+from keystrata.errors import NotFound
+from keystrata.services import delivery
+from keystrata.services.context import NodeContext
+from keystrata.services.delivery import DeliveredKey
+from keystrata.services.principals import Caller
+from keystrata.workers.peer_client import PeerClient
+
+router = APIRouter(prefix="/api/v1/keys", tags=["key delivery (ETSI GS QKD 014)"])
+
+Sae = Annotated[Caller, Depends(admit(PrincipalRole.SAE, hide_role=True))]
+
+_ERRORS: dict[int | str, dict[str, Any]] = {
+    400: {"model": ErrorBody, "description": "Bad request format"},
+    401: {"model": ErrorBody, "description": "Unauthorized"},
+    503: {"model": ErrorBody, "description": "Error on the server side"},
+}
+KEY_ID_PATTERN = r"^[0-9a-fA-F]{8}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{12}$"
+
+
+def _station(request: Request) -> NodeContext:
+    ctx: NodeContext = request.app.state.ctx
+    if ctx.role is not Role.STATION:
+        raise NotFound("keys are delivered by stations, not by the relay")
+    return ctx
+
+
+def _container(keys: list[DeliveredKey]) -> dict[str, Any]:
+    return {"keys": [{"key_ID": k.key_id, "key": base64.b64encode(k.key).decode()} for k in keys]}
+
+
+def _pull(request: Request) -> delivery.Pull:
+    def pull(owner: str) -> list[dict[str, Any]]:
+        peers: PeerClient = request.app.state.peers
+        return peers.pending_allocations(owner)
+
+    return pull
+
+
+@router.get(
+    "/{slave_SAE_ID}/status",
+    response_model=Status,
+    responses=_ERRORS,
+    summary="Get status",
+    operation_id="get_status",
+)
+def get_status(slave_SAE_ID: str, request: Request, caller: Sae) -> dict[str, Any]:
+    return delivery.status(_station(request), caller, slave_SAE_ID)
+
+
+@router.post(
+    "/{slave_SAE_ID}/enc_keys",
+    response_model=KeyContainer,
+    responses=_ERRORS,
+    summary="Get key",
+    operation_id="get_key",
+)
+async def get_key(
+    slave_SAE_ID: str,
+    body: KeyRequest,
+    request: Request,
+    caller: Sae,
+) -> dict[str, Any]:
+    ctx = _station(request)
+    keys = await run_in_threadpool(delivery.get_keys, ctx, caller, slave_SAE_ID, body)
+    return _container(keys)
+
+
+@router.get(
+    "/{slave_SAE_ID}/enc_keys",
+    response_model=KeyContainer,
+    responses=_ERRORS,
+    summary="Get key (GET form)",
+    operation_id="get_key_simple",
+)
+async def get_key_simple(
+    slave_SAE_ID: str,
+    request: Request,
+    caller: Sae,
+    number: Annotated[int | None, Query(ge=1)] = None,
+    size: Annotated[int | None, Query(ge=1)] = None,
+) -> dict[str, Any]:
+    ctx = _station(request)
+    body = KeyRequest(number=number, size=size)
+    keys = await run_in_threadpool(delivery.get_keys, ctx, caller, slave_SAE_ID, body)
+    return _container(keys)
+
+
+@router.post(
+    "/{master_SAE_ID}/dec_keys",
+    response_model=KeyContainer,
+    responses=_ERRORS,
+    summary="Get key with key IDs",
+    operation_id="get_key_with_key_ids",
+)
+async def get_key_with_ids(
+    master_SAE_ID: str,
+    body: KeyIds,
+    request: Request,
+    caller: Sae,
+) -> dict[str, Any]:
+    ctx = _station(request)
+    ids = [entry.key_ID for entry in body.key_IDs]
+    keys = await run_in_threadpool(
+        delivery.get_keys_with_ids, ctx, caller, master_SAE_ID, ids, _pull(request)
+    )
+    return _container(keys)
+
+
+@router.get(
+    "/{master_SAE_ID}/dec_keys",
+    response_model=KeyContainer,
+    responses=_ERRORS,
+    summary="Get key with key IDs (GET form)",
+    operation_id="get_key_with_key_id_simple",
+)
+async def get_key_with_id_simple(
+    master_SAE_ID: str,
+    request: Request,
+    caller: Sae,
+    key_ID: Annotated[str, Query(pattern=KEY_ID_PATTERN)],
+) -> dict[str, Any]:
+    ctx = _station(request)
+    keys = await run_in_threadpool(
+        delivery.get_keys_with_ids, ctx, caller, master_SAE_ID, [key_ID], _pull(request)
+    )
+    return _container(keys)

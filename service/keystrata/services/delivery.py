@@ -1,0 +1,552 @@
+"""Key delivery to SAEs (ETSI GS QKD 014): allocation at the master's station, delivery
+at the slave's station, expiry.
+
+* Get key (enc_keys) at station A, by master SAE a1 for slave b1 at station B: carve the
+  keys from ready segments that A owns, destroy those bytes at A (the key is handed to
+  a1 and A has no further use for it), record the allocation, and queue a
+  ``key.allocated`` message to B in the same transaction.
+* B applies the message: it carves the same ranges from its copy of the segments and
+  keeps each key sealed until every slave has fetched it or its time-to-live ends.
+* Get key with key IDs (dec_keys) at B, by b1 naming master a1: only keys that A
+  allocated to (a1 -> b1); each slave gets each key once; then the key is destroyed.
+  When B does not know a key ID yet, it first pulls A's pending allocation messages.
+
+Every refusal on these routes is the same 401 answer (no oracle), recorded in the ledger.
+"""
+
+from __future__ import annotations
+
+import json
+import uuid
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from datetime import datetime, timedelta
+from typing import Any
+
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from keystrata.domain.etsi import KeyRequest
+from keystrata.domain.ledger import Event
+from keystrata.errors import BadRequest, Forbidden, InvalidInput, Unauthenticated, Unavailable
+from keystrata.services import ledger, outbox
+from keystrata.services.context import NodeContext
+from keystrata.services.linkbytes import NotYet
+from keystrata.services.principals import Caller
+from keystrata.services.segments import Outcome
+from keystrata.storage.models import KeyAlloc, Pair, PairSegment, Principal
+from keystrata.storage.sealed import key_context, segment_context
+
+#: Keys one Get key may ask for, and additional slaves one key may have.
+MAX_KEY_PER_REQUEST = 1024
+MAX_SAE_ID_COUNT = 8
+
+Pull = Callable[[str], list[dict[str, Any]]]
+
+
+@dataclass(frozen=True)
+class DeliveredKey:
+    key_id: str
+    key: bytes = field(repr=False)
+
+
+class NotEnoughKey(Unavailable):
+    default_message = "not enough key is ready for this request; try again later"
+
+
+class QuotaReached(Unavailable):
+    default_message = "the pair's daily key quota is used up"
+
+
+@dataclass(frozen=True)
+class Route:
+    """The pair and SAEs of one request, once it is known to be allowed."""
+
+    pair: Pair
+    partner: str
+    slaves: list[str]
+
+
+def _refuse(ctx: NodeContext, caller: Caller, reason: str, **fields: Any) -> Unauthenticated:
+    with ctx.db.write() as s:
+        ledger.append(
+            s,
+            node_id=ctx.node_id,
+            at=ctx.clock.now(),
+            event=Event.KEY_REFUSED,
+            fields={"sae": caller.principal_id, "reason": reason, **fields},
+        )
+    return Unauthenticated()
+
+
+def _sae(s: Session, sae_id: str) -> Principal | None:
+    row = s.get(Principal, sae_id)
+    if row is None or row.retired_at is not None or row.role != "sae":
+        return None
+    return row
+
+
+def _pair_between(s: Session, a: str, b: str) -> Pair | None:
+    first, second = sorted((a, b))
+    return (
+        s.execute(
+            select(Pair)
+            .where(Pair.station_a == first, Pair.station_b == second, Pair.retired_at.is_(None))
+            .order_by(Pair.pair_id)
+        )
+        .scalars()
+        .first()
+    )
+
+
+def route_for_master(
+    ctx: NodeContext, caller: Caller, slave_sae_id: str, additional: Sequence[str] = ()
+) -> Route:
+    """Check that ``caller`` (an SAE of this station) may get keys for the slave(s).
+
+    Raises:
+        Unauthenticated: any reason at all (recorded).
+    """
+    with ctx.db.read() as s:
+        slave = _sae(s, slave_sae_id)
+        ok = caller.role.value == "sae" and caller.station_id == ctx.node_id
+        pair = None
+        if ok and slave is not None and slave.station_id not in (None, ctx.node_id):
+            pair = _pair_between(s, ctx.node_id, str(slave.station_id))
+        if pair is None or slave is None:
+            raise _refuse(ctx, caller, "no_pair_for_these_saes", slave=slave_sae_id[:64])
+        slaves = [slave_sae_id]
+        for extra in additional:
+            other = _sae(s, extra)
+            if other is None or other.station_id != slave.station_id or extra in slaves:
+                raise _refuse(ctx, caller, "additional_slave_not_allowed", slave=extra[:64])
+            slaves.append(extra)
+        return Route(pair=pair, partner=str(slave.station_id), slaves=slaves)
+
+
+def status(ctx: NodeContext, caller: Caller, slave_sae_id: str) -> dict[str, Any]:
+    """The Status object for (caller -> slave): true counts and this node's limits."""
+    route = route_for_master(ctx, caller, slave_sae_id)
+    pair = route.pair
+    with ctx.db.read() as s:
+        ready = _owned_ready_bytes(s, pair.pair_id, ctx.node_id)
+    return {
+        "source_KME_ID": ctx.node_id,
+        "target_KME_ID": route.partner,
+        "master_SAE_ID": caller.principal_id,
+        "slave_SAE_ID": slave_sae_id,
+        "key_size": pair.default_key_size,
+        "stored_key_count": 8 * ready // pair.default_key_size,
+        "max_key_count": pair.buffer_max_bits // pair.default_key_size,
+        "max_key_per_request": MAX_KEY_PER_REQUEST,
+        "max_key_size": pair.max_key_size,
+        "min_key_size": pair.min_key_size,
+        "max_SAE_ID_count": MAX_SAE_ID_COUNT,
+    }
+
+
+def _owned_ready_bytes(s: Session, pair_id: str, owner: str) -> int:
+    return int(
+        s.execute(
+            select(func.coalesce(func.sum(PairSegment.length - PairSegment.used), 0)).where(
+                PairSegment.pair_id == pair_id,
+                PairSegment.owner == owner,
+                PairSegment.state == "ready",
+            )
+        ).scalar_one()
+    )
+
+
+def check_request(route: Route, request: KeyRequest) -> tuple[int, int]:
+    """Return (number, size in bits) of a Key request. Raises BadRequest (400)."""
+    pair = route.pair
+    if request.extension_mandatory:
+        names = sorted({k for ext in request.extension_mandatory for k in ext})[:5]
+        raise BadRequest(
+            "unsupported mandatory extension: " + ", ".join(names),
+            details=[{"extension_mandatory": names}],
+        )
+    number = 1 if request.number is None else request.number
+    size = pair.default_key_size if request.size is None else request.size
+    if size % 8:
+        raise BadRequest("size must be a multiple of 8 bits")
+    if not pair.min_key_size <= size <= pair.max_key_size:
+        raise BadRequest(
+            f"size must be between {pair.min_key_size} and {pair.max_key_size} "
+            "bits (min_key_size..max_key_size)"
+        )
+    if number > MAX_KEY_PER_REQUEST:
+        raise BadRequest(f"number must be at most {MAX_KEY_PER_REQUEST} (max_key_per_request)")
+    if len(request.additional_slave_SAE_IDs or ()) > MAX_SAE_ID_COUNT:
+        raise BadRequest(f"at most {MAX_SAE_ID_COUNT} additional_slave_SAE_IDs (max_SAE_ID_count)")
+    return number, size
+
+
+def get_keys(
+    ctx: NodeContext, caller: Caller, slave_sae_id: str, request: KeyRequest
+) -> list[DeliveredKey]:
+    """Get key: allocate ``number`` keys of ``size`` bits for (caller -> slaves).
+
+    Raises:
+        Unauthenticated: the caller may not ask this (401, recorded).
+        BadRequest: malformed request values (400).
+        QuotaReached / NotEnoughKey: 503 with a clear message.
+    """
+    if len(request.additional_slave_SAE_IDs or ()) > MAX_SAE_ID_COUNT:
+        raise BadRequest(f"at most {MAX_SAE_ID_COUNT} additional_slave_SAE_IDs (max_SAE_ID_count)")
+    route = route_for_master(ctx, caller, slave_sae_id, request.additional_slave_SAE_IDs or ())
+    number, size = check_request(route, request)
+    pair = route.pair
+    need = number * size // 8
+    now = ctx.clock.now()
+    with ctx.db.write() as s:
+        if pair.daily_quota_bits is not None:
+            day = now.replace(hour=0, minute=0, second=0, microsecond=0)
+            used = int(
+                s.execute(
+                    select(func.coalesce(func.sum(KeyAlloc.size_bits), 0)).where(
+                        KeyAlloc.pair_id == pair.pair_id,
+                        KeyAlloc.owner == ctx.node_id,
+                        KeyAlloc.allocated_at >= day,
+                    )
+                ).scalar_one()
+            )
+            if used + 8 * need > pair.daily_quota_bits:
+                raise QuotaReached(
+                    f"the daily quota of pair {pair.pair_id} "
+                    f"({pair.daily_quota_bits} bits) would be exceeded: "
+                    f"{used} bits delivered today"
+                )
+        pieces = _carve_owned(ctx, s, pair.pair_id, need)
+        keys: list[DeliveredKey] = []
+        records = []
+        expires = now + timedelta(seconds=pair.key_ttl_seconds)
+        offset = 0
+        for _ in range(number):
+            key_id = str(uuid.uuid4())
+            key, ranges = _slice(pieces, offset, size // 8)
+            offset += size // 8
+            keys.append(DeliveredKey(key_id, key))
+            record = {
+                "key_ID": key_id,
+                "master": caller.principal_id,
+                "slaves": route.slaves,
+                "ranges": ranges,
+                "size_bits": size,
+                "allocated_at": now.isoformat(),
+                "expires_at": expires.isoformat(),
+            }
+            records.append(record)
+            s.add(
+                KeyAlloc(
+                    key_id=key_id,
+                    pair_id=pair.pair_id,
+                    owner=ctx.node_id,
+                    master_sae=caller.principal_id,
+                    slaves=json.dumps(route.slaves),
+                    fetched_by="[]",
+                    ranges=json.dumps(ranges),
+                    size_bits=size,
+                    state="delivered",
+                    allocated_at=now,
+                    expires_at=expires,
+                    settled_at=now,
+                    sealed=None,
+                )
+            )
+        outbox.enqueue(
+            s,
+            destination=route.partner,
+            kind="key.allocated",
+            segment_id=None,
+            now=now,
+            body={"pair_id": pair.pair_id, "owner": ctx.node_id, "keys": records},
+        )
+        ledger.append(
+            s,
+            node_id=ctx.node_id,
+            at=now,
+            event=Event.KEY_ALLOCATED,
+            fields={
+                "pair": pair.pair_id,
+                "master": caller.principal_id,
+                "slaves": route.slaves,
+                "size_bits": size,
+                "key_ids": [k.key_id for k in keys],
+                "delivered_to": caller.principal_id,
+            },
+        )
+    return keys
+
+
+def _carve_owned(
+    ctx: NodeContext, s: Session, pair_id: str, need: int
+) -> list[tuple[str, int, bytes]]:
+    """Take ``need`` bytes from the front of ready segments this station owns, oldest
+    first, destroying them; return (segment, offset, bytes) pieces in order."""
+    rows = s.execute(
+        select(PairSegment)
+        .where(
+            PairSegment.pair_id == pair_id,
+            PairSegment.owner == ctx.node_id,
+            PairSegment.state == "ready",
+            PairSegment.used < PairSegment.length,
+        )
+        .order_by(PairSegment.settled_at, PairSegment.segment_id)
+        .with_for_update()
+    ).scalars()
+    pieces: list[tuple[str, int, bytes]] = []
+    left = need
+    for row in rows:
+        if left == 0:
+            break
+        assert row.sealed is not None
+        rest = ctx.keyring.open(row.sealed, segment_context(row.segment_id, row.used))
+        take = min(left, len(rest))
+        pieces.append((row.segment_id, row.used, rest[:take]))
+        _advance(ctx, row, take, rest[take:])
+        left -= take
+    if left:
+        raise NotEnoughKey(f"{8 * (need - left)} of the {8 * need} bits asked for are ready")
+    return pieces
+
+
+def _advance(ctx: NodeContext, row: PairSegment, taken: int, rest: bytes) -> None:
+    row.used += taken
+    row.sealed = ctx.keyring.seal(rest, segment_context(row.segment_id, row.used)) if rest else None
+
+
+def _slice(
+    pieces: list[tuple[str, int, bytes]], start: int, n: int
+) -> tuple[bytes, list[dict[str, Any]]]:
+    """Bytes [start, start+n) of the carved pieces and the segment ranges they are."""
+    out = b""
+    ranges: list[dict[str, Any]] = []
+    pos = 0
+    for segment, offset, data in pieces:
+        lo, hi = max(start, pos), min(start + n, pos + len(data))
+        if lo < hi:
+            out += data[lo - pos : hi - pos]
+            ranges.append({"segment": segment, "offset": offset + lo - pos, "length": hi - lo})
+        pos += len(data)
+    return out, ranges
+
+
+def apply_allocated(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcome:
+    """Slave's station: take the named segment bytes as keys waiting for their slaves."""
+    pair_id = str(body["pair_id"])
+    with ctx.db.write() as s:
+        pair = s.get(Pair, pair_id)
+        if pair is None or ctx.node_id not in (pair.station_a, pair.station_b):
+            raise InvalidInput(f"no pair {pair_id!r} at this station")
+        partner = pair.station_b if pair.station_a == ctx.node_id else pair.station_a
+        if sender != partner or body.get("owner") != sender:
+            raise Forbidden("only the pair's other station allocates its keys")
+        now = ctx.clock.now()
+        applied = []
+        for rec in body["keys"]:
+            key_id = str(uuid.UUID(str(rec["key_ID"])))
+            if s.get(KeyAlloc, key_id) is not None:
+                continue
+            key = _carve_named(ctx, s, pair_id, sender, rec["ranges"])
+            if len(key) * 8 != int(rec["size_bits"]):
+                raise InvalidInput("size_bits does not match the ranges")
+            expires = datetime.fromisoformat(str(rec["expires_at"]))
+            live = expires > now
+            s.add(
+                KeyAlloc(
+                    key_id=key_id,
+                    pair_id=pair_id,
+                    owner=sender,
+                    master_sae=str(rec["master"]),
+                    slaves=json.dumps(rec["slaves"]),
+                    fetched_by="[]",
+                    ranges=json.dumps(rec["ranges"]),
+                    size_bits=int(rec["size_bits"]),
+                    state="waiting" if live else "expired",
+                    allocated_at=datetime.fromisoformat(str(rec["allocated_at"])),
+                    expires_at=expires,
+                    settled_at=None if live else now,
+                    sealed=ctx.keyring.seal(key, key_context(key_id)) if live else None,
+                )
+            )
+            applied.append(key_id)
+        if applied:
+            ledger.append(
+                s,
+                node_id=ctx.node_id,
+                at=now,
+                event=Event.KEY_ALLOCATED,
+                fields={"pair": pair_id, "owner": sender, "key_ids": applied, "side": "slave"},
+            )
+    return Outcome(applied[0] if applied else "", "applied" if applied else "already")
+
+
+def _carve_named(
+    ctx: NodeContext, s: Session, pair_id: str, owner: str, ranges: list[dict[str, Any]]
+) -> bytes:
+    out = b""
+    for r in ranges:
+        row = s.get(PairSegment, str(r["segment"]), with_for_update=True)
+        if row is None or row.state != "ready":
+            raise NotYet("not yet: the segment of this key is not ready here")
+        if row.pair_id != pair_id or row.owner != owner:
+            raise InvalidInput("a key range names a segment of another pair or owner")
+        offset, length = int(r["offset"]), int(r["length"])
+        if offset > row.used:
+            raise NotYet("not yet: earlier keys of this segment have not arrived")
+        if offset < row.used or length <= 0 or offset + length > row.length:
+            raise InvalidInput("a key range names segment bytes already used")
+        assert row.sealed is not None
+        rest = ctx.keyring.open(row.sealed, segment_context(row.segment_id, row.used))
+        out += rest[:length]
+        _advance(ctx, row, length, rest[length:])
+    return out
+
+
+def get_keys_with_ids(
+    ctx: NodeContext,
+    caller: Caller,
+    master_sae_id: str,
+    key_ids: Sequence[str],
+    pull: Pull | None = None,
+) -> list[DeliveredKey]:
+    """Get key with key IDs: serve keys allocated to (master -> caller), once each.
+
+    Raises:
+        BadRequest: the same key ID twice.
+        Unauthenticated: anything not allocated to (master -> caller), already fetched,
+            expired or unknown (401, recorded).
+    """
+    ids = [str(uuid.UUID(k)) for k in key_ids]
+    if len(set(ids)) != len(ids):
+        raise BadRequest("the same key_ID is asked for more than once")
+    if caller.role.value != "sae" or caller.station_id != ctx.node_id:
+        raise _refuse(ctx, caller, "not_an_sae_of_this_station", master=master_sae_id[:64])
+    with ctx.db.read() as s:
+        known = set(s.execute(select(KeyAlloc.key_id).where(KeyAlloc.key_id.in_(ids))).scalars())
+        master = _sae(s, master_sae_id)
+    if len(known) < len(ids) and pull is not None and master is not None:
+        # The allocation message may still be on its way: fetch it from the owner now.
+        for body in pull(str(master.station_id)):
+            try:
+                apply_allocated(ctx, str(master.station_id), body)
+            except (NotYet, InvalidInput, Forbidden):
+                break
+    now = ctx.clock.now()
+    try:
+        with ctx.db.write() as s:
+            rows = {
+                r.key_id: r
+                for r in s.execute(
+                    select(KeyAlloc).where(KeyAlloc.key_id.in_(ids)).with_for_update()
+                ).scalars()
+            }
+            out: list[DeliveredKey] = []
+            for key_id in ids:
+                row = rows.get(key_id)
+                fetched = json.loads(row.fetched_by) if row else []
+                if (
+                    row is None
+                    or row.master_sae != master_sae_id
+                    or row.state != "waiting"
+                    or caller.principal_id not in json.loads(row.slaves)
+                    or caller.principal_id in fetched
+                    or row.expires_at <= now
+                ):
+                    raise _NotServed  # rolls back whatever this request took
+                assert row.sealed is not None
+                out.append(DeliveredKey(key_id, ctx.keyring.open(row.sealed, key_context(key_id))))
+                fetched.append(caller.principal_id)
+                row.fetched_by = json.dumps(fetched)
+                if set(fetched) >= set(json.loads(row.slaves)):
+                    row.state, row.sealed, row.settled_at = "delivered", None, now
+            ledger.append(
+                s,
+                node_id=ctx.node_id,
+                at=now,
+                event=Event.KEY_DELIVERED,
+                fields={"sae": caller.principal_id, "master": master_sae_id, "key_ids": ids},
+            )
+            return out
+    except _NotServed:
+        raise _refuse(
+            ctx,
+            caller,
+            "key_not_allocated_to_this_sae",
+            master=master_sae_id[:64],
+            key_ids=ids[:16],
+        ) from None
+
+
+class _NotServed(Exception):
+    """Some key of a Get key with key IDs may not be served; nothing of it is."""
+
+
+def expire(ctx: NodeContext) -> int:
+    """Slave's station: destroy keys whose time-to-live ended and tell the owner."""
+    now = ctx.clock.now()
+    with ctx.db.write() as s:
+        rows = (
+            s.execute(
+                select(KeyAlloc)
+                .where(KeyAlloc.state == "waiting", KeyAlloc.expires_at <= now)
+                .with_for_update()
+            )
+            .scalars()
+            .all()
+        )
+        by_owner: dict[tuple[str, str], list[str]] = {}
+        for row in rows:
+            row.state, row.sealed, row.settled_at = "expired", None, now
+            by_owner.setdefault((row.owner, row.pair_id), []).append(row.key_id)
+        for (owner, pair_id), key_ids in by_owner.items():
+            outbox.enqueue(
+                s,
+                destination=owner,
+                kind="key.expired",
+                segment_id=None,
+                now=now,
+                body={"pair_id": pair_id, "key_ids": key_ids},
+            )
+            ledger.append(
+                s,
+                node_id=ctx.node_id,
+                at=now,
+                event=Event.KEY_EXPIRED,
+                fields={"pair": pair_id, "key_ids": key_ids, "side": "slave"},
+            )
+        return len(rows)
+
+
+def apply_expired(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcome:
+    """Owner: record that keys it allocated expired uncollected at the slave's station."""
+    now = ctx.clock.now()
+    with ctx.db.write() as s:
+        rows = (
+            s.execute(
+                select(KeyAlloc)
+                .where(
+                    KeyAlloc.key_id.in_([str(k) for k in body["key_ids"]]),
+                    KeyAlloc.owner == ctx.node_id,
+                )
+                .with_for_update()
+            )
+            .scalars()
+            .all()
+        )
+        changed = [r.key_id for r in rows if r.state != "expired"]
+        for row in rows:
+            pair = s.get(Pair, row.pair_id)
+            if pair is None or sender not in (pair.station_a, pair.station_b):
+                raise Forbidden("only the pair's other station reports its keys expired")
+            row.state, row.settled_at = "expired", now
+        if changed:
+            ledger.append(
+                s,
+                node_id=ctx.node_id,
+                at=now,
+                event=Event.KEY_EXPIRED,
+                fields={"pair": str(body["pair_id"]), "key_ids": changed, "side": "master"},
+            )
+    return Outcome("", "applied" if changed else "already")
