@@ -85,6 +85,7 @@ def test_demo_runs_and_its_manifest_reaches_the_operator_api(tmp_path: Path) -> 
             proc.wait()
     assert proc.returncode == 0, output
     assert "used no link byte twice" in output
+    assert "all matching" in output  # encryptor pairs: zero mismatches (else exit 1)
     # Read both stations of every pair and every relay record ourselves.
     from keystrata.demo.verify import check_network
 

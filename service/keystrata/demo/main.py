@@ -17,7 +17,7 @@ from keystrata.demo import scenario
 from keystrata.demo.nodes import NodeProcesses, free_ports
 from keystrata.demo.provision import operator_identity, provision
 from keystrata.demo.verify import check_network
-from keystrata.demo.view import Snapshot, links_table, pairs_table
+from keystrata.demo.view import Snapshot, encryptors_table, links_table, pairs_table
 from keystrata.demo.workdir import (
     DemoNode,
     build_pki,
@@ -28,6 +28,11 @@ from keystrata.demo.workdir import (
 )
 from keystrata_client import OperatorClient, TlsIdentity
 from keystrata_client.emulators import LinkEmulator, LinkSpec, LinkStats, ModelParams
+from keystrata_client.emulators.encryptors import (
+    EncryptorEmulator,
+    EncryptorPairSpec,
+    PairStats,
+)
 
 # Wide enough for the pool table when the output goes to a file or a pipe.
 console = Console(width=None if sys.stdout.isatty() else 140)
@@ -96,12 +101,19 @@ def _read_nodes(
     return snap
 
 
-def _view(snap: Snapshot, stats: dict[str, LinkStats], title: str) -> Group:
-    return Group(links_table(snap, stats, title), pairs_table(snap.relay_pairs, snap.station_pairs))
+def _view(
+    snap: Snapshot, stats: dict[str, LinkStats], enc: dict[str, PairStats], title: str
+) -> Group:
+    return Group(
+        encryptors_table(enc),
+        links_table(snap, stats, title),
+        pairs_table(snap.relay_pairs, snap.station_pairs),
+    )
 
 
 async def _watch(
     emulator: LinkEmulator,
+    encryptors: EncryptorEmulator,
     procs: NodeProcesses,
     nodes: list[DemoNode],
     identity: TlsIdentity,
@@ -115,10 +127,11 @@ async def _watch(
         elapsed = time.monotonic() - started
         snap = await asyncio.to_thread(_read_nodes, nodes, identity, procs, elapsed)
         title = _title(emulator.stats, elapsed, duration)
+        view = _view(snap, emulator.stats, encryptors.stats, title)
         if live is not None:
-            live.update(_view(snap, emulator.stats, title))
+            live.update(view)
         elif elapsed - last_print >= 5.0:
-            console.print(_view(snap, emulator.stats, title))
+            console.print(view)
             last_print = elapsed
         if snap.dead:
             return snap
@@ -134,9 +147,45 @@ def _title(stats: dict[str, LinkStats], elapsed: float, duration: float | None) 
     return f"{scenario.ORGANISATION}: link key pools ({clock}{left})"
 
 
+def _encryptor_specs(workdir: Path, nodes: list[DemoNode]) -> list[EncryptorPairSpec]:
+    """For each station pair, one encryptor pair each way (first SAE of A to first SAE
+    of B, second SAE of B to second SAE of A)."""
+    url = {n.node_id: n.url for n in nodes}
+
+    def ident(sae: str) -> TlsIdentity:
+        return TlsIdentity(
+            ca=workdir / "pki/ca.crt",
+            cert=workdir / f"pki/{sae}.crt",
+            key=workdir / f"pki/{sae}.key",
+        )
+
+    specs = []
+    for a, b in scenario.PAIRS:
+        sa, sb = scenario.station(a), scenario.station(b)
+        for master, slave, m_at, s_at in (
+            (sa.saes[0], sb.saes[0], a, b),
+            (sb.saes[1], sa.saes[1], b, a),
+        ):
+            specs.append(
+                EncryptorPairSpec(
+                    name=f"{master} -> {slave}",
+                    master_sae_id=master,
+                    slave_sae_id=slave,
+                    master_url=url[m_at],
+                    slave_url=url[s_at],
+                    master_identity=ident(master),
+                    slave_identity=ident(slave),
+                    key_size_bits=256,
+                    keys_per_rekey=2,
+                    interval_seconds=1.0,
+                )
+            )
+    return specs
+
+
 async def _run(
     workdir: Path, nodes: list[DemoNode], procs: NodeProcesses, duration: float | None
-) -> tuple[Snapshot, dict[str, LinkStats]]:
+) -> tuple[Snapshot, dict[str, LinkStats], dict[str, PairStats]]:
     identity = operator_identity(workdir)
     emulator = LinkEmulator(
         _link_specs(workdir, nodes),
@@ -144,26 +193,35 @@ async def _run(
         start=SKY_START.timestamp(),
         drain_seconds=5.0,
     )
+    encryptors = EncryptorEmulator(_encryptor_specs(workdir, nodes))
+
+    def stop() -> None:
+        emulator.stop()
+        encryptors.stop()
+
     loop = asyncio.get_running_loop()
     for sig in (signal.SIGINT, signal.SIGTERM):
-        loop.add_signal_handler(sig, emulator.stop)
+        loop.add_signal_handler(sig, stop)
     emulating = asyncio.create_task(emulator.run())
+    rekeying = asyncio.create_task(encryptors.run())
+    live = Live(console=console, refresh_per_second=2) if sys.stdout.isatty() else None
     try:
-        if sys.stdout.isatty():
-            with Live(console=console, refresh_per_second=2) as live:
-                watching = asyncio.create_task(
-                    _watch(emulator, procs, nodes, identity, duration, live)
-                )
-                await asyncio.wait({emulating, watching}, return_when=asyncio.FIRST_COMPLETED)
-        else:
-            watching = asyncio.create_task(_watch(emulator, procs, nodes, identity, duration, None))
-            await asyncio.wait({emulating, watching}, return_when=asyncio.FIRST_COMPLETED)
+        if live is not None:
+            live.start()
+        watching = asyncio.create_task(
+            _watch(emulator, encryptors, procs, nodes, identity, duration, live)
+        )
+        await asyncio.wait({emulating, watching}, return_when=asyncio.FIRST_COMPLETED)
     finally:
         watching.cancel()
-        emulator.stop()
-        stats = await emulating
+        stop()
+        link_stats = await emulating
+        enc_stats = await rekeying
+        if live is not None:
+            live.stop()
     # After the emulator drained its queues, both ends of each link must agree.
-    return await asyncio.to_thread(_read_nodes, nodes, identity, procs, 0.0), stats
+    snap = await asyncio.to_thread(_read_nodes, nodes, identity, procs, 0.0)
+    return snap, link_stats, enc_stats
 
 
 def _disagreements(snap: Snapshot) -> list[str]:
@@ -215,16 +273,21 @@ def demo(duration: float | None, workdir: Path) -> None:
         with console.status("provisioning links, pairs and principals"):
             sent = provision(workdir, nodes)
         _intro(workdir, nodes, manifest, sent)
-        snap, stats = asyncio.run(_run(workdir, nodes, procs, duration))
+        snap, stats, enc = asyncio.run(_run(workdir, nodes, procs, duration))
     finally:
         procs.stop()
-    console.print(_view(snap, stats, "final levels (emulator drained)"))
+    console.print(_view(snap, stats, enc, "final levels (emulator drained)"))
     with console.status("checking every relay record and segment in the node databases"):
         check = check_network(
             nodes[0].config, {n.node_id: n.config for n in nodes if n.role == "station"}
         )
     problems = [f"node {n} stopped unexpectedly" for n in snap.dead] + _disagreements(snap)
     problems += check.problems
+    problems += [
+        f"encryptors {name}: {st.mismatches} keys differ between the two ends"
+        for name, st in enc.items()
+        if st.mismatches
+    ]
     if problems:
         for p in problems:
             console.print(f"[red]problem:[/red] {p}")
@@ -234,7 +297,9 @@ def demo(duration: float | None, workdir: Path) -> None:
         f"[green]ok:[/green] {total:,} bits of link key reached both ends of {len(stats)} "
         f"QKD links alike; {check.relay_ops} relay operations used no link byte twice; "
         f"{check.segments_ready_both} segments are ready at both stations of their pair, "
-        "byte-identical."
+        "byte-identical; "
+        f"{sum(st.keys_delivered for st in enc.values()):,} keys reached both encryptors of "
+        f"{len(enc)} encryptor pairs, all matching."
     )
 
 

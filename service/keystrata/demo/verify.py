@@ -10,6 +10,7 @@
 from __future__ import annotations
 
 import hashlib
+import hmac
 import json
 from collections import defaultdict
 from dataclasses import dataclass, field
@@ -62,8 +63,9 @@ def _relay_records(config: Path, check: NetworkCheck) -> None:
             )
 
 
-def _station_segments(config: Path) -> dict[str, tuple[str, str, str | None]]:
-    """segment -> (pair, state, digest of its remaining key or None)."""
+def _station_segments(config: Path) -> dict[str, tuple[str, str, int, bytes | None]]:
+    """segment -> (pair, state, bytes used, its remaining key or None). The key stays in
+    this process's memory only long enough to be compared."""
     settings = load_settings(config, env={})
     db = Database.from_url(settings.database.url)
     try:
@@ -71,14 +73,26 @@ def _station_segments(config: Path) -> dict[str, tuple[str, str, str | None]]:
         out = {}
         with db.read() as s:
             for row in s.execute(select(PairSegment)).scalars():
-                digest = None
+                key = None
                 if row.sealed is not None:
                     key = ctx.keyring.open(row.sealed, segment_context(row.segment_id, row.used))
-                    digest = hashlib.sha256(key).hexdigest()
-                out[row.segment_id] = (row.pair_id, row.state, digest)
+                out[row.segment_id] = (row.pair_id, row.state, row.used, key)
         return out
     finally:
         db.dispose()
+
+
+def _same_tail(used_x: int, key_x: bytes | None, used_y: int, key_y: bytes | None) -> bool:
+    """Both stations hold the same bytes from the later of their consumption points on
+    (keys the owner allocated may not have reached the other station yet)."""
+    end_x = used_x + len(key_x or b"")
+    end_y = used_y + len(key_y or b"")
+    if end_x != end_y:
+        return False  # segments of different length
+    start = max(used_x, used_y)
+    tail_x = (key_x or b"")[start - used_x :]
+    tail_y = (key_y or b"")[start - used_y :]
+    return hmac.compare_digest(hashlib.sha256(tail_x).digest(), hashlib.sha256(tail_y).digest())
 
 
 def check_network(relay_config: Path, station_configs: dict[str, Path]) -> NetworkCheck:
@@ -90,17 +104,18 @@ def check_network(relay_config: Path, station_configs: dict[str, Path]) -> Netwo
     for i, x in enumerate(names):
         for y in names[i + 1 :]:
             for seg in seen[x].keys() & seen[y].keys():
-                (pair, sx, dx), (_, sy, dy) = seen[x][seg], seen[y][seg]
+                (pair, sx, ux, kx), (_, sy, uy, ky) = seen[x][seg], seen[y][seg]
                 if {sx, sy} == {"ready", "discarded"}:
                     check.problems.append(
                         f"segment {seg} of {pair}: ready at one station, discarded at the other"
                     )
-                if sx != "discarded" and sy != "discarded" and dx != dy:
+                live = "discarded" not in (sx, sy)
+                if live and not _same_tail(ux, kx, uy, ky):
                     check.problems.append(f"segment {seg} of {pair}: the stations' key differ")
                 if sx == sy == "ready":
                     check.segments_ready_both += 1
     for name in names:
-        for seg, (pair, state, _) in seen[name].items():
+        for seg, (pair, state, _, _) in seen[name].items():
             partners = [n for n in names if n != name and seg in seen[n]]
             if state == "ready" and not partners:
                 check.problems.append(f"segment {seg} of {pair} is ready at {name} only")

@@ -109,3 +109,31 @@ def pairs_table(
             _bits(pair["target_bits"]),
         )
     return table
+
+
+def encryptors_table(stats: dict[str, Any]) -> Table:
+    """Emulated encryptor pairs rekeying: keys delivered, matches and failures."""
+    table = Table(title="encryptor pairs rekeying (ETSI GS QKD 014)", title_justify="left")
+    for col in (
+        "encryptors",
+        "rekeys",
+        "keys delivered",
+        "bits",
+        "match",
+        "mismatch",
+        "waiting for key",
+        "errors",
+    ):
+        table.add_column(col, justify="left" if col == "encryptors" else "right", no_wrap=True)
+    for name, st in sorted(stats.items()):
+        table.add_row(
+            name,
+            f"{st.rekeys_attempted:,}",
+            f"{st.keys_delivered:,}",
+            _bits(st.bits_delivered),
+            f"{st.matches:,}",
+            f"{st.mismatches:,}",
+            f"{st.waiting:,}",
+            f"{sum(st.errors.values()):,}",
+        )
+    return table
