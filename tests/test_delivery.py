@@ -276,3 +276,26 @@ def test_uncollected_keys_expire_on_both_sides(net, api) -> None:
     assert "key.expired" in ledger_events(net.a.ctx)
     r = api(net.b)("sae-b1").get(f"/api/v1/keys/sae-a1/dec_keys?key_ID={key_id}")
     assert r.status_code == 401
+
+
+def test_kek_rotation_reseals_keys_waiting_for_slaves(net, api, tmp_path) -> None:
+    from keystrata.config import load_settings
+    from keystrata.crypto.kek import read_kek, write_new_kek
+    from keystrata.services import kek
+    from keystrata.services.node import open_node
+
+    r = api(net.a)("sae-a1").post("/api/v1/keys/sae-b1/enc_keys", json={"number": 2})
+    master = _keys(r.json())
+    net.drain()
+    ctx = net.b.ctx
+    new_path = tmp_path / "b-new.kek"
+    write_new_kek(new_path)
+    kek.rotate(ctx.db, ctx.node_id, read_kek(ctx.settings.kek.file), read_kek(new_path))
+    net.b.ctx = open_node(
+        load_settings(net.b.config_path, env={"KEYSTRATA_KEK__FILE": str(new_path)}), ctx.db
+    )
+    r = api(net.b)("sae-b1").post(
+        "/api/v1/keys/sae-a1/dec_keys", json={"key_IDs": [{"key_ID": k} for k in master]}
+    )
+    assert r.status_code == 200, r.text
+    assert _keys(r.json()) == master

@@ -145,7 +145,7 @@ def kek_rotate(config_path: Path, new_kek: Path, batch: int) -> None:
         )
         console.print(
             f"re-sealed {report.resealed_blocks} link key blocks, "
-            f"{report.resealed_segments} pair key segments and {report.resealed_meta} "
+            f"{report.resealed_segments} pair key segments and keys, {report.resealed_meta} "
             f"node secrets ({report.already_done} were already done). Now set "
             f'[kek] file = "{new_kek}" in {config_path}.'
         )

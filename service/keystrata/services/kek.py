@@ -22,13 +22,20 @@ from keystrata.errors import StartupRefused
 from keystrata.services import ledger
 from keystrata.services.node import ROTATION_MARK, check_kek
 from keystrata.storage.db import Database
-from keystrata.storage.models import LinkBlock, NodeMeta, PairSegment
-from keystrata.storage.sealed import SEALED_META, block_context, meta_context, segment_context
+from keystrata.storage.models import KeyAlloc, LinkBlock, NodeMeta, PairSegment
+from keystrata.storage.sealed import (
+    SEALED_META,
+    block_context,
+    key_context,
+    meta_context,
+    segment_context,
+)
 
 
 @dataclass(frozen=True)
 class RotationReport:
     resealed_blocks: int
+    #: Pair key: segments, and keys waiting at a slave's station.
     resealed_segments: int
     resealed_meta: int
     already_done: int
@@ -90,7 +97,18 @@ def rotate(
         key=PairSegment.segment_id,
         context=lambda r: segment_context(r.segment_id, r.used),
     )
-    done_before += done_segments
+    keys, done_keys = _reseal_all(
+        db,
+        both,
+        target,
+        batch,
+        progress,
+        model=KeyAlloc,
+        key=KeyAlloc.key_id,
+        context=lambda r: key_context(r.key_id),
+    )
+    done_before += done_segments + done_keys
+    segments += keys  # keys waiting for their slaves are pair key too
     meta = 0
     with db.write() as s:
         for name in SEALED_META:
