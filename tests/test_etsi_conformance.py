@@ -314,4 +314,3 @@ def test_openapi_document_has_the_standards_shapes(station) -> None:
     for path in ("/api/v1/keys/{slave_SAE_ID}/enc_keys", "/api/v1/keys/{master_SAE_ID}/dec_keys"):
         for op in paths[path].values():
             assert {"200", "400", "401", "503"} <= set(op["responses"])
-
