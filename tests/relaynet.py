@@ -256,8 +256,18 @@ SAES = {"sae-a1": "station-a", "sae-a2": "station-a", "sae-b1": "station-b", "sa
 
 
 def provision_saes(net: RelayNet) -> None:
-    """The test SAEs at both stations (each station knows its partner's SAEs)."""
+    """The test SAEs at both stations (each station knows its partner's SAEs), and the
+    test operator and auditor."""
     for node in (net.a, net.b):
+        for pid, role in (("ops-ada", "operator"), ("aud-ben", "auditor")):
+            registry.create(
+                node.ctx,
+                Kind.PRINCIPALS,
+                PrincipalSpec.model_validate(
+                    {"principal_id": pid, "role": role, "cert_subject": pid}
+                ),
+                actor="test",
+            )
         for sae, station in SAES.items():
             registry.create(
                 node.ctx,

@@ -299,3 +299,22 @@ def test_kek_rotation_reseals_keys_waiting_for_slaves(net, api, tmp_path) -> Non
     )
     assert r.status_code == 200, r.text
     assert _keys(r.json()) == master
+
+
+def test_accounting_per_pair_and_sae(net, api) -> None:
+    a1, b1 = api(net.a)("sae-a1"), api(net.b)("sae-b1")
+    master = _keys(a1.post("/api/v1/keys/sae-b1/enc_keys", json={"number": 3}).json())
+    net.drain()
+    first = next(iter(master))
+    assert b1.get(f"/api/v1/keys/sae-a1/dec_keys?key_ID={first}").status_code == 200
+    assert b1.get(f"/api/v1/keys/sae-a1/dec_keys?key_ID={first}").status_code == 401
+    at_a = api(net.a)("aud-ben").get("/api/v1/deliveries").json()
+    at_b = api(net.b)("ops-ada").get("/api/v1/deliveries").json()
+    (pa,) = at_a["pairs"]
+    assert pa["to_masters"] == {"keys": 3, "bits": 768}
+    (pb,) = at_b["pairs"]
+    assert pb["to_slaves"] == {"keys": 1, "bits": 256}
+    assert pb["waiting"] == {"keys": 2, "bits": 512}
+    sae_b = {s["sae_id"]: s for s in at_b["saes"]}
+    assert sae_b["sae-b1"]["as_slave"] == {"keys": 1, "bits": 256}
+    assert sae_b["sae-b1"]["refused"] == 1

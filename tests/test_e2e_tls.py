@@ -179,5 +179,8 @@ def test_operator_cli_against_a_running_node(station_process, pki) -> None:
     ]
     table = run_cli("pairs", env=env).stdout
     assert "p1" in table and "station-b" in table
+    accounting = json.loads(run_cli("deliveries", "--json", env=env).stdout)
+    assert accounting["node_id"] == "station-a" and accounting["pairs"] == []
+    assert "key delivery at station-a" in run_cli("deliveries", env=env).stdout
     refused = run_cli("registry", "create", "pairs", "--set", "pair_id=p2", env=env, check=False)
     assert refused.returncode == 1 and "400" in refused.stderr

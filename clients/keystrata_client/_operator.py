@@ -183,3 +183,9 @@ class OperatorClient:
         and key waiting for confirmation.
         """
         return self._call("GET", "/api/v1/pairs")
+
+    def deliveries(self) -> dict[str, Any]:
+        """Return key delivery accounting at a station: ``{"node_id", "pairs": [...],
+        "saes": [...]}`` with keys and bits to masters, to slaves, waiting, expired, and
+        refused requests per SAE."""
+        return self._call("GET", "/api/v1/deliveries")

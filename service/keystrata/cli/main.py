@@ -8,7 +8,7 @@ from keystrata import __version__
 from keystrata.cli.keys_cmd import keys
 from keystrata.cli.node_cmd import db, kek, node, serve
 from keystrata.cli.pki_cmd import pki
-from keystrata.cli.remote_cmd import pairs, pools, registry
+from keystrata.cli.remote_cmd import deliveries, pairs, pools, registry
 from keystrata.demo.main import demo
 
 
@@ -18,7 +18,7 @@ def cli() -> None:
     """keystrata: key manager for QKD networks with an airborne trusted relay."""
 
 
-for command in (node, serve, db, kek, pki, registry, pools, pairs, keys, demo):
+for command in (node, serve, db, kek, pki, registry, pools, pairs, deliveries, keys, demo):
     cli.add_command(command)
 
 

@@ -305,3 +305,42 @@ def pairs(watch: float | None, url: str, ca: Path, cert: Path, key: Path, as_jso
                 while True:
                     time.sleep(watch)
                     live.update(pairs_table(client.pairs()))
+
+
+@click.command("deliveries")
+@connection_options
+def deliveries(url: str, ca: Path, cert: Path, key: Path, as_json: bool) -> None:
+    """Show key delivery accounting at a station, per pair and per SAE."""
+    with operator(url, ca, cert, key) as client:
+        answer = client.deliveries()
+    if as_json:
+        print_json(answer)
+        return
+
+    def cell(c: dict[str, int]) -> str:
+        return f"{c['keys']:,} ({c['bits']:,} bit)"
+
+    pairs = Table(title=f"key delivery at {answer['node_id']}: pairs")
+    for col in ("pair", "to masters", "to slaves", "waiting", "expired"):
+        pairs.add_column(col, justify="left" if col == "pair" else "right")
+    for p in answer["pairs"]:
+        pairs.add_row(
+            p["pair_id"],
+            cell(p["to_masters"]),
+            cell(p["to_slaves"]),
+            cell(p["waiting"]),
+            cell(p["expired"]),
+        )
+    console.print(pairs)
+    saes = Table(title="SAEs")
+    for col in ("SAE", "as master", "as slave", "expired", "refused"):
+        saes.add_column(col, justify="left" if col == "SAE" else "right")
+    for s in answer["saes"]:
+        saes.add_row(
+            s["sae_id"],
+            cell(s["as_master"]),
+            cell(s["as_slave"]),
+            cell(s["expired"]),
+            f"{s['refused']:,}",
+        )
+    console.print(saes)

@@ -10,7 +10,7 @@ from fastapi import APIRouter, Depends, Request
 from keystrata.api.identity import admit
 from keystrata.config import Role
 from keystrata.domain.registry import PrincipalRole
-from keystrata.services import buffers
+from keystrata.services import accounting, buffers
 from keystrata.services.context import NodeContext
 from keystrata.services.principals import Caller
 
@@ -32,3 +32,11 @@ def list_pair_buffers(request: Request, _: Reader) -> dict[str, Any]:
             "pairs": [asdict(v) for v in buffers.relay_view(ctx)],
         }
     return {"node_id": ctx.node_id, "role": "station", "pairs": buffers.station_view(ctx)}
+
+
+@router.get("/deliveries", summary="Key delivery accounting", operation_id="deliveries")
+def deliveries(request: Request, _: Reader) -> dict[str, Any]:
+    """Per pair and per SAE at this station: keys and bits handed to masters, fetched by
+    slaves, waiting, expired; and refused requests per SAE."""
+    ctx: NodeContext = request.app.state.ctx
+    return accounting.deliveries(ctx)
