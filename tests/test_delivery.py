@@ -318,3 +318,31 @@ def test_accounting_per_pair_and_sae(net, api) -> None:
     sae_b = {s["sae_id"]: s for s in at_b["saes"]}
     assert sae_b["sae-b1"]["as_slave"] == {"keys": 1, "bits": 256}
     assert sae_b["sae-b1"]["refused"] == 1
+
+
+def test_key_multicast_to_additional_slaves(net, api) -> None:
+    a1 = api(net.a)("sae-a1")
+    r = a1.post(
+        "/api/v1/keys/sae-b1/enc_keys", json={"number": 1, "additional_slave_SAE_IDs": ["sae-b2"]}
+    )
+    assert r.status_code == 200, r.text
+    master = _keys(r.json())
+    (key_id,) = master
+    net.drain()
+    for slave in ("sae-b1", "sae-b2"):
+        r = api(net.b)(slave).get(f"/api/v1/keys/sae-a1/dec_keys?key_ID={key_id}")
+        assert r.status_code == 200, (slave, r.text)
+        assert _keys(r.json()) == master
+    # Each slave once; after both, the key is destroyed at station B.
+    assert (
+        api(net.b)("sae-b1").get(f"/api/v1/keys/sae-a1/dec_keys?key_ID={key_id}").status_code == 401
+    )
+
+    from keystrata.storage.models import KeyAlloc
+
+    with net.b.ctx.db.read() as s:
+        row = s.get(KeyAlloc, key_id)
+        assert row.state == "delivered" and row.sealed is None
+    # A slave at another station than the first slave's is refused (401).
+    r = a1.post("/api/v1/keys/sae-b1/enc_keys", json={"additional_slave_SAE_IDs": ["sae-a2"]})
+    assert r.status_code == 401

@@ -314,3 +314,63 @@ def test_openapi_document_has_the_standards_shapes(station) -> None:
     for path in ("/api/v1/keys/{slave_SAE_ID}/enc_keys", "/api/v1/keys/{master_SAE_ID}/dec_keys"):
         for op in paths[path].values():
             assert {"200", "400", "401", "503"} <= set(op["responses"])
+
+
+def test_only_the_named_slave_fetches_and_the_cli_works(network, pki) -> None:
+    """Over real processes: a third SAE, or the master itself, cannot fetch the slave's
+    key; the `keystrata keys` commands drive the same calls (printing digests only)."""
+    from processes import run_cli
+
+    def env(station: str, sae: str) -> dict[str, str]:
+        return {
+            "KEYSTRATA_URL": network[station],
+            "KEYSTRATA_CA": str(pki.ca),
+            "KEYSTRATA_CERT": str(pki.cert(sae)),
+            "KEYSTRATA_KEY": str(pki.key(sae)),
+        }
+
+    got = json.loads(
+        run_cli(
+            "keys",
+            "get",
+            "sae-b1",
+            "--number",
+            "1",
+            "--size",
+            "128",
+            "--json",
+            env=env("station-a", "sae-a1"),
+        ).stdout
+    )
+    key_ids = _find_key_ids(got)
+    assert len(key_ids) == 1
+    (key_id,) = key_ids
+    for intruder in ("sae-b2", "sae-a1"):
+        st = Station(network["station-b"], pki, intruder, "httpx")
+        status, body, _ = st.call("GET", f"/api/v1/keys/sae-a1/dec_keys?key_ID={key_id}")
+        assert status == 401, (intruder, body)
+    deadline = time.monotonic() + 20
+    while True:
+        out = run_cli(
+            "keys", "get-by-id", "sae-a1", key_id, env=env("station-b", "sae-b1"), check=False
+        )
+        if out.returncode == 0 or time.monotonic() > deadline:
+            break
+        time.sleep(0.3)
+    assert out.returncode == 0, out.stderr
+    assert key_id in out.stdout
+
+
+def _find_key_ids(obj: Any) -> list[str]:
+    """Key IDs anywhere in the CLI's JSON answer."""
+    found: list[str] = []
+    if isinstance(obj, dict):
+        for k, v in obj.items():
+            if k in ("key_ID", "key_id") and isinstance(v, str):
+                found.append(v)
+            else:
+                found += _find_key_ids(v)
+    elif isinstance(obj, list):
+        for v in obj:
+            found += _find_key_ids(v)
+    return found
