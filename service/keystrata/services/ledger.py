@@ -7,11 +7,13 @@ from collections.abc import Mapping
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import insert, update
+from sqlalchemy import insert, select, update
 from sqlalchemy.orm import Session
 
+from keystrata.domain import merkle
+from keystrata.domain.frontier import Frontier
 from keystrata.domain.ledger import Event, encode_entry
-from keystrata.storage.models import LedgerEntry, LedgerHead
+from keystrata.storage.models import LedgerEntry, LedgerHead, LedgerNode
 
 
 def append(
@@ -19,18 +21,52 @@ def append(
 ) -> int:
     """Append one entry in the session's transaction and return its index.
 
-    The update of the single ``ledger_head`` row takes its lock until commit, so
-    concurrent appenders get consecutive indexes with no gaps.
+    The single ``ledger_head`` row is locked until commit, so concurrent appenders get
+    consecutive indexes with no gaps. The entry's Merkle leaf and every perfect subtree
+    it completes (RFC 9162 section 2.1) are written in the same transaction.
     """
-    size = session.execute(
+    # The row lock (and SQLite's write lock) serialises appenders until commit.
+    index, blob = session.execute(
+        select(LedgerHead.size, LedgerHead.frontier).where(LedgerHead.id == 1).with_for_update()
+    ).one()
+    entry = encode_entry(index=index, event=event, node_id=node_id, at=at, fields=fields)
+    edge = Frontier(index, blob)
+    nodes = merkle.append(edge, index, [merkle.leaf_hash(entry)])
+    session.execute(
         update(LedgerHead)
         .where(LedgerHead.id == 1)
-        .values(size=LedgerHead.size + 1)
-        .returning(LedgerHead.size)
-    ).scalar_one()
-    index = size - 1
-    entry = encode_entry(index=index, event=event, node_id=node_id, at=at, fields=fields)
+        .values(size=index + 1, frontier=edge.advance(nodes, index + 1))
+    )
     session.execute(
         insert(LedgerEntry).values(idx=index, recorded_at=at, event=str(event), entry=entry)
     )
+    session.execute(
+        insert(LedgerNode), [{"level": lv, "idx": ix, "hash": h} for lv, ix, h in nodes]
+    )
     return int(index)
+
+
+class StoredTree:
+    """The ledger's Merkle tree as stored: perfect subtrees in ``ledger_node``."""
+
+    def __init__(self, session: Session) -> None:
+        self.session = session
+
+    def get(self, level: int, index: int) -> bytes:
+        row = self.session.get(LedgerNode, (level, index))
+        if row is None:
+            raise KeyError((level, index))
+        return row.hash
+
+    def head(self) -> tuple[int, bytes]:
+        """(size, root hash) of the whole ledger, from the stored right edge."""
+        size, blob = self.session.execute(
+            select(LedgerHead.size, LedgerHead.frontier).where(LedgerHead.id == 1)
+        ).one()
+        return int(size), merkle.root(Frontier(int(size), blob), int(size))
+
+    def inclusion_proof(self, index: int, size: int) -> list[bytes]:
+        return merkle.inclusion_proof(self, index, size)
+
+    def consistency_proof(self, old_size: int, new_size: int) -> list[bytes]:
+        return merkle.consistency_proof(self, old_size, new_size)

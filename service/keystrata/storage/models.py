@@ -218,6 +218,19 @@ class LedgerHead(Base):
     __table_args__ = (CheckConstraint("id = 1", name="single_row"),)
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     size: Mapped[int] = mapped_column(BigInteger)
+    frontier: Mapped[bytes | None] = mapped_column(
+        LargeBinary, comment="hashes of the perfect subtrees decomposing [0, size)"
+    )
+
+
+class LedgerNode(Base):
+    """A perfect subtree of the ledger's Merkle tree (RFC 9162): the hash of leaves
+    [index * 2**level, (index + 1) * 2**level). Written with the entry completing it."""
+
+    __tablename__ = "ledger_node"
+    level: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
+    idx: Mapped[int] = mapped_column(BigInteger, primary_key=True, autoincrement=False)
+    hash: Mapped[bytes] = mapped_column(LargeBinary(32))
 
 
 class LedgerEntry(Base):
