@@ -143,6 +143,14 @@ class OutboxSection(_Section):
     max_backoff_seconds: Annotated[float, Field(gt=0, le=3600)] = 30.0
 
 
+class LedgerSection(_Section):
+    """When the node signs a checkpoint of its ledger: after this many seconds or this
+    many new entries, whichever comes first (and only if there are new entries)."""
+
+    checkpoint_seconds: Annotated[float, Field(gt=0, le=86_400)] = 60.0
+    checkpoint_entries: Annotated[int, Field(ge=1, le=10_000_000)] = 1000
+
+
 class Settings(_Section):
     node: NodeSection
     server: ServerSection = ServerSection()
@@ -154,6 +162,7 @@ class Settings(_Section):
     relay: RelaySection = RelaySection()
     segments: SegmentsSection = SegmentsSection()
     outbox: OutboxSection = OutboxSection()
+    ledger: LedgerSection = LedgerSection()
     #: Folder of the TOML file; relative paths above were resolved against it.
     base_dir: Path = Path(".")
 

@@ -12,7 +12,7 @@ from fastapi.routing import APIRoute
 from keystrata import __version__
 from keystrata.api import errors
 from keystrata.api.limits import BodyLimit
-from keystrata.api.routes import etsi, links, node, pairs, peer, registry
+from keystrata.api.routes import audit, etsi, links, node, pairs, peer, registry
 from keystrata.services.context import NodeContext
 from keystrata.workers.peer_client import PeerClient
 from keystrata.workers.runner import Background
@@ -28,6 +28,7 @@ ROUTERS: tuple[APIRouter, ...] = (
     pairs.router,
     peer.router,
     etsi.router,
+    audit.router,
 )
 
 

@@ -233,6 +233,18 @@ class LedgerNode(Base):
     hash: Mapped[bytes] = mapped_column(LargeBinary(32))
 
 
+class LedgerCheckpoint(Base):
+    """A signed tree head: ``<origin>\n<tree size>\n<base64 root hash>\n`` (the body of
+    a C2SP tlog checkpoint) signed with the node's Ed25519 ledger key."""
+
+    __tablename__ = "ledger_checkpoint"
+    tree_size: Mapped[int] = mapped_column(BigInteger, primary_key=True, autoincrement=False)
+    root_hash: Mapped[bytes] = mapped_column(LargeBinary(32))
+    signed_text: Mapped[str] = mapped_column(Text)
+    signature: Mapped[bytes] = mapped_column(LargeBinary(64))
+    signed_at: Mapped[datetime]
+
+
 class LedgerEntry(Base):
     """An audit entry: RFC 8785 canonical JSON, written in the transaction it records."""
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import os
 import socket
@@ -9,8 +10,10 @@ import threading
 from collections.abc import Callable
 from datetime import timedelta
 
+from sqlalchemy.exc import IntegrityError
+
 from keystrata.config import Role
-from keystrata.services import delivery, leases, segments
+from keystrata.services import checkpoints, delivery, leases, segments
 from keystrata.services.context import NodeContext
 from keystrata.workers import outbox, scheduler
 from keystrata.workers.peer_client import PeerClient
@@ -32,7 +35,8 @@ class Background:
 
     def start(self) -> None:
         loops: list[tuple[str, Callable[[], object], float]] = [
-            ("outbox", self._outbox, self.ctx.settings.outbox.idle_seconds)
+            ("outbox", self._outbox, self.ctx.settings.outbox.idle_seconds),
+            ("checkpoints", self._checkpoint, 1.0),
         ]
         if self.ctx.role is Role.RELAY:
             loops.append(("scheduler", self._schedule, self.ctx.settings.relay.cycle_seconds))
@@ -76,6 +80,13 @@ class Background:
         if report.made:
             log.info("scheduler: made %d segments", len(report.made))
         return False  # one cycle per cycle_seconds
+
+    def _checkpoint(self) -> bool:
+        # Two workers signing the same tree size would collide on its primary key; the
+        # loser's transaction rolls back and the loop carries on.
+        with contextlib.suppress(IntegrityError):
+            checkpoints.sign_now(self.ctx)
+        return False
 
     def _expire(self) -> bool:
         timeout = timedelta(seconds=self.ctx.settings.segments.confirm_timeout_seconds)

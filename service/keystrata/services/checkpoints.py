@@ -1,0 +1,123 @@
+"""Signed checkpoints of the ledger: the tree size and root hash, signed with the node's
+Ed25519 ledger key (RFC 8032). The signed text is the body of a C2SP tlog checkpoint::
+
+    <origin>\\n<tree size>\\n<base64 root hash>\\n
+
+with the node ID as origin. Checkpoints are kept; auditors fetch them with the public key.
+"""
+
+from __future__ import annotations
+
+import base64
+from dataclasses import dataclass
+from datetime import datetime, timedelta
+from typing import Any
+
+from sqlalchemy import func, select
+
+from keystrata.crypto.hazmat import public_key_of, sign
+from keystrata.services.context import NodeContext
+from keystrata.services.ledger import StoredTree
+from keystrata.storage.models import LedgerCheckpoint, NodeMeta
+from keystrata.storage.sealed import meta_context
+
+
+def signed_text(origin: str, size: int, root: bytes) -> str:
+    return f"{origin}\n{size}\n{base64.b64encode(root).decode()}\n"
+
+
+def _signing_key(ctx: NodeContext) -> bytes:
+    with ctx.db.read() as s:
+        sealed = s.execute(
+            select(NodeMeta.value).where(NodeMeta.name == "ledger_signing_key")
+        ).scalar_one()
+    return ctx.keyring.open(sealed, meta_context("ledger_signing_key"))
+
+
+def public_key(ctx: NodeContext) -> bytes:
+    """The raw 32-byte Ed25519 public key checkpoints verify under."""
+    return public_key_of(_signing_key(ctx))
+
+
+@dataclass(frozen=True)
+class Checkpoint:
+    origin: str
+    tree_size: int
+    root_hash: bytes
+    signed_text: str
+    signature: bytes
+    signed_at: datetime
+
+    def to_json(self, public: bytes) -> dict[str, Any]:
+        return {
+            "origin": self.origin,
+            "tree_size": self.tree_size,
+            "root_hash": base64.b64encode(self.root_hash).decode(),
+            "signed_text": self.signed_text,
+            "signature": base64.b64encode(self.signature).decode(),
+            "public_key": base64.b64encode(public).decode(),
+            "signed_at": self.signed_at.isoformat(),
+        }
+
+
+def _from_row(ctx: NodeContext, row: LedgerCheckpoint) -> Checkpoint:
+    return Checkpoint(
+        ctx.node_id, row.tree_size, row.root_hash, row.signed_text, row.signature, row.signed_at
+    )
+
+
+def sign_now(ctx: NodeContext, *, force: bool = False) -> Checkpoint | None:
+    """Sign the current tree head if it is due (or ``force``) and has new entries.
+
+    Returns the new checkpoint, or None when nothing was due.
+    """
+    cfg = ctx.settings.ledger
+    key = _signing_key(ctx)
+    now = ctx.clock.now()
+    with ctx.db.write() as s:
+        size, root = StoredTree(s).head()
+        last = s.execute(
+            select(LedgerCheckpoint).order_by(LedgerCheckpoint.tree_size.desc()).limit(1)
+        ).scalar()
+        if last is not None and last.tree_size >= size:
+            return None
+        due = (
+            force
+            or last is None
+            or size - last.tree_size >= cfg.checkpoint_entries
+            or now - last.signed_at >= timedelta(seconds=cfg.checkpoint_seconds)
+        )
+        if not due or size == 0:
+            return None
+        text = signed_text(ctx.node_id, size, root)
+        row = LedgerCheckpoint(
+            tree_size=size,
+            root_hash=root,
+            signed_text=text,
+            signature=sign(key, text.encode()),
+            signed_at=now,
+        )
+        s.add(row)
+        return _from_row(ctx, row)
+
+
+def latest(ctx: NodeContext) -> Checkpoint | None:
+    with ctx.db.read() as s:
+        row = s.execute(
+            select(LedgerCheckpoint).order_by(LedgerCheckpoint.tree_size.desc()).limit(1)
+        ).scalar()
+        return None if row is None else _from_row(ctx, row)
+
+
+def history(ctx: NodeContext, *, limit: int = 100, before: int | None = None) -> list[Checkpoint]:
+    """Checkpoints, newest first; ``before`` pages back by tree size."""
+    with ctx.db.read() as s:
+        q = select(LedgerCheckpoint).order_by(LedgerCheckpoint.tree_size.desc()).limit(limit)
+        if before is not None:
+            q = q.where(LedgerCheckpoint.tree_size < before)
+        return [_from_row(ctx, r) for r in s.execute(q).scalars()]
+
+
+def count(ctx: NodeContext) -> int:
+    with ctx.db.read() as s:
+        return int(s.execute(select(func.count()).select_from(LedgerCheckpoint)).scalar_one())
