@@ -346,3 +346,43 @@ def test_key_multicast_to_additional_slaves(net, api) -> None:
     # A slave at another station than the first slave's is refused (401).
     r = a1.post("/api/v1/keys/sae-b1/enc_keys", json={"additional_slave_SAE_IDs": ["sae-a2"]})
     assert r.status_code == 401
+
+
+def _break_ledger(node) -> None:
+    """Make every new ledger entry fail to be written, as a full disk or a revoked
+    grant would (a trigger that refuses inserts, on each backend)."""
+    from sqlalchemy import text
+
+    with node.ctx.db.write() as s:
+        if node.ctx.db.backend == "sqlite":
+            s.execute(
+                text(
+                    "CREATE TRIGGER ledger_refuses BEFORE INSERT ON ledger_entry "
+                    "BEGIN SELECT RAISE(ABORT, 'ledger is read-only'); END"
+                )
+            )
+        else:
+            s.execute(
+                text(
+                    "CREATE FUNCTION ledger_refuses() RETURNS trigger AS $$ BEGIN "
+                    "RAISE EXCEPTION 'ledger is read-only'; END $$ LANGUAGE plpgsql"
+                )
+            )
+            s.execute(
+                text(
+                    "CREATE TRIGGER ledger_refuses BEFORE INSERT ON ledger_entry "
+                    "FOR EACH ROW EXECUTE FUNCTION ledger_refuses()"
+                )
+            )
+
+
+def test_when_the_ledger_cannot_be_written_no_key_leaves(net, api) -> None:
+    """Fail closed (design invariant 5): Get key answers 503 with the standard's error
+    object, hands out nothing, and changes nothing."""
+    _break_ledger(net.a)
+    before = snapshot(net.a.ctx)
+    r = api(net.a)("sae-a1").post("/api/v1/keys/sae-b1/enc_keys", json={"number": 2})
+    assert r.status_code == 503, r.text
+    assert set(r.json()) <= {"message", "details"} and "keys" not in r.json()
+    assert "ledger" in r.json()["message"]
+    assert snapshot(net.a.ctx) == before

@@ -7,12 +7,13 @@ from collections.abc import Mapping
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import insert, select, update
+from sqlalchemy import exc, insert, select, update
 from sqlalchemy.orm import Session
 
 from keystrata.domain import merkle
 from keystrata.domain.frontier import Frontier
 from keystrata.domain.ledger import Event, encode_entry
+from keystrata.errors import Unavailable
 from keystrata.storage.models import LedgerEntry, LedgerHead, LedgerNode
 
 
@@ -24,7 +25,25 @@ def append(
     The single ``ledger_head`` row is locked until commit, so concurrent appenders get
     consecutive indexes with no gaps. The entry's Merkle leaf and every perfect subtree
     it completes (RFC 9162 section 2.1) are written in the same transaction.
+
+    Raises:
+        Unavailable: the ledger cannot be written. The caller's transaction then rolls
+            back, so the change the entry records does not happen either (fail closed).
     """
+    try:
+        return _append(session, node_id=node_id, at=at, event=event, fields=fields)
+    except (
+        exc.IntegrityError,
+        exc.OperationalError,
+        exc.ProgrammingError,
+        exc.InternalError,
+    ) as err:
+        raise Unavailable("the audit ledger cannot be written; nothing was changed") from err
+
+
+def _append(
+    session: Session, *, node_id: str, at: datetime, event: Event, fields: Mapping[str, Any]
+) -> int:
     # The row lock (and SQLite's write lock) serialises appenders until commit.
     index, blob = session.execute(
         select(LedgerHead.size, LedgerHead.frontier).where(LedgerHead.id == 1).with_for_update()
