@@ -11,6 +11,7 @@ import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import httpx
 
@@ -141,3 +142,100 @@ def stop_all(nodes: list[NodeProcess]) -> None:
         node.send(signal.SIGTERM)
     for node in nodes:
         node.stop()
+
+
+#: The relay network of the end-to-end tests: a relay and two stations, one link each.
+NETWORK = {"relay-1": "relay", "station-a": "station", "station-b": "station"}
+NETWORK_LINKS = {"station-a": "link-a", "station-b": "link-b"}
+SAES = {"sae-a1": "station-a", "sae-a2": "station-a", "sae-b1": "station-b", "sae-b2": "station-b"}
+
+
+def start_network(
+    folder: Path,
+    pki: PkiFiles,
+    db_urls: dict[str, str],
+    *,
+    extra: str = "",
+    policy: dict[str, Any] | None = None,
+    saes: bool = False,
+    relay_workers: int = 1,
+) -> dict[str, NodeProcess]:
+    """Start relay-1, station-a and station-b as processes, each knowing the others as
+    peers, and provision them through the operator API: nodes, peers, links, QKD
+    modules, pair-ab (with ``policy``) and, if asked, the test SAEs at the stations."""
+    from keystrata_client import OperatorClient, TlsIdentity
+
+    ports = {n: free_port() for n in NETWORK}
+    nodes = {}
+    for node_id, role in NETWORK.items():
+        peers = "".join(
+            f'\n[[peers]]\nid = "{p}"\nurl = "https://127.0.0.1:{port}"\n'
+            for p, port in ports.items()
+            if p != node_id
+        )
+        nodes[node_id] = prepare_node(
+            folder / node_id,
+            pki,
+            node_id,
+            role,
+            db_urls[node_id],
+            port=ports[node_id],
+            extra=extra + peers,
+        )
+    if relay_workers > 1:
+        relay = nodes["relay-1"].config
+        relay.write_text(
+            relay.read_text().replace("[server]\n", f"[server]\nworkers = {relay_workers}\n", 1)
+        )
+    start_all(list(nodes.values()), pki)
+    operator = TlsIdentity(ca=pki.ca, cert=pki.cert("ops-ada"), key=pki.key("ops-ada"))
+    for node in nodes.values():
+        with OperatorClient(node.url, operator) as ops:
+            for other, role in NETWORK.items():
+                if other == node.node_id:
+                    continue
+                ops.create("nodes", {"node_id": other, "role": role})
+                ops.create(
+                    "principals",
+                    {
+                        "principal_id": f"peer-{other}",
+                        "role": "peer",
+                        "cert_subject": other,
+                        "node_id": other,
+                    },
+                )
+            for station, link in NETWORK_LINKS.items():
+                if node.node_id in ("relay-1", station):
+                    ops.create(
+                        "links", {"link_id": link, "relay_id": "relay-1", "station_id": station}
+                    )
+                    ops.create(
+                        "principals",
+                        {
+                            "principal_id": f"mod-{link}",
+                            "role": "qkd-module",
+                            "cert_subject": f"mod-{link}",
+                            "link_id": link,
+                        },
+                    )
+            ops.create(
+                "pairs",
+                {
+                    "pair_id": "pair-ab",
+                    "relay_id": "relay-1",
+                    "stations": ["station-a", "station-b"],
+                    "policy": policy or {},
+                },
+            )
+            if saes and node.node_id != "relay-1":
+                for sae, station in SAES.items():
+                    ops.create(
+                        "principals",
+                        {
+                            "principal_id": sae,
+                            "role": "sae",
+                            "cert_subject": sae,
+                            "station_id": station,
+                        },
+                    )
+    return nodes

@@ -31,13 +31,13 @@ from keystrata.storage.models import LinkBlock, PairSegment
 from keystrata.storage.sealed import block_context
 from keystrata_client import LinkBlock as Block
 from keystrata_client import ModuleClient, OperatorClient, TlsIdentity
-from processes import NodeProcess, free_port, prepare_node, start_all, stop_all
+from processes import NETWORK as NODES
+from processes import NETWORK_LINKS as LINKS
+from processes import NodeProcess, start_network, stop_all
 
 pytestmark = pytest.mark.e2e
 
 KILLS = int(os.environ.get("KEYSTRATA_KILLS", "6"))
-NODES = {"relay-1": "relay", "station-a": "station", "station-b": "station"}
-LINKS = {"station-a": "link-a", "station-b": "link-b"}
 RELAY_SETTINGS = """
 [relay]
 segment_bytes = 6000
@@ -58,66 +58,13 @@ def ident(pki: PkiFiles, name: str) -> TlsIdentity:
 
 
 def _network(tmp_path: Path, pki: PkiFiles, db_factory) -> dict[str, NodeProcess]:
-    ports = {n: free_port() for n in NODES}
-    nodes = {}
-    for node_id, role in NODES.items():
-        peers = "".join(
-            f'\n[[peers]]\nid = "{p}"\nurl = "https://127.0.0.1:{port}"\n'
-            for p, port in ports.items()
-            if p != node_id
-        )
-        nodes[node_id] = prepare_node(
-            tmp_path / node_id,
-            pki,
-            node_id,
-            role,
-            db_factory(),
-            port=ports[node_id],
-            extra=RELAY_SETTINGS + peers,
-        )
-    start_all(list(nodes.values()), pki)
-    for node in nodes.values():
-        with OperatorClient(node.url, ident(pki, "ops-ada")) as ops:
-            for other, role in NODES.items():
-                if other != node.node_id:
-                    ops.create("nodes", {"node_id": other, "role": role})
-                    ops.create(
-                        "principals",
-                        {
-                            "principal_id": f"peer-{other}",
-                            "role": "peer",
-                            "cert_subject": other,
-                            "node_id": other,
-                        },
-                    )
-            for station, link in LINKS.items():
-                if node.node_id in ("relay-1", station):
-                    ops.create(
-                        "links", {"link_id": link, "relay_id": "relay-1", "station_id": station}
-                    )
-                    ops.create(
-                        "principals",
-                        {
-                            "principal_id": f"mod-{link}",
-                            "role": "qkd-module",
-                            "cert_subject": f"mod-{link}",
-                            "link_id": link,
-                        },
-                    )
-            ops.create(
-                "pairs",
-                {
-                    "pair_id": "pair-ab",
-                    "relay_id": "relay-1",
-                    "stations": ["station-a", "station-b"],
-                    "policy": {
-                        "buffer_min_bits": 0,
-                        "buffer_target_bits": 2**40,
-                        "buffer_max_bits": 2**40,
-                    },
-                },
-            )
-    return nodes
+    return start_network(
+        tmp_path,
+        pki,
+        {n: db_factory() for n in NODES},
+        extra=RELAY_SETTINGS,
+        policy={"buffer_min_bits": 0, "buffer_target_bits": 2**40, "buffer_max_bits": 2**40},
+    )
 
 
 def _feed(nodes: dict[str, NodeProcess], pki: PkiFiles, blocks_per_link: int) -> None:

@@ -24,7 +24,6 @@ import httpx
 import pytest
 
 from conftest import PkiFiles
-from keystrata_client import OperatorClient
 
 pytestmark = pytest.mark.e2e
 
@@ -95,82 +94,15 @@ class Station:
 @pytest.fixture(scope="module")
 def network(tmp_path_factory, pki) -> Iterator[dict[str, str]]:
     """A relay and two stations (SQLite), with ready pair key; returns node URLs."""
-    from processes import free_port, prepare_node, start_all, stop_all
-    from test_crash import LINKS, NODES, _feed, ident
+    from processes import NETWORK, start_network, stop_all
+    from test_crash import _feed
 
     base = tmp_path_factory.mktemp("etsi")
-    ports = {n: free_port() for n in NODES}
-    nodes = {}
-    for node_id, role in NODES.items():
-        peers = "".join(
-            f'\n[[peers]]\nid = "{p}"\nurl = "https://127.0.0.1:{port}"\n'
-            for p, port in ports.items()
-            if p != node_id
-        )
-        extra = "\n[relay]\nsegment_bytes = 4096\nmin_segment_bytes = 512\ncycle_seconds = 0.1\n"
-        nodes[node_id] = prepare_node(
-            base / node_id,
-            pki,
-            node_id,
-            role,
-            f"sqlite:///{base}/{node_id}.db",
-            port=ports[node_id],
-            extra=extra + peers,
-        )
-    start_all(list(nodes.values()), pki)
+    extra = "\n[relay]\nsegment_bytes = 4096\nmin_segment_bytes = 512\ncycle_seconds = 0.1\n"
+    nodes = start_network(
+        base, pki, {n: f"sqlite:///{base}/{n}.db" for n in NETWORK}, extra=extra, saes=True
+    )
     try:
-        for node in nodes.values():
-            with OperatorClient(node.url, ident(pki, "ops-ada")) as ops:
-                for other, role in NODES.items():
-                    if other != node.node_id:
-                        ops.create("nodes", {"node_id": other, "role": role})
-                        ops.create(
-                            "principals",
-                            {
-                                "principal_id": f"peer-{other}",
-                                "role": "peer",
-                                "cert_subject": other,
-                                "node_id": other,
-                            },
-                        )
-                for station, link in LINKS.items():
-                    if node.node_id in ("relay-1", station):
-                        ops.create(
-                            "links", {"link_id": link, "relay_id": "relay-1", "station_id": station}
-                        )
-                        ops.create(
-                            "principals",
-                            {
-                                "principal_id": f"mod-{link}",
-                                "role": "qkd-module",
-                                "cert_subject": f"mod-{link}",
-                                "link_id": link,
-                            },
-                        )
-                ops.create(
-                    "pairs",
-                    {
-                        "pair_id": "pair-ab",
-                        "relay_id": "relay-1",
-                        "stations": ["station-a", "station-b"],
-                    },
-                )
-                if node.node_id != "relay-1":
-                    for sae, st in (
-                        ("sae-a1", "station-a"),
-                        ("sae-a2", "station-a"),
-                        ("sae-b1", "station-b"),
-                        ("sae-b2", "station-b"),
-                    ):
-                        ops.create(
-                            "principals",
-                            {
-                                "principal_id": sae,
-                                "role": "sae",
-                                "cert_subject": sae,
-                                "station_id": st,
-                            },
-                        )
         _feed(nodes, pki, 40)
         urls = {n: node.url for n, node in nodes.items()}
         a = Station(urls["station-a"], pki, "sae-a1", "httpx")

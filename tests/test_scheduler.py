@@ -117,76 +117,20 @@ def test_scarce_link_key_is_shared_by_priority(make_node, db_factory) -> None:
 def test_two_workers_on_postgresql_one_scheduler_acts(tmp_path: Path, pki, pg_factory) -> None:
     db_factory = pg_factory
     url = db_factory()
-    from keystrata_client import OperatorClient, TlsIdentity
-    from processes import free_port, prepare_node, start_all, stop_all
+    from processes import start_network, stop_all
+    from test_crash import _feed
 
-    ops_id = TlsIdentity(ca=pki.ca, cert=pki.cert("ops-ada"), key=pki.key("ops-ada"))
-    ports = {n: free_port() for n in ("relay-1", "station-a", "station-b")}
-    nodes = []
-    for node_id, role in (("relay-1", "relay"), ("station-a", "station"), ("station-b", "station")):
-        peers = "".join(
-            f'\n[[peers]]\nid = "{p}"\nurl = "https://127.0.0.1:{port}"\n'
-            for p, port in ports.items()
-            if p != node_id
-        )
-        extra = "\n[relay]\nsegment_bytes = 2048\nmin_segment_bytes = 512\ncycle_seconds = 0.1\n"
-        node = prepare_node(
-            tmp_path / node_id,
-            pki,
-            node_id,
-            role,
-            url if node_id == "relay-1" else db_factory(),
-            port=ports[node_id],
-            extra=extra + peers,
-        )
-        nodes.append(node)
-    relay = nodes[0]
-    text = relay.config.read_text().replace("[server]\n", "[server]\nworkers = 2\n", 1)
-    relay.config.write_text(text)
-    start_all(nodes, pki)
+    extra = "\n[relay]\nsegment_bytes = 2048\nmin_segment_bytes = 512\ncycle_seconds = 0.1\n"
+    network = start_network(
+        tmp_path,
+        pki,
+        {"relay-1": url, "station-a": db_factory(), "station-b": db_factory()},
+        extra=extra,
+        relay_workers=2,
+    )
+    nodes = list(network.values())
+    relay = network["relay-1"]
     try:
-        from test_crash import _feed
-
-        for node in nodes:
-            with OperatorClient(node.url, ops_id) as ops:
-                for other in ("relay-1", "station-a", "station-b"):
-                    if other == node.node_id:
-                        continue
-                    ops.create(
-                        "nodes",
-                        {"node_id": other, "role": "relay" if other == "relay-1" else "station"},
-                    )
-                    ops.create(
-                        "principals",
-                        {
-                            "principal_id": f"peer-{other}",
-                            "role": "peer",
-                            "cert_subject": other,
-                            "node_id": other,
-                        },
-                    )
-                for station, link in (("station-a", "link-a"), ("station-b", "link-b")):
-                    if node.node_id in ("relay-1", station):
-                        ops.create(
-                            "links", {"link_id": link, "relay_id": "relay-1", "station_id": station}
-                        )
-                        ops.create(
-                            "principals",
-                            {
-                                "principal_id": f"mod-{link}",
-                                "role": "qkd-module",
-                                "cert_subject": f"mod-{link}",
-                                "link_id": link,
-                            },
-                        )
-                ops.create(
-                    "pairs",
-                    {
-                        "pair_id": "pair-ab",
-                        "relay_id": "relay-1",
-                        "stations": ["station-a", "station-b"],
-                    },
-                )
         _feed({n.node_id: n for n in nodes}, pki, 30)
         deadline = time.monotonic() + 40
         actors: set[str] = set()

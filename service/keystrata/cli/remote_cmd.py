@@ -186,6 +186,26 @@ def retire_cmd(
         print_json(client.retire(kind, entry_id))
 
 
+def _show(
+    fetch: Callable[[], dict[str, Any]],
+    table: Callable[[dict[str, Any]], Table],
+    *,
+    watch: float | None,
+    as_json: bool,
+) -> None:
+    """Print one answer as JSON or a table, or refresh the table every ``watch`` seconds
+    until interrupted."""
+    if as_json:
+        print_json(fetch())
+    elif watch is None:
+        console.print(table(fetch()))
+    else:
+        with Live(table(fetch()), console=console) as live:
+            while True:
+                time.sleep(watch)
+                live.update(table(fetch()))
+
+
 def pools_table(answer: dict[str, Any]) -> Table:
     table = Table(title=f"link key pools at {answer['node_id']}")
     for col in ("link", "peer", "available (bit)", "used (bit)", "rate (bit/s)", "last block"):
@@ -214,15 +234,7 @@ def pools_table(answer: dict[str, Any]) -> Table:
 def pools(watch: float | None, url: str, ca: Path, cert: Path, key: Path, as_json: bool) -> None:
     """Show the link key pool of every QKD link ending at the node."""
     with operator(url, ca, cert, key) as client:
-        if as_json:
-            print_json(client.pools())
-        elif watch is None:
-            console.print(pools_table(client.pools()))
-        else:
-            with Live(pools_table(client.pools()), console=console) as live:
-                while True:
-                    time.sleep(watch)
-                    live.update(pools_table(client.pools()))
+        _show(client.pools, pools_table, watch=watch, as_json=as_json)
 
 
 def pairs_table(answer: dict[str, Any]) -> Table:
@@ -296,15 +308,7 @@ def pairs(watch: float | None, url: str, ca: Path, cert: Path, key: Path, as_jso
     """Show pair key buffers: at a relay both stations' buffers, relay rate and target;
     at a station its ready key per pair by owner."""
     with operator(url, ca, cert, key) as client:
-        if as_json:
-            print_json(client.pairs())
-        elif watch is None:
-            console.print(pairs_table(client.pairs()))
-        else:
-            with Live(pairs_table(client.pairs()), console=console) as live:
-                while True:
-                    time.sleep(watch)
-                    live.update(pairs_table(client.pairs()))
+        _show(client.pairs, pairs_table, watch=watch, as_json=as_json)
 
 
 @click.command("deliveries")

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 from datetime import datetime, timedelta
 from typing import Any
 
-from sqlalchemy import func, select
+from sqlalchemy import select
 
 from keystrata.crypto.hazmat import public_key_of, sign
 from keystrata.services.context import NodeContext
@@ -116,8 +116,3 @@ def history(ctx: NodeContext, *, limit: int = 100, before: int | None = None) ->
         if before is not None:
             q = q.where(LedgerCheckpoint.tree_size < before)
         return [_from_row(ctx, r) for r in s.execute(q).scalars()]
-
-
-def count(ctx: NodeContext) -> int:
-    with ctx.db.read() as s:
-        return int(s.execute(select(func.count()).select_from(LedgerCheckpoint)).scalar_one())

@@ -36,13 +36,6 @@ def acquire(db: Database, name: str, holder: str, *, now: datetime, ttl: timedel
         return False  # another worker created it first
 
 
-def release(db: Database, name: str, holder: str) -> None:
-    from sqlalchemy import delete
-
-    with db.write() as s:
-        s.execute(delete(Lease).where(Lease.name == name, Lease.holder == holder))
-
-
 def holder_of(db: Database, name: str) -> str | None:
     with db.read() as s:
         lease = s.get(Lease, name)

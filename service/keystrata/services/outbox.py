@@ -10,7 +10,7 @@ from dataclasses import dataclass
 from datetime import datetime, timedelta
 from typing import Any
 
-from sqlalchemy import delete, func, or_, select, update
+from sqlalchemy import delete, or_, select, update
 from sqlalchemy.orm import Session
 
 from keystrata.storage.db import Database
@@ -116,15 +116,6 @@ def retry_later(
                 last_error=error[:255],
             )
         )
-
-
-def backlog(db: Database) -> dict[str, int]:
-    """Messages waiting, per destination."""
-    with db.read() as s:
-        rows = s.execute(
-            select(OutboxMessage.destination, func.count()).group_by(OutboxMessage.destination)
-        ).all()
-        return {str(dest): int(n) for dest, n in rows}
 
 
 def pending_bodies(db: Database, *, destination: str, kind: str) -> list[dict[str, Any]]:
