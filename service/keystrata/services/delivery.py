@@ -273,6 +273,7 @@ def get_keys(
                 "slaves": route.slaves,
                 "size_bits": size,
                 "key_ids": [k.key_id for k in keys],
+                "segments": _segments(records),
                 "delivered_to": caller.principal_id,
             },
         )
@@ -343,7 +344,7 @@ def apply_allocated(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outc
         if sender != partner or body.get("owner") != sender:
             raise Forbidden("only the pair's other station allocates its keys")
         now = ctx.clock.now()
-        applied = []
+        applied, taken = [], []
         for rec in body["keys"]:
             key_id = str(uuid.UUID(str(rec["key_ID"])))
             if s.get(KeyAlloc, key_id) is not None:
@@ -371,15 +372,30 @@ def apply_allocated(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outc
                 )
             )
             applied.append(key_id)
+            taken.append(rec)
         if applied:
             ledger.append(
                 s,
                 node_id=ctx.node_id,
                 at=now,
                 event=Event.KEY_ALLOCATED,
-                fields={"pair": pair_id, "owner": sender, "key_ids": applied, "side": "slave"},
+                fields={
+                    "pair": pair_id,
+                    "owner": sender,
+                    "masters": sorted({str(r["master"]) for r in taken}),
+                    "slaves": sorted({str(x) for r in taken for x in r["slaves"]}),
+                    "bits": sum(int(r["size_bits"]) for r in taken),
+                    "key_ids": applied,
+                    "segments": _segments(taken),
+                    "side": "slave",
+                },
             )
     return Outcome(applied[0] if applied else "", "applied" if applied else "already")
+
+
+def _segments(records: Sequence[dict[str, Any]]) -> list[str]:
+    """The segments (one per relay operation) that keys were cut from, in order."""
+    return list(dict.fromkeys(str(r["segment"]) for rec in records for r in rec["ranges"]))
 
 
 def _carve_named(
@@ -466,7 +482,13 @@ def get_keys_with_ids(
                 node_id=ctx.node_id,
                 at=now,
                 event=Event.KEY_DELIVERED,
-                fields={"sae": caller.principal_id, "master": master_sae_id, "key_ids": ids},
+                fields={
+                    "sae": caller.principal_id,
+                    "master": master_sae_id,
+                    "pair": rows[ids[0]].pair_id,
+                    "bits": sum(rows[k].size_bits for k in ids),
+                    "key_ids": ids,
+                },
             )
             return out
     except _NotServed:
@@ -496,11 +518,12 @@ def expire(ctx: NodeContext) -> int:
             .scalars()
             .all()
         )
-        by_owner: dict[tuple[str, str], list[str]] = {}
+        by_owner: dict[tuple[str, str], list[KeyAlloc]] = {}
         for row in rows:
             row.state, row.sealed, row.settled_at = "expired", None, now
-            by_owner.setdefault((row.owner, row.pair_id), []).append(row.key_id)
-        for (owner, pair_id), key_ids in by_owner.items():
+            by_owner.setdefault((row.owner, row.pair_id), []).append(row)
+        for (owner, pair_id), expired in by_owner.items():
+            key_ids = [r.key_id for r in expired]
             outbox.enqueue(
                 s,
                 destination=owner,
@@ -514,7 +537,12 @@ def expire(ctx: NodeContext) -> int:
                 node_id=ctx.node_id,
                 at=now,
                 event=Event.KEY_EXPIRED,
-                fields={"pair": pair_id, "key_ids": key_ids, "side": "slave"},
+                fields={
+                    "pair": pair_id,
+                    "bits": sum(r.size_bits for r in expired),
+                    "key_ids": key_ids,
+                    "side": "slave",
+                },
             )
         return len(rows)
 
@@ -536,6 +564,7 @@ def apply_expired(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcom
             .all()
         )
         changed = [r.key_id for r in rows if r.state != "expired"]
+        bits = sum(r.size_bits for r in rows if r.state != "expired")
         for row in rows:
             pair = s.get(Pair, row.pair_id)
             if pair is None or sender not in (pair.station_a, pair.station_b):
@@ -547,6 +576,11 @@ def apply_expired(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcom
                 node_id=ctx.node_id,
                 at=now,
                 event=Event.KEY_EXPIRED,
-                fields={"pair": str(body["pair_id"]), "key_ids": changed, "side": "master"},
+                fields={
+                    "pair": str(body["pair_id"]),
+                    "bits": bits,
+                    "key_ids": changed,
+                    "side": "master",
+                },
             )
     return Outcome("", "applied" if changed else "already")

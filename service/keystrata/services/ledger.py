@@ -12,9 +12,9 @@ from sqlalchemy.orm import Session
 
 from keystrata.domain import merkle
 from keystrata.domain.frontier import Frontier
-from keystrata.domain.ledger import Event, encode_entry
+from keystrata.domain.ledger import Event, encode_entry, references
 from keystrata.errors import Unavailable
-from keystrata.storage.models import LedgerEntry, LedgerHead, LedgerNode
+from keystrata.storage.models import LedgerEntry, LedgerHead, LedgerNode, LedgerRef
 
 
 def append(
@@ -22,9 +22,11 @@ def append(
 ) -> int:
     """Append one entry in the session's transaction and return its index.
 
-    The single ``ledger_head`` row is locked until commit, so concurrent appenders get
-    consecutive indexes with no gaps. The entry's Merkle leaf and every perfect subtree
-    it completes (RFC 9162 section 2.1) are written in the same transaction.
+    The entry names the previous entry's leaf hash (``prev``, read from the stored
+    tree) and its searchable references go to ``ledger_ref``. The single ``ledger_head``
+    row is locked until commit, so concurrent appenders get consecutive indexes with no
+    gaps. The entry's Merkle leaf and every perfect subtree it completes (RFC 9162
+    section 2.1) are written in the same transaction.
 
     Raises:
         Unavailable: the ledger cannot be written. The caller's transaction then rolls
@@ -48,7 +50,8 @@ def _append(
     index, blob = session.execute(
         select(LedgerHead.size, LedgerHead.frontier).where(LedgerHead.id == 1).with_for_update()
     ).one()
-    entry = encode_entry(index=index, event=event, node_id=node_id, at=at, fields=fields)
+    prev = None if index == 0 else StoredTree(session).get(0, index - 1)
+    entry = encode_entry(index=index, event=event, node_id=node_id, at=at, fields=fields, prev=prev)
     edge = Frontier(index, blob)
     nodes = merkle.append(edge, index, [merkle.leaf_hash(entry)])
     session.execute(
@@ -62,6 +65,9 @@ def _append(
     session.execute(
         insert(LedgerNode), [{"level": lv, "idx": ix, "hash": h} for lv, ix, h in nodes]
     )
+    refs = [{"kind": str(k), "value": v, "idx": index} for k, v in references(fields)]
+    if refs:
+        session.execute(insert(LedgerRef), refs)
     return int(index)
 
 

@@ -256,6 +256,16 @@ class LedgerEntry(Base):
     entry: Mapped[bytes] = mapped_column(LargeBinary, comment="canonical JSON bytes (RFC 8785)")
 
 
+class LedgerRef(Base):
+    """What an entry names (pair, SAE, key ID, node, segment), so auditors can search
+    without decoding every entry. Written with the entry; derived, never key material."""
+
+    __tablename__ = "ledger_ref"
+    kind: Mapped[str] = mapped_column(String(8), primary_key=True)
+    value: Mapped[str] = mapped_column(String(128), primary_key=True)
+    idx: Mapped[int] = mapped_column(BigInteger, primary_key=True, autoincrement=False)
+
+
 class RelayOp(Base):
     """A relay operation (at the relay): which link bytes made which segment. The key
     bytes themselves were destroyed in the transaction that wrote this row."""

@@ -4,16 +4,18 @@ the node's public key, and RFC 9162 inclusion and consistency proofs."""
 from __future__ import annotations
 
 import base64
-import json
+from datetime import datetime
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Query, Request
 from sqlalchemy import select
 
 from keystrata.api.identity import admit
+from keystrata.domain.ledger import Event, Ref
 from keystrata.domain.registry import PrincipalRole
 from keystrata.errors import InvalidInput, NotFound
-from keystrata.services import checkpoints
+from keystrata.ids import ID_PATTERN
+from keystrata.services import accounting, checkpoints, ledger_search
 from keystrata.services.context import NodeContext
 from keystrata.services.ledger import StoredTree
 from keystrata.storage.models import LedgerEntry
@@ -21,8 +23,12 @@ from keystrata.storage.models import LedgerEntry
 router = APIRouter(prefix="/api/v1/audit", tags=["audit"])
 
 Auditor = Annotated[Any, Depends(admit(PrincipalRole.AUDITOR))]
+Reader = Annotated[Any, Depends(admit(PrincipalRole.AUDITOR, PrincipalRole.OPERATOR))]
 Index = Annotated[int, Query(ge=0, le=2**62)]
 MAX_ENTRIES = 1000
+Name = Annotated[str | None, Query(pattern=ID_PATTERN)]
+KeyId = Annotated[str | None, Query(pattern=r"^[0-9a-fA-F-]{36}$")]
+Moment = Annotated[str | None, Query(max_length=40, description="RFC 3339 with offset")]
 
 
 def _ctx(request: Request) -> NodeContext:
@@ -72,12 +78,62 @@ def list_entries(
             .where(LedgerEntry.idx >= start, LedgerEntry.idx < stop)
             .order_by(LedgerEntry.idx)
         ).all()
-    return {
-        "entries": [
-            {"index": int(i), "entry_b64": base64.b64encode(e).decode(), "entry": json.loads(e)}
-            for i, e in rows
-        ]
-    }
+    return {"entries": [ledger_search.exported(int(i), bytes(e)) for i, e in rows]}
+
+
+def _moment(name: str, value: str | None) -> datetime | None:
+    if value is None:
+        return None
+    try:
+        moment = datetime.fromisoformat(value)
+    except ValueError:
+        moment = None
+    if moment is None or moment.tzinfo is None:
+        raise InvalidInput(
+            f"{name}: expected an RFC 3339 time with offset, e.g. 2026-12-01T00:00:00Z",
+            details=[{"field": name}],
+        )
+    return moment
+
+
+def _events(values: list[str]) -> list[Event]:
+    known = {str(e) for e in Event}
+    unknown = [v for v in values if v not in known]
+    if unknown:
+        raise InvalidInput(
+            "event: unknown event name (see the ledger event table)", details=[{"field": "event"}]
+        )
+    return [Event(v) for v in values]
+
+
+@router.get("/search", summary="Search ledger entries", operation_id="search_entries")
+def search_entries(
+    request: Request,
+    _: Auditor,
+    since: Moment = None,
+    until: Moment = None,
+    event: Annotated[list[str], Query(max_length=len(Event))] = [],  # noqa: B006
+    pair: Name = None,
+    sae: Name = None,
+    node: Name = None,
+    segment: KeyId = None,
+    key_id: KeyId = None,
+    after: Index | None = None,
+    limit: Annotated[int, Query(ge=1, le=ledger_search.MAX_PAGE)] = 100,
+) -> dict[str, Any]:
+    """Entries recorded in ``[since, until)``, of any of the ``event`` names, naming the
+    given pair, SAE, node, segment and key ID (all filters must hold), oldest first.
+    Page on with ``after`` = the ``next_after`` of the previous answer."""
+    named = {Ref.PAIR: pair, Ref.SAE: sae, Ref.NODE: node, Ref.SEGMENT: segment}
+    named[Ref.KEY] = key_id.lower() if key_id else None
+    filters = ledger_search.Filters(
+        since=_moment("since", since),
+        until=_moment("until", until),
+        events=_events(event),
+        refs=[(k, v) for k, v in named.items() if v is not None],
+    )
+    page, cursor = ledger_search.search(_ctx(request), filters, after=after, limit=limit)
+    return {"entries": page, "next_after": cursor}
 
 
 def _tree_size(s: Any, size: int | None) -> int:
@@ -117,3 +173,13 @@ def consistency_proof(
             raise InvalidInput(f"first: must be between 1 and {size}")
         proof = StoredTree(s).consistency_proof(first, size)
     return {"first": first, "second": size, "proof": [base64.b64encode(p).decode() for p in proof]}
+
+
+@router.get("/accounting", summary="Accounting per day", operation_id="daily_accounting")
+def daily_accounting(
+    request: Request, _: Reader, since: Moment = None, until: Moment = None
+) -> dict[str, Any]:
+    """Per UTC day, per pair and per SAE, from this node's ledger: keys and bits handed to
+    masters and fetched by slaves, expired, refused; at a relay, the segments made and
+    the link key they used."""
+    return accounting.per_day(_ctx(request), _moment("since", since), _moment("until", until))
