@@ -5,6 +5,7 @@ from __future__ import annotations
 import click
 
 from keystrata import __version__
+from keystrata.cli.audit_cmd import audit
 from keystrata.cli.keys_cmd import keys
 from keystrata.cli.node_cmd import db, kek, node, serve
 from keystrata.cli.pki_cmd import pki
@@ -18,7 +19,7 @@ def cli() -> None:
     """keystrata: key manager for QKD networks with an airborne trusted relay."""
 
 
-for command in (node, serve, db, kek, pki, registry, pools, pairs, deliveries, keys, demo):
+for command in (node, serve, db, kek, pki, registry, pools, pairs, deliveries, keys, audit, demo):
     cli.add_command(command)
 
 

@@ -52,9 +52,15 @@ def connection_options(f: F) -> F:
 
 @contextmanager
 def operator(url: str, ca: Path, cert: Path, key: Path) -> Iterator[OperatorClient]:
+    with client_errors(), OperatorClient(url, TlsIdentity(ca=ca, cert=cert, key=key)) as client:
+        yield client
+
+
+@contextmanager
+def client_errors() -> Iterator[None]:
+    """Show the SDK's errors (an API answer, or no answer at all) as a one-line message."""
     try:
-        with OperatorClient(url, TlsIdentity(ca=ca, cert=cert, key=key)) as client:
-            yield client
+        yield
     except ApiError as exc:
         detail = "".join(f"\n  - {d}" for d in exc.details[:20])
         raise click.ClickException(f"{exc.status}: {exc.message}{detail}") from None

@@ -14,6 +14,7 @@ from rich.console import Console, Group
 from rich.live import Live
 
 from keystrata.demo import scenario
+from keystrata.demo.audit import audit, ledgers_table, reconciliation_table
 from keystrata.demo.nodes import NodeProcesses, free_ports
 from keystrata.demo.provision import operator_identity, provision
 from keystrata.demo.verify import check_network
@@ -274,15 +275,19 @@ def demo(duration: float | None, workdir: Path) -> None:
             sent = provision(workdir, nodes)
         _intro(workdir, nodes, manifest, sent)
         snap, stats, enc = asyncio.run(_run(workdir, nodes, procs, duration))
+        with console.status("exporting, verifying and reconciling every ledger as an auditor"):
+            audited = audit(workdir, nodes)
     finally:
         procs.stop()
     console.print(_view(snap, stats, enc, "final levels (emulator drained)"))
+    console.print(ledgers_table(audited))
+    console.print(reconciliation_table(audited))
     with console.status("checking every relay record and segment in the node databases"):
         check = check_network(
             nodes[0].config, {n.node_id: n.config for n in nodes if n.role == "station"}
         )
     problems = [f"node {n} stopped unexpectedly" for n in snap.dead] + _disagreements(snap)
-    problems += check.problems
+    problems += check.problems + audited.problems
     problems += [
         f"encryptors {name}: {st.mismatches} keys differ between the two ends"
         for name, st in enc.items()
@@ -299,7 +304,8 @@ def demo(duration: float | None, workdir: Path) -> None:
         f"{check.segments_ready_both} segments are ready at both stations of their pair, "
         "byte-identical; "
         f"{sum(st.keys_delivered for st in enc.values()):,} keys reached both encryptors of "
-        f"{len(enc)} encryptor pairs, all matching."
+        f"{len(enc)} encryptor pairs, all matching; {len(audited.reports)} ledgers verify "
+        f"offline (exports in {workdir / 'audit'}) and every pair reconciles."
     )
 
 

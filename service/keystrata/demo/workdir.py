@@ -16,6 +16,9 @@ from keystrata.demo import scenario
 from keystrata.services.node import initialise, load_keyring
 from keystrata.storage.db import Database
 
+#: Demo nodes sign a ledger checkpoint every second when there is something new.
+CHECKPOINT_SECONDS = 1.0
+
 MANIFEST = "demo.json"
 
 
@@ -95,6 +98,9 @@ url = "sqlite:///{node.node_id}.db"
 
 [kek]
 file = "kek.b64"
+
+[ledger]
+checkpoint_seconds = {CHECKPOINT_SECONDS}
 {peers}""")
 
 

@@ -1,0 +1,37 @@
+"""Ledger audit: export a node's ledger, and verify an export offline.
+
+An auditor (a principal with role ``auditor``) exports the ledger over mutual TLS, keeps
+the folder, and checks it anywhere later without the node::
+
+    from pathlib import Path
+    from keystrata_client import TlsIdentity
+    from keystrata_client.audit import AuditClient, verify_export, write_export
+
+    me = TlsIdentity(ca=Path("ca.pem"), cert=Path("audit.pem"), key=Path("audit.key"))
+    with AuditClient("https://relay-vela.example:8443", me) as node:
+        write_export(node, "ledger-2026-12-02")
+    report = verify_export("ledger-2026-12-02", public_key=pinned_key)
+    if not report.ok:
+        print(report.first_bad, report.findings)
+
+The same check from a shell: ``keystrata-ledger-check ledger-2026-12-02 --public-key
+KEY``. The verifier carries its own RFC 9162 Merkle code and checks the node's Ed25519
+signatures with ``cryptography``; it imports nothing from the server package.
+
+Public API:
+
+``AuditClient(base_url, identity=None, *, client=None, timeout=30.0)``
+    ``latest_checkpoint()``, ``checkpoints(limit, before)``, ``entries(start, end)``
+    (an iterator that pages), ``inclusion_proof(index, tree_size)``,
+    ``consistency_proof(first, second)``.
+``write_export(client, out_dir, *, overwrite=False) -> ExportSummary``
+    Writes ``entries.jsonl``, ``checkpoints.jsonl`` and ``checkpoint.json``.
+``verify_export(directory, *, public_key=None, earlier=(), check_index=None) -> Report``
+    ``Report.ok``, ``origin``, ``tree_size``, ``root``, ``public_key``, ``entries``,
+    ``events``, ``first_bad``, ``findings``, ``notes``.
+"""
+
+from keystrata_client.audit.export import AuditClient, ExportSummary, write_export
+from keystrata_client.audit.verify import Report, verify_export
+
+__all__ = ["AuditClient", "ExportSummary", "Report", "verify_export", "write_export"]
