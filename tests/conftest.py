@@ -61,6 +61,7 @@ class PkiFiles:
 CLIENTS = {
     "ops-ada": "operator",
     "aud-ben": "auditor",
+    "mon-cal": "monitor",
     "mod-link-a": "qkd-module",
     "mod-link-b": "qkd-module",
     "sae-a1": "sae",
@@ -298,6 +299,7 @@ def seed_registry(ctx: NodeContext) -> None:
     principals: list[dict[str, Any]] = [
         {"principal_id": "ops-ada", "role": "operator", "cert_subject": "ops-ada"},
         {"principal_id": "aud-ben", "role": "auditor", "cert_subject": "aud-ben"},
+        {"principal_id": "mon-cal", "role": "monitor", "cert_subject": "mon-cal"},
         {
             "principal_id": "mod-link-a",
             "role": "qkd-module",

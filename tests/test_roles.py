@@ -16,6 +16,7 @@ CERT_OF_ROLE = {
     PrincipalRole.QKD_MODULE: "mod-link-a",
     PrincipalRole.SAE: "sae-a1",
     PrincipalRole.PEER: "peer-relay",
+    PrincipalRole.MONITOR: "mon-cal",
 }
 
 
@@ -79,6 +80,22 @@ def test_role_matrix(station, api) -> None:
                 assert r.json() == {"message": "unauthorized"}
             checked += 1
     assert checked >= 20
+
+
+#: Roles of the observability routes, as DEVELOPERS.md states them.
+OBSERVABILITY_ROLES = {
+    "/api/v1/health/live": {PrincipalRole.OPERATOR, PrincipalRole.AUDITOR, PrincipalRole.MONITOR},
+    "/api/v1/health/ready": {PrincipalRole.OPERATOR, PrincipalRole.MONITOR},
+    "/api/v1/metrics": {PrincipalRole.OPERATOR, PrincipalRole.MONITOR},
+}
+
+
+def test_observability_routes_admit_the_stated_roles() -> None:
+    routes = {r.path: r for r in route_table()}
+    for path, roles in OBSERVABILITY_ROLES.items():
+        assert routes[path].methods == {"GET"}
+        assert _admitted(routes[path]) == roles, path
+        assert _refusal_status(routes[path]) == 403
 
 
 @pytest.mark.parametrize("name", ["stranger", None])

@@ -12,7 +12,8 @@ from fastapi.routing import APIRoute
 from keystrata import __version__
 from keystrata.api import errors
 from keystrata.api.limits import BodyLimit
-from keystrata.api.routes import audit, etsi, links, node, pairs, peer, registry
+from keystrata.api.routes import audit, etsi, health, links, node, pairs, peer, registry
+from keystrata.observability.http import RequestMetrics, RequestTimer
 from keystrata.services.context import NodeContext
 from keystrata.workers.peer_client import PeerClient
 from keystrata.workers.runner import Background
@@ -29,6 +30,7 @@ ROUTERS: tuple[APIRouter, ...] = (
     peer.router,
     etsi.router,
     audit.router,
+    health.router,
 )
 
 
@@ -71,4 +73,7 @@ def create_app(ctx: NodeContext) -> FastAPI:
         large_prefixes=("/api/v1/links/", "/api/v1/peer/"),
         as_400_prefixes=("/api/v1/keys/",),
     )
+    # Added last, so outermost: it also times refusals from the body limit.
+    app.state.request_metrics = RequestMetrics()
+    app.add_middleware(RequestTimer, metrics=app.state.request_metrics)
     return app

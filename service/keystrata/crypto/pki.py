@@ -49,7 +49,7 @@ from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
 
 from keystrata.errors import AlreadyExists, InvalidInput
 
-ROLES: tuple[str, ...] = ("sae", "operator", "auditor", "peer", "qkd-module")
+ROLES: tuple[str, ...] = ("sae", "operator", "auditor", "peer", "qkd-module", "monitor")
 NODE_OU = "node"
 CLOCK_SKEW = timedelta(minutes=5)
 CA_VALID_DAYS = 3650

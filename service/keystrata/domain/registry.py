@@ -43,6 +43,7 @@ class PrincipalRole(StrEnum):
     AUDITOR = "auditor"
     PEER = "peer"
     QKD_MODULE = "qkd-module"
+    MONITOR = "monitor"  # health, readiness and metrics only
 
 
 # Enumerations come as strings in JSON; strict mode would demand the Python enum itself.

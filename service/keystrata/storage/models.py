@@ -146,7 +146,7 @@ class Principal(_Lifecycle, Base):
     __tablename__ = "principal"
     __table_args__ = (
         CheckConstraint(
-            "role IN ('sae', 'operator', 'auditor', 'peer', 'qkd-module')", name="role"
+            "role IN ('sae', 'operator', 'auditor', 'peer', 'qkd-module', 'monitor')", name="role"
         ),
         CheckConstraint("(role = 'sae') = (station_id IS NOT NULL)", name="sae_station"),
         CheckConstraint("(role = 'qkd-module') = (link_id IS NOT NULL)", name="module_link"),

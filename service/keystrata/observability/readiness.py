@@ -1,0 +1,160 @@
+"""Readiness: can this node do its job right now? Three cheap checks, each bounded in time.
+
+- ``database``: a SELECT of this node's identity row answers, and names this node.
+- ``kek``: the key-encryption key in memory opens the database's KEK check value (the
+  same check start-up runs), so sealed rows can be read and written.
+- ``ledger``: the ledger can be written, tested without writing an entry: in one
+  transaction that is always rolled back, lock the ``ledger_head`` row (on SQLite: take
+  the write lock) and insert a probe row into ``ledger_entry``, so a trigger, a revoked
+  grant or a lock held too long shows up the way it would for a real append. Waiting
+  for the lock is bounded (SQLite ``busy_timeout``, PostgreSQL ``lock_timeout``).
+
+Problems are reported in fixed words of our own, never with the database's error text.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Callable
+from dataclasses import dataclass
+
+from sqlalchemy import insert, select, text, update
+from sqlalchemy.exc import SQLAlchemyError
+from sqlalchemy.orm import Session
+
+from keystrata.errors import KeystrataError
+from keystrata.services.context import NodeContext
+from keystrata.services.node import check_kek
+from keystrata.storage.models import LedgerEntry, LedgerHead, NodeMeta
+
+log = logging.getLogger("keystrata.readiness")
+
+#: Longest wait for a lock (or, on PostgreSQL, for one statement) during a check.
+LOCK_WAIT_MS = 2000
+STATEMENT_MS = 4000
+OK = "ok"
+UNREACHABLE = "unreachable"
+NOT_CHECKED = "not checked: the database is unavailable"
+PROBE_EVENT = "readiness.probe"
+
+
+class NotReady(Exception):
+    """A check failed; the message is one of the fixed problems below."""
+
+
+@dataclass(frozen=True)
+class Readiness:
+    """Each check's result: ``"ok"`` or a short description of the problem."""
+
+    checks: dict[str, str]
+
+    @property
+    def ready(self) -> bool:
+        return all(v == OK for v in self.checks.values())
+
+    @property
+    def failing(self) -> list[str]:
+        return [name for name, v in self.checks.items() if v != OK]
+
+
+def assess(ctx: NodeContext) -> Readiness:
+    """Run the checks in order; later ones are skipped when the database is down."""
+    checks = {"database": _run("database", lambda: _database(ctx), UNREACHABLE)}
+    if checks["database"] == OK:
+        checks["kek"] = _run(
+            "kek",
+            lambda: _kek(ctx),
+            "the key-encryption key does not open this database's check value",
+        )
+        checks["ledger"] = _run(
+            "ledger",
+            lambda: _ledger(ctx),
+            f"the ledger cannot be written (refused, or locked for over {LOCK_WAIT_MS} ms)",
+        )
+    else:
+        checks["kek"] = checks["ledger"] = NOT_CHECKED
+    return Readiness(checks)
+
+
+def _run(name: str, check: Callable[[], None], problem: str) -> str:
+    try:
+        check()
+    except NotReady as exc:
+        log.warning("readiness: %s: %s", name, exc)
+        return str(exc)
+    except (KeystrataError, SQLAlchemyError) as exc:
+        # The type only: database error text can quote statements and parameters.
+        log.warning("readiness: %s failed (%s)", name, type(exc).__name__)
+        return problem
+    return OK
+
+
+def _database(ctx: NodeContext) -> None:
+    with ctx.db.read() as s:
+        _bound_waits(s, ctx.db.backend)
+        try:
+            node_id = s.execute(
+                select(NodeMeta.value).where(NodeMeta.name == "node_id")
+            ).scalar_one_or_none()
+        finally:
+            _restore_waits(s, ctx.db.backend)
+    if node_id != ctx.node_id.encode():
+        raise NotReady("the database does not belong to this node")
+
+
+def _kek(ctx: NodeContext) -> None:
+    with ctx.db.read() as s:
+        check_kek(s, ctx.keyring)
+
+
+def _ledger(ctx: NodeContext) -> None:
+    # A reader session: closing it rolls back whatever it wrote, so the probe row and
+    # the head lock never outlive this block; rollback() says so explicitly as well.
+    with ctx.db.read() as s:
+        _bound_waits(s, ctx.db.backend)
+        try:
+            # Write first: on SQLite a deferred transaction whose first statement
+            # writes takes the write lock (waiting at most busy_timeout) before it
+            # reads, like BEGIN IMMEDIATE; on PostgreSQL it locks the row.
+            s.execute(
+                update(LedgerHead)
+                .where(LedgerHead.id == 1)
+                .values(size=LedgerHead.size)
+                .execution_options(synchronize_session=False)
+            )
+            size = s.execute(select(LedgerHead.size).where(LedgerHead.id == 1)).scalar_one()
+            s.execute(
+                insert(LedgerEntry).values(
+                    idx=size, recorded_at=ctx.clock.now(), event=PROBE_EVENT, entry=b"{}"
+                )
+            )
+        finally:
+            # Put the timeout back on this very connection before the rollback
+            # returns it to the pool.
+            _restore_waits(s, ctx.db.backend)
+            s.rollback()
+
+
+def _bound_waits(s: Session, backend: str) -> None:
+    if backend == "postgresql":
+        # SET LOCAL ends with the transaction, whatever happens.
+        s.execute(text(f"SET LOCAL lock_timeout = {LOCK_WAIT_MS}"))
+        s.execute(text(f"SET LOCAL statement_timeout = {STATEMENT_MS}"))
+    elif backend == "sqlite":
+        # busy_timeout is per connection: remember it, and put it back before the
+        # connection returns to the pool (see _restore_waits).
+        previous = s.execute(text("PRAGMA busy_timeout")).scalar_one()
+        s.info["keystrata_busy_timeout"] = int(previous)
+        s.execute(text(f"PRAGMA busy_timeout = {LOCK_WAIT_MS}"))
+
+
+def _restore_waits(s: Session, backend: str) -> None:
+    previous = s.info.pop("keystrata_busy_timeout", None)
+    if backend != "sqlite" or previous is None:
+        return
+    conn = s.connection()  # the session's connection until its transaction ends
+    try:
+        conn.exec_driver_sql(f"PRAGMA busy_timeout = {int(previous)}")
+    except SQLAlchemyError:
+        # Never hand a connection with a short timeout back to the pool.
+        conn.invalidate()
