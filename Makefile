@@ -20,8 +20,8 @@ $(STAMP): pyproject.toml | $(BIN)/python
 ## make test: the whole suite on SQLite and PostgreSQL (PostgreSQL is skipped
 ## locally when no server answers; with CI set, a missing server fails the run)
 test: $(STAMP)
-	$(BIN)/ruff check service clients tests
-	$(BIN)/ruff format --check service clients tests
+	$(BIN)/ruff check service clients tests deploy
+	$(BIN)/ruff format --check service clients tests deploy
 	$(BIN)/mypy
 	$(BIN)/python -m pytest $(ARGS)
 
@@ -39,8 +39,8 @@ demo: $(STAMP)
 	$(BIN)/keystrata demo $(ARGS)
 
 lint: $(STAMP)
-	$(BIN)/ruff check service clients tests
-	$(BIN)/ruff format --check service clients tests
+	$(BIN)/ruff check service clients tests deploy
+	$(BIN)/ruff format --check service clients tests deploy
 
 typecheck: $(STAMP)
 	$(BIN)/mypy
