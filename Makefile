@@ -5,7 +5,7 @@ BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 ARGS   ?=
 
-.PHONY: all test test-fast faults demo lint typecheck clean
+.PHONY: all test test-fast faults bench load demo lint typecheck clean
 
 all: test
 
@@ -30,9 +30,21 @@ test-fast: $(STAMP)
 	$(BIN)/python -m pytest -m "not e2e" -k "not postgresql" $(ARGS)
 
 ## make faults: the long crash series (30 SIGKILLs per backend), run before resolving
-## an issue that touches relaying; KEYSTRATA_KILLS sets the number of kills
+## an issue that touches relaying or key delivery; KEYSTRATA_KILLS sets the number of kills
 faults: $(STAMP)
-	KEYSTRATA_KILLS=$${KEYSTRATA_KILLS:-30} $(BIN)/python -m pytest tests/test_crash.py $(ARGS)
+	KEYSTRATA_KILLS=$${KEYSTRATA_KILLS:-30} $(BIN)/python -m pytest tests/test_crash.py tests/test_crash_delivery.py $(ARGS)
+
+## make bench: every figure beside its ceiling, measured in the same run (about 8
+## minutes; not part of make test); writes bench/results.json and docs/benchmarks.md.
+## ARGS='--quick' for a short smoke run, ARGS='--only ingest,relay' for some families
+bench: $(STAMP)
+	$(BIN)/python -m bench $(ARGS)
+
+## make load: the load test (issue 6): relay and two stations as processes, stations with
+## two workers on PostgreSQL, 64 SAE clients, at least 20000 keys (up to 10 minutes; not
+## part of make test); ARGS='--quick' for a short run; writes build/loadtest/summary.json
+load: $(STAMP)
+	$(BIN)/python -m loadtest $(ARGS)
 
 ## make demo ARGS='--duration 30 --workdir /tmp/ks-demo'
 demo: $(STAMP)

@@ -2,6 +2,10 @@
 
 ``links``: the QKD modules of relay-station QKD links (``keystrata-links``), driven by
 the daylight-and-clouds rate model in ``model``.
+
+``encryptors``: pairs of encryptors rekeying over ETSI GS QKD 014
+(``keystrata-encryptors``; TOML file in ``encryptor_config``, command in
+``encryptor_cli``).
 """
 
 from keystrata_client.emulators.config import (

@@ -243,11 +243,14 @@ class EncryptorEmulator:
         if first:
             logger.warning("pair %s: %s failed: %s", pair.spec.name, call, exc)
 
-    async def _master(self, pair: _Pair, client: AsyncKeyClient, stopping: asyncio.Event) -> None:
+    async def _master(
+        self, pair: _Pair, client: AsyncKeyClient, stopping: asyncio.Event, rekeys: int | None
+    ) -> None:
         spec, stats = pair.spec, pair.stats
         next_at = self._monotonic()
+        handed = 0
         try:
-            while not stopping.is_set():
+            while not stopping.is_set() and (rekeys is None or handed < rekeys):
                 stats.rekeys_attempted += 1
                 try:
                     container = await client.get_keys(
@@ -263,6 +266,9 @@ class EncryptorEmulator:
                 else:
                     stats.keys_obtained += len(container)
                     pair.channel.put_nowait(_rekey(container))
+                    handed += 1
+                    if rekeys is not None and handed >= rekeys:
+                        break
                 next_at += spec.interval_seconds
                 current = self._monotonic()
                 if next_at < current:
@@ -315,8 +321,14 @@ class EncryptorEmulator:
 
     # -- running -------------------------------------------------------------------------
 
-    async def run(self, duration: float | None = None) -> dict[str, PairStats]:
+    async def run(
+        self, duration: float | None = None, *, rekeys: int | None = None
+    ) -> dict[str, PairStats]:
         """Rekey until :meth:`stop` or for ``duration`` seconds; return the stats.
+
+        With ``rekeys``, each master stops after handing that many sets of keys to its
+        slave (503 answers and failed calls do not count), and the run ends when every
+        master has, or earlier at the end of ``duration`` or on :meth:`stop`.
 
         After the end, masters finish the call they are in and start no other; slaves
         fetch the key IDs already passed to them for up to ``drain_seconds``. Clients
@@ -324,7 +336,10 @@ class EncryptorEmulator:
 
         Raises:
             RuntimeError: the emulator is already running.
+            ValueError: ``rekeys`` is below 1.
         """
+        if rekeys is not None and rekeys < 1:
+            raise ValueError("rekeys must be at least 1")
         if self._stopping is not None:
             raise RuntimeError("this emulator is already running")
         stopping = self._stopping = asyncio.Event()
@@ -343,10 +358,14 @@ class EncryptorEmulator:
                 clients.append(master)
                 slave = self._client_factory(spec.slave_url, spec.slave_identity)
                 clients.append(slave)
-                masters.append(asyncio.create_task(self._master(pair, master, stopping)))
+                masters.append(asyncio.create_task(self._master(pair, master, stopping, rekeys)))
                 slaves.append(asyncio.create_task(self._slave(pair, slave)))
             tasks = [*masters, *slaves]
-            await _wait(stopping, duration)
+            timer = asyncio.create_task(_wait(stopping, duration))
+            tasks.append(timer)
+            # Masters end early only when they did their rekeys; errors surface below.
+            every_master = asyncio.gather(*masters, return_exceptions=True)
+            await asyncio.wait((timer, every_master), return_when=asyncio.FIRST_COMPLETED)
             stopping.set()
             await asyncio.wait(tasks, timeout=self.drain_seconds)
         finally:

@@ -9,7 +9,9 @@ at the slave's station, expiry.
   keeps each key sealed until every slave has fetched it or its time-to-live ends.
 * Get key with key IDs (dec_keys) at B, by b1 naming master a1: only keys that A
   allocated to (a1 -> b1); each slave gets each key once; then the key is destroyed.
-  When B does not know a key ID yet, it first pulls A's pending allocation messages.
+  When B does not know a key ID yet, it first pulls A's pending allocation messages;
+  if A cannot be asked, or the message names key not ready at B yet, the answer is 503
+  (try again), not a refusal: the key may well be allocated to this slave.
 
 Every refusal on these routes is the same 401 answer (no oracle), recorded in the ledger.
 """
@@ -41,7 +43,8 @@ from keystrata.storage.sealed import key_context, segment_context
 MAX_KEY_PER_REQUEST = 1024
 MAX_SAE_ID_COUNT = 8
 
-Pull = Callable[[str], list[dict[str, Any]]]
+#: Returns the owner's pending allocation messages, or None when it cannot be asked now.
+Pull = Callable[[str], list[dict[str, Any]] | None]
 
 
 @dataclass(frozen=True)
@@ -52,6 +55,10 @@ class DeliveredKey:
 
 class NotEnoughKey(Unavailable):
     default_message = "not enough key is ready for this request; try again later"
+
+
+class AllocationNotHere(Unavailable):
+    default_message = "a requested key has not reached this station yet; try again"
 
 
 class QuotaReached(Unavailable):
@@ -433,6 +440,8 @@ def get_keys_with_ids(
         BadRequest: the same key ID twice.
         Unauthenticated: anything not allocated to (master -> caller), already fetched,
             expired or unknown (401, recorded).
+        AllocationNotHere: a key ID is unknown here while the master's station could not
+            be asked, or named key this station cannot take yet (503, try again).
     """
     ids = [str(uuid.UUID(k)) for k in key_ids]
     if len(set(ids)) != len(ids):
@@ -442,12 +451,21 @@ def get_keys_with_ids(
     with ctx.db.read() as s:
         known = set(s.execute(select(KeyAlloc.key_id).where(KeyAlloc.key_id.in_(ids))).scalars())
         master = _sae(s, master_sae_id)
+    unsettled = False
     if len(known) < len(ids) and pull is not None and master is not None:
         # The allocation message may still be on its way: fetch it from the owner now.
-        for body in pull(str(master.station_id)):
+        bodies = pull(str(master.station_id))
+        # If the owner cannot be asked, or its message names segment bytes not ready
+        # here yet, an unknown key ID may be allocated all the same: "try again" (503),
+        # not a refusal the slave would take as final.
+        unsettled = bodies is None
+        for body in bodies or []:
             try:
                 apply_allocated(ctx, str(master.station_id), body)
-            except (NotYet, InvalidInput, Forbidden):
+            except NotYet:
+                unsettled = True
+                break
+            except (InvalidInput, Forbidden):
                 break
     now = ctx.clock.now()
     try:
@@ -458,6 +476,8 @@ def get_keys_with_ids(
                     select(KeyAlloc).where(KeyAlloc.key_id.in_(ids)).with_for_update()
                 ).scalars()
             }
+            if unsettled and len(rows) < len(ids):
+                raise AllocationNotHere()  # before any per-key check: the same for all
             out: list[DeliveredKey] = []
             for key_id in ids:
                 row = rows.get(key_id)

@@ -57,14 +57,17 @@ class PeerClient:
         answer = r.json()
         return answer if isinstance(answer, dict) else None
 
-    def pending_allocations(self, node_id: str) -> list[dict[str, Any]]:
-        """Key allocation messages ``node_id`` still holds for this node ([] if none or
-        the peer cannot be reached now)."""
+    def pending_allocations(self, node_id: str) -> list[dict[str, Any]] | None:
+        """Key allocation messages ``node_id`` still holds for this node: [] if none, or
+        if ``node_id`` is not in ``[[peers]]`` (then only its outbox brings them); None
+        when the peer cannot be reached or does not answer 200 now."""
+        if node_id not in self.urls:
+            return []
         try:
             r = self._client.get(self._url(node_id, "/api/v1/peer/allocations"))
-        except (httpx.HTTPError, PeerUnavailable):
-            return []
-        if r.status_code != 200:
-            return []
-        messages = r.json().get("messages", [])
+            messages = r.json().get("messages", []) if r.status_code == 200 else None
+        except (httpx.HTTPError, ValueError, AttributeError):
+            return None
+        if not isinstance(messages, list):
+            return None
         return [m for m in messages if isinstance(m, dict)]

@@ -33,6 +33,9 @@ _ERRORS: dict[int | str, dict[str, Any]] = {
     400: {"model": ErrorBody, "description": "Bad request format"},
     401: {"model": ErrorBody, "description": "Unauthorized"},
     503: {"model": ErrorBody, "description": "Error on the server side"},
+    # Any other client error has the same body; naming it keeps FastAPI from documenting
+    # a 422 that the error handler never gives (it answers 400).
+    "4XX": {"model": ErrorBody, "description": "Any other client error"},
 }
 KEY_ID_PATTERN = r"^[0-9a-fA-F]{8}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{12}$"
 
@@ -49,7 +52,7 @@ def _container(keys: list[DeliveredKey]) -> dict[str, Any]:
 
 
 def _pull(request: Request) -> delivery.Pull:
-    def pull(owner: str) -> list[dict[str, Any]]:
+    def pull(owner: str) -> list[dict[str, Any]] | None:
         peers: PeerClient = request.app.state.peers
         return peers.pending_allocations(owner)
 

@@ -1,0 +1,292 @@
+"""Key delivery end to end on real processes (`keystrata serve`, mutual TLS on loopback):
+
+* Get key with key IDs at station B that arrives before B heard of the allocation: A's
+  outbox is held back by a real setting (`[server] background_work = false`, which
+  starts no outbox worker), so the only way B can serve the key is to pull the pending
+  `key.allocated` message from A (`GET /api/v1/peer/allocations`).
+* Only the named slave fetches, once; the master itself and a third SAE get 401.
+* The `keystrata-encryptors` command rekeys several pairs against the real network with
+  zero mismatches.
+
+Status codes and paths are ETSI GS QKD 014 V1.1.1's (clause 5, from memory): 200 with
+a Key container, 401 Unauthorized for a key the caller may not have.
+"""
+
+from __future__ import annotations
+
+import json
+import signal
+import ssl
+import subprocess
+import sys
+import time
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pytest
+
+from conftest import PkiFiles
+from keystrata_client import ApiError, OperatorClient, TlsIdentity
+from keystrata_client.keys import KeyClient
+from processes import NETWORK, NodeProcess, start_network, stop_all
+
+pytestmark = pytest.mark.e2e
+
+RELAY = "\n[relay]\nsegment_bytes = 4096\nmin_segment_bytes = 512\ncycle_seconds = 0.1\n"
+HELD = "[server]\nbackground_work = false\n"
+ENCRYPTORS = Path(sys.executable).parent / "keystrata-encryptors"
+
+
+def ident(pki: PkiFiles, name: str) -> TlsIdentity:
+    return TlsIdentity(ca=pki.ca, cert=pki.cert(name), key=pki.key(name))
+
+
+def _wait(what: str, check: Any, timeout: float = 60) -> None:
+    deadline = time.monotonic() + timeout
+    while not check():
+        assert time.monotonic() < deadline, f"timed out waiting for {what}"
+        time.sleep(0.3)
+
+
+def _quiet(nodes: dict[str, NodeProcess], pki: PkiFiles) -> bool:
+    """No segment on its way anywhere, and both stations hold the same ready key."""
+    ops = ident(pki, "ops-ada")
+    with OperatorClient(nodes["relay-1"].url, ops) as relay:
+        if any(p["in_flight_bits"] for p in relay.pairs()["pairs"]):
+            return False
+    views = []
+    for station in ("station-a", "station-b"):
+        with OperatorClient(nodes[station].url, ops) as op:
+            (view,) = op.pairs()["pairs"]
+        views.append(view)
+    a, b = views
+    return a["pending_bits"] == b["pending_bits"] == 0 and a["ready_bits"] == b["ready_bits"]
+
+
+@pytest.fixture(scope="module")
+def network(tmp_path_factory, pki) -> Iterator[dict[str, NodeProcess]]:
+    """A relay and two stations (SQLite) with ready pair key owned by each station; then
+    the relay makes no more segments, so every segment is ready at both stations."""
+    from test_crash import _feed
+
+    base = tmp_path_factory.mktemp("delivery")
+    nodes = start_network(
+        base, pki, {n: f"sqlite:///{base}/{n}.db" for n in NETWORK}, extra=RELAY, saes=True
+    )
+    try:
+        _feed(nodes, pki, 40)
+
+        def stocked() -> bool:
+            for master, slave, station in (
+                ("sae-a1", "sae-b1", "station-a"),
+                ("sae-b2", "sae-a2", "station-b"),
+            ):
+                with KeyClient(nodes[station].url, ident(pki, master)) as kme:
+                    if kme.status(slave).stored_key_count < 64:
+                        return False
+            return True
+
+        _wait("ready key owned by both stations", stocked)
+        with OperatorClient(nodes["relay-1"].url, ident(pki, "ops-ada")) as ops:
+            ops.change(
+                "pairs",
+                "pair-ab",
+                {"policy": {"buffer_min_bits": 0, "buffer_target_bits": 0, "buffer_max_bits": 0}},
+            )
+        _wait("every segment settled at both stations", lambda: _quiet(nodes, pki))
+        yield nodes
+    finally:
+        stop_all(list(nodes.values()))
+
+
+@pytest.fixture
+def held_outbox(network, pki) -> Iterator[NodeProcess]:
+    """Station A restarted with `[server] background_work = false`: it answers every
+    request but runs no outbox worker, so its `key.allocated` notices stay queued."""
+    a = network["station-a"]
+    original = a.config.read_text()
+    assert "[server]\n" in original
+    a.stop()
+    a.config.write_text(original.replace("[server]\n", HELD, 1))
+    try:
+        a.start(pki)
+        yield a
+    finally:
+        a.stop()
+        a.config.write_text(original)
+        a.start(pki)
+
+
+def _pending_at(owner: NodeProcess, pki: PkiFiles) -> set[str]:
+    """Key IDs of `key.allocated` messages the owner still holds for station B, read
+    with station B's own node certificate (the peer route B pulls from)."""
+    ctx = ssl.create_default_context(cafile=str(pki.ca))
+    ctx.load_cert_chain(str(pki.cert("station-b")), str(pki.key("station-b")))
+    r = httpx.get(owner.url + "/api/v1/peer/allocations", verify=ctx, timeout=10)
+    assert r.status_code == 200, r.text
+    return {k["key_ID"] for m in r.json()["messages"] for k in m["keys"]}
+
+
+def _refused(url: str, pki: PkiFiles, sae: str, master: str, key_ids: tuple[str, ...]) -> str:
+    """Ask for the keys as ``sae``; return the 401 message (anything else fails)."""
+    with KeyClient(url, ident(pki, sae)) as kme, pytest.raises(ApiError) as caught:
+        kme.get_keys_with_ids(master, key_ids)
+    assert caught.value.status == 401, (sae, caught.value)  # clause 5.4 (from memory)
+    return caught.value.message
+
+
+def test_dec_keys_before_the_notice_pulls_it_from_the_owner(network, held_outbox, pki) -> None:
+    a, b = held_outbox, network["station-b"]
+    with KeyClient(a.url, ident(pki, "sae-a1")) as master:
+        sent = master.get_keys("sae-b1", number=3, size=256)
+    # The notice has not left A: it is still queued for B.
+    assert set(sent.key_ids) <= _pending_at(a, pki)
+    with KeyClient(b.url, ident(pki, "sae-b1")) as slave:
+        got = slave.get_keys_with_ids("sae-a1", sent.key_ids)
+    assert {k.key_id: k.key for k in got} == {k.key_id: k.key for k in sent}
+    # B served it by pulling: A's outbox still holds the notice.
+    assert set(sent.key_ids) <= _pending_at(a, pki)
+    # Once only (ETSI GS QKD 014 clause 5.4, 401; from memory).
+    _refused(b.url, pki, "sae-b1", "sae-a1", sent.key_ids)
+    _refused(b.url, pki, "sae-b1", "sae-a1", sent.key_ids[:1])
+    # B's ledger: stored for the slave (pulled), then delivered to it.
+    events = _ledger(b, pki)
+    stored = [e for e in events if e["event"] == "key.allocated" and e.get("side") == "slave"]
+    assert any(set(sent.key_ids) <= set(e["key_ids"]) for e in stored)
+    delivered = [e for e in events if e["event"] == "key.delivered"]
+    assert any(e["key_ids"] == list(sent.key_ids) and e["sae"] == "sae-b1" for e in delivered)
+
+
+def test_only_the_named_slave_fetches_even_before_the_notice(network, held_outbox, pki) -> None:
+    a, b = held_outbox, network["station-b"]
+    with KeyClient(a.url, ident(pki, "sae-a1")) as master:
+        sent = master.get_keys("sae-b1", number=2, size=256)
+    assert set(sent.key_ids) <= _pending_at(a, pki)
+    messages = {
+        # A third SAE at B: its call makes B pull the allocation, then refuses.
+        _refused(b.url, pki, "sae-b2", "sae-a1", sent.key_ids),
+        # The master itself, at B and at its own station.
+        _refused(b.url, pki, "sae-a1", "sae-a1", sent.key_ids),
+        _refused(a.url, pki, "sae-a1", "sae-a1", sent.key_ids),
+        # The right slave naming the wrong master.
+        _refused(b.url, pki, "sae-b1", "sae-a2", sent.key_ids),
+    }
+    assert messages == {"unauthorized"}  # one answer for every reason: no oracle
+    # None of that consumed anything: the named slave still gets identical keys.
+    with KeyClient(b.url, ident(pki, "sae-b1")) as slave:
+        got = slave.get_keys_with_ids("sae-a1", sent.key_ids)
+    assert [k.digest() for k in got] == [k.digest() for k in sent]
+    _refused(b.url, pki, "sae-b1", "sae-a1", sent.key_ids)
+
+
+def test_owner_down_before_the_notice_is_503_then_served(network, held_outbox, pki) -> None:
+    """Regression: B used to answer 401 (final, recorded as a refusal) when it could not
+    ask the owner about a key ID it had not heard of; the slave then dropped a key that
+    was allocated to it. B must answer 503 (try again) and serve it once A is back."""
+    a, b = held_outbox, network["station-b"]
+    with KeyClient(a.url, ident(pki, "sae-a1")) as master:
+        sent = master.get_keys("sae-b1", number=2, size=256)
+    assert set(sent.key_ids) <= _pending_at(a, pki)
+    a.stop(signal.SIGKILL)  # the notice is still in A's outbox, and A is gone
+    with KeyClient(b.url, ident(pki, "sae-b1"), attempts=1) as slave:
+        with pytest.raises(ApiError) as caught:
+            slave.get_keys_with_ids("sae-a1", sent.key_ids)
+        # ETSI GS QKD 014 clause 5.4: 503 is an error on the server side (from memory).
+        assert caught.value.status == 503, caught.value
+        assert "try again" in caught.value.message
+        a.start(pki)
+        got = slave.get_keys_with_ids("sae-a1", sent.key_ids)
+    assert [k.digest() for k in got] == [k.digest() for k in sent]
+    refused = [e for e in _ledger(b, pki) if e["event"] == "key.refused"]
+    assert not any(set(e.get("key_ids", [])) & set(sent.key_ids) for e in refused)
+
+
+def _ledger(node: NodeProcess, pki: PkiFiles) -> list[dict[str, Any]]:
+    """Every ledger entry of ``node`` through the auditor API."""
+    with OperatorClient(node.url, ident(pki, "ops-ada")) as ops:
+        known = {p["principal_id"] for p in ops.list("principals")}
+        if "aud-ben" not in known:
+            ops.create(
+                "principals",
+                {"principal_id": "aud-ben", "role": "auditor", "cert_subject": "aud-ben"},
+            )
+    return audit_entries(node.url, pki)
+
+
+def audit_entries(url: str, pki: PkiFiles) -> list[dict[str, Any]]:
+    """Ledger entries (decoded) read page by page as auditor ``aud-ben``."""
+    ctx = ssl.create_default_context(cafile=str(pki.ca))
+    ctx.load_cert_chain(str(pki.cert("aud-ben")), str(pki.key("aud-ben")))
+    out: list[dict[str, Any]] = []
+    with httpx.Client(verify=ctx, timeout=30) as client:
+        while True:
+            r = client.get(url + f"/api/v1/audit/entries?start={len(out)}")
+            assert r.status_code == 200, r.text
+            page = r.json()["entries"]
+            if not page:
+                return out
+            out += [e["entry"] for e in page]
+
+
+def test_encryptor_command_rekeys_with_zero_mismatches(network, pki, tmp_path) -> None:
+    a, b = network["station-a"].url, network["station-b"].url
+
+    def pair(name: str, master: str, m_url: str, slave: str, s_url: str) -> str:
+        return f"""
+[[pair]]
+name = "{name}"
+master_sae_id = "{master}"
+master_url = "{m_url}"
+master_cert = "{pki.cert(master)}"
+master_key = "{pki.key(master)}"
+slave_sae_id = "{slave}"
+slave_url = "{s_url}"
+slave_cert = "{pki.cert(slave)}"
+slave_key = "{pki.key(slave)}"
+"""
+
+    config = tmp_path / "encryptors.toml"
+    config.write_text(
+        f"""
+[emulator]
+summary_seconds = 1.0
+drain_seconds = 15.0
+slave_patience_seconds = 15.0
+
+[defaults]
+ca = "{pki.ca}"
+key_size_bits = 256
+keys_per_rekey = 2
+interval_seconds = 0.3
+"""
+        + pair("a1-b1", "sae-a1", a, "sae-b1", b)
+        + pair("b2-a2", "sae-b2", b, "sae-a2", a)
+    )
+    run = subprocess.run(
+        [str(ENCRYPTORS), "--config", str(config), "--rekeys", "4", "--duration", "60", "--json"],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert run.returncode == 0, run.stdout + run.stderr
+    final = [json.loads(line) for line in run.stdout.splitlines() if '"final": true' in line]
+    assert {s["name"] for s in final} == {"a1-b1", "b2-a2"}
+    for stats in final:
+        assert stats["mismatches"] == 0
+        assert stats["keys_delivered"] == stats["matches"] == 8, stats  # 4 rekeys x 2 keys
+        assert stats["bits_delivered"] == 8 * 256
+        assert stats["errors"] == {} and stats["keys_lost"] == 0, stats
+    # The table form, for people: one row per pair, counts only.
+    shown = subprocess.run(
+        [str(ENCRYPTORS), "--config", str(config), "--rekeys", "1", "--duration", "60"],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert shown.returncode == 0, shown.stdout + shown.stderr
+    header, _rule, *rows = shown.stdout.strip().split("\n\n")[-1].splitlines()
+    assert header.split()[:3] == ["pair", "rekeys", "keys"] and "mismatch" in header
+    assert [r.split()[0] for r in rows] == ["a1-b1", "b2-a2"]
+    assert all(r.split()[5] == "0" for r in rows)  # the mismatch column
