@@ -119,3 +119,44 @@ def test_unknown_key_id_with_the_owner_reachable_is_still_401(net, api) -> None:
     r = _dec(client, [str(uuid.uuid4())])
     assert r.status_code == 401 and r.json() == {"message": "unauthorized"}
     assert ledger_events(net.b.ctx)[-1] == "key.refused"
+
+
+def _apply_twice_at_once(net: relaynet.RelayNet, message: dict[str, Any]) -> list[str]:
+    """Apply one message at station B from two threads released together; return the
+    outcomes, or the errors."""
+    import threading
+
+    from keystrata.services import delivery
+
+    start, results = threading.Barrier(2), []
+
+    def apply() -> None:
+        start.wait()
+        try:
+            results.append(delivery.apply_allocated(net.b.ctx, "station-a", message).status)
+        except Exception as exc:
+            results.append(repr(exc))
+
+    threads = [threading.Thread(target=apply) for _ in range(2)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(30)
+    return sorted(results)
+
+
+def test_the_same_allocation_applied_twice_at_once(net, api) -> None:
+    """Regression (found by the load test on PostgreSQL): the owner's push and the
+    slave station's own pull applied one `key.allocated` message concurrently; the
+    later transaction found the segment bytes used and refused the message, so the pull
+    gave up and the slave got 401 for a key allocated to it. Both must succeed."""
+    key_ids: list[str] = []
+    for _ in range(3):  # the race is a matter of timing: several rounds of fresh keys
+        r = api(net.a)("sae-a1").post("/api/v1/keys/sae-b1/enc_keys", json={"number": 4})
+        assert r.status_code == 200
+        key_ids += [k["key_ID"] for k in r.json()["keys"]]
+        bodies = outbox.pending_bodies(net.a.ctx.db, destination="station-b", kind="key.allocated")
+        assert _apply_twice_at_once(net, bodies[-1]) == ["already", "applied"]
+    # Every key allocated reaches the slave, once.
+    r = _dec(api(net.b)("sae-b1"), key_ids)
+    assert r.status_code == 200, r.text

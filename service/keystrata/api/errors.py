@@ -10,11 +10,45 @@ from typing import Any
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
+from pydantic import BaseModel, ConfigDict
 from starlette.exceptions import HTTPException
 
 from keystrata.errors import KeystrataError
 
 log = logging.getLogger("keystrata.api")
+
+
+class ErrorObject(BaseModel):
+    """The body of every error answer (the shape of ETSI GS QKD 014's Error object)."""
+
+    model_config = ConfigDict(extra="forbid", title="Error")
+    message: str
+    details: list[dict[str, Any]] | None = None
+
+
+#: What each error status means on this API, for the OpenAPI document.
+_MEANING = {
+    400: "Bad request: a parameter or the body is invalid; `details` names the fields",
+    401: "Unauthorized: no client certificate, or one that maps to no active principal",
+    403: "Forbidden: the caller's role may not use this route",
+    404: "Not found",
+    409: "Conflict with the node's state (already exists, or not applicable yet)",
+    413: "Request body too large",
+    415: "Unsupported content type",
+    503: "Unavailable: the database, the ledger or a peer cannot be reached right now",
+}
+
+
+def error_responses(*statuses: int) -> dict[int | str, dict[str, Any]]:
+    """Return the ``responses=`` that document a route's error answers: each of
+    ``statuses`` with the error object, and ``4XX`` saying that any other client error
+    (a method the path does not allow, say) has the same body. Naming ``4XX`` also keeps
+    FastAPI from documenting a 422 answer that the handler below never gives."""
+    out: dict[int | str, dict[str, Any]] = {
+        s: {"model": ErrorObject, "description": _MEANING[s]} for s in sorted(statuses)
+    }
+    out["4XX"] = {"model": ErrorObject, "description": "Any other client error"}
+    return out
 
 
 def error_body(message: str, details: list[dict[str, Any]] | None = None) -> dict[str, Any]:

@@ -8,7 +8,7 @@ Types are strict: JSON ``true`` is not a number and ``"8"`` is not an integer.
 from __future__ import annotations
 
 from enum import StrEnum
-from typing import Annotated, Any, Self
+from typing import Annotated, Any, ClassVar, Self
 
 from pydantic import BaseModel, ConfigDict, Field, StringConstraints, model_validator
 
@@ -62,7 +62,23 @@ class NodeSpec(_Input):
     description: Text = ""
 
 
-class NodeChange(_Input):
+class _Change(_Input):
+    """A partial change: fields left out keep their value. ``null`` clears a field only
+    where an entry may lack it (a node's URL, a principal's certificate pin); for the
+    fields in ``_not_null`` it is refused (400) rather than reaching a NOT NULL column."""
+
+    _not_null: ClassVar[tuple[str, ...]] = ()
+
+    @model_validator(mode="after")
+    def _no_null_where_required(self) -> Self:
+        for name in self._not_null:
+            if name in self.model_fields_set and getattr(self, name) is None:
+                raise ValueError(f"{name} cannot be null")
+        return self
+
+
+class NodeChange(_Change):
+    _not_null = ("description",)
     url: Url | None = None
     description: Text | None = None
 
@@ -80,7 +96,8 @@ class LinkSpec(_Input):
         return self
 
 
-class LinkChange(_Input):
+class LinkChange(_Change):
+    _not_null = ("description",)
     description: Text | None = None
 
 
@@ -161,7 +178,8 @@ class PrincipalSpec(_Input):
         return self
 
 
-class PrincipalChange(_Input):
+class PrincipalChange(_Change):
+    _not_null = ("cert_subject", "description")
     cert_subject: Subject | None = None
     cert_sha256: Sha256Hex | None = None
     description: Text | None = None

@@ -351,6 +351,16 @@ def apply_allocated(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outc
         if sender != partner or body.get("owner") != sender:
             raise Forbidden("only the pair's other station allocates its keys")
         now = ctx.clock.now()
+        # The same message can be applied twice at once (the owner's push and this
+        # station's pull, or two workers). Lock the segments it names first, in one
+        # order: the later transaction then waits, and sees the keys as already here.
+        named = sorted({str(r["segment"]) for rec in body["keys"] for r in rec["ranges"]})
+        s.execute(
+            select(PairSegment.segment_id)
+            .where(PairSegment.segment_id.in_(named))
+            .order_by(PairSegment.segment_id)
+            .with_for_update()
+        ).all()
         applied, taken = [], []
         for rec in body["keys"]:
             key_id = str(uuid.UUID(str(rec["key_ID"])))
@@ -459,6 +469,7 @@ def get_keys_with_ids(
         # here yet, an unknown key ID may be allocated all the same: "try again" (503),
         # not a refusal the slave would take as final.
         unsettled = bodies is None
+        missing = set(ids) - known
         for body in bodies or []:
             try:
                 apply_allocated(ctx, str(master.station_id), body)
@@ -466,6 +477,10 @@ def get_keys_with_ids(
                 unsettled = True
                 break
             except (InvalidInput, Forbidden):
+                continue  # a bad message holds no key of this request; others may
+            # Messages apply in order; later ones can wait for the owner's push.
+            missing -= {str(k.get("key_ID", "")).lower() for k in body.get("keys", [])}
+            if not missing:
                 break
     now = ctx.clock.now()
     try:

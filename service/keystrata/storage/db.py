@@ -18,7 +18,7 @@ from sqlalchemy import Engine, create_engine, event, exc
 from sqlalchemy.engine import URL, make_url
 from sqlalchemy.orm import Session, sessionmaker
 
-from keystrata.errors import Unavailable
+from keystrata.errors import InvalidInput, Unavailable
 
 _WRITE = "keystrata_write"
 
@@ -123,3 +123,7 @@ def _translate_db_errors() -> Iterator[None]:
         raise Unavailable("the database is not available; try again later") from err
     except exc.InterfaceError as err:
         raise Unavailable("the database is not available; try again later") from err
+    except exc.DataError as err:
+        # A value the database cannot hold (PostgreSQL: a NUL character in text, a number
+        # out of range) came from the request: refuse it without naming it.
+        raise InvalidInput("a value in the request cannot be stored or compared") from err

@@ -10,6 +10,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Depends, Query, Request
 from sqlalchemy import select
 
+from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
 from keystrata.domain.ledger import Event, Ref
 from keystrata.domain.registry import PrincipalRole
@@ -37,7 +38,10 @@ def _ctx(request: Request) -> NodeContext:
 
 
 @router.get(
-    "/checkpoints/latest", summary="Latest signed checkpoint", operation_id="latest_checkpoint"
+    "/checkpoints/latest",
+    summary="Latest signed checkpoint",
+    operation_id="latest_checkpoint",
+    responses=error_responses(401, 403, 404, 503),
 )
 def latest_checkpoint(request: Request, _: Auditor) -> dict[str, Any]:
     ctx = _ctx(request)
@@ -48,7 +52,10 @@ def latest_checkpoint(request: Request, _: Auditor) -> dict[str, Any]:
 
 
 @router.get(
-    "/checkpoints", summary="Signed checkpoints, newest first", operation_id="list_checkpoints"
+    "/checkpoints",
+    summary="Signed checkpoints, newest first",
+    operation_id="list_checkpoints",
+    responses=error_responses(400, 401, 403, 503),
 )
 def list_checkpoints(
     request: Request,
@@ -65,7 +72,12 @@ def list_checkpoints(
     }
 
 
-@router.get("/entries", summary="Ledger entries by index", operation_id="list_entries")
+@router.get(
+    "/entries",
+    summary="Ledger entries by index",
+    operation_id="list_entries",
+    responses=error_responses(400, 401, 403, 503),
+)
 def list_entries(
     request: Request, _: Auditor, start: Index = 0, end: Index | None = None
 ) -> dict[str, Any]:
@@ -106,7 +118,12 @@ def _events(values: list[str]) -> list[Event]:
     return [Event(v) for v in values]
 
 
-@router.get("/search", summary="Search ledger entries", operation_id="search_entries")
+@router.get(
+    "/search",
+    summary="Search ledger entries",
+    operation_id="search_entries",
+    responses=error_responses(400, 401, 403, 503),
+)
 def search_entries(
     request: Request,
     _: Auditor,
@@ -145,7 +162,12 @@ def _tree_size(s: Any, size: int | None) -> int:
     return size
 
 
-@router.get("/proofs/inclusion", summary="RFC 9162 inclusion proof", operation_id="inclusion_proof")
+@router.get(
+    "/proofs/inclusion",
+    summary="RFC 9162 inclusion proof",
+    operation_id="inclusion_proof",
+    responses=error_responses(400, 401, 403, 503),
+)
 def inclusion_proof(
     request: Request, _: Auditor, index: Index, tree_size: Index | None = None
 ) -> dict[str, Any]:
@@ -162,7 +184,10 @@ def inclusion_proof(
 
 
 @router.get(
-    "/proofs/consistency", summary="RFC 9162 consistency proof", operation_id="consistency_proof"
+    "/proofs/consistency",
+    summary="RFC 9162 consistency proof",
+    operation_id="consistency_proof",
+    responses=error_responses(400, 401, 403, 503),
 )
 def consistency_proof(
     request: Request, _: Auditor, first: Index, second: Index | None = None
@@ -175,7 +200,12 @@ def consistency_proof(
     return {"first": first, "second": size, "proof": [base64.b64encode(p).decode() for p in proof]}
 
 
-@router.get("/accounting", summary="Accounting per day", operation_id="daily_accounting")
+@router.get(
+    "/accounting",
+    summary="Accounting per day",
+    operation_id="daily_accounting",
+    responses=error_responses(400, 401, 403, 503),
+)
 def daily_accounting(
     request: Request, _: Reader, since: Moment = None, until: Moment = None
 ) -> dict[str, Any]:

@@ -13,6 +13,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Depends, Request, Response
 from prometheus_client.exposition import choose_encoder
 
+from keystrata.api.errors import ErrorObject, error_responses
 from keystrata.api.identity import admit
 from keystrata.domain.registry import PrincipalRole
 from keystrata.errors import Unavailable
@@ -54,7 +55,12 @@ Ready = Annotated[Caller, Depends(admit_or_report(*READY_ROLES))]
 Scraper = Annotated[Caller, Depends(admit_or_report(*METRICS_ROLES))]
 
 
-@router.get("/health/live", summary="The node process answers", operation_id="health_live")
+@router.get(
+    "/health/live",
+    summary="The node process answers",
+    operation_id="health_live",
+    responses=error_responses(401, 403, 503),
+)
 def live(_: Live) -> dict[str, str]:
     return {"status": "live"}
 
@@ -63,7 +69,13 @@ def live(_: Live) -> dict[str, str]:
     "/health/ready",
     summary="The node can serve: database, key-encryption key, ledger",
     operation_id="health_ready",
-    responses={503: {"description": "a check failed; `details` names each failing check"}},
+    responses=error_responses(401, 403)
+    | {
+        503: {
+            "model": ErrorObject,
+            "description": "a check failed; `details` names each failing check",
+        }
+    },
 )
 def ready(request: Request, _: Ready) -> dict[str, Any]:
     """200 with every check ``ok``, or 503 with the error object whose ``details`` list
@@ -83,7 +95,7 @@ def ready(request: Request, _: Ready) -> dict[str, Any]:
     summary="Prometheus metrics (text exposition format)",
     operation_id="metrics",
     response_class=Response,
-    responses={200: {"content": {"text/plain": {}}}},
+    responses=error_responses(401, 403, 503) | {200: {"content": {"text/plain": {}}}},
 )
 def scrape(request: Request, _: Scraper) -> Response:
     """Database-derived families (the same from every worker) and this worker's request

@@ -12,6 +12,7 @@ from fastapi import APIRouter, Depends, Request
 from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, StringConstraints, ValidationError
 from starlette.concurrency import run_in_threadpool
 
+from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
 from keystrata.domain.blocks import BlockIn, decode_batch
 from keystrata.domain.registry import PrincipalRole
@@ -127,6 +128,7 @@ _INGEST_BODY = {
     openapi_extra=_INGEST_BODY,
     summary="Push link key blocks",
     operation_id="push_blocks",
+    responses=error_responses(400, 401, 403, 404, 409, 413, 415, 503),
 )
 async def push_blocks(link_id: str, request: Request, caller: Module) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx
@@ -154,7 +156,11 @@ async def push_blocks(link_id: str, request: Request, caller: Module) -> dict[st
 
 
 @router.get(
-    "/pools", response_model=PoolsAnswer, summary="Link key pool levels", operation_id="list_pools"
+    "/pools",
+    response_model=PoolsAnswer,
+    summary="Link key pool levels",
+    operation_id="list_pools",
+    responses=error_responses(401, 403, 503),
 )
 def list_pools(request: Request, _: Reader) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx
@@ -166,6 +172,7 @@ def list_pools(request: Request, _: Reader) -> dict[str, Any]:
     response_model=PoolAnswer,
     summary="One link's pool level",
     operation_id="get_pool",
+    responses=error_responses(401, 403, 404, 503),
 )
 def get_pool(link_id: str, request: Request, _: Reader) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx

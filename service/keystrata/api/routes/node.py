@@ -7,6 +7,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Depends, Request
 
 from keystrata import __version__
+from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
 from keystrata.domain.registry import PrincipalRole
 from keystrata.services.context import NodeContext
@@ -17,7 +18,12 @@ router = APIRouter(prefix="/api/v1", tags=["node"])
 Anyone = Annotated[Caller, Depends(admit(*PrincipalRole))]
 
 
-@router.get("/node", summary="This node's identity", operation_id="node_info")
+@router.get(
+    "/node",
+    summary="This node's identity",
+    operation_id="node_info",
+    responses=error_responses(401, 503),
+)
 def node_info(request: Request, _: Anyone) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx
     return {"node_id": ctx.node_id, "role": ctx.role.value, "version": __version__}

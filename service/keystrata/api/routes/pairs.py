@@ -7,6 +7,7 @@ from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Request
 
+from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
 from keystrata.config import Role
 from keystrata.domain.registry import PrincipalRole
@@ -19,7 +20,12 @@ router = APIRouter(prefix="/api/v1", tags=["pairs"])
 Reader = Annotated[Caller, Depends(admit(PrincipalRole.OPERATOR, PrincipalRole.AUDITOR))]
 
 
-@router.get("/pairs", summary="Pair key buffers", operation_id="list_pair_buffers")
+@router.get(
+    "/pairs",
+    summary="Pair key buffers",
+    operation_id="list_pair_buffers",
+    responses=error_responses(401, 403, 503),
+)
 def list_pair_buffers(request: Request, _: Reader) -> dict[str, Any]:
     """At a relay: every pair's buffers at both stations (last reports), key on its
     way, relay rate, target and time until empty. At a station: this station's ready
@@ -34,7 +40,12 @@ def list_pair_buffers(request: Request, _: Reader) -> dict[str, Any]:
     return {"node_id": ctx.node_id, "role": "station", "pairs": buffers.station_view(ctx)}
 
 
-@router.get("/deliveries", summary="Key delivery accounting", operation_id="deliveries")
+@router.get(
+    "/deliveries",
+    summary="Key delivery accounting",
+    operation_id="deliveries",
+    responses=error_responses(401, 403, 503),
+)
 def deliveries(request: Request, _: Reader) -> dict[str, Any]:
     """Per pair and per SAE at this station: keys and bits handed to masters, fetched by
     slaves, waiting, expired; and refused requests per SAE."""

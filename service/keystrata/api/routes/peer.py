@@ -13,6 +13,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Depends, Request
 from starlette.concurrency import run_in_threadpool
 
+from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
 from keystrata.config import Role
 from keystrata.domain.registry import PrincipalRole
@@ -26,7 +27,12 @@ router = APIRouter(prefix="/api/v1/peer", tags=["peer"])
 Peer = Annotated[Caller, Depends(admit(PrincipalRole.PEER))]
 
 
-@router.post("/messages", summary="Deliver a relay or segment message", operation_id="peer_message")
+@router.post(
+    "/messages",
+    summary="Deliver a relay or segment message",
+    operation_id="peer_message",
+    responses=error_responses(400, 401, 403, 404, 409, 413, 503),
+)
 async def peer_message(request: Request, caller: Peer) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx
     try:
@@ -42,6 +48,7 @@ async def peer_message(request: Request, caller: Peer) -> dict[str, Any]:
     "/pairs/{pair_id}/buffer",
     summary="A station's key buffer for a pair",
     operation_id="peer_pair_buffer",
+    responses=error_responses(401, 403, 404, 503),
 )
 def pair_buffer(pair_id: str, request: Request, caller: Peer) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx
@@ -54,6 +61,7 @@ def pair_buffer(pair_id: str, request: Request, caller: Peer) -> dict[str, Any]:
     "/allocations",
     summary="Key allocations still on their way to the calling station",
     operation_id="peer_pending_allocations",
+    responses=error_responses(401, 403, 503),
 )
 def pending_allocations(request: Request, caller: Peer) -> dict[str, Any]:
     """A station asked for a key ID it has not heard of pulls them here (issue: the

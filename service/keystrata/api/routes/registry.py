@@ -7,6 +7,7 @@ from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Query, Request, status
 
+from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
 from keystrata.domain.registry import (
     Kind,
@@ -72,6 +73,7 @@ def _routes(kind: Kind, key: str, spec: type[Any], change: type[Any]) -> None:
         create_entry,
         methods=["POST"],
         status_code=status.HTTP_201_CREATED,
+        responses=error_responses(400, 401, 403, 409, 413, 503),
         summary=f"Create a {noun}",
         operation_id=f"create_{noun}",
     )
@@ -80,16 +82,23 @@ def _routes(kind: Kind, key: str, spec: type[Any], change: type[Any]) -> None:
         list_entries,
         methods=["GET"],
         summary=f"List {kind.value}",
+        responses=error_responses(400, 401, 403, 503),
         operation_id=f"list_{kind.value}",
     )
     router.add_api_route(
-        item, get_entry, methods=["GET"], summary=f"Get a {noun}", operation_id=f"get_{noun}"
+        item,
+        get_entry,
+        methods=["GET"],
+        summary=f"Get a {noun}",
+        operation_id=f"get_{noun}",
+        responses=error_responses(401, 403, 404, 503),
     )
     router.add_api_route(
         item,
         change_entry,
         methods=["PATCH"],
         summary=f"Change a {noun}",
+        responses=error_responses(400, 401, 403, 404, 409, 413, 503),
         operation_id=f"change_{noun}",
     )
     router.add_api_route(
@@ -97,6 +106,7 @@ def _routes(kind: Kind, key: str, spec: type[Any], change: type[Any]) -> None:
         retire_entry,
         methods=["DELETE"],
         summary=f"Retire a {noun}",
+        responses=error_responses(401, 403, 404, 409, 503),
         operation_id=f"retire_{noun}",
     )
 
