@@ -17,6 +17,7 @@ pytestmark = pytest.mark.e2e
 
 ROOT = Path(__file__).resolve().parent.parent
 
+
 def test_quick_load_run(pg_template: str | None, tmp_path: Path) -> None:
     if pg_template is None:
         pytest.skip(f"no PostgreSQL at {PG_URL} (set CI=1 to make this a failure)")
