@@ -463,12 +463,6 @@ def test_no_key_material_outside_its_sealed_columns(
     assert not leaks, "key material found:\n" + "\n".join(sorted(set(leaks)))
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="reported, not fixed here: Get key's 400 names the unsupported mandatory "
-    "extensions it was sent, and key.refused ledger entries record the requested SAE IDs "
-    "verbatim (up to 64 characters)",
-)
 def test_key_material_a_client_sends_is_not_echoed(harness: Harness) -> None:
     """A confused or hostile client puts a key where an identifier belongs: the refusal
     (error body, ledger entry) does not repeat it."""
