@@ -36,13 +36,13 @@ def parse(argv: list[str] | None) -> argparse.Namespace:
     p.add_argument("--max-seconds", type=float, default=600, help="time bound of the load (600)")
     p.add_argument("--saes", type=int, default=8, help="master SAEs at A, as many slaves at B")
     p.add_argument("--number", type=int, default=1, help="keys per Get key request (1)")
-    p.add_argument("--quick", action="store_true", help="8 clients, 500 keys, 30 s")
+    p.add_argument("--quick", action="store_true", help="8 clients, 150 keys, 60 s")
     p.add_argument("--pg-url", default=DEFAULT_PG, help="PostgreSQL server (admin database)")
     p.add_argument("--out", type=Path, default=Path("build/loadtest/summary.json"))
     p.add_argument("--workdir", type=Path, help="keep PKI, configs and logs here")
     args = p.parse_args(argv)
     if args.quick:
-        args.clients, args.keys, args.max_seconds = 8, 500, 30.0
+        args.clients, args.keys, args.max_seconds = 8, 150, 60.0
     if args.clients < 1 or args.keys < 1 or args.saes < 1 or args.number < 1:
         p.error("--clients, --keys, --saes and --number must be positive")
     return args

@@ -1,5 +1,5 @@
 """The load test script (``python -m loadtest``, issue 6) in its ``--quick`` mode: real
-processes, two workers per station on PostgreSQL, 8 SAE clients, 500 keys. It keeps the
+processes, two workers per station on PostgreSQL, 8 SAE clients, 150 keys. It keeps the
 script working; the full run (64 clients, 20,000 keys) is ``make load``."""
 
 from __future__ import annotations
@@ -42,4 +42,4 @@ def test_quick_load_run(pg_template: str | None, tmp_path: Path) -> None:
     assert summary["settings"]["clients"] == 8 and summary["settings"]["station_workers"] == 2
     assert ("PASS" in run.stdout) == summary["ok"] == (run.returncode == 0)
     assert summary["ok"], f"violations:\n{run.stdout}"
-    assert summary["keys_delivered"] >= 500
+    assert summary["keys_delivered"] >= 150
