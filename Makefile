@@ -20,10 +20,10 @@ $(STAMP): pyproject.toml | $(BIN)/python
 ## make test: the whole suite on SQLite and PostgreSQL (PostgreSQL is skipped
 ## locally when no server answers; with CI set, a missing server fails the run)
 test: $(STAMP)
-	$(BIN)/ruff check service clients tests deploy
-	$(BIN)/ruff format --check service clients tests deploy
+	$(BIN)/ruff check service clients tests deploy bench loadtest
+	$(BIN)/ruff format --check service clients tests deploy bench loadtest
 	$(BIN)/mypy
-	$(BIN)/python -m pytest $(ARGS)
+	$(BIN)/python -m pytest -m "not slow" $(ARGS)
 
 ## make test-fast: domain and SQLite tests only, no server processes
 test-fast: $(STAMP)
@@ -32,11 +32,12 @@ test-fast: $(STAMP)
 ## make faults: the long crash series (30 SIGKILLs per backend), run before resolving
 ## an issue that touches relaying or key delivery; KEYSTRATA_KILLS sets the number of kills
 faults: $(STAMP)
-	KEYSTRATA_KILLS=$${KEYSTRATA_KILLS:-30} $(BIN)/python -m pytest tests/test_crash.py tests/test_crash_delivery.py $(ARGS)
+	KEYSTRATA_KILLS=$${KEYSTRATA_KILLS:-30} $(BIN)/python -m pytest tests/test_crash.py tests/test_crash_delivery.py tests/test_faults.py $(ARGS)
 
-## make bench: every figure beside its ceiling, measured in the same run (about 8
+## make bench: every figure beside its ceiling, measured in the same run (8-12
 ## minutes; not part of make test); writes bench/results.json and docs/benchmarks.md.
 ## ARGS='--quick' for a short smoke run, ARGS='--only ingest,relay' for some families
+## (both write build/bench/results.json only)
 bench: $(STAMP)
 	$(BIN)/python -m bench $(ARGS)
 
@@ -51,8 +52,8 @@ demo: $(STAMP)
 	$(BIN)/keystrata demo $(ARGS)
 
 lint: $(STAMP)
-	$(BIN)/ruff check service clients tests deploy
-	$(BIN)/ruff format --check service clients tests deploy
+	$(BIN)/ruff check service clients tests deploy bench loadtest
+	$(BIN)/ruff format --check service clients tests deploy bench loadtest
 
 typecheck: $(STAMP)
 	$(BIN)/mypy

@@ -46,6 +46,7 @@ from test_crash_delivery import (
 
 pytestmark = [
     pytest.mark.e2e,
+    pytest.mark.slow,  # about two minutes: `make faults` runs it
     pytest.mark.skipif(not pgcluster.available(), reason="PostgreSQL binaries not installed"),
 ]
 

@@ -3,11 +3,11 @@ cannot be written, the transaction, and so the change it records, is rolled back
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import exc, insert, select, update
+from sqlalchemy import exc, insert, select, tuple_, update
 from sqlalchemy.orm import Session
 
 from keystrata.domain import merkle
@@ -91,7 +91,40 @@ class StoredTree:
         return int(size), merkle.root(Frontier(int(size), blob), int(size))
 
     def inclusion_proof(self, index: int, size: int) -> list[bytes]:
-        return merkle.inclusion_proof(self, index, size)
+        return self._prefetched(lambda store: merkle.inclusion_proof(store, index, size))
 
     def consistency_proof(self, old_size: int, new_size: int) -> list[bytes]:
-        return merkle.consistency_proof(self, old_size, new_size)
+        return self._prefetched(lambda store: merkle.consistency_proof(store, old_size, new_size))
+
+    def _prefetched(self, proof: Callable[[merkle.SubtreeStore], list[bytes]]) -> list[bytes]:
+        """Compute a proof with one query: which subtrees a proof reads depends on the
+        sizes only, so a first walk records them, one query reads them, and a second
+        walk computes the proof from those."""
+        wanted: list[tuple[int, int]] = []
+        proof(_Recorder(wanted))
+        found: dict[tuple[int, int], bytes] = {}
+        if wanted:
+            rows = self.session.execute(
+                select(LedgerNode.level, LedgerNode.idx, LedgerNode.hash).where(
+                    tuple_(LedgerNode.level, LedgerNode.idx).in_(sorted(set(wanted)))
+                )
+            ).all()
+            found = {(int(lv), int(ix)): bytes(h) for lv, ix, h in rows}
+        return proof(_Found(found))
+
+
+class _Recorder:
+    def __init__(self, wanted: list[tuple[int, int]]) -> None:
+        self.wanted = wanted
+
+    def get(self, level: int, index: int) -> bytes:
+        self.wanted.append((level, index))
+        return bytes(merkle.HASH_SIZE)
+
+
+class _Found:
+    def __init__(self, found: dict[tuple[int, int], bytes]) -> None:
+        self.found = found
+
+    def get(self, level: int, index: int) -> bytes:
+        return self.found[(level, index)]  # KeyError: not stored, as SubtreeStore says

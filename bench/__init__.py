@@ -1,0 +1,1 @@
+"""keystrata benchmarks: every figure beside its ceiling (``python -m bench``)."""
