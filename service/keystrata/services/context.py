@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 from keystrata.clock import Clock, SystemClock
 from keystrata.config import Role, Settings
@@ -17,6 +18,9 @@ class NodeContext:
     keyring: Keyring = field(repr=False)
     fingerprint_key: bytes = field(repr=False)
     clock: Clock = field(default_factory=SystemClock)
+    #: Per-process state of services that batch requests (see services/group_commit.py),
+    #: created on first use and keyed by the service's name.
+    lanes: dict[str, Any] = field(default_factory=dict, repr=False, compare=False)
 
     @property
     def node_id(self) -> str:

@@ -20,12 +20,13 @@ from __future__ import annotations
 
 import json
 import uuid
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
+from functools import partial
 from typing import Any
 
-from sqlalchemy import func, select
+from sqlalchemy import func, insert, select
 from sqlalchemy.orm import Session
 
 from keystrata.domain.etsi import KeyRequest
@@ -33,7 +34,9 @@ from keystrata.domain.ledger import Event
 from keystrata.errors import BadRequest, Forbidden, InvalidInput, Unauthenticated, Unavailable
 from keystrata.services import ledger, outbox
 from keystrata.services.context import NodeContext
+from keystrata.services.group_commit import GroupCommit
 from keystrata.services.linkbytes import NotYet
+from keystrata.services.owned_stock import OwnedStock, Range, key_bytes
 from keystrata.services.principals import Caller
 from keystrata.services.segments import Outcome
 from keystrata.storage.models import KeyAlloc, Pair, PairSegment, Principal
@@ -42,6 +45,10 @@ from keystrata.storage.sealed import key_context, segment_context
 #: Keys one Get key may ask for, and additional slaves one key may have.
 MAX_KEY_PER_REQUEST = 1024
 MAX_SAE_ID_COUNT = 8
+#: Requests one group commit serves at most (see services/group_commit.py).
+LANE_BATCH = 64
+#: Key IDs per ``IN (...)`` (SQLite allows 32,766 parameters per statement).
+_IN_CHUNK = 500
 
 #: Returns the owner's pending allocation messages, or None when it cannot be asked now.
 #: Recorded in place of an SAE ID that names no registered principal.
@@ -78,21 +85,26 @@ class Route:
 
 
 def _refuse(ctx: NodeContext, caller: Caller, reason: str, **fields: Any) -> Unauthenticated:
-    """Record a refusal and return the one 401 for every reason. SAE IDs the caller
-    named are recorded only when they are registered: anything else a client puts in
-    an ID field (a key, by mistake or on purpose) stays out of the ledger."""
+    """Record a refusal and return the one 401 for every reason."""
     with ctx.db.write() as s:
-        for name in ("slave", "master"):
-            if name in fields and s.get(Principal, fields[name]) is None:
-                fields[name] = UNREGISTERED
-        ledger.append(
-            s,
-            node_id=ctx.node_id,
-            at=ctx.clock.now(),
-            event=Event.KEY_REFUSED,
-            fields={"sae": caller.principal_id, "reason": reason, **fields},
-        )
+        ledger.append(s, node_id=ctx.node_id, **_refusal(s, ctx, caller, reason, fields))
     return Unauthenticated()
+
+
+def _refusal(
+    s: Session, ctx: NodeContext, caller: Caller, reason: str, fields: dict[str, Any]
+) -> dict[str, Any]:
+    """The ledger entry of a refusal. SAE IDs the caller named are recorded only when
+    they are registered: anything else a client puts in an ID field (a key, by mistake
+    or on purpose) stays out of the ledger."""
+    for name in ("slave", "master"):
+        if name in fields and s.get(Principal, fields[name]) is None:
+            fields[name] = UNREGISTERED
+    return {
+        "at": ctx.clock.now(),
+        "event": Event.KEY_REFUSED,
+        "fields": {"sae": caller.principal_id, "reason": reason, **fields},
+    }
 
 
 def _sae(s: Session, sae_id: str) -> Principal | None:
@@ -203,6 +215,10 @@ def get_keys(
 ) -> list[DeliveredKey]:
     """Get key: allocate ``number`` keys of ``size`` bits for (caller -> slaves).
 
+    The allocation runs in a group commit with the Get key requests that arrive at the
+    same time (:mod:`keystrata.services.group_commit`); each still gets its own keys,
+    ledger entry and answer.
+
     Raises:
         Unauthenticated: the caller may not ask this (401, recorded).
         BadRequest: malformed request values (400).
@@ -212,141 +228,161 @@ def get_keys(
         raise BadRequest(f"at most {MAX_SAE_ID_COUNT} additional_slave_SAE_IDs (max_SAE_ID_count)")
     route = route_for_master(ctx, caller, slave_sae_id, request.additional_slave_SAE_IDs or ())
     number, size = check_request(route, request)
-    pair = route.pair
-    need = number * size // 8
+    lane: GroupCommit[_Ask, list[DeliveredKey]] = _lane(ctx, "get_key", _allocate)
+    return lane.submit(_Ask(caller, route, number, size))
+
+
+@dataclass(frozen=True)
+class _Ask:
+    caller: Caller
+    route: Route
+    number: int
+    size: int
+
+    @property
+    def need(self) -> int:
+        return self.number * self.size // 8
+
+
+def _lane(ctx: NodeContext, name: str, run: Callable[[NodeContext, Any], Any]) -> Any:
+    lane = ctx.lanes.get(name)
+    if lane is None:
+        lane = ctx.lanes.setdefault(name, GroupCommit(partial(run, ctx), max_batch=LANE_BATCH))
+    return lane
+
+
+def _allocate(ctx: NodeContext, asks: Sequence[_Ask]) -> list[list[DeliveredKey] | BaseException]:
+    """Allocate the keys of several Get key requests in one transaction, in order."""
+    results: list[list[DeliveredKey] | BaseException] = [NotEnoughKey()] * len(asks)
     now = ctx.clock.now()
+    by_pair: dict[str, list[int]] = {}
+    for i, ask in enumerate(asks):
+        by_pair.setdefault(ask.route.pair.pair_id, []).append(i)
     with ctx.db.write() as s:
-        if pair.daily_quota_bits is not None:
-            day = now.replace(hour=0, minute=0, second=0, microsecond=0)
-            used = int(
-                s.execute(
-                    select(func.coalesce(func.sum(KeyAlloc.size_bits), 0)).where(
-                        KeyAlloc.pair_id == pair.pair_id,
-                        KeyAlloc.owner == ctx.node_id,
-                        KeyAlloc.allocated_at >= day,
+        entries: list[tuple[datetime, Event, Mapping[str, Any]]] = []
+        for pair_id, members in by_pair.items():
+            pair = asks[members[0]].route.pair
+            stock = OwnedStock(s, ctx.keyring, pair_id, ctx.node_id)
+            stock.reserve(sum(asks[i].need for i in members))
+            used = _used_today(s, ctx, pair, now)
+            planned: list[tuple[int, list[tuple[str, list[Range]]]]] = []
+            for i in members:
+                ask = asks[i]
+                if (
+                    pair.daily_quota_bits is not None
+                    and used + 8 * ask.need > pair.daily_quota_bits
+                ):
+                    results[i] = QuotaReached(
+                        f"the daily quota of pair {pair_id} ({pair.daily_quota_bits} bits) "
+                        f"would be exceeded: {used} bits delivered today"
                     )
-                ).scalar_one()
-            )
-            if used + 8 * need > pair.daily_quota_bits:
-                raise QuotaReached(
-                    f"the daily quota of pair {pair.pair_id} "
-                    f"({pair.daily_quota_bits} bits) would be exceeded: "
-                    f"{used} bits delivered today"
+                    continue
+                if ask.need > stock.left:
+                    results[i] = NotEnoughKey(
+                        f"{8 * stock.left} of the {8 * ask.need} bits asked for are ready"
+                    )
+                    continue
+                used += 8 * ask.need
+                keys = [(str(uuid.uuid4()), stock.take(ask.size // 8)) for _ in range(ask.number)]
+                planned.append((i, keys))
+            if not planned:
+                continue
+            cut = stock.cut()
+            records = []
+            expires = now + timedelta(seconds=pair.key_ttl_seconds)
+            for i, keys in planned:
+                ask = asks[i]
+                mine = [_record(ask, key_id, ranges, now, expires) for key_id, ranges in keys]
+                s.execute(
+                    insert(KeyAlloc),
+                    [_owned_row(pair_id, ctx.node_id, r, now, expires) for r in mine],
                 )
-        pieces = _carve_owned(ctx, s, pair.pair_id, need)
-        keys: list[DeliveredKey] = []
-        records = []
-        expires = now + timedelta(seconds=pair.key_ttl_seconds)
-        offset = 0
-        for _ in range(number):
-            key_id = str(uuid.uuid4())
-            key, ranges = _slice(pieces, offset, size // 8)
-            offset += size // 8
-            keys.append(DeliveredKey(key_id, key))
-            record = {
-                "key_ID": key_id,
-                "master": caller.principal_id,
-                "slaves": route.slaves,
-                "ranges": ranges,
-                "size_bits": size,
-                "allocated_at": now.isoformat(),
-                "expires_at": expires.isoformat(),
-            }
-            records.append(record)
-            s.add(
-                KeyAlloc(
-                    key_id=key_id,
-                    pair_id=pair.pair_id,
-                    owner=ctx.node_id,
-                    master_sae=caller.principal_id,
-                    slaves=json.dumps(route.slaves),
-                    fetched_by="[]",
-                    ranges=json.dumps(ranges),
-                    size_bits=size,
-                    state="delivered",
-                    allocated_at=now,
-                    expires_at=expires,
-                    settled_at=now,
-                    sealed=None,
+                records += mine
+                results[i] = [
+                    DeliveredKey(key_id, key_bytes(cut, ranges)) for key_id, ranges in keys
+                ]
+                entries.append(
+                    (
+                        now,
+                        Event.KEY_ALLOCATED,
+                        {
+                            "pair": pair_id,
+                            "master": ask.caller.principal_id,
+                            "slaves": ask.route.slaves,
+                            "size_bits": ask.size,
+                            "key_ids": [key_id for key_id, _ in keys],
+                            "segments": _segments(mine),
+                            "delivered_to": ask.caller.principal_id,
+                        },
+                    )
                 )
+            outbox.enqueue(
+                s,
+                destination=asks[planned[0][0]].route.partner,
+                kind="key.allocated",
+                segment_id=None,
+                now=now,
+                body={"pair_id": pair_id, "owner": ctx.node_id, "keys": records},
             )
-        outbox.enqueue(
-            s,
-            destination=route.partner,
-            kind="key.allocated",
-            segment_id=None,
-            now=now,
-            body={"pair_id": pair.pair_id, "owner": ctx.node_id, "keys": records},
-        )
-        ledger.append(
-            s,
-            node_id=ctx.node_id,
-            at=now,
-            event=Event.KEY_ALLOCATED,
-            fields={
-                "pair": pair.pair_id,
-                "master": caller.principal_id,
-                "slaves": route.slaves,
-                "size_bits": size,
-                "key_ids": [k.key_id for k in keys],
-                "segments": _segments(records),
-                "delivered_to": caller.principal_id,
-            },
-        )
-    return keys
+        ledger.append_many(s, node_id=ctx.node_id, entries=entries)
+    return results
 
 
-def _carve_owned(
-    ctx: NodeContext, s: Session, pair_id: str, need: int
-) -> list[tuple[str, int, bytes]]:
-    """Take ``need`` bytes from the front of ready segments this station owns, oldest
-    first, destroying them; return (segment, offset, bytes) pieces in order."""
-    rows = s.execute(
-        select(PairSegment)
-        .where(
-            PairSegment.pair_id == pair_id,
-            PairSegment.owner == ctx.node_id,
-            PairSegment.state == "ready",
-            PairSegment.used < PairSegment.length,
-        )
-        .order_by(PairSegment.settled_at, PairSegment.segment_id)
-        .with_for_update()
-    ).scalars()
-    pieces: list[tuple[str, int, bytes]] = []
-    left = need
-    for row in rows:
-        if left == 0:
-            break
-        assert row.sealed is not None
-        rest = ctx.keyring.open(row.sealed, segment_context(row.segment_id, row.used))
-        take = min(left, len(rest))
-        pieces.append((row.segment_id, row.used, rest[:take]))
-        _advance(ctx, row, take, rest[take:])
-        left -= take
-    if left:
-        raise NotEnoughKey(f"{8 * (need - left)} of the {8 * need} bits asked for are ready")
-    return pieces
+def _used_today(s: Session, ctx: NodeContext, pair: Pair, now: datetime) -> int:
+    """Bits this station allocated for ``pair`` since midnight (0 when no quota)."""
+    if pair.daily_quota_bits is None:
+        return 0
+    day = now.replace(hour=0, minute=0, second=0, microsecond=0)
+    return int(
+        s.execute(
+            select(func.coalesce(func.sum(KeyAlloc.size_bits), 0)).where(
+                KeyAlloc.pair_id == pair.pair_id,
+                KeyAlloc.owner == ctx.node_id,
+                KeyAlloc.allocated_at >= day,
+            )
+        ).scalar_one()
+    )
+
+
+def _record(
+    ask: _Ask, key_id: str, ranges: list[Range], now: datetime, expires: datetime
+) -> dict[str, Any]:
+    """A key as the ``key.allocated`` message tells the slave's station about it."""
+    return {
+        "key_ID": key_id,
+        "master": ask.caller.principal_id,
+        "slaves": ask.route.slaves,
+        "ranges": [r.as_record() for r in ranges],
+        "size_bits": ask.size,
+        "allocated_at": now.isoformat(),
+        "expires_at": expires.isoformat(),
+    }
+
+
+def _owned_row(
+    pair_id: str, owner: str, record: dict[str, Any], now: datetime, expires: datetime
+) -> dict[str, Any]:
+    """The owner's ``key_alloc`` row of a key handed to its master at once."""
+    return {
+        "key_id": record["key_ID"],
+        "pair_id": pair_id,
+        "owner": owner,
+        "master_sae": record["master"],
+        "slaves": json.dumps(record["slaves"]),
+        "fetched_by": "[]",
+        "ranges": json.dumps(record["ranges"]),
+        "size_bits": record["size_bits"],
+        "state": "delivered",
+        "allocated_at": now,
+        "expires_at": expires,
+        "settled_at": now,
+        "sealed": None,
+    }
 
 
 def _advance(ctx: NodeContext, row: PairSegment, taken: int, rest: bytes) -> None:
     row.used += taken
     row.sealed = ctx.keyring.seal(rest, segment_context(row.segment_id, row.used)) if rest else None
-
-
-def _slice(
-    pieces: list[tuple[str, int, bytes]], start: int, n: int
-) -> tuple[bytes, list[dict[str, Any]]]:
-    """Bytes [start, start+n) of the carved pieces and the segment ranges they are."""
-    out = b""
-    ranges: list[dict[str, Any]] = []
-    pos = 0
-    for segment, offset, data in pieces:
-        lo, hi = max(start, pos), min(start + n, pos + len(data))
-        if lo < hi:
-            out += data[lo - pos : hi - pos]
-            ranges.append({"segment": segment, "offset": offset + lo - pos, "length": hi - lo})
-        pos += len(data)
-    return out, ranges
 
 
 def apply_allocated(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcome:
@@ -491,62 +527,82 @@ def get_keys_with_ids(
             missing -= {str(k.get("key_ID", "")).lower() for k in body.get("keys", [])}
             if not missing:
                 break
+    lane: GroupCommit[_Fetch, list[DeliveredKey]] = _lane(ctx, "get_key_with_ids", _serve)
+    return lane.submit(_Fetch(caller, master_sae_id, ids, unsettled))
+
+
+@dataclass(frozen=True)
+class _Fetch:
+    caller: Caller
+    master: str
+    ids: list[str]
+    unsettled: bool  # the owner could not say whether unknown IDs are allocated
+
+
+def _serve(ctx: NodeContext, fetches: Sequence[_Fetch]) -> list[list[DeliveredKey] | BaseException]:
+    """Serve several Get key with key IDs requests in one transaction, in order. Each is
+    served whole or not at all; a later request sees what earlier ones fetched."""
     now = ctx.clock.now()
-    try:
-        with ctx.db.write() as s:
-            rows = {
-                r.key_id: r
-                for r in s.execute(
-                    select(KeyAlloc).where(KeyAlloc.key_id.in_(ids)).with_for_update()
-                ).scalars()
-            }
-            if unsettled and len(rows) < len(ids):
-                raise AllocationNotHere()  # before any per-key check: the same for all
-            out: list[DeliveredKey] = []
-            for key_id in ids:
-                row = rows.get(key_id)
-                fetched = json.loads(row.fetched_by) if row else []
-                if (
-                    row is None
-                    or row.master_sae != master_sae_id
-                    or row.state != "waiting"
-                    or caller.principal_id not in json.loads(row.slaves)
-                    or caller.principal_id in fetched
-                    or row.expires_at <= now
-                ):
-                    raise _NotServed  # rolls back whatever this request took
+    results: list[list[DeliveredKey] | BaseException] = []
+    wanted = sorted({k for f in fetches for k in f.ids})
+    with ctx.db.write() as s:
+        rows: dict[str, KeyAlloc] = {}
+        for start in range(0, len(wanted), _IN_CHUNK):
+            chunk = wanted[start : start + _IN_CHUNK]
+            query = select(KeyAlloc).where(KeyAlloc.key_id.in_(chunk)).with_for_update()
+            rows.update((r.key_id, r) for r in s.execute(query).scalars())
+        entries: list[tuple[datetime, Event, Mapping[str, Any]]] = []
+        for f in fetches:
+            if f.unsettled and any(k not in rows for k in f.ids):
+                results.append(AllocationNotHere())  # before any per-key check
+                continue
+            if not all(_servable(rows.get(k), f, now) for k in f.ids):
+                refusal = _refusal(
+                    s,
+                    ctx,
+                    f.caller,
+                    "key_not_allocated_to_this_sae",
+                    {"master": f.master[:64], "key_ids": f.ids[:16]},
+                )
+                entries.append((refusal["at"], refusal["event"], refusal["fields"]))
+                results.append(Unauthenticated())
+                continue
+            out = []
+            for key_id in f.ids:
+                row = rows[key_id]
                 assert row.sealed is not None
                 out.append(DeliveredKey(key_id, ctx.keyring.open(row.sealed, key_context(key_id))))
-                fetched.append(caller.principal_id)
+                fetched = [*json.loads(row.fetched_by), f.caller.principal_id]
                 row.fetched_by = json.dumps(fetched)
                 if set(fetched) >= set(json.loads(row.slaves)):
                     row.state, row.sealed, row.settled_at = "delivered", None, now
-            ledger.append(
-                s,
-                node_id=ctx.node_id,
-                at=now,
-                event=Event.KEY_DELIVERED,
-                fields={
-                    "sae": caller.principal_id,
-                    "master": master_sae_id,
-                    "pair": rows[ids[0]].pair_id,
-                    "bits": sum(rows[k].size_bits for k in ids),
-                    "key_ids": ids,
-                },
+            results.append(out)
+            entries.append(
+                (
+                    now,
+                    Event.KEY_DELIVERED,
+                    {
+                        "sae": f.caller.principal_id,
+                        "master": f.master,
+                        "pair": rows[f.ids[0]].pair_id,
+                        "bits": sum(rows[k].size_bits for k in f.ids),
+                        "key_ids": f.ids,
+                    },
+                )
             )
-            return out
-    except _NotServed:
-        raise _refuse(
-            ctx,
-            caller,
-            "key_not_allocated_to_this_sae",
-            master=master_sae_id[:64],
-            key_ids=ids[:16],
-        ) from None
+        ledger.append_many(s, node_id=ctx.node_id, entries=entries)
+    return results
 
 
-class _NotServed(Exception):
-    """Some key of a Get key with key IDs may not be served; nothing of it is."""
+def _servable(row: KeyAlloc | None, f: _Fetch, now: datetime) -> bool:
+    return (
+        row is not None
+        and row.master_sae == f.master
+        and row.state == "waiting"
+        and f.caller.principal_id in json.loads(row.slaves)
+        and f.caller.principal_id not in json.loads(row.fetched_by)
+        and row.expires_at > now
+    )
 
 
 def expire(ctx: NodeContext) -> int:

@@ -3,7 +3,7 @@ cannot be written, the transaction, and so the change it records, is rolled back
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from datetime import datetime
 from typing import Any
 
@@ -33,7 +33,29 @@ def append(
             back, so the change the entry records does not happen either (fail closed).
     """
     try:
-        return _append(session, node_id=node_id, at=at, event=event, fields=fields)
+        return _append(session, node_id=node_id, entries=[(at, event, fields)])[0]
+    except (
+        exc.IntegrityError,
+        exc.OperationalError,
+        exc.ProgrammingError,
+        exc.InternalError,
+    ) as err:
+        raise Unavailable("the audit ledger cannot be written; nothing was changed") from err
+
+
+def append_many(
+    session: Session, *, node_id: str, entries: Sequence[tuple[datetime, Event, Mapping[str, Any]]]
+) -> list[int]:
+    """Append several entries, in order, in the session's transaction (one read of the
+    head and one insert per table for all of them); return their indexes.
+
+    Raises:
+        Unavailable: as :func:`append`; none of the entries is written.
+    """
+    if not entries:
+        return []
+    try:
+        return _append(session, node_id=node_id, entries=entries)
     except (
         exc.IntegrityError,
         exc.OperationalError,
@@ -44,31 +66,40 @@ def append(
 
 
 def _append(
-    session: Session, *, node_id: str, at: datetime, event: Event, fields: Mapping[str, Any]
-) -> int:
+    session: Session,
+    *,
+    node_id: str,
+    entries: Sequence[tuple[datetime, Event, Mapping[str, Any]]],
+) -> list[int]:
     # The row lock (and SQLite's write lock) serialises appenders until commit.
-    index, blob = session.execute(
+    first, blob = session.execute(
         select(LedgerHead.size, LedgerHead.frontier).where(LedgerHead.id == 1).with_for_update()
     ).one()
-    prev = None if index == 0 else StoredTree(session).get(0, index - 1)
-    entry = encode_entry(index=index, event=event, node_id=node_id, at=at, fields=fields, prev=prev)
-    edge = Frontier(index, blob)
-    nodes = merkle.append(edge, index, [merkle.leaf_hash(entry)])
+    prev = None if first == 0 else StoredTree(session).get(0, first - 1)
+    rows, leaves, refs = [], [], []
+    for index, (at, event, fields) in enumerate(entries, start=first):
+        entry = encode_entry(
+            index=index, event=event, node_id=node_id, at=at, fields=fields, prev=prev
+        )
+        prev = merkle.leaf_hash(entry)
+        leaves.append(prev)
+        rows.append({"idx": index, "recorded_at": at, "event": str(event), "entry": entry})
+        refs += [{"kind": str(k), "value": v, "idx": index} for k, v in references(fields)]
+    edge = Frontier(first, blob)
+    nodes = merkle.append(edge, first, leaves)
+    size = first + len(entries)
     session.execute(
         update(LedgerHead)
         .where(LedgerHead.id == 1)
-        .values(size=index + 1, frontier=edge.advance(nodes, index + 1))
+        .values(size=size, frontier=edge.advance(nodes, size))
     )
-    session.execute(
-        insert(LedgerEntry).values(idx=index, recorded_at=at, event=str(event), entry=entry)
-    )
+    session.execute(insert(LedgerEntry), rows)
     session.execute(
         insert(LedgerNode), [{"level": lv, "idx": ix, "hash": h} for lv, ix, h in nodes]
     )
-    refs = [{"kind": str(k), "value": v, "idx": index} for k, v in references(fields)]
     if refs:
         session.execute(insert(LedgerRef), refs)
-    return int(index)
+    return list(range(first, size))
 
 
 class StoredTree:

@@ -1,0 +1,149 @@
+"""The ready pair key a station owns, taken from the front (Get key at the master's
+station).
+
+Ranges are decided first from the segments' counters (``used``, ``length``) alone;
+only the segments a transaction actually takes bytes from are loaded, opened and
+re-sealed, once each, however many keys the transaction cuts from them. The stock of
+ready key can be large; a Get key costs the same whatever its size.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from keystrata.crypto.hazmat import Keyring
+from keystrata.storage.models import PairSegment
+from keystrata.storage.sealed import segment_context
+
+#: Attempts to lock enough front segments when another worker process takes from the
+#: same front at the same time (PostgreSQL; SQLite has one writer).
+_LOCK_ATTEMPTS = 8
+
+
+@dataclass(frozen=True)
+class Range:
+    segment: str
+    offset: int
+    length: int
+
+    def as_record(self) -> dict[str, object]:
+        return {"segment": self.segment, "offset": self.offset, "length": self.length}
+
+
+@dataclass
+class _Front:
+    segment_id: str
+    start: int  # ``used`` when this transaction locked it
+    length: int
+    taken: int = 0
+
+
+class OwnedStock:
+    """The front of one pair's owned ready key, locked in the caller's transaction."""
+
+    def __init__(self, session: Session, keyring: Keyring, pair_id: str, owner: str) -> None:
+        self.session = session
+        self.keyring = keyring
+        self.pair_id = pair_id
+        self.owner = owner
+        self.front: list[_Front] = []
+        self.cursor = 0
+
+    def reserve(self, want: int) -> None:
+        """Lock front segments holding at least ``want`` bytes (or all there are).
+
+        The segments are chosen without locks, then locked in one order (segment ID, so
+        two workers cannot deadlock) and read again: on PostgreSQL a concurrent
+        transaction may have taken from them meanwhile; then more are chosen.
+        """
+        limit = 4
+        for _ in range(_LOCK_ATTEMPTS):
+            rows = self.session.execute(
+                select(PairSegment.segment_id, PairSegment.length - PairSegment.used)
+                .where(
+                    PairSegment.pair_id == self.pair_id,
+                    PairSegment.owner == self.owner,
+                    PairSegment.state == "ready",
+                    PairSegment.used < PairSegment.length,
+                )
+                .order_by(PairSegment.settled_at, PairSegment.segment_id)
+                .limit(limit)
+            ).all()
+            chosen, have = [], 0
+            for segment_id, left in rows:
+                chosen.append(str(segment_id))
+                have += int(left)
+                if have >= want:
+                    break
+            everything = len(rows) < limit
+            if have < want and not everything:
+                limit *= 8  # the front is longer than we looked
+                continue
+            locked = {
+                str(sid): (int(used), int(length))
+                for sid, used, length in self.session.execute(
+                    select(PairSegment.segment_id, PairSegment.used, PairSegment.length)
+                    .where(
+                        PairSegment.segment_id.in_(chosen),
+                        PairSegment.state == "ready",
+                        PairSegment.used < PairSegment.length,
+                    )
+                    .order_by(PairSegment.segment_id)
+                    .with_for_update()
+                )
+            }
+            # In front order, as they stand now that they are locked.
+            self.front = [_Front(sid, *locked[sid]) for sid in chosen if sid in locked]
+            if everything or self.left >= want:
+                return
+
+    @property
+    def left(self) -> int:
+        return sum(f.length - f.start - f.taken for f in self.front)
+
+    def take(self, n: int) -> list[Range]:
+        """The next ``n`` bytes as segment ranges. The caller checked ``left``."""
+        if n > self.left:
+            raise ValueError("take more than the stock holds")
+        out = []
+        while n:
+            f = self.front[self.cursor]
+            room = f.length - f.start - f.taken
+            if room == 0:
+                self.cursor += 1
+                continue
+            step = min(n, room)
+            out.append(Range(f.segment_id, f.start + f.taken, step))
+            f.taken += step
+            n -= step
+        return out
+
+    def cut(self) -> dict[str, tuple[int, bytes]]:
+        """Destroy the taken bytes: re-seal what is left of each touched segment.
+        Returns segment -> (offset of the first taken byte, the taken bytes)."""
+        out = {}
+        for f in self.front:
+            if not f.taken:
+                continue
+            row = self.session.get(PairSegment, f.segment_id)
+            assert row is not None and row.sealed is not None and row.used == f.start
+            rest = self.keyring.open(row.sealed, segment_context(f.segment_id, f.start))
+            out[f.segment_id] = (f.start, rest[: f.taken])
+            row.used = f.start + f.taken
+            rest = rest[f.taken :]
+            row.sealed = (
+                self.keyring.seal(rest, segment_context(f.segment_id, row.used)) if rest else None
+            )
+        return out
+
+
+def key_bytes(cut: dict[str, tuple[int, bytes]], ranges: list[Range]) -> bytes:
+    """The bytes of ``ranges`` out of what :meth:`OwnedStock.cut` returned."""
+    parts = []
+    for r in ranges:
+        base, data = cut[r.segment]
+        parts.append(data[r.offset - base : r.offset - base + r.length])
+    return b"".join(parts)
