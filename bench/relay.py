@@ -10,9 +10,11 @@ zero and the last sample that grew.
 
 from __future__ import annotations
 
+import os
 import threading
 import time
-from contextlib import ExitStack
+from collections.abc import Iterator
+from contextlib import ExitStack, contextmanager
 from typing import Any
 
 from bench import network, profiling
@@ -21,6 +23,24 @@ from bench.common import Figure, Workspace, memory_kib, process_tree
 #: Relay settings of the run: the defaults of config.py but a short cycle (a relay that
 #: waits a second between cycles idles while segments settle).
 RELAY_SETTINGS = "\n[relay]\ncycle_seconds = 0.1\n"
+#: The glibc malloc settings of the deploy files (deploy/systemd/keystrata@.service,
+#: deploy/compose.yaml), so the memory figure is that of a node as deployed.
+MALLOC_ENV = {"MALLOC_ARENA_MAX": "2", "MALLOC_MMAP_THRESHOLD_": "131072"}
+
+
+@contextmanager
+def deployed_malloc() -> Iterator[None]:
+    """Nodes started inside inherit :data:`MALLOC_ENV`; the environment is restored."""
+    old = {k: os.environ.get(k) for k in MALLOC_ENV}
+    os.environ.update(MALLOC_ENV)
+    try:
+        yield
+    finally:
+        for k, v in old.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
 
 
 class MemorySampler:
@@ -70,7 +90,8 @@ def measure(
     ws: Workspace, backend: str, per_link_bytes: int, *, max_seconds: float
 ) -> list[Figure]:
     """Relay ``per_link_bytes`` of link key per link; return the rate and the memory."""
-    nodes = network.start(ws, backend, relay_settings=RELAY_SETTINGS, policy=network.STOPPED)
+    with deployed_malloc():
+        nodes = network.start(ws, backend, relay_settings=RELAY_SETTINGS, policy=network.STOPPED)
     relay_pid = nodes["relay-1"].proc.pid
     memory = MemorySampler(relay_pid)
     idle_mb = memory.now_mb()
@@ -106,7 +127,8 @@ def measure(
     label = "SQLite" if backend == "sqlite" else "PostgreSQL"
     note = (
         f"{relayed / 8e6:.1f} MB ready at both stations from {per_link_bytes / 1e6:.0f} MB "
-        f"per link; default [relay] settings but cycle_seconds = 0.1"
+        f"per link; default [relay] settings but cycle_seconds = 0.1; glibc malloc "
+        "settings of the deploy files"
     )
     return [
         Figure(f"relay: ready pair key, end to end ({label})", rate / 1e6, "Mbit/s", note=note),

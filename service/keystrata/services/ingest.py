@@ -27,6 +27,8 @@ from keystrata.storage.sealed import block_context
 # Ledger entries list the block IDs of a request up to this many; beyond it they give
 # the first and last ID and the count (the blocks themselves carry every ID).
 LEDGER_ID_LIST_MAX = 256
+#: Blocks sealed and inserted per statement (at 4 KiB blocks, 1 MiB of sealed copies).
+INSERT_SLICE_BLOCKS = 256
 
 
 @dataclass(frozen=True)
@@ -130,29 +132,35 @@ def _store(
             details=[{"block_id": b} for b in conflicts[:16]],
         )
     now = ctx.clock.now()
-    rows: list[dict[str, Any]] = [
-        {
-            "link_id": link_id,
-            "block_id": b.block_id,
-            "length": len(b.key),
-            "used": 0,
-            "qber": b.qber,
-            "epsilon": b.epsilon,
-            "produced_at": b.produced_at,
-            "received_at": now,
-            "fingerprint": fp,
-            "sealed": ctx.keyring.seal(b.key, block_context(link_id, b.block_id, 0)),
-        }
-        for b, fp in fresh.values()
-    ]
-    if rows:
+    fresh_blocks = list(fresh.values())
+    bits = 0
+    # Sealed in slices, each inserted before the next is sealed (same transaction, so
+    # still all or nothing): a 16 MiB batch no longer holds a sealed copy of every block
+    # and the statement's parameters for all of them at once beside the request body.
+    for i in range(0, len(fresh_blocks), INSERT_SLICE_BLOCKS):
+        rows: list[dict[str, Any]] = [
+            {
+                "link_id": link_id,
+                "block_id": b.block_id,
+                "length": len(b.key),
+                "used": 0,
+                "qber": b.qber,
+                "epsilon": b.epsilon,
+                "produced_at": b.produced_at,
+                "received_at": now,
+                "fingerprint": fp,
+                "sealed": ctx.keyring.seal(b.key, block_context(link_id, b.block_id, 0)),
+            }
+            for b, fp in fresh_blocks[i : i + INSERT_SLICE_BLOCKS]
+        ]
         s.execute(insert(LinkBlock), rows)
-    bits = 8 * sum(r["length"] for r in rows)
+        bits += 8 * sum(r["length"] for r in rows)
+        del rows
     new_ids = list(fresh)
     fields: dict[str, object] = {
         "link": link_id,
         "actor": actor,
-        "blocks": len(rows),
+        "blocks": len(fresh_blocks),
         "bits": bits,
         "duplicates": duplicates,
     }
@@ -162,5 +170,5 @@ def _store(
         fields |= {"first_block_id": new_ids[0], "last_block_id": new_ids[-1]}
     ledger.append(s, node_id=ctx.node_id, at=now, event=Event.LINK_KEY_INGESTED, fields=fields)
     return IngestResult(
-        link_id=link_id, accepted=len(rows), duplicates=duplicates, accepted_bits=bits
+        link_id=link_id, accepted=len(fresh_blocks), duplicates=duplicates, accepted_bits=bits
     )

@@ -72,10 +72,7 @@ def schedule_once(
                     links[st] = relay.link_of(s, ctx.node_id, st)
                 except NotFound:
                     continue
-        free = {
-            link: sum(b.length - b.used for b in linkbytes.available(s, link, 2**62))
-            for link in set(links.values())
-        }
+        free = linkbytes.free_bytes(s, links.values())
         in_flight = dict(
             s.execute(
                 select(RelayOp.pair_id, func.count())
