@@ -515,9 +515,10 @@ messages = (
 
 
 def test_peer_messages(station: Node, api: Any) -> None:
-    """The body of ``POST /api/v1/peer/messages`` is read by hand and not in the OpenAPI
-    document, so schemathesis cannot shape it: hypothesis does, with the message kinds
-    and field names the handlers read and values of any JSON type."""
+    """The body of ``POST /api/v1/peer/messages`` (and each message of a batch) is read by
+    hand and not described in the OpenAPI document, so schemathesis cannot shape it:
+    hypothesis does, with the message kinds and field names the handlers read and values
+    of any JSON type."""
     peer = api(station)("peer-relay")
 
     @hypothesis.settings(max_examples=60, derandomize=True, database=None, deadline=None)
@@ -527,6 +528,16 @@ def test_peer_messages(station: Node, api: Any) -> None:
         assert r.status_code in (200, 400, 403, 404, 409), (r.status_code, r.text)
         if r.status_code >= 400:
             assert_error_object(r, r.status_code)
+        # The same message in a batch (the outbox's way): the whole batch refused (400),
+        # or one answer per message attempted, each with the status the single route gave.
+        r = peer.post("/api/v1/peer/messages/batch", json={"messages": [body, body]})
+        assert r.status_code in (200, 400), (r.status_code, r.text)
+        if r.status_code == 400:
+            assert_error_object(r, 400)
+        else:
+            results = r.json()["results"]
+            assert 1 <= len(results) <= 2
+            assert all(x["status"] in (200, 400, 403, 404, 409) for x in results), results
 
     answer_is_never_a_server_error()
 

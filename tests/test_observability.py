@@ -55,6 +55,7 @@ TYPES = {
     "keystrata_link_key_used_bits": "counter",
     "keystrata_outbox_pending_messages": "gauge",
     "keystrata_outbox_oldest_pending_age_seconds": "gauge",
+    "keystrata_outbox_head_refusals": "gauge",
     "keystrata_ledger_entries": "counter",
     "keystrata_ledger_checkpointed_entries": "gauge",
     "keystrata_ledger_last_checkpoint_age_seconds": "gauge",
@@ -234,6 +235,7 @@ def test_relay_and_delivery_metrics_match_the_database(net, api) -> None:
     assert queued == 1  # key.expired, for the owner
     assert at_b.value("keystrata_outbox_pending_messages", destination="station-a") == queued
     assert at_b.value("keystrata_outbox_oldest_pending_age_seconds", destination="station-a") < 60
+    assert at_b.value("keystrata_outbox_head_refusals", destination="station-a") == 0
     net.drain()
 
     at_a, at_b = scrape(api(net.a)("ops-ada")), scrape(api(net.b)("ops-ada"))

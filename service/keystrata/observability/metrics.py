@@ -212,17 +212,34 @@ def _outbox(ctx: NodeContext) -> list[Metric]:
         "Age of the oldest unacknowledged message, per destination node.",
         labels=["destination"],
     )
+    head = GaugeMetricFamily(
+        "keystrata_outbox_head_refusals",
+        "Failed attempts at the oldest message to each destination node (refused or no "
+        "answer); delivery is in order, so it holds every later message back. Its last "
+        "error is in the outbox table.",
+        labels=["destination"],
+    )
     now = ctx.clock.now()
+    heads = select(func.min(OutboxMessage.id)).group_by(OutboxMessage.destination)
     with ctx.db.read() as s:
         rows = s.execute(
             select(OutboxMessage.destination, func.count(), func.min(OutboxMessage.created_at))
             .group_by(OutboxMessage.destination)
             .order_by(OutboxMessage.destination)
         ).all()
+        attempts: dict[str, int] = {
+            destination: int(n)
+            for destination, n in s.execute(
+                select(OutboxMessage.destination, OutboxMessage.attempts).where(
+                    OutboxMessage.id.in_(heads)
+                )
+            )
+        }
     for destination, count, first in rows:
         pending.add_metric([destination], int(count))
         oldest.add_metric([destination], max(0.0, (now - _utc(first)).total_seconds()))
-    return [pending, oldest]
+        head.add_metric([destination], int(attempts.get(destination, 0)))
+    return [pending, oldest, head]
 
 
 def _ledger(ctx: NodeContext) -> list[Metric]:

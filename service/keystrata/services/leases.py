@@ -4,8 +4,11 @@ from __future__ import annotations
 
 from datetime import datetime, timedelta
 
-from sqlalchemy import insert, or_, update
+from sqlalchemy import delete, insert, or_, update
+from sqlalchemy.dialects.postgresql import insert as pg_insert
+from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.exc import IntegrityError
+from sqlalchemy.orm import Session
 
 from keystrata.storage.db import Database
 from keystrata.storage.models import Lease
@@ -34,6 +37,35 @@ def acquire(db: Database, name: str, holder: str, *, now: datetime, ttl: timedel
         return True
     except IntegrityError:
         return False  # another worker created it first
+
+
+def take(session: Session, name: str, holder: str, *, now: datetime, ttl: timedelta) -> bool:
+    """Take or renew lease ``name`` inside the caller's write transaction.
+
+    The same rule as :func:`acquire`, in one transaction so that the caller can claim
+    what the lease guards in the same commit. A missing row is created with ``INSERT ...
+    ON CONFLICT DO NOTHING``: a concurrent creator makes this one insert nothing (on
+    PostgreSQL after waiting for the other's commit) instead of failing the transaction.
+    """
+    taken = session.execute(  # type: ignore[attr-defined]
+        update(Lease)
+        .where(Lease.name == name, or_(Lease.holder == holder, Lease.expires_at < now))
+        .values(holder=holder, expires_at=now + ttl)
+    ).rowcount
+    if taken:
+        return True
+    dialect_insert = pg_insert if session.get_bind().dialect.name == "postgresql" else sqlite_insert
+    created = session.execute(  # type: ignore[attr-defined]
+        dialect_insert(Lease)
+        .values(name=name, holder=holder, expires_at=now + ttl)
+        .on_conflict_do_nothing(index_elements=["name"])
+    ).rowcount
+    return bool(created)
+
+
+def release(session: Session, name: str, holder: str) -> None:
+    """Give lease ``name`` up (in the caller's transaction) if ``holder`` holds it."""
+    session.execute(delete(Lease).where(Lease.name == name, Lease.holder == holder))
 
 
 def holder_of(db: Database, name: str) -> str | None:

@@ -3,13 +3,17 @@
 from __future__ import annotations
 
 from collections.abc import Callable
+from dataclasses import dataclass
 from typing import Any
 
 from keystrata.config import Role
-from keystrata.errors import Forbidden, InvalidInput
+from keystrata.errors import Forbidden, InvalidInput, KeystrataError
 from keystrata.services import delivery, relay, segments
 from keystrata.services.context import NodeContext
 from keystrata.services.segments import Outcome
+
+#: Messages per batch request at most (the sender sends fewer; see workers/outbox.py).
+MAX_BATCH = 256
 
 Handler = Callable[[NodeContext, str, dict[str, Any]], Outcome]
 
@@ -36,6 +40,15 @@ HANDLERS: dict[Role, dict[str, Handler]] = {
 }
 
 
+def _handler(ctx: NodeContext, body: Any) -> Handler:
+    if not isinstance(body, dict) or not isinstance(body.get("kind"), str):
+        raise InvalidInput("body: a JSON object with a kind")
+    handler = HANDLERS[ctx.role].get(body["kind"])
+    if handler is None:
+        raise InvalidInput(f"kind: a {ctx.role.value} does not take {body['kind'][:40]!r}")
+    return handler
+
+
 def handle(ctx: NodeContext, sender: str, body: Any) -> Outcome:
     """Apply one message from peer node ``sender``.
 
@@ -44,12 +57,45 @@ def handle(ctx: NodeContext, sender: str, body: Any) -> Outcome:
         Forbidden: the sender may not send this message.
         NotYet / LinkKeyReused (409): apply later / never.
     """
-    if not isinstance(body, dict) or not isinstance(body.get("kind"), str):
-        raise InvalidInput("body: a JSON object with a kind")
-    handler = HANDLERS[ctx.role].get(body["kind"])
-    if handler is None:
-        raise InvalidInput(f"kind: a {ctx.role.value} does not take {body['kind'][:40]!r}")
+    handler = _handler(ctx, body)
     try:
         return handler(ctx, sender, body)
     except (KeyError, TypeError, ValueError) as exc:
         raise InvalidInput(f"message {body['kind']}: missing or malformed field") from exc
+
+
+@dataclass(frozen=True)
+class Answer:
+    """What became of one message of a batch: ``status`` 200 with the outcome, or the
+    status and message of the error it raised."""
+
+    status: int
+    segment_id: str | None = None
+    outcome: str | None = None
+    message: str | None = None
+
+
+def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[Answer]:
+    """Apply messages from ``sender`` in order, each in its own transaction (as if each
+    came alone), and stop at the first that is not applied: the sender's later messages
+    to this node wait behind it (a later range would be refused "not yet" anyway).
+    Returns one answer per message attempted, the last being the refusal if any.
+
+    Raises:
+        InvalidInput: ``bodies`` holds something that is not a message this node takes
+            (checked for every message before any is applied, so nothing changes).
+    """
+    for i, body in enumerate(bodies):
+        try:
+            _handler(ctx, body)
+        except InvalidInput as exc:
+            raise InvalidInput(f"messages[{i}]: {exc.message}") from None
+    answers: list[Answer] = []
+    for body in bodies:
+        try:
+            outcome = handle(ctx, sender, body)
+        except KeystrataError as exc:
+            answers.append(Answer(status=exc.status, message=exc.message))
+            break
+        answers.append(Answer(200, outcome.segment_id, outcome.status))
+    return answers

@@ -46,6 +46,70 @@ class PeerClient:
             answer = {}
         return r.status_code, answer if isinstance(answer, dict) else {}
 
+    def post_messages(
+        self, node_id: str, bodies: list[dict[str, Any]]
+    ) -> list[tuple[int, dict[str, Any]]]:
+        """POST several messages for one peer in one request, in order; return (status,
+        answer) for each message the peer attempted, in order. The peer stops at the
+        first message it does not apply, so the list may be shorter than ``bodies``.
+
+        A refusal of the whole request (400, 401, 403, 413, 503...) counts as the first
+        message's answer. A peer without the batch route (404 or 405: an older version)
+        gets the messages one at a time, stopping at the first that is not applied.
+
+        Raises:
+            PeerUnavailable: the peer did not answer.
+        """
+        try:
+            r = self._client.post(
+                self._url(node_id, "/api/v1/peer/messages/batch"), json={"messages": bodies}
+            )
+        except httpx.HTTPError as exc:
+            raise PeerUnavailable(f"{node_id}: {type(exc).__name__}") from exc
+        if r.status_code in (404, 405):
+            return self._one_by_one(node_id, bodies)
+        try:
+            answer = r.json()
+        except ValueError:
+            answer = {}
+        if not isinstance(answer, dict):
+            answer = {}
+        if r.status_code != 200:
+            return [(r.status_code, answer)]
+        results = answer.get("results")
+        if not isinstance(results, list):
+            return [(502, {"message": "batch answer without results"})]
+        out: list[tuple[int, dict[str, Any]]] = []
+        for result in results[: len(bodies)]:
+            if not isinstance(result, dict) or not isinstance(result.get("status"), int):
+                out.append((502, {"message": "malformed result in batch answer"}))
+                break
+            status = int(result["status"])
+            if status == 200:
+                out.append(
+                    (200, {"segment_id": result.get("segment_id"), "status": result.get("outcome")})
+                )
+            else:
+                out.append((status, {"message": str(result.get("message", ""))}))
+                break
+        return out
+
+    def _one_by_one(
+        self, node_id: str, bodies: list[dict[str, Any]]
+    ) -> list[tuple[int, dict[str, Any]]]:
+        out: list[tuple[int, dict[str, Any]]] = []
+        for body in bodies:
+            try:
+                status, answer = self.post_message(node_id, body)
+            except PeerUnavailable:
+                if not out:
+                    raise
+                break  # what was applied stays applied; the rest goes next time
+            out.append((status, answer))
+            if status != 200:
+                break
+        return out
+
     def pair_buffer(self, node_id: str, pair_id: str) -> dict[str, Any] | None:
         """A station's buffer report for a pair, or None when it cannot be had now."""
         try:

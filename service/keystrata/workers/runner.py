@@ -14,6 +14,7 @@ from sqlalchemy.exc import IntegrityError
 
 from keystrata.config import Role
 from keystrata.services import checkpoints, delivery, leases, segments
+from keystrata.services import outbox as outbox_service
 from keystrata.services.context import NodeContext
 from keystrata.workers import outbox, scheduler
 from keystrata.workers.peer_client import PeerClient
@@ -29,11 +30,14 @@ class Background:
         self.ctx = ctx
         self.holder = f"{socket.gethostname()}:{os.getpid()}:{id(self):x}"
         self.stop_event = threading.Event()
+        #: Set when this process commits a new outbox message, or to stop.
         self.wake = threading.Event()
+        self._unwake: Callable[[], None] | None = None
         self.threads: list[threading.Thread] = []
         self.peers = PeerClient(ctx.settings)
 
     def start(self) -> None:
+        self._unwake = outbox_service.wake_on_commit(self.ctx.db, self.wake)
         loops: list[tuple[str, Callable[[], object], float]] = [
             ("outbox", self._outbox, self.ctx.settings.outbox.idle_seconds),
             ("checkpoints", self._checkpoint, 1.0),
@@ -50,6 +54,8 @@ class Background:
             self.threads.append(t)
 
     def stop(self) -> None:
+        if self._unwake is not None:
+            self._unwake()
         self.stop_event.set()
         self.wake.set()
         for t in self.threads:
@@ -57,17 +63,22 @@ class Background:
         self.peers.close()
 
     def _loop(self, name: str, step: Callable[[], object], idle: float) -> None:
+        # The outbox loop also wakes when a commit of this process enqueued a message;
+        # cleared before each step, so a commit during the step means one more step.
+        wake = self.wake if name == "outbox" else self.stop_event
         while not self.stop_event.is_set():
+            if wake is self.wake:
+                wake.clear()
             try:
                 busy = step()
             except Exception:  # a loop must survive a bad moment (database restart...)
                 log.exception("%s: step failed; retrying", name)
                 busy = False
             if not busy:
-                self.stop_event.wait(idle)
+                wake.wait(idle)
 
     def _outbox(self) -> bool:
-        return outbox.deliver_once(self.ctx, self.peers) > 0
+        return outbox.deliver_once(self.ctx, self.peers, self.holder) > 0
 
     def _schedule(self) -> bool:
         cfg = self.ctx.settings.relay

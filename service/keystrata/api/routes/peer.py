@@ -3,14 +3,21 @@
 Answers: 200 with ``{"segment_id", "status"}`` when the message is applied (or was
 already); 409 when it cannot be applied yet (the sender's outbox retries) or would
 reuse link key; 400 for a malformed message.
+
+``POST /api/v1/peer/messages/batch`` carries several messages of one sender in order
+(the outbox sends this way) and answers 200 with one result per message attempted:
+``{"status": 200, "segment_id", "outcome"}`` or the status and message the single
+route would have answered; it stops at the first message not applied.
 """
 
 from __future__ import annotations
 
 import json
+import logging
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Request
+from pydantic import BaseModel, ConfigDict, Field
 from starlette.concurrency import run_in_threadpool
 
 from keystrata.api.errors import error_responses
@@ -25,6 +32,31 @@ from keystrata.services.principals import Caller
 router = APIRouter(prefix="/api/v1/peer", tags=["peer"])
 
 Peer = Annotated[Caller, Depends(admit(PrincipalRole.PEER))]
+
+log = logging.getLogger("keystrata.api")
+
+
+class MessageBatch(BaseModel):
+    """Messages from one peer, applied in this order."""
+
+    model_config = ConfigDict(extra="forbid", strict=True)
+    messages: list[dict[str, Any]] = Field(min_length=1, max_length=messages.MAX_BATCH)
+
+
+class MessageResult(BaseModel):
+    """What became of one message: 200 with its outcome (``applied``, ``already``,
+    ``discarded``), or the error status and message."""
+
+    status: int
+    segment_id: str | None = None
+    outcome: str | None = None
+    message: str | None = None
+
+
+class BatchResults(BaseModel):
+    """One result per message attempted, in order; the last is the refusal, if any."""
+
+    results: list[MessageResult]
 
 
 @router.post(
@@ -42,6 +74,34 @@ async def peer_message(request: Request, caller: Peer) -> dict[str, Any]:
     assert caller.node_id is not None  # peers are bound to a node (registry rule)
     outcome = await run_in_threadpool(messages.handle, ctx, caller.node_id, body)
     return {"segment_id": outcome.segment_id, "status": outcome.status}
+
+
+@router.post(
+    "/messages/batch",
+    summary="Deliver several relay or segment messages in order",
+    operation_id="peer_message_batch",
+    response_model=BatchResults,
+    responses=error_responses(400, 401, 403, 413, 503),
+)
+def peer_message_batch(batch: MessageBatch, request: Request, caller: Peer) -> BatchResults:
+    """Each message is applied in its own transaction, as if sent alone; a message that
+    is not applied (not yet, refused) ends the run, and the sender sends it and those
+    after it again later. A batch holding anything that is not a message this node takes
+    is refused whole (400) before any message is applied."""
+    ctx: NodeContext = request.app.state.ctx
+    assert caller.node_id is not None  # peers are bound to a node (registry rule)
+    answers = messages.handle_batch(ctx, caller.node_id, list(batch.messages))
+    for a in answers:
+        if a.status >= 500:
+            log.warning("peer message failed: %s (%d)", a.message, a.status)
+    return BatchResults(
+        results=[
+            MessageResult(
+                status=a.status, segment_id=a.segment_id, outcome=a.outcome, message=a.message
+            )
+            for a in answers
+        ]
+    )
 
 
 @router.get(
