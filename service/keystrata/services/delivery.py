@@ -19,6 +19,7 @@ Every refusal on these routes is the same 401 answer (no oracle), recorded in th
 from __future__ import annotations
 
 import json
+import threading
 import uuid
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -504,31 +505,56 @@ def get_keys_with_ids(
     if caller.role.value != "sae" or caller.station_id != ctx.node_id:
         raise _refuse(ctx, caller, "not_an_sae_of_this_station", master=master_sae_id[:64])
     with ctx.db.read() as s:
-        known = set(s.execute(select(KeyAlloc.key_id).where(KeyAlloc.key_id.in_(ids))).scalars())
+        known = _known(s, ids)
         master = _sae(s, master_sae_id)
     unsettled = False
     if len(known) < len(ids) and pull is not None and master is not None:
-        # The allocation message may still be on its way: fetch it from the owner now.
-        bodies = pull(str(master.station_id))
-        # If the owner cannot be asked, or its message names segment bytes not ready
-        # here yet, an unknown key ID may be allocated all the same: "try again" (503),
-        # not a refusal the slave would take as final.
-        unsettled = bodies is None
-        missing = set(ids) - known
-        for body in bodies or []:
-            try:
-                apply_allocated(ctx, str(master.station_id), body)
-            except NotYet:
-                unsettled = True
-                break
-            except (InvalidInput, Forbidden):
-                continue  # a bad message holds no key of this request; others may
-            # Messages apply in order; later ones can wait for the owner's push.
-            missing -= {str(k.get("key_ID", "")).lower() for k in body.get("keys", [])}
-            if not missing:
-                break
+        owner = str(master.station_id)
+        # One pull per owner at a time in this process: requests that wait here usually
+        # find their keys applied by the pull before them.
+        with _pull_lock(ctx, owner):
+            with ctx.db.read() as s:
+                known = _known(s, ids)
+            if len(known) < len(ids):
+                unsettled = _pull_and_apply(ctx, owner, set(ids) - known, pull)
     lane: GroupCommit[_Fetch, list[DeliveredKey]] = _lane(ctx, "get_key_with_ids", _serve)
     return lane.submit(_Fetch(caller, master_sae_id, ids, unsettled))
+
+
+def _known(s: Session, ids: list[str]) -> set[str]:
+    return set(s.execute(select(KeyAlloc.key_id).where(KeyAlloc.key_id.in_(ids))).scalars())
+
+
+def _pull_lock(ctx: NodeContext, owner: str) -> Any:
+    name = f"pull:{owner}"
+    lock = ctx.lanes.get(name)
+    if lock is None:
+        lock = ctx.lanes.setdefault(name, threading.Lock())
+    return lock
+
+
+def _pull_and_apply(ctx: NodeContext, owner: str, missing: set[str], pull: Pull) -> bool:
+    """Fetch the owner's pending allocation messages and apply them in order until the
+    ``missing`` key IDs are here. Returns True when the answer is unsettled: the owner
+    could not be asked, or a message names key not ready here yet."""
+    # If the owner cannot be asked, or its message names segment bytes not ready
+    # here yet, an unknown key ID may be allocated all the same: "try again" (503),
+    # not a refusal the slave would take as final.
+    bodies = pull(owner)
+    if bodies is None:
+        return True
+    for body in bodies:
+        try:
+            apply_allocated(ctx, owner, body)
+        except NotYet:
+            return True
+        except (InvalidInput, Forbidden):
+            continue  # a bad message holds no key of this request; others may
+        # Messages apply in order; later ones can wait for the owner's push.
+        missing -= {str(k.get("key_ID", "")).lower() for k in body.get("keys", [])}
+        if not missing:
+            break
+    return False
 
 
 @dataclass(frozen=True)
