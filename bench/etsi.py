@@ -117,12 +117,18 @@ def _known_at_b(ws: Workspace, nodes: dict[str, Any]) -> int:
 
 
 def _not_yet(log: Path) -> str:
-    """How often a station answered 409 (an earlier message still on its way) to its
-    peers' messages, from its access log."""
+    """How station-b's peers reached it, from its access log: batch requests (several
+    messages each; their per-message answers are in the body, not the log) and single
+    messages with how many of those were answered 409 (an earlier message still on its
+    way)."""
     lines = log.read_text(errors="replace").splitlines()
-    posts = [line for line in lines if "POST /api/v1/peer/messages" in line]
-    refused = sum(1 for line in posts if '" 409' in line)
-    return f"station-b answered 409 to {refused} of {len(posts)} peer message posts"
+    batches = sum(1 for line in lines if "POST /api/v1/peer/messages/batch" in line)
+    singles = [line for line in lines if "POST /api/v1/peer/messages " in line]
+    refused = sum(1 for line in singles if '" 409' in line)
+    return (
+        f"station-b received {batches} batch requests of peer messages and "
+        f"{len(singles)} single ones ({refused} of those answered 409)"
+    )
 
 
 def _figures(label: str, real: LoadResult, top: LoadResult, stock: str) -> list[Figure]:
