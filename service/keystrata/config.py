@@ -138,6 +138,11 @@ class SegmentsSection(_Section):
 class OutboxSection(_Section):
     batch: Annotated[int, Field(ge=1, le=10_000)] = 64
     idle_seconds: Annotated[float, Field(gt=0, le=60)] = 0.2
+    #: After a round that delivered something, wait this long before the next, so that
+    #: under load messages go in batches and the outbox's own transactions (claim and
+    #: settle, two commits per round) leave room for the requests'. A message after a
+    #: quiet spell still goes at once (the commit that queued it wakes the loop).
+    linger_seconds: Annotated[float, Field(ge=0, le=5)] = 0.05
     timeout_seconds: Annotated[float, Field(gt=0, le=300)] = 10.0
     #: Longest wait between two attempts at one message (backoff doubles up to it).
     max_backoff_seconds: Annotated[float, Field(gt=0, le=3600)] = 30.0

@@ -76,6 +76,8 @@ class Background:
                 busy = False
             if not busy:
                 wake.wait(idle)
+            elif wake is self.wake:
+                self.stop_event.wait(self.ctx.settings.outbox.linger_seconds)
 
     def _outbox(self) -> bool:
         return outbox.deliver_once(self.ctx, self.peers, self.holder) > 0
