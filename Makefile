@@ -30,7 +30,9 @@ test-fast: $(STAMP)
 	$(BIN)/python -m pytest -m "not e2e" -k "not postgresql" $(ARGS)
 
 ## make faults: the long crash series (30 SIGKILLs per backend), run before resolving
-## an issue that touches relaying or key delivery; KEYSTRATA_KILLS sets the number of kills
+## an issue that touches relaying or key delivery; KEYSTRATA_KILLS sets the number of kills.
+## make test runs a short series of each, one per backend (relaying on SQLite, key
+## delivery on PostgreSQL); the other halves are marked slow and run here
 faults: $(STAMP)
 	KEYSTRATA_KILLS=$${KEYSTRATA_KILLS:-30} $(BIN)/python -m pytest tests/test_crash.py tests/test_crash_delivery.py tests/test_faults.py $(ARGS)
 

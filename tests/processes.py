@@ -9,6 +9,7 @@ import ssl
 import subprocess
 import sys
 import time
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -166,14 +167,14 @@ def start_network(
     from keystrata_client import OperatorClient, TlsIdentity
 
     ports = {n: free_port() for n in NETWORK}
-    nodes = {}
-    for node_id, role in NETWORK.items():
+
+    def prepare(node_id: str, role: str) -> NodeProcess:
         peers = "".join(
             f'\n[[peers]]\nid = "{p}"\nurl = "https://127.0.0.1:{port}"\n'
             for p, port in ports.items()
             if p != node_id
         )
-        nodes[node_id] = prepare_node(
+        return prepare_node(
             folder / node_id,
             pki,
             node_id,
@@ -182,6 +183,11 @@ def start_network(
             port=ports[node_id],
             extra=extra + peers,
         )
+
+    # `keystrata node init` is a process of its own per node: run the three at once.
+    with ThreadPoolExecutor(len(NETWORK)) as pool:
+        jobs = {n: pool.submit(prepare, n, role) for n, role in NETWORK.items()}
+        nodes = {n: job.result() for n, job in jobs.items()}
     if relay_workers > 1:
         relay = nodes["relay-1"].config
         relay.write_text(

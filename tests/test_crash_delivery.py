@@ -12,7 +12,8 @@ Then, from what the clients saw and from each node's ledger (auditor API):
 * clients saw only 200, 401 for a key ID already served, 503, or a connection error
   while a node was down: never a 500, never a wait past the client timeout.
 
-`make test` runs KEYSTRATA_KILLS=4 (the default here); `make faults` a long series.
+`make test` runs KEYSTRATA_KILLS=4 (the default here) on PostgreSQL; `make faults` a long
+series on both backends.
 """
 
 from __future__ import annotations
@@ -189,7 +190,7 @@ def _checked_ledger(url: str, pki: PkiFiles) -> list[dict[str, Any]]:
             if r.status_code == 200 and r.json()["tree_size"] == len(entries):
                 break
             assert time.monotonic() < deadline, "no checkpoint covers the whole ledger"
-            time.sleep(0.5)
+            time.sleep(0.2)
         latest = r.json()
         history = aud.get("/api/v1/audit/checkpoints?limit=1000").json()["checkpoints"]
     key = Ed25519PublicKey.from_public_bytes(base64.b64decode(latest["public_key"]))
@@ -230,6 +231,11 @@ def _stocked(nodes: dict[str, NodeProcess], pki: PkiFiles) -> bool:
 
 
 @pytest.mark.timeout(120 + 15 * KILLS)  # a restart takes seconds on a busy machine
+# `make test` runs this series on PostgreSQL (the stations' backend with several workers)
+# and test_crash.py's on SQLite; `make faults` runs both series on both backends.
+@pytest.mark.parametrize(
+    "db_factory", [pytest.param("sqlite", marks=pytest.mark.slow), "postgresql"], indirect=True
+)
 def test_sigkill_during_key_delivery(tmp_path, pki, db_factory) -> None:
     rng = random.Random(20261215)
     nodes = _network(tmp_path, pki, db_factory)
@@ -244,7 +250,7 @@ def test_sigkill_during_key_delivery(tmp_path, pki, db_factory) -> None:
         deadline = time.monotonic() + 60
         while not _stocked(nodes, pki):
             assert time.monotonic() < deadline, "no ready key at the stations"
-            time.sleep(0.3)
+            time.sleep(0.2)
         for w in workers:
             w.start()
         killed = []
@@ -271,7 +277,7 @@ def test_sigkill_during_key_delivery(tmp_path, pki, db_factory) -> None:
         deadline = time.monotonic() + 60
         while not _settled(nodes, pki):
             assert time.monotonic() < deadline, "segments did not settle after the kills"
-            time.sleep(0.5)
+            time.sleep(0.1)
         ledgers = {n: _checked_ledger(node.url, pki) for n, node in nodes.items()}
     finally:
         stop.set()

@@ -73,7 +73,7 @@ def test_demo_runs_and_its_manifest_reaches_the_operator_api(tmp_path: Path) -> 
             ready = out.returncode == 0 and len(json.loads(out.stdout)["pools"]) == 3
             if ready or time.monotonic() > deadline:
                 break
-            time.sleep(0.5)
+            time.sleep(0.2)
         assert out.returncode == 0, out.stderr
         pools = json.loads(out.stdout)
         assert pools["node_id"] == relay["id"]

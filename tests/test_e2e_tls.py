@@ -15,7 +15,7 @@ from datetime import UTC, datetime
 import httpx
 import pytest
 
-from conftest import PkiFiles
+from conftest import PkiFiles, database_for
 from keystrata_client import (
     ApiError,
     LinkBlock,
@@ -32,9 +32,19 @@ def identity(pki: PkiFiles, name: str) -> TlsIdentity:
     return TlsIdentity(ca=pki.ca, cert=pki.cert(name), key=pki.key(name))
 
 
-@pytest.fixture
-def station_process(tmp_path, pki: PkiFiles, db_url: str) -> Iterator[NodeProcess]:
-    node = prepare_node(tmp_path, pki, "station-a", "station", db_url).start(pki)
+@pytest.fixture(scope="module", params=["sqlite", "postgresql"])
+def station_process(
+    request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory, pki: PkiFiles
+) -> Iterator[NodeProcess]:
+    """One station process per backend for the whole module (starting one takes seconds).
+    The tests share it: each uses what it adds alone (its blocks, its pair, its nodes)."""
+    folder = tmp_path_factory.mktemp(f"tls-{request.param}")
+    with database_for(request, request.param, folder) as url:
+        yield from _station(folder, pki, url)
+
+
+def _station(folder, pki: PkiFiles, db_url: str) -> Iterator[NodeProcess]:
+    node = prepare_node(folder, pki, "station-a", "station", db_url).start(pki)
     try:
         with OperatorClient(node.url, identity(pki, "ops-ada")) as ops:
             ops.create("nodes", {"node_id": "relay-1", "role": "relay"})
@@ -129,6 +139,9 @@ def test_curl_with_the_operator_certificate(station_process, pki) -> None:
     assert [x["link_id"] for x in json.loads(out.stdout)["items"]] == ["link-a"]
 
 
+# The commands talk HTTP to the node; which database it uses adds nothing here (the API
+# tests cover both), and each command is a process of its own: SQLite only.
+@pytest.mark.parametrize("station_process", ["sqlite"], indirect=True)
 def test_operator_cli_against_a_running_node(station_process, pki) -> None:
     from processes import run_cli
 

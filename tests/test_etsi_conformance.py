@@ -109,7 +109,7 @@ def network(tmp_path_factory, pki) -> Iterator[dict[str, str]]:
         deadline = time.monotonic() + 60
         while a.call("GET", "/api/v1/keys/sae-b1/status")[1].get("stored_key_count", 0) < 32:
             assert time.monotonic() < deadline, "no ready key at station-a"
-            time.sleep(0.5)
+            time.sleep(0.1)
         yield urls
     finally:
         stop_all(list(nodes.values()))

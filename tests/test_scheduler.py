@@ -138,7 +138,7 @@ def test_two_workers_on_postgresql_one_scheduler_acts(tmp_path: Path, pki, pg_fa
             actors = _segment_actors(url)
             if len(actors) >= 1 and _count_made(url) >= 10:
                 break
-            time.sleep(0.5)
+            time.sleep(0.1)
         assert _count_made(url) >= 10, "the scheduler made too few segments"
         assert len(actors) == 1, actors
         pids = {
