@@ -76,6 +76,11 @@ class ServerSection(_Section):
     #: Run the background workers (outbox, relay scheduler, expiry) in this process.
     #: Tests that drive them by hand turn this off.
     background_work: bool = True
+    #: How long an idle keep-alive connection stays open. Encryptors keep one connection
+    #: and may pause between requests; closing it under them races with their next
+    #: request (the client sees the connection drop and cannot know whether a Get key
+    #: was served). Longer than common client idle timeouts (common practice).
+    keep_alive_seconds: Annotated[int, Field(ge=1, le=3600)] = 75
 
 
 class TlsSection(_Section):

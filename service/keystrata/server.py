@@ -65,4 +65,5 @@ def serve(settings: Settings, config_path: str) -> None:
         proxy_headers=False,
         server_header=False,
         timeout_graceful_shutdown=2,
+        timeout_keep_alive=settings.server.keep_alive_seconds,
     )

@@ -388,71 +388,75 @@ def _advance(ctx: NodeContext, row: PairSegment, taken: int, rest: bytes) -> Non
 
 def apply_allocated(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcome:
     """Slave's station: take the named segment bytes as keys waiting for their slaves."""
-    pair_id = str(body["pair_id"])
     with ctx.db.write() as s:
-        pair = s.get(Pair, pair_id)
-        if pair is None or ctx.node_id not in (pair.station_a, pair.station_b):
-            raise InvalidInput(f"no pair {pair_id!r} at this station")
-        partner = pair.station_b if pair.station_a == ctx.node_id else pair.station_a
-        if sender != partner or body.get("owner") != sender:
-            raise Forbidden("only the pair's other station allocates its keys")
-        now = ctx.clock.now()
-        # The same message can be applied twice at once (the owner's push and this
-        # station's pull, or two workers). Lock the segments it names first, in one
-        # order: the later transaction then waits, and sees the keys as already here.
-        named = sorted({str(r["segment"]) for rec in body["keys"] for r in rec["ranges"]})
-        s.execute(
-            select(PairSegment.segment_id)
-            .where(PairSegment.segment_id.in_(named))
-            .order_by(PairSegment.segment_id)
-            .with_for_update()
-        ).all()
-        applied, taken = [], []
-        for rec in body["keys"]:
-            key_id = str(uuid.UUID(str(rec["key_ID"])))
-            if s.get(KeyAlloc, key_id) is not None:
-                continue
-            key = _carve_named(ctx, s, pair_id, sender, rec["ranges"])
-            if len(key) * 8 != int(rec["size_bits"]):
-                raise InvalidInput("size_bits does not match the ranges")
-            expires = datetime.fromisoformat(str(rec["expires_at"]))
-            live = expires > now
-            s.add(
-                KeyAlloc(
-                    key_id=key_id,
-                    pair_id=pair_id,
-                    owner=sender,
-                    master_sae=str(rec["master"]),
-                    slaves=json.dumps(rec["slaves"]),
-                    fetched_by="[]",
-                    ranges=json.dumps(rec["ranges"]),
-                    size_bits=int(rec["size_bits"]),
-                    state="waiting" if live else "expired",
-                    allocated_at=datetime.fromisoformat(str(rec["allocated_at"])),
-                    expires_at=expires,
-                    settled_at=None if live else now,
-                    sealed=ctx.keyring.seal(key, key_context(key_id)) if live else None,
-                )
+        return _apply_allocated(ctx, s, sender, body)
+
+
+def _apply_allocated(ctx: NodeContext, s: Session, sender: str, body: dict[str, Any]) -> Outcome:
+    pair_id = str(body["pair_id"])
+    pair = s.get(Pair, pair_id)
+    if pair is None or ctx.node_id not in (pair.station_a, pair.station_b):
+        raise InvalidInput(f"no pair {pair_id!r} at this station")
+    partner = pair.station_b if pair.station_a == ctx.node_id else pair.station_a
+    if sender != partner or body.get("owner") != sender:
+        raise Forbidden("only the pair's other station allocates its keys")
+    now = ctx.clock.now()
+    # The same message can be applied twice at once (the owner's push and this
+    # station's pull, or two workers). Lock the segments it names first, in one
+    # order: the later transaction then waits, and sees the keys as already here.
+    named = sorted({str(r["segment"]) for rec in body["keys"] for r in rec["ranges"]})
+    s.execute(
+        select(PairSegment.segment_id)
+        .where(PairSegment.segment_id.in_(named))
+        .order_by(PairSegment.segment_id)
+        .with_for_update()
+    ).all()
+    applied, taken = [], []
+    for rec in body["keys"]:
+        key_id = str(uuid.UUID(str(rec["key_ID"])))
+        if s.get(KeyAlloc, key_id) is not None:
+            continue
+        key = _carve_named(ctx, s, pair_id, sender, rec["ranges"])
+        if len(key) * 8 != int(rec["size_bits"]):
+            raise InvalidInput("size_bits does not match the ranges")
+        expires = datetime.fromisoformat(str(rec["expires_at"]))
+        live = expires > now
+        s.add(
+            KeyAlloc(
+                key_id=key_id,
+                pair_id=pair_id,
+                owner=sender,
+                master_sae=str(rec["master"]),
+                slaves=json.dumps(rec["slaves"]),
+                fetched_by="[]",
+                ranges=json.dumps(rec["ranges"]),
+                size_bits=int(rec["size_bits"]),
+                state="waiting" if live else "expired",
+                allocated_at=datetime.fromisoformat(str(rec["allocated_at"])),
+                expires_at=expires,
+                settled_at=None if live else now,
+                sealed=ctx.keyring.seal(key, key_context(key_id)) if live else None,
             )
-            applied.append(key_id)
-            taken.append(rec)
-        if applied:
-            ledger.append(
-                s,
-                node_id=ctx.node_id,
-                at=now,
-                event=Event.KEY_ALLOCATED,
-                fields={
-                    "pair": pair_id,
-                    "owner": sender,
-                    "masters": sorted({str(r["master"]) for r in taken}),
-                    "slaves": sorted({str(x) for r in taken for x in r["slaves"]}),
-                    "bits": sum(int(r["size_bits"]) for r in taken),
-                    "key_ids": applied,
-                    "segments": _segments(taken),
-                    "side": "slave",
-                },
-            )
+        )
+        applied.append(key_id)
+        taken.append(rec)
+    if applied:
+        ledger.append(
+            s,
+            node_id=ctx.node_id,
+            at=now,
+            event=Event.KEY_ALLOCATED,
+            fields={
+                "pair": pair_id,
+                "owner": sender,
+                "masters": sorted({str(r["master"]) for r in taken}),
+                "slaves": sorted({str(x) for r in taken for x in r["slaves"]}),
+                "bits": sum(int(r["size_bits"]) for r in taken),
+                "key_ids": applied,
+                "segments": _segments(taken),
+                "side": "slave",
+            },
+        )
     return Outcome(applied[0] if applied else "", "applied" if applied else "already")
 
 
@@ -543,17 +547,21 @@ def _pull_and_apply(ctx: NodeContext, owner: str, missing: set[str], pull: Pull)
     bodies = pull(owner)
     if bodies is None:
         return True
-    for body in bodies:
-        try:
-            apply_allocated(ctx, owner, body)
-        except NotYet:
-            return True
-        except (InvalidInput, Forbidden):
-            continue  # a bad message holds no key of this request; others may
-        # Messages apply in order; later ones can wait for the owner's push.
-        missing -= {str(k.get("key_ID", "")).lower() for k in body.get("keys", [])}
-        if not missing:
-            break
+    # All in one transaction (one commit however many messages), each message in a
+    # savepoint of its own: one that cannot apply leaves the others applied.
+    with ctx.db.write() as s:
+        for body in bodies:
+            try:
+                with s.begin_nested():
+                    _apply_allocated(ctx, s, owner, body)
+            except NotYet:
+                return True
+            except (InvalidInput, Forbidden, KeyError, TypeError, ValueError):
+                continue  # a bad message holds no key of this request; others may
+            # Messages apply in order; later ones can wait for the owner's push.
+            missing -= {str(k.get("key_ID", "")).lower() for k in body.get("keys", [])}
+            if not missing:
+                break
     return False
 
 
