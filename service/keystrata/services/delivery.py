@@ -19,7 +19,6 @@ Every refusal on these routes is the same 401 answer (no oracle), recorded in th
 from __future__ import annotations
 
 import json
-import threading
 import uuid
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -514,27 +513,40 @@ def get_keys_with_ids(
     unsettled = False
     if len(known) < len(ids) and pull is not None and master is not None:
         owner = str(master.station_id)
-        # One pull per owner at a time in this process: requests that wait here usually
-        # find their keys applied by the pull before them.
-        with _pull_lock(ctx, owner):
-            with ctx.db.read() as s:
-                known = _known(s, ids)
-            if len(known) < len(ids):
-                unsettled = _pull_and_apply(ctx, owner, set(ids) - known, pull)
+        # One pull per owner at a time in this process; the requests that arrive while
+        # it runs share the next one (a group, like the commits below).
+        name = f"pull:{owner}"
+        lane_pull = ctx.lanes.get(name) or ctx.lanes.setdefault(
+            name, GroupCommit(partial(_pull_for, ctx, owner), max_batch=LANE_BATCH)
+        )
+        unsettled = lane_pull.submit((frozenset(set(ids) - known), pull))
     lane: GroupCommit[_Fetch, list[DeliveredKey]] = _lane(ctx, "get_key_with_ids", _serve)
     return lane.submit(_Fetch(caller, master_sae_id, ids, unsettled))
 
 
 def _known(s: Session, ids: list[str]) -> set[str]:
-    return set(s.execute(select(KeyAlloc.key_id).where(KeyAlloc.key_id.in_(ids))).scalars())
+    """The key IDs of ``ids`` this station holds an allocation of."""
+    out: set[str] = set()
+    for start in range(0, len(ids), _IN_CHUNK):
+        chunk = ids[start : start + _IN_CHUNK]
+        out.update(s.execute(select(KeyAlloc.key_id).where(KeyAlloc.key_id.in_(chunk))).scalars())
+    return out
 
 
-def _pull_lock(ctx: NodeContext, owner: str) -> Any:
-    name = f"pull:{owner}"
-    lock = ctx.lanes.get(name)
-    if lock is None:
-        lock = ctx.lanes.setdefault(name, threading.Lock())
-    return lock
+def _pull_for(
+    ctx: NodeContext, owner: str, asks: Sequence[tuple[frozenset[str], Pull]]
+) -> list[bool]:
+    """One pull for several requests' missing key IDs; for each, whether its answer is
+    unsettled (see :func:`_pull_and_apply`)."""
+    wanted = sorted(set().union(*(missing for missing, _ in asks)))
+    with ctx.db.read() as s:
+        missing = set(wanted) - _known(s, wanted)  # an earlier pull may have brought them
+    unsettled = bool(missing) and _pull_and_apply(ctx, owner, missing, asks[0][1])
+    if not unsettled:
+        return [False] * len(asks)
+    with ctx.db.read() as s:
+        known = _known(s, wanted)
+    return [not ids <= known for ids, _ in asks]
 
 
 def _pull_and_apply(ctx: NodeContext, owner: str, missing: set[str], pull: Pull) -> bool:
