@@ -175,3 +175,26 @@ def test_one_batch_of_get_key_with_key_ids_serves_each_key_once(net) -> None:
     assert len(events) == 3
     reasons = [e["reason"] for e in _entries(ctx, "key.refused")]
     assert reasons == ["key_not_allocated_to_this_sae"] * 2
+
+
+def test_a_batch_of_allocation_messages_applies_in_order_in_one_run(net) -> None:
+    from keystrata.services import messages, outbox
+
+    for _ in range(3):  # one request at a time: three key.allocated messages
+        delivery.get_keys(net.a.ctx, A1, "sae-b1", KeyRequest(number=2))
+    bodies = outbox.pending_bodies(net.a.ctx.db, destination="station-b", kind="key.allocated")
+    assert len(bodies) == 3
+    ctx = net.b.ctx
+    before = len(_entries(ctx, "key.allocated"))
+    # Out of order: the second message names bytes after the first's, not yet here.
+    answers = messages.handle_batch(ctx, "station-a", [bodies[1], bodies[0]])
+    assert [a.status for a in answers] == [409]
+    assert len(_entries(ctx, "key.allocated")) == before  # nothing applied
+    answers = messages.handle_batch(ctx, "station-a", bodies)
+    assert [(a.status, a.outcome) for a in answers] == [(200, "applied")] * 3
+    assert len(_entries(ctx, "key.allocated")) == before + 3  # one entry per message
+    answers = messages.handle_batch(ctx, "station-a", bodies)  # a resend
+    assert [(a.status, a.outcome) for a in answers] == [(200, "already")] * 3
+    # A message from a station that is not the pair's other station stops the run.
+    answers = messages.handle_batch(ctx, "station-c", bodies[:1])
+    assert [a.status for a in answers] == [403]

@@ -31,7 +31,14 @@ from sqlalchemy.orm import Session
 
 from keystrata.domain.etsi import KeyRequest
 from keystrata.domain.ledger import Event
-from keystrata.errors import BadRequest, Forbidden, InvalidInput, Unauthenticated, Unavailable
+from keystrata.errors import (
+    BadRequest,
+    Forbidden,
+    InvalidInput,
+    KeystrataError,
+    Unauthenticated,
+    Unavailable,
+)
 from keystrata.services import ledger, outbox
 from keystrata.services.context import NodeContext
 from keystrata.services.group_commit import GroupCommit
@@ -389,6 +396,32 @@ def apply_allocated(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outc
     """Slave's station: take the named segment bytes as keys waiting for their slaves."""
     with ctx.db.write() as s:
         return _apply_allocated(ctx, s, sender, body)
+
+
+def apply_allocated_run(
+    ctx: NodeContext, sender: str, bodies: Sequence[dict[str, Any]]
+) -> tuple[list[Outcome], KeystrataError | None]:
+    """Apply consecutive ``key.allocated`` messages in order in one transaction (one
+    commit), each in a savepoint as if it came alone; stop at the first that does not
+    apply. Returns the outcomes of those applied and the error that stopped the run.
+
+    A failure of the transaction itself (the database went away) raises: then none of
+    them is applied.
+    """
+    outcomes: list[Outcome] = []
+    error: KeystrataError | None = None
+    with ctx.db.write() as s:
+        for body in bodies:
+            try:
+                with s.begin_nested():
+                    outcomes.append(_apply_allocated(ctx, s, sender, body))
+            except KeystrataError as exc:
+                error = exc
+                break
+            except (KeyError, TypeError, ValueError):
+                error = InvalidInput("message key.allocated: missing or malformed field")
+                break
+    return outcomes, error
 
 
 def _apply_allocated(ctx: NodeContext, s: Session, sender: str, body: dict[str, Any]) -> Outcome:
