@@ -255,7 +255,7 @@ def test_quota_and_empty_pool_answer_503(make_node, db_factory, api) -> None:
 def test_uncollected_keys_expire_on_both_sides(net, api) -> None:
     from datetime import timedelta
 
-    from keystrata.services import delivery
+    from keystrata.services import allocations
 
     r = api(net.a)("sae-a1").post("/api/v1/keys/sae-b1/enc_keys", json={})
     (key_id,) = _keys(r.json())
@@ -271,7 +271,7 @@ def test_uncollected_keys_expire_on_both_sides(net, api) -> None:
     import dataclasses
 
     later_b = dataclasses.replace(net.b.ctx, clock=Later(net.b.ctx.clock))
-    assert delivery.expire(later_b) == 1
+    assert allocations.expire(later_b) == 1
     net.drain()
     assert "key.expired" in ledger_events(net.a.ctx)
     r = api(net.b)("sae-b1").get(f"/api/v1/keys/sae-a1/dec_keys?key_ID={key_id}")

@@ -126,14 +126,14 @@ def _apply_twice_at_once(net: relaynet.RelayNet, message: dict[str, Any]) -> lis
     outcomes, or the errors."""
     import threading
 
-    from keystrata.services import delivery
+    from keystrata.services import allocations
 
     start, results = threading.Barrier(2), []
 
     def apply() -> None:
         start.wait()
         try:
-            results.append(delivery.apply_allocated(net.b.ctx, "station-a", message).status)
+            results.append(allocations.apply_allocated(net.b.ctx, "station-a", message).status)
         except Exception as exc:
             results.append(repr(exc))
 

@@ -30,7 +30,7 @@ from helpers import snapshot
 from keystrata import __version__
 from keystrata.crypto.hazmat import Keyring
 from keystrata.domain.registry import Kind, PrincipalSpec
-from keystrata.services import checkpoints, delivery, registry
+from keystrata.services import allocations, checkpoints, registry
 from keystrata.services.node import KEK_CHECK_PLAINTEXT
 from keystrata.storage.models import (
     KeyAlloc,
@@ -226,7 +226,7 @@ def test_relay_and_delivery_metrics_match_the_database(net, api) -> None:
     delivered += r.json()["keys"]
     net.drain()
     later = dataclasses.replace(net.b.ctx, clock=_At(datetime.now(UTC) + timedelta(days=1)))
-    assert delivery.expire(later) == 2
+    assert allocations.expire(later) == 2
     at_b = scrape(api(net.b)("ops-ada"))
     with net.b.ctx.db.read() as s:
         queued = s.execute(

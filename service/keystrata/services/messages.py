@@ -8,7 +8,7 @@ from typing import Any
 
 from keystrata.config import Role
 from keystrata.errors import Forbidden, InvalidInput, KeystrataError
-from keystrata.services import delivery, relay, segments
+from keystrata.services import allocations, relay, segments
 from keystrata.services.context import NodeContext
 from keystrata.services.segments import Outcome
 
@@ -33,8 +33,8 @@ HANDLERS: dict[Role, dict[str, Handler]] = {
         "segment.check": segments.apply_check,
         "segment.confirmed": segments.apply_confirmed,
         "segment.discarded": segments.apply_discarded,
-        "key.allocated": delivery.apply_allocated,
-        "key.expired": delivery.apply_expired,
+        "key.allocated": allocations.apply_allocated,
+        "key.expired": allocations.apply_expired,
     },
     Role.RELAY: {"segment.settled": _settle},
 }
@@ -98,7 +98,7 @@ def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[Answe
         if run:
             # Key allocations come in long runs under load: one transaction for a run.
             try:
-                outcomes, error = delivery.apply_allocated_run(ctx, sender, run)
+                outcomes, error = allocations.apply_allocated_run(ctx, sender, run)
             except KeystrataError as exc:
                 outcomes, error = [], exc
             answers += [Answer(200, o.segment_id, o.status) for o in outcomes]

@@ -13,7 +13,7 @@ from datetime import timedelta
 from sqlalchemy.exc import IntegrityError
 
 from keystrata.config import Role
-from keystrata.services import checkpoints, delivery, leases, segments
+from keystrata.services import allocations, checkpoints, leases, segments
 from keystrata.services import outbox as outbox_service
 from keystrata.services.context import NodeContext
 from keystrata.workers import outbox, scheduler
@@ -104,5 +104,5 @@ class Background:
     def _expire(self) -> bool:
         timeout = timedelta(seconds=self.ctx.settings.segments.confirm_timeout_seconds)
         segments.expire_pending(self.ctx, self.ctx.clock.now() - timeout)
-        delivery.expire(self.ctx)
+        allocations.expire(self.ctx)
         return False
