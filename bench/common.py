@@ -254,6 +254,21 @@ def postgres_available() -> bool:
 
 
 @contextmanager
+def environment(values: dict[str, str]) -> Iterator[None]:
+    """Processes started inside inherit ``values``; the environment is restored after."""
+    old = {k: os.environ.get(k) for k in values}
+    os.environ.update(values)
+    try:
+        yield
+    finally:
+        for k, v in old.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+
+
+@contextmanager
 def workspace() -> Iterator[Workspace]:
     ws = Workspace()
     try:

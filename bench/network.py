@@ -30,17 +30,8 @@ def node_settings() -> Iterator[None]:
     """Settings every node started inside gets, through the environment overrides
     ``load_settings`` reads (``KEYSTRATA_<SECTION>__<KEY>``), restored afterwards: the
     run's SQLite durability (the test helpers write NORMAL into node files)."""
-    values = {"KEYSTRATA_DATABASE__SQLITE_SYNCHRONOUS": common.SQLITE_SYNCHRONOUS}
-    old = {k: os.environ.get(k) for k in values}
-    os.environ.update(values)
-    try:
+    with common.environment({"KEYSTRATA_DATABASE__SQLITE_SYNCHRONOUS": common.SQLITE_SYNCHRONOUS}):
         yield
-    finally:
-        for k, v in old.items():
-            if v is None:
-                os.environ.pop(k, None)
-            else:
-                os.environ[k] = v
 
 
 @contextmanager

@@ -10,14 +10,12 @@ zero and the last sample that grew.
 
 from __future__ import annotations
 
-import os
 import threading
 import time
-from collections.abc import Iterator
-from contextlib import ExitStack, contextmanager
+from contextlib import ExitStack
 from typing import Any
 
-from bench import network, profiling
+from bench import common, network, profiling
 from bench.common import Figure, Workspace, memory_kib, process_tree
 
 #: Relay settings of the run: the defaults of config.py but a short cycle (a relay that
@@ -26,21 +24,6 @@ RELAY_SETTINGS = "\n[relay]\ncycle_seconds = 0.1\n"
 #: The glibc malloc settings of the deploy files (deploy/systemd/keystrata@.service,
 #: deploy/compose.yaml), so the memory figure is that of a node as deployed.
 MALLOC_ENV = {"MALLOC_ARENA_MAX": "2", "MALLOC_MMAP_THRESHOLD_": "131072"}
-
-
-@contextmanager
-def deployed_malloc() -> Iterator[None]:
-    """Nodes started inside inherit :data:`MALLOC_ENV`; the environment is restored."""
-    old = {k: os.environ.get(k) for k in MALLOC_ENV}
-    os.environ.update(MALLOC_ENV)
-    try:
-        yield
-    finally:
-        for k, v in old.items():
-            if v is None:
-                os.environ.pop(k, None)
-            else:
-                os.environ[k] = v
 
 
 class MemorySampler:
@@ -90,7 +73,7 @@ def measure(
     ws: Workspace, backend: str, per_link_bytes: int, *, max_seconds: float
 ) -> list[Figure]:
     """Relay ``per_link_bytes`` of link key per link; return the rate and the memory."""
-    with deployed_malloc():
+    with common.environment(MALLOC_ENV):
         nodes = network.start(ws, backend, relay_settings=RELAY_SETTINGS, policy=network.STOPPED)
     relay_pid = nodes["relay-1"].proc.pid
     memory = MemorySampler(relay_pid)

@@ -32,15 +32,7 @@ def append(
         Unavailable: the ledger cannot be written. The caller's transaction then rolls
             back, so the change the entry records does not happen either (fail closed).
     """
-    try:
-        return _append(session, node_id=node_id, entries=[(at, event, fields)])[0]
-    except (
-        exc.IntegrityError,
-        exc.OperationalError,
-        exc.ProgrammingError,
-        exc.InternalError,
-    ) as err:
-        raise Unavailable("the audit ledger cannot be written; nothing was changed") from err
+    return append_many(session, node_id=node_id, entries=[(at, event, fields)])[0]
 
 
 def append_many(
