@@ -198,3 +198,62 @@ def test_a_batch_of_allocation_messages_applies_in_order_in_one_run(net) -> None
     # A message from a station that is not the pair's other station stops the run.
     answers = messages.handle_batch(ctx, "station-c", bodies[:1])
     assert [a.status for a in answers] == [403]
+
+
+def test_two_worker_processes_never_take_the_same_bytes(net) -> None:
+    """Two contexts on one station database (as two worker processes have: their own
+    engine, lanes and write gate) take Get keys from the same front of owned segments at
+    once: every byte goes to one key at most (PostgreSQL: row locks and the re-check in
+    ``OwnedStock.reserve``; SQLite: its single writer)."""
+    from itertools import pairwise
+
+    from keystrata.services.node import open_node
+    from keystrata.storage.db import Database
+    from keystrata.storage.models import KeyAlloc
+
+    second = Database.from_url(net.a.settings.database.url, sqlite_synchronous="NORMAL")
+    try:
+        contexts = [net.a.ctx, open_node(net.a.settings, second)]
+        errors: list[BaseException] = []
+        got: list[delivery.DeliveredKey] = []
+        lock = threading.Lock()
+        barrier = threading.Barrier(12)
+
+        def master(i: int) -> None:
+            ctx = contexts[i % 2]
+            barrier.wait()
+            while True:
+                try:
+                    keys = delivery.get_keys(ctx, A1, "sae-b1", KeyRequest(number=1 + i % 3))
+                except delivery.NotEnoughKey:
+                    return
+                except delivery.QuotaReached:
+                    return
+                except BaseException as exc:
+                    with lock:
+                        errors.append(exc)
+                    return
+                with lock:
+                    got.extend(keys)
+
+        threads = [threading.Thread(target=master, args=(i,)) for i in range(12)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join(60)
+        assert not errors, errors
+        assert got
+        assert len({k.key for k in got}) == len(got)
+        with net.a.ctx.db.read() as s:
+            rows = s.execute(select(KeyAlloc.ranges)).scalars().all()
+        spans: dict[str, list[tuple[int, int]]] = {}
+        for ranges in rows:
+            for r in json.loads(ranges):
+                spans.setdefault(r["segment"], []).append((r["offset"], r["offset"] + r["length"]))
+        for segment, ss in spans.items():
+            ss.sort()
+            for (_, end), (start, _) in pairwise(ss):
+                assert start >= end, f"two keys share bytes of segment {segment}"
+        assert sum(e - b for ss in spans.values() for b, e in ss) == 32 * len(got)
+    finally:
+        second.dispose()
