@@ -130,11 +130,16 @@ def prepare_node(
 
 
 def start_all(nodes: list[NodeProcess], pki: PkiFiles) -> None:
-    """Start several nodes at once and wait until each answers."""
-    for node in nodes:
-        node.launch()
-    for node in nodes:
-        node.start(pki)
+    """Start several nodes at once and wait until each answers; if one does not, stop
+    them all (no node outlives a failed start)."""
+    try:
+        for node in nodes:
+            node.launch()
+        for node in nodes:
+            node.start(pki)
+    except BaseException:
+        stop_all(nodes)
+        raise
 
 
 def stop_all(nodes: list[NodeProcess]) -> None:
@@ -193,55 +198,60 @@ def start_network(
         relay.write_text(
             relay.read_text().replace("[server]\n", f"[server]\nworkers = {relay_workers}\n", 1)
         )
-    start_all(list(nodes.values()), pki)
-    operator = TlsIdentity(ca=pki.ca, cert=pki.cert("ops-ada"), key=pki.key("ops-ada"))
-    for node in nodes.values():
-        with OperatorClient(node.url, operator) as ops:
-            for other, role in NETWORK.items():
-                if other == node.node_id:
-                    continue
-                ops.create("nodes", {"node_id": other, "role": role})
+    # Nodes that started must not outlive a failed start-up or provisioning.
+    try:
+        start_all(list(nodes.values()), pki)
+        operator = TlsIdentity(ca=pki.ca, cert=pki.cert("ops-ada"), key=pki.key("ops-ada"))
+        for node in nodes.values():
+            with OperatorClient(node.url, operator) as ops:
+                for other, role in NETWORK.items():
+                    if other == node.node_id:
+                        continue
+                    ops.create("nodes", {"node_id": other, "role": role})
+                    ops.create(
+                        "principals",
+                        {
+                            "principal_id": f"peer-{other}",
+                            "role": "peer",
+                            "cert_subject": other,
+                            "node_id": other,
+                        },
+                    )
+                for station, link in NETWORK_LINKS.items():
+                    if node.node_id in ("relay-1", station):
+                        ops.create(
+                            "links", {"link_id": link, "relay_id": "relay-1", "station_id": station}
+                        )
+                        ops.create(
+                            "principals",
+                            {
+                                "principal_id": f"mod-{link}",
+                                "role": "qkd-module",
+                                "cert_subject": f"mod-{link}",
+                                "link_id": link,
+                            },
+                        )
                 ops.create(
-                    "principals",
+                    "pairs",
                     {
-                        "principal_id": f"peer-{other}",
-                        "role": "peer",
-                        "cert_subject": other,
-                        "node_id": other,
+                        "pair_id": "pair-ab",
+                        "relay_id": "relay-1",
+                        "stations": ["station-a", "station-b"],
+                        "policy": policy or {},
                     },
                 )
-            for station, link in NETWORK_LINKS.items():
-                if node.node_id in ("relay-1", station):
-                    ops.create(
-                        "links", {"link_id": link, "relay_id": "relay-1", "station_id": station}
-                    )
-                    ops.create(
-                        "principals",
-                        {
-                            "principal_id": f"mod-{link}",
-                            "role": "qkd-module",
-                            "cert_subject": f"mod-{link}",
-                            "link_id": link,
-                        },
-                    )
-            ops.create(
-                "pairs",
-                {
-                    "pair_id": "pair-ab",
-                    "relay_id": "relay-1",
-                    "stations": ["station-a", "station-b"],
-                    "policy": policy or {},
-                },
-            )
-            if saes and node.node_id != "relay-1":
-                for sae, station in SAES.items():
-                    ops.create(
-                        "principals",
-                        {
-                            "principal_id": sae,
-                            "role": "sae",
-                            "cert_subject": sae,
-                            "station_id": station,
-                        },
-                    )
+                if saes and node.node_id != "relay-1":
+                    for sae, station in SAES.items():
+                        ops.create(
+                            "principals",
+                            {
+                                "principal_id": sae,
+                                "role": "sae",
+                                "cert_subject": sae,
+                                "station_id": station,
+                            },
+                        )
+    except BaseException:
+        stop_all(list(nodes.values()))
+        raise
     return nodes
