@@ -4,10 +4,9 @@ from __future__ import annotations
 
 from datetime import datetime, timedelta
 
-from sqlalchemy import delete, insert, or_, update
+from sqlalchemy import delete, or_, update
 from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
-from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from keystrata.storage.db import Database
@@ -22,21 +21,7 @@ def acquire(db: Database, name: str, holder: str, *, now: datetime, ttl: timedel
     write lock), so two workers can never both succeed.
     """
     with db.write() as s:
-        taken = s.execute(  # type: ignore[attr-defined]
-            update(Lease)
-            .where(Lease.name == name, or_(Lease.holder == holder, Lease.expires_at < now))
-            .values(holder=holder, expires_at=now + ttl)
-        ).rowcount
-        if taken:
-            return True
-        if s.get(Lease, name) is not None:
-            return False
-    try:
-        with db.write() as s:
-            s.execute(insert(Lease).values(name=name, holder=holder, expires_at=now + ttl))
-        return True
-    except IntegrityError:
-        return False  # another worker created it first
+        return take(s, name, holder, now=now, ttl=ttl)
 
 
 def take(session: Session, name: str, holder: str, *, now: datetime, ttl: timedelta) -> bool:
@@ -55,12 +40,15 @@ def take(session: Session, name: str, holder: str, *, now: datetime, ttl: timede
     if taken:
         return True
     dialect_insert = pg_insert if session.get_bind().dialect.name == "postgresql" else sqlite_insert
-    created = session.execute(  # type: ignore[attr-defined]
+    # RETURNING, not rowcount: SQLAlchemy reports -1 (unknown) as the rowcount of this
+    # statement on PostgreSQL, which bool() took for "created" while another held it.
+    created = session.execute(
         dialect_insert(Lease)
         .values(name=name, holder=holder, expires_at=now + ttl)
         .on_conflict_do_nothing(index_elements=["name"])
-    ).rowcount
-    return bool(created)
+        .returning(Lease.name)
+    ).first()
+    return created is not None
 
 
 def release(session: Session, name: str, holder: str) -> None:
