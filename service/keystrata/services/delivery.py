@@ -235,7 +235,7 @@ def get_keys(
         raise BadRequest(f"at most {MAX_SAE_ID_COUNT} additional_slave_SAE_IDs (max_SAE_ID_count)")
     route = route_for_master(ctx, caller, slave_sae_id, request.additional_slave_SAE_IDs or ())
     number, size = check_request(route, request)
-    lane: GroupCommit[_Ask, list[DeliveredKey]] = _lane(ctx, "get_key", _allocate)
+    lane: GroupCommit[_Ask, list[DeliveredKey]] = _lane(ctx, "get_key", partial(_allocate, ctx))
     return lane.submit(_Ask(caller, route, number, size))
 
 
@@ -251,10 +251,11 @@ class _Ask:
         return self.number * self.size // 8
 
 
-def _lane(ctx: NodeContext, name: str, run: Callable[[NodeContext, Any], Any]) -> Any:
+def _lane(ctx: NodeContext, name: str, run: Callable[[Any], Any]) -> Any:
+    """This process's group commit ``name``, created on first use around ``run``."""
     lane = ctx.lanes.get(name)
     if lane is None:
-        lane = ctx.lanes.setdefault(name, GroupCommit(partial(run, ctx), max_batch=LANE_BATCH))
+        lane = ctx.lanes.setdefault(name, GroupCommit(run, max_batch=LANE_BATCH))
     return lane
 
 
@@ -416,12 +417,13 @@ def get_keys_with_ids(
         owner = str(master.station_id)
         # One pull per owner at a time in this process; the requests that arrive while
         # it runs share the next one (a group, like the commits below).
-        name = f"pull:{owner}"
-        lane_pull = ctx.lanes.get(name) or ctx.lanes.setdefault(
-            name, GroupCommit(partial(_pull_for, ctx, owner), max_batch=LANE_BATCH)
+        pulls: GroupCommit[tuple[frozenset[str], Pull], bool] = _lane(
+            ctx, f"pull:{owner}", partial(_pull_for, ctx, owner)
         )
-        unsettled = lane_pull.submit((frozenset(set(ids) - known), pull))
-    lane: GroupCommit[_Fetch, list[DeliveredKey]] = _lane(ctx, "get_key_with_ids", _serve)
+        unsettled = pulls.submit((frozenset(set(ids) - known), pull))
+    lane: GroupCommit[_Fetch, list[DeliveredKey]] = _lane(
+        ctx, "get_key_with_ids", partial(_serve, ctx)
+    )
     return lane.submit(_Fetch(caller, master_sae_id, ids, unsettled))
 
 
