@@ -398,3 +398,43 @@ class KeyAlloc(Base):
     expires_at: Mapped[datetime]
     settled_at: Mapped[datetime | None]
     sealed: Mapped[bytes | None] = mapped_column(LargeBinary)
+
+
+class PairHold(Base):
+    """A finding of the restore check (services/progress.py): one station of a pair is
+    behind the other (lost commits: a restored backup, power loss with unsafe
+    durability). While a finding about this station itself is open, the pair serves no
+    key here; an operator closes it (release), findings about the partner close when
+    a later comparison is clean."""
+
+    __tablename__ = "pair_hold"
+    __table_args__ = (
+        CheckConstraint("behind IN ('self', 'partner')", name="behind"),
+        CheckConstraint("reason IN ('owner_behind', 'non_owner_behind')", name="reason"),
+        Index(
+            "uq_pair_hold_open",
+            "pair_id",
+            "behind",
+            "reason",
+            unique=True,
+            sqlite_where=text("released_at IS NULL"),
+            postgresql_where=text("released_at IS NULL"),
+        ),
+    )
+    id: Mapped[int] = mapped_column(
+        BigInteger().with_variant(Integer, "sqlite"), primary_key=True, autoincrement=True
+    )
+    pair_id: Mapped[str] = mapped_column(ForeignKey("pair.pair_id"))
+    partner: Mapped[str] = mapped_column(String(ID_LEN), comment="the other station")
+    behind: Mapped[str] = mapped_column(
+        String(8), comment="self: this station lost commits; partner: the other one did"
+    )
+    reason: Mapped[str] = mapped_column(
+        String(32), comment="owner_behind: the segments' owner; non_owner_behind: the other"
+    )
+    segments: Mapped[int] = mapped_column(Integer, comment="segments found behind")
+    bytes_behind: Mapped[int] = mapped_column(BigInteger, comment="sum of the differences")
+    detected_at: Mapped[datetime]
+    released_at: Mapped[datetime | None]
+    released_by: Mapped[str | None] = mapped_column(String(ID_LEN))
+    release_reason: Mapped[str | None] = mapped_column(String(255))
