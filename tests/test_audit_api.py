@@ -6,12 +6,14 @@ package)."""
 from __future__ import annotations
 
 import base64
+from datetime import datetime
 
 import rfc8785
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
 from keystrata.domain import merkle
 from keystrata.services import checkpoints
+from keystrata_client.audit.export import Checkpoint
 from test_ledger_tree import _entries, mth
 
 
@@ -25,8 +27,15 @@ def test_checkpoint_is_signed_and_proofs_verify(station, api) -> None:
     assert cp["tree_size"] == len(entries)
     root = base64.b64decode(cp["root_hash"])
     assert root == mth(entries)
-    # The signed text is the body of a C2SP tlog checkpoint: origin, size, Base64 root.
-    assert cp["signed_text"] == f"station-a\n{len(entries)}\n{cp['root_hash']}\n"
+    # The signed text is the body of a C2SP tlog checkpoint (origin, size, Base64 root;
+    # from memory) and our extension line with the signing time, RFC 3339 in UTC (the
+    # standard library's parser as reference).
+    lines = cp["signed_text"].split("\n")
+    assert lines[:3] == ["station-a", str(len(entries)), cp["root_hash"]]
+    assert len(lines) == 5 and lines[4] == ""  # four lines, each ending in a newline
+    marker, _, at = lines[3].rpartition(" ")
+    assert marker == "keystrata/v2 signed-at" and at.endswith("Z")
+    assert datetime.fromisoformat(at) == first.signed_at == datetime.fromisoformat(cp["signed_at"])
     key = Ed25519PublicKey.from_public_bytes(base64.b64decode(cp["public_key"]))
     key.verify(base64.b64decode(cp["signature"]), cp["signed_text"].encode())  # RFC 8032
     # Nothing new: no second checkpoint.
@@ -63,6 +72,11 @@ def test_checkpoint_is_signed_and_proofs_verify(station, api) -> None:
     )
     listed = aud.get("/api/v1/audit/checkpoints").json()["checkpoints"]
     assert [c["tree_size"] for c in listed] == [second.tree_size, first.tree_size]
+    # The auditor's verifier reads the times the node signs (the client's own parser).
+    read = [Checkpoint.read(c, "api") for c in listed]
+    assert [c.signed_at for c in read] == [second.signed_at, first.signed_at]
+    assert read[0].signed_at is not None and read[1].signed_at is not None
+    assert read[0].signed_at >= read[1].signed_at
 
 
 def test_entries_are_canonical_json(station, api) -> None:

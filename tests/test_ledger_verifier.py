@@ -17,8 +17,9 @@ Outside references, each named beside its check:
   (recalled from memory, cross-checked there against cryptography_vectors).
 * RFC 8785: canonical bytes from the ``rfc8785`` package.
 * RFC 4648: Base64 from the standard library.
-* C2SP tlog checkpoint body (origin, size, Base64 root, each on a line): from memory, as
-  the server documents it.
+* C2SP tlog checkpoint body (origin, size, Base64 root, each on a line, then optional
+  extension lines): from memory, as the server documents it; the extension line
+  ``keystrata/v2 signed-at <time>`` is ours, the time RFC 3339 section 5.6 in UTC.
 """
 
 from __future__ import annotations
@@ -118,12 +119,17 @@ def raw_public(key: Ed25519PrivateKey) -> bytes:
 
 
 def checkpoint(
-    entries: Sequence[bytes], size: int, key: Ed25519PrivateKey | None = None
+    entries: Sequence[bytes],
+    size: int,
+    key: Ed25519PrivateKey | None = None,
+    *,
+    time_line: str | None = None,
 ) -> dict[str, Any]:
-    """A checkpoint of the first ``size`` entries, root from pymerkle, signed (RFC 8032)."""
+    """A checkpoint of the first ``size`` entries, root from pymerkle, signed (RFC 8032);
+    version 1 (no time) unless a ``time_line`` is given (without its newline)."""
     key = key or node_key()
     root = b64(tree_of(tuple(entries)).get_root(size))
-    text = f"{ORIGIN}\n{size}\n{root}\n"
+    text = f"{ORIGIN}\n{size}\n{root}\n" + ("" if time_line is None else time_line + "\n")
     return {
         "origin": ORIGIN,
         "tree_size": size,
@@ -174,6 +180,13 @@ class Export:
     def with_rows(self, rows: Rows, name: str = "tampered") -> Path:
         """The export a node would serve after its rows became ``rows``."""
         return write_dir(self.folder.parent / name, rows, self.latest, self.history)
+
+
+@pytest.fixture(autouse=True)
+def _auditor_state(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The commands keep their state in tmp_path, never in the real home folder."""
+    monkeypatch.setenv("KEYSTRATA_AUDIT_STATE", str(tmp_path / "auditor-state"))
+    monkeypatch.setenv("XDG_STATE_HOME", str(tmp_path / "xdg-state"))
 
 
 @pytest.fixture
@@ -429,6 +442,47 @@ def test_earlier_checkpoint_must_be_a_prefix(export: Callable[..., Export]) -> N
     # The node's own history in the export is checked the same way.
     (ex.folder / "checkpoints.jsonl").write_text(json.dumps(checkpoint(fork, 6)) + "\n")
     bad(verify_export(ex.folder), None, "checkpoints.jsonl line 1")
+
+
+def test_untimed_checkpoint_is_read_as_no_time(export: Callable[..., Export]) -> None:
+    report = verify_export(export(4).folder)
+    assert report.ok and report.signed_at is None
+    assert any("no signing time (format version 1)" in note for note in report.notes)
+
+
+@pytest.mark.parametrize(
+    ("line", "signed_at"),
+    [
+        ("keystrata/v2 signed-at 2026-12-01T10:00:00.000000Z", "2026-12-01T10:00:00.000000Z"),
+        ("keystrata/v2 signed-at 2026-12-01T10:00:00Z", "2026-12-01T10:00:00.000000Z"),
+        ("keystrata/v2 signed-at 2026-12-01T10:00:00.5Z", "2026-12-01T10:00:00.500000Z"),
+        # Malformed: an offset instead of Z, no seconds, a 13th month, a leap second (RFC
+        # 3339 section 5.6 allows second 60; this verifier does not take it), lower-case t.
+        ("keystrata/v2 signed-at 2026-12-01T10:00:00+00:00", None),
+        ("keystrata/v2 signed-at 2026-12-01T10:00Z", None),
+        ("keystrata/v2 signed-at 2026-13-01T10:00:00Z", None),
+        ("keystrata/v2 signed-at 2026-12-31T23:59:60Z", None),
+        ("keystrata/v2 signed-at 2026-12-01t10:00:00Z", None),
+        ("keystrata/v3 signed-at 2026-12-01T10:00:00Z", None),  # unknown version
+        ("extension from elsewhere", None),
+        ("keystrata/v2 signed-at 2026-12-01T10:00:00Z\nmore", None),
+    ],
+)
+def test_time_line_of_the_signed_text(
+    export: Callable[..., Export], line: str, signed_at: str | None
+) -> None:
+    ex = export(6)
+    cp = checkpoint(ex.entries, 6, time_line=line)
+    (ex.folder / "checkpoint.json").write_text(json.dumps(cp))
+    report = verify_export(ex.folder)
+    if signed_at is None:
+        bad(report, None, "checkpoint.json")
+        assert any(w in report.findings[0] for w in ("signing time", "unknown", "does not know")), (
+            report.findings
+        )
+    else:
+        assert report.ok, report.findings
+        assert report.signed_at == signed_at
 
 
 def test_rfc8032_test1_signature_is_accepted() -> None:

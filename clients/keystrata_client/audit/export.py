@@ -17,8 +17,6 @@ An export is a folder of three files, written by :func:`write_export`:
 
 from __future__ import annotations
 
-import base64
-import binascii
 import json
 import os
 import tempfile
@@ -34,6 +32,19 @@ import httpx
 from keystrata_client._errors import KeystrataClientError
 from keystrata_client._http import build_client, check_base_url, json_object, wrap_transport
 from keystrata_client._tls import TlsIdentity
+from keystrata_client.audit._checkpoint import BadCheckpoint, Checkpoint, b64_value
+
+__all__ = [
+    "CHECKPOINT_FILE",
+    "ENTRIES_FILE",
+    "HISTORY_FILE",
+    "AuditClient",
+    "BadCheckpoint",
+    "Checkpoint",
+    "ExportSummary",
+    "b64_value",
+    "write_export",
+]
 
 #: The most entries or checkpoints a node returns in one answer.
 PAGE: Final = 1000
@@ -209,64 +220,6 @@ class AuditClient:
         """Per day, pair and SAE: keys and bits to masters and slaves, expired, refused,
         and at a relay the link key used by relaying (``{"node_id", "days": [...]}``)."""
         return self._get("/accounting", {"since": since, "until": until})
-
-
-def b64_value(value: Any, size: int | None = None) -> bytes | None:
-    """Decode canonical Base64 (RFC 4648 section 4, padded, no stray bits) of ``size``
-    bytes; return None when ``value`` is anything else."""
-    if not isinstance(value, str):
-        return None
-    try:
-        raw = base64.b64decode(value, validate=True)
-    except (binascii.Error, ValueError):
-        return None
-    if base64.b64encode(raw).decode() != value or (size is not None and len(raw) != size):
-        return None
-    return raw
-
-
-class BadCheckpoint(ValueError):
-    """A checkpoint in an export is malformed or its signed text disagrees with it."""
-
-
-@dataclass(frozen=True, slots=True)
-class Checkpoint:
-    """A checkpoint read from an export, its signed text checked against its fields (its
-    signature is not checked here). ``where`` names the file it came from."""
-
-    where: str
-    origin: str
-    tree_size: int
-    root: bytes
-    text: str
-    signature: bytes
-    key: bytes
-
-    @classmethod
-    def read(cls, value: Any, where: str) -> Checkpoint:
-        """Return the checkpoint in the JSON value ``value``.
-
-        Raises:
-            BadCheckpoint: a key is missing or malformed, or ``signed_text`` is not
-                ``f"{origin}\\n{tree_size}\\n{root_hash}\\n"``.
-        """
-        if not isinstance(value, Mapping):
-            raise BadCheckpoint(f"{where}: not a JSON object")
-        origin, size, text = value.get("origin"), value.get("tree_size"), value.get("signed_text")
-        if not isinstance(origin, str) or not origin or "\n" in origin:
-            raise BadCheckpoint(f"{where}: origin is not a one-line string")
-        if type(size) is not int or size < 0:
-            raise BadCheckpoint(f"{where}: tree_size is not a size")
-        root = b64_value(value.get("root_hash"), 32)
-        signature = b64_value(value.get("signature"), 64)
-        key = b64_value(value.get("public_key"), 32)
-        if root is None or signature is None or key is None:
-            raise BadCheckpoint(
-                f"{where}: root_hash, signature or public_key is not Base64 of 32, 64, 32 bytes"
-            )
-        if text != f"{origin}\n{size}\n{value['root_hash']}\n":
-            raise BadCheckpoint(f"{where}: signed_text does not match origin, tree_size, root_hash")
-        return cls(where, origin, size, root, text, signature, key)
 
 
 def _checkpoint(answer: Any, where: str) -> dict[str, Any]:

@@ -16,7 +16,14 @@ auditor should pin, having obtained it out of band) and checkpoints saved earlie
    same origin and key, a good signature, a root equal to the root of the first
    ``tree_size`` entries, and an RFC 9162 consistency proof to the latest checkpoint,
    computed from the entries and checked by the RFC's algorithm.
-4. Optionally an RFC 9162 inclusion proof for one entry.
+4. The last checkpoint the auditor saw of this node (``last_seen``, kept in the state
+   folder by :mod:`keystrata_client.audit.state`): the export must extend it. A smaller
+   tree is a truncated (or rolled back) log, the same size with another root or a prefix
+   with another root is a fork; otherwise an RFC 9162 consistency proof from it to the
+   latest is computed from the entries and checked.
+5. Signing times (format version 2 checkpoints, see :mod:`._checkpoint`): well formed,
+   not in the future beyond a small skew, never going backwards as tree sizes grow.
+6. Optionally an RFC 9162 inclusion proof for one entry.
 
 Messages name entries by index and event only: never whole entries.
 """
@@ -29,12 +36,14 @@ import os
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import asdict, dataclass, field
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
 from cryptography.exceptions import InvalidSignature
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
+from keystrata_client.audit._checkpoint import stamp, time_findings
 from keystrata_client.audit._entries import _same, _Scan, _scan
 from keystrata_client.audit._tree import (
     ProofError,
@@ -49,6 +58,9 @@ from keystrata_client.audit.export import (
     Checkpoint,
 )
 
+#: How messages name the checkpoint kept in the auditor's state folder.
+LAST_SEEN = "the last checkpoint seen"
+
 
 @dataclass
 class Report:
@@ -59,6 +71,11 @@ class Report:
         origin, tree_size, root: the checkpoint's fields (root in Base64), None when
             the checkpoint could not be read.
         public_key: the key the checkpoint names (Base64), for comparing out of band.
+        signed_at: the checkpoint's signing time (RFC 3339), None for a version 1
+            checkpoint, which carries none.
+        pinning: how the key was trusted, when a state folder was used
+            (:mod:`keystrata_client.audit.state`): ``first-use``, ``pinned``, ``given``
+            or ``re-pinned``; None without a state folder.
         entries: entry lines that passed every entry check.
         events: how many of those entries hold each event.
         first_bad: the index of the first bad (altered, missing, misplaced) entry, when
@@ -72,6 +89,8 @@ class Report:
     tree_size: int | None = None
     root: str | None = None
     public_key: str | None = None
+    signed_at: str | None = None
+    pinning: str | None = None
     entries: int = 0
     events: dict[str, int] = field(default_factory=dict)
     first_bad: int | None = None
@@ -131,6 +150,7 @@ class _Verifier:
         self.key, self.pinned = pinned or latest.key, pinned is not None
         self.entries_ok = scan.bad is None  # every entry checked, and tree_size of them
         self.root_ok = False
+        self.timed: list[Checkpoint] = [latest]  # signed alike: their times are compared
 
     def checkpoint(self) -> None:
         """The latest checkpoint's signature, and its root over the entries."""
@@ -189,6 +209,8 @@ class _Verifier:
             elif self.entries_ok and not _same(table.root(m), cp.root):
                 wrong = f"{where}: signs other entries than the first {m} of the export"
                 mismatched = min(mismatched, m)
+            if not wrong:
+                self.timed.append(cp)
             if wrong or not self.entries_ok:
                 problems += [wrong] if wrong else []
                 continue
@@ -224,6 +246,56 @@ class _Verifier:
                 f"{matched} entries matches the export, the one of {mismatched} does not",
             )
 
+    def seen(self, value: Mapping[str, Any]) -> None:
+        """The last checkpoint the auditor saw of this node: the export must extend it."""
+        report, n, where = self.report, self.size, LAST_SEEN
+        try:
+            cp = Checkpoint.read(value, where)
+            verify_signature(cp.key, cp.signature, cp.text.encode())
+        except (BadCheckpoint, InvalidSignature):  # signed with the key pinned back then
+            report.findings.append(f"{where}: malformed or not signed: the state is damaged")
+            return
+        if cp.origin != self.latest.origin:
+            report.findings.append(f"{where}: another origin than the export's")
+            return
+        self.timed.append(cp)
+        m = cp.tree_size
+        when = f" (signed at {stamp(cp.signed_at)})" if cp.signed_at else ""
+        if m > n:
+            report.findings.append(
+                f"truncated or rolled back: {CHECKPOINT_FILE} signs {n} entries, but {where} "
+                f"signs {m} entries{when}"
+            )
+        elif m == n and not _same(cp.root, self.latest.root):
+            report.findings.append(
+                f"forked: {CHECKPOINT_FILE} signs {n} entries with another root than {where}, "
+                f"of the same size{when}"
+            )
+        elif m < n and self.entries_ok and not _same(self.table.root(m), cp.root):
+            report.findings.append(
+                f"forked: the first {m} entries of the export are not those {where} signs{when}"
+            )
+        elif self.root_ok and m == n:
+            report.notes.append(f"the same tree as {where}")
+        elif self.root_ok:
+            try:  # PROOF(m, D[n]) of RFC 9162 section 2.1.4.1 from the entries, checked
+                proof = self.table.consistency_proof(m, n) if m else []
+                if m:
+                    verify_consistency(m, n, cp.root, self.latest.root, proof)
+            except ProofError as exc:
+                report.findings.append(f"{where}: {exc}")
+                return
+            report.notes.append(
+                f"consistent with the last checkpoint seen, of {m} entries{when} (RFC 9162 "
+                f"consistency proof to {n} entries computed from the entries and verified)"
+            )
+
+    def times(self, now: datetime) -> None:
+        """Signing times: well formed (read), not ahead of ``now``, never going back."""
+        self.report.findings += time_findings(self.timed, now)
+        if self.latest.signed_at is None:
+            self.report.notes.append(f"{CHECKPOINT_FILE} has no signing time (format version 1)")
+
     def inclusion(self, index: int) -> None:
         """An RFC 9162 audit path for entry ``index``, computed and checked."""
         if not self.root_ok:
@@ -250,6 +322,8 @@ def verify_export(
     public_key: bytes | None = None,
     earlier: Sequence[Mapping[str, Any]] = (),
     check_index: int | None = None,
+    last_seen: Mapping[str, Any] | None = None,
+    now: datetime | None = None,
 ) -> Report:
     """Verify a ledger export offline; see the module's docstring for the checks.
 
@@ -261,6 +335,9 @@ def verify_export(
         earlier: checkpoints kept from previous exports (dicts with the six keys of
             checkpoint.json); each must be signed alike and be a prefix of this export.
         check_index: an entry whose RFC 9162 inclusion proof is checked as well.
+        last_seen: the last checkpoint seen of this node (the six keys of
+            checkpoint.json), signed under the key it names; the export must extend it.
+        now: the time signing times are compared with (default: this computer's clock).
 
     Returns:
         A :class:`Report`; ``ok`` is True only when every check passed.
@@ -308,9 +385,13 @@ def verify_export(
     report.origin, report.tree_size = latest.origin, latest.tree_size
     report.root = base64.b64encode(latest.root).decode()
     report.public_key = base64.b64encode(latest.key).decode()
+    report.signed_at = None if latest.signed_at is None else stamp(latest.signed_at)
     run = _Verifier(report, scan, latest, public_key)
     run.checkpoint()
     run.history(_others(folder, earlier))
+    if last_seen is not None:
+        run.seen(last_seen)
+    run.times(now or datetime.now(UTC))
     if check_index is not None:
         run.inclusion(check_index)
     report.ok = not report.findings

@@ -14,7 +14,8 @@ import click
 from keystrata.cli.common import console, print_json, print_table
 from keystrata.cli.remote_cmd import client_errors, connection_options
 from keystrata_client import TlsIdentity
-from keystrata_client.audit import AuditClient, verify_export, write_export
+from keystrata_client.audit import AuditClient, write_export
+from keystrata_client.audit.cli import checked, read_public_key, state_options
 from keystrata_client.audit.reconcile import read_entries, reconcile
 
 _TIME = "RFC 3339 time with offset, e.g. 2026-12-01T00:00:00Z"
@@ -37,29 +38,55 @@ def _client(url: str, ca: Path, cert: Path, key: Path) -> AuditClient:
     help="folder to write entries.jsonl, checkpoint.json and checkpoints.jsonl",
 )
 @click.option("--overwrite", is_flag=True, help="replace an earlier export in that folder")
+@click.option(
+    "--public-key",
+    metavar="B64_OR_FILE",
+    help="the node's Ed25519 ledger key, obtained out of band (Base64, or a file); "
+    "pins it in the state folder",
+)
+@state_options
 @connection_options
 def export_cmd(
-    out: Path, overwrite: bool, url: str, ca: Path, cert: Path, key: Path, as_json: bool
+    out: Path,
+    overwrite: bool,
+    public_key: str | None,
+    state: Path | None,
+    trust_new_key: bool,
+    url: str,
+    ca: Path,
+    cert: Path,
+    key: Path,
+    as_json: bool,
 ) -> None:
-    """Export the ledger up to the node's latest signed checkpoint, then verify the copy.
+    """Export the ledger up to the node's latest signed checkpoint, then verify the copy
+    against the state folder (the node's pinned key, the last checkpoint seen of it).
 
     Check it again anywhere, later, with `keystrata-ledger-check OUT`."""
+    pinned = None if public_key is None else read_public_key(public_key)
     with client_errors(), _client(url, ca, cert, key) as client:
         try:
             summary = write_export(client, out, overwrite=overwrite)
         except (FileExistsError, ValueError) as exc:
             raise click.ClickException(str(exc)) from None
-    report = verify_export(out)
+    report = checked(out, state, public_key=pinned, trust_new_key=trust_new_key)
     if as_json:
-        print_json({"export": str(out), "summary": vars(summary), "verified": report.ok})
+        print_json(
+            {"export": str(out), "summary": vars(summary), "verified": report.ok,
+             "public_key": report.public_key, "pinning": report.pinning,
+             "findings": report.findings}
+        )  # fmt: skip
     else:
         console.print(
             f"{report.tree_size} entries of {report.origin} written to {out}; "
-            f"root {report.root}; verified offline: {'yes' if report.ok else 'NO'}",
+            f"root {report.root}; signed at {report.signed_at or '(no time)'}; "
+            f"verified offline: {'yes' if report.ok else 'NO'}",
             highlight=False,
         )
         for finding in report.findings:
             console.print(f"  - {finding}", highlight=False)
+        for note in report.notes:
+            if "pinned" in note:
+                console.print(f"  {note}", highlight=False)
     if not report.ok:
         sys.exit(1)
 
@@ -221,13 +248,17 @@ def _csv(rows: list[dict[str, Any]]) -> str:
     default="table",
     show_default=True,
 )
-def reconcile_cmd(first: Path, second: Path, pair: str | None, fmt: str) -> None:
+@state_options
+def reconcile_cmd(
+    first: Path, second: Path, pair: str | None, fmt: str, state: Path | None, trust_new_key: bool
+) -> None:
     """Reconcile two stations' exports key ID by key ID (offline).
 
-    Both exports are verified first. Exit status 1 when a key ID was served twice, is
-    known on one side only, or the two sides disagree."""
+    Both exports are verified first, each against the state folder (its node's pinned
+    key and the last checkpoint seen of it). Exit status 1 when a key ID was served
+    twice, is known on one side only, or the two sides disagree."""
     for folder in (first, second):
-        report = verify_export(folder)
+        report = checked(folder, state, trust_new_key=trust_new_key)
         if not report.ok:
             raise click.ClickException(
                 f"{folder} does not verify (first bad entry {report.first_bad}): "

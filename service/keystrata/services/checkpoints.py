@@ -1,29 +1,41 @@
-"""Signed checkpoints of the ledger: the tree size and root hash, signed with the node's
-Ed25519 ledger key (RFC 8032). The signed text is the body of a C2SP tlog checkpoint::
+"""Signed checkpoints of the ledger: the tree size, root hash and signing time, signed
+with the node's Ed25519 ledger key (RFC 8032). The signed text is the body of a C2SP tlog
+checkpoint (origin, tree size, Base64 root hash, one per line) followed by one extension
+line of ours that carries the format version and the signing time::
 
-    <origin>\\n<tree size>\\n<base64 root hash>\\n
+    <origin>\\n<tree size>\\n<base64 root hash>\\nkeystrata/v2 signed-at <time>\\n
 
-with the node ID as origin. Checkpoints are kept; auditors fetch them with the public key.
+with the node ID as origin and the time in RFC 3339, UTC, microseconds and ``Z``
+(``2026-12-02T10:49:00.000000Z``, as ledger entries write ``at``). A reader of C2SP
+checkpoints takes the fourth line as an extension line and still reads the first three.
+Checkpoints signed before this format (version 1) have no fourth line: verifiers report
+them as "no signing time". Checkpoints are kept; auditors fetch them with the public key.
 """
 
 from __future__ import annotations
 
 import base64
 from dataclasses import dataclass
-from datetime import datetime, timedelta
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 from sqlalchemy import select
 
 from keystrata.crypto.hazmat import public_key_of, sign
+from keystrata.domain.ledger import timestamp
 from keystrata.services.context import NodeContext
 from keystrata.services.ledger import StoredTree
 from keystrata.storage.models import LedgerCheckpoint, NodeMeta
 from keystrata.storage.sealed import meta_context
 
+#: The extension line's marker: format version 2 of the signed text (version 1: none).
+TIME_LINE_MARKER = "keystrata/v2 signed-at"
 
-def signed_text(origin: str, size: int, root: bytes) -> str:
-    return f"{origin}\n{size}\n{base64.b64encode(root).decode()}\n"
+
+def signed_text(origin: str, size: int, root: bytes, signed_at: datetime) -> str:
+    """Return the text a checkpoint signs (format version 2, see the module docstring)."""
+    body = f"{origin}\n{size}\n{base64.b64encode(root).decode()}\n"
+    return body + f"{TIME_LINE_MARKER} {timestamp(signed_at.astimezone(UTC))}\n"
 
 
 def _signing_key(ctx: NodeContext) -> bytes:
@@ -89,7 +101,7 @@ def sign_now(ctx: NodeContext, *, force: bool = False) -> Checkpoint | None:
         )
         if not due or size == 0:
             return None
-        text = signed_text(ctx.node_id, size, root)
+        text = signed_text(ctx.node_id, size, root, now)
         row = LedgerCheckpoint(
             tree_size=size,
             root_hash=root,
