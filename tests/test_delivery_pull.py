@@ -126,14 +126,17 @@ def _apply_twice_at_once(net: relaynet.RelayNet, message: dict[str, Any]) -> lis
     outcomes, or the errors."""
     import threading
 
+    from keystrata.domain import peer_messages
     from keystrata.services import allocations
 
+    parsed = peer_messages.parse(message)
+    assert isinstance(parsed, peer_messages.KeyAllocated)
     start, results = threading.Barrier(2), []
 
     def apply() -> None:
         start.wait()
         try:
-            results.append(allocations.apply_allocated(net.b.ctx, "station-a", message).status)
+            results.append(allocations.apply_allocated(net.b.ctx, "station-a", parsed).status)
         except Exception as exc:
             results.append(repr(exc))
 

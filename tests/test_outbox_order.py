@@ -360,10 +360,13 @@ def test_batch_route_refuses_a_bad_batch_whole(net, api) -> None:
         headers={"content-type": "application/json"},
     )
     assert r.status_code == 400 and snapshot(net.a.ctx) == before
-    # A malformed field is that message's answer; what came before it stays applied.
-    broken = {**second, "header": "%%% not Base64", "ranges": "nonsense"}
+    # A malformed member makes the message one this node does not take: every message
+    # is parsed before any is applied, so the batch is refused whole and names it.
+    broken = {**second, "header": "%%% not Base64"}
     r = peer.post("/api/v1/peer/messages/batch", json={"messages": [first, broken, second]})
-    assert [x["status"] for x in r.json()["results"]] == [200, 400]
+    assert r.status_code == 400 and r.json()["message"].startswith("messages[1]: ")
+    assert "header" in r.json()["message"] and "%%%" not in r.text
+    assert snapshot(net.a.ctx) == before
 
 
 def test_batch_route_admits_peers_only(net, api) -> None:

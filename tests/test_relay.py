@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import base64
 import json
+from typing import Any
 
 import pytest
 from sqlalchemy import select
@@ -55,7 +56,7 @@ def test_xor_recovery_matches_an_independent_computation(net) -> None:
 
     kb = b""
     with ctx_b.db.read() as s:
-        for r in header["key_ranges"]:
+        for r in header["cipher_key_ranges"]:
             row = s.execute(select(LinkBlock).where(LinkBlock.block_id == r["block"])).scalar_one()
             rest = ctx_b.keyring.open(
                 row.sealed, block_context(row.link_id, row.block_id, row.used)
@@ -69,6 +70,53 @@ def test_xor_recovery_matches_an_independent_computation(net) -> None:
     assert net.key_digest("station-b", made.segment_id) == hashlib.sha256(expected_ka).hexdigest()
 
 
+def _link_bytes(node: Any, ranges: list[dict[str, int | str]]) -> bytes:
+    """The named link key bytes as a station holds them (read before they are used)."""
+    from keystrata.storage.sealed import block_context
+
+    out = b""
+    with node.ctx.db.read() as s:
+        for r in ranges:
+            row = s.execute(select(LinkBlock).where(LinkBlock.block_id == r["block"])).scalar_one()
+            rest = node.ctx.keyring.open(
+                row.sealed, block_context(row.link_id, row.block_id, row.used)
+            )
+            start = int(r["offset"]) - row.used
+            out += rest[start : start + int(r["length"])]
+    return out
+
+
+def test_both_tags_recomputed_from_the_documented_layout(net) -> None:
+    """The relay's two one-time MACs, recomputed here from the layout DEVELOPERS.md
+    documents (tag = Poly1305(M, len(header) as 4 bytes big-endian || header || C),
+    tagA = Poly1305(MA, len(header) || header)) with the Poly1305 of the ``cryptography``
+    package called directly (RFC 8439 section 2.5), not through keystrata's wrapper; the
+    header is RFC 8785 canonical JSON (checked with the ``rfc8785`` package)."""
+    import rfc8785
+    from cryptography.hazmat.primitives.poly1305 import Poly1305
+
+    net.feed("station-a", 2)
+    net.feed("station-b", 2)
+    relay.make_segment(net.relay.ctx, relaynet.PAIR, 3000, cipher_station="station-b")
+    msgs = {m.kind: m.body for _, m in net.pending()}
+    notice, cipher = msgs["relay.notice"], msgs["relay.ciphertext"]
+    header = base64.b64decode(notice["header"], validate=True)  # RFC 4648 section 4
+    assert base64.b64decode(cipher["header"]) == header  # one header for both stations
+    fields = json.loads(header)
+    assert rfc8785.dumps(fields) == header
+    assert fields["v"] == 2 and fields["length"] == 3000
+    ciphertext = base64.b64decode(cipher["ciphertext"])
+    ka = _link_bytes(net.a, fields["notice_key_ranges"])
+    ma = _link_bytes(net.a, fields["notice_mac_ranges"])
+    kb = _link_bytes(net.b, fields["cipher_key_ranges"])
+    m = _link_bytes(net.b, fields["cipher_mac_ranges"])
+    assert len(ma) == len(m) == 32 and len(ka) == len(kb) == 3000
+    assert ciphertext == bytes(x ^ y for x, y in zip(ka, kb, strict=True))
+    framed = len(header).to_bytes(4, "big") + header
+    assert base64.b64decode(notice["tag"]) == Poly1305.generate_tag(ma, framed)
+    assert base64.b64decode(cipher["tag"]) == Poly1305.generate_tag(m, framed + ciphertext)
+
+
 def test_relay_destroys_link_key_and_keeps_no_pair_key(net) -> None:
     net.feed("station-a", 1, block_bytes=5000)
     net.feed("station-b", 1, block_bytes=5000)
@@ -76,14 +124,15 @@ def test_relay_destroys_link_key_and_keeps_no_pair_key(net) -> None:
     with net.relay.ctx.db.read() as s:
         rows = {r.link_id: r for r in s.execute(select(LinkBlock)).scalars()}
         tables = set(s.execute(select(OutboxMessage.kind)).scalars())
-    assert rows["link-a"].used == 4000 and rows["link-b"].used == 4032
+    # Each link gives the segment's bytes and a 32-byte one-time MAC key.
+    assert rows["link-a"].used == 4032 and rows["link-b"].used == 4032
     # What is left is sealed from the new offset; the used bytes are gone.
     from keystrata.storage.sealed import block_context
 
     left = net.relay.ctx.keyring.open(
-        rows["link-a"].sealed, block_context("link-a", rows["link-a"].block_id, 4000)
+        rows["link-a"].sealed, block_context("link-a", rows["link-a"].block_id, 4032)
     )
-    assert len(left) == 1000
+    assert len(left) == 968
     assert tables == {"relay.notice", "relay.ciphertext"}
     # Invariant 4: no pair key at the relay: no table holds segment key.
     with net.relay.ctx.db.read() as s:
@@ -184,8 +233,8 @@ def test_epsilon_is_composed_and_capped(make_node, db_factory) -> None:
     net = relaynet.build(make_node, db_factory, policy={"max_epsilon": 5e-10})
     net.feed("station-a", 2, block_bytes=1000, epsilon=1e-10)
     net.feed("station-b", 2, block_bytes=1000, epsilon=2e-10)
-    # 1500 bytes: two blocks of link-a (2e-10) and, with the 32-byte MAC key, two blocks
-    # of link-b (4e-10): 6e-10 > 5e-10, refused; nothing is consumed.
+    # 1500 bytes and a 32-byte MAC key from each link: two blocks of link-a (2e-10) and
+    # two of link-b (4e-10): 6e-10 > 5e-10, refused; nothing is consumed.
     with pytest.raises(relay.EpsilonTooLarge):
         relay.make_segment(net.relay.ctx, relaynet.PAIR, 1500, cipher_station="station-b")
     # 500 bytes: one block on each link: 1e-10 + 2e-10 = 3e-10 (union bound).

@@ -3,13 +3,18 @@ describes the key relay through trusted nodes; the names here are ours).
 
 For a pair (A, B) and a segment of n bytes the relay takes
 
-* KA: the next n bytes of link R-A,
+* KA: the next n bytes of link R-A, and MA: the next 32 bytes of link R-A,
 * KB: the next n bytes of link R-B, and M: the next 32 bytes of link R-B,
 
-sends A a *notice* naming the link R-A bytes (A then holds KA), and sends B the
-ciphertext C = KA xor KB with tag = Poly1305(M, header || C) (RFC 8439 section 2.5) and
-the link R-B bytes used. B checks the tag and recovers KA = C xor KB. A and B then
-confirm the segment to each other with check values before either serves it.
+and writes one *header* naming the segment, the pair, both stations, the owner, the
+length, the epsilon and every link byte used (:class:`keystrata.domain.peer_messages.
+SegmentHeader`, RFC 8785 canonical JSON). It sends A a *notice*: the header with
+tagA = Poly1305(MA, len(header) || header), and B the header, the ciphertext
+C = KA xor KB and tag = Poly1305(M, len(header) || header || C) (RFC 8439 section 2.5;
+``len`` is 4 bytes, big-endian). A checks tagA and holds KA; B checks the tag and recovers
+KA = C xor KB. Only the holder of both link keys (the relay) can make a header both
+stations accept. A and B then confirm the segment to each other with check values over
+the key and the segment's whole identity before either serves it.
 
 The security parameter of a segment is the sum of the epsilons of every link block it
 touched (its key bytes and its MAC key). This is the union bound over the composable
@@ -26,7 +31,6 @@ from typing import Any
 
 import rfc8785
 
-HEADER_VERSION = 1
 MAC_KEY_BYTES = 32
 CHECK_BYTES = 16
 
@@ -108,21 +112,45 @@ def compose_epsilon(epsilons: Iterable[float]) -> float:
     return float(sum(epsilons))
 
 
-def encode_header(fields: Mapping[str, Any]) -> bytes:
-    """Canonical bytes (RFC 8785) of a ciphertext header; the MAC covers them as sent."""
-    return rfc8785.dumps({"v": HEADER_VERSION, **fields})
-
-
-def mac_input(header: bytes, ciphertext: bytes) -> bytes:
-    """header || C, with the header's length in front so the split is unambiguous."""
+def mac_input(header: bytes, ciphertext: bytes = b"") -> bytes:
+    """len(header) || header || C: the header's length (4 bytes, big-endian) in front so
+    the split is unambiguous; the notice's tag covers the header alone (C empty)."""
     return len(header).to_bytes(4, "big") + header + ciphertext
 
 
-def check_value(key: bytes, segment_id: str, station: str) -> bytes:
+@dataclass(frozen=True, slots=True)
+class SegmentIdentity:
+    """What both stations must agree on before either serves a segment."""
+
+    segment: str
+    pair: str
+    notice_station: str
+    cipher_station: str
+    owner: str
+    length: int
+    epsilon: float
+
+    def canonical(self) -> bytes:
+        return rfc8785.dumps(
+            {
+                "segment": self.segment,
+                "pair": self.pair,
+                "notice_station": self.notice_station,
+                "cipher_station": self.cipher_station,
+                "owner": self.owner,
+                "bytes": self.length,
+                "epsilon": self.epsilon,
+            }
+        )
+
+
+def check_value(key: bytes, identity: SegmentIdentity, station: str) -> bytes:
     """Key confirmation value of one station for a segment: HMAC-SHA-256 (RFC 2104) under
-    the segment key, over the segment ID and the station's own ID (so the two stations'
-    values differ and a reflected value proves nothing), truncated to 16 bytes."""
-    msg = b"keystrata/confirm/v1\x00" + segment_id.encode() + b"\x00" + station.encode()
+    the segment key, over the segment's whole identity (pair, both stations, segment ID,
+    owner, length, epsilon; RFC 8785 JSON) and the station's own ID (so the two stations'
+    values differ and a reflected value proves nothing), truncated to 16 bytes. Two
+    stations that disagree on any of these, or hold different bytes, never match."""
+    msg = b"keystrata/confirm/v2\x00" + identity.canonical() + b"\x00" + station.encode()
     return hmac.new(key, msg, hashlib.sha256).digest()[:CHECK_BYTES]
 
 

@@ -15,32 +15,35 @@ Get key and Get key with key IDs themselves are in :mod:`keystrata.services.deli
 from __future__ import annotations
 
 import json
-import uuid
 from collections.abc import Sequence
-from datetime import datetime
-from typing import Any
+from datetime import datetime, timedelta
 
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
+from keystrata.domain import peer_messages as pm
 from keystrata.domain.ledger import Event
 from keystrata.errors import Forbidden, InvalidInput, KeystrataError
 from keystrata.services import ledger, outbox
 from keystrata.services.context import NodeContext
 from keystrata.services.linkbytes import NotYet
 from keystrata.services.segments import Outcome
-from keystrata.storage.models import KeyAlloc, Pair, PairSegment
+from keystrata.storage.models import KeyAlloc, Pair, PairSegment, Principal
 from keystrata.storage.sealed import key_context, segment_context
 
+#: How far another station's clock may be ahead of ours when it dates an allocation
+#: (NTP-synchronised hosts are far closer; common practice).
+CLOCK_SKEW = timedelta(seconds=300)
 
-def apply_allocated(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcome:
+
+def apply_allocated(ctx: NodeContext, sender: str, msg: pm.KeyAllocated) -> Outcome:
     """Slave's station: take the named segment bytes as keys waiting for their slaves."""
     with ctx.db.write() as s:
-        return apply_allocated_in(ctx, s, sender, body)
+        return apply_allocated_in(ctx, s, sender, msg)
 
 
 def apply_allocated_run(
-    ctx: NodeContext, sender: str, bodies: Sequence[dict[str, Any]]
+    ctx: NodeContext, sender: str, msgs: Sequence[pm.KeyAllocated]
 ) -> tuple[list[Outcome], KeystrataError | None]:
     """Apply consecutive ``key.allocated`` messages in order in one transaction (one
     commit), each in a savepoint as if it came alone; stop at the first that does not
@@ -52,62 +55,112 @@ def apply_allocated_run(
     outcomes: list[Outcome] = []
     error: KeystrataError | None = None
     with ctx.db.write() as s:
-        for body in bodies:
+        for msg in msgs:
             try:
                 with s.begin_nested():
-                    outcomes.append(apply_allocated_in(ctx, s, sender, body))
+                    outcomes.append(apply_allocated_in(ctx, s, sender, msg))
             except KeystrataError as exc:
                 error = exc
-                break
-            except (KeyError, TypeError, ValueError):
-                error = InvalidInput("message key.allocated: missing or malformed field")
                 break
     return outcomes, error
 
 
-def apply_allocated_in(ctx: NodeContext, s: Session, sender: str, body: dict[str, Any]) -> Outcome:
-    """:func:`apply_allocated` in the caller's transaction."""
-    pair_id = str(body["pair_id"])
-    pair = s.get(Pair, pair_id)
-    if pair is None or ctx.node_id not in (pair.station_a, pair.station_b):
-        raise InvalidInput(f"no pair {pair_id!r} at this station")
+def _sae_at(s: Session, sae_id: str, station: str) -> bool:
+    row = s.get(Principal, sae_id)
+    return (
+        row is not None
+        and row.retired_at is None
+        and row.role == "sae"
+        and row.station_id == station
+    )
+
+
+def check_binding(
+    s: Session, ctx: NodeContext, sender: str, msg: pm.KeyAllocated, now: datetime
+) -> Pair:
+    """What an allocation claims, against this station's registry: the sender is this
+    station's partner in an active pair and the owner it names; each key's master is an
+    active SAE of the sender allowed as master in the pair, its slaves active SAEs of this
+    station allowed as slaves, its size within the pair's key sizes and its lifetime
+    within the pair's time-to-live. Returns the pair.
+
+    Raises:
+        Forbidden: any of these fails (nothing is applied).
+    """
+    pair = s.get(Pair, msg.pair_id)
+    if (
+        pair is None
+        or pair.retired_at is not None
+        or ctx.node_id
+        not in (
+            pair.station_a,
+            pair.station_b,
+        )
+    ):
+        raise Forbidden("no active pair of this station by that ID")
     partner = pair.station_b if pair.station_a == ctx.node_id else pair.station_a
-    if sender != partner or body.get("owner") != sender:
+    if sender != partner or msg.owner != sender:
         raise Forbidden("only the pair's other station allocates its keys")
+    ttl = timedelta(seconds=pair.key_ttl_seconds)
+    masters_ok: dict[str, bool] = {}
+    slaves_ok: dict[str, bool] = {}
+    for rec in msg.keys:
+        if rec.master not in masters_ok:
+            masters_ok[rec.master] = _sae_at(s, rec.master, sender) and (
+                pair.masters is None or rec.master in pair.masters
+            )
+        for slave in rec.slaves:
+            if slave not in slaves_ok:
+                slaves_ok[slave] = _sae_at(s, slave, ctx.node_id) and (
+                    pair.slaves is None or slave in pair.slaves
+                )
+        if not masters_ok[rec.master]:
+            raise Forbidden("a key's master is not an SAE of the sending station in this pair")
+        if not all(slaves_ok[x] for x in rec.slaves):
+            raise Forbidden("a key's slaves are not SAEs of this station in this pair")
+        if not pair.min_key_size <= rec.size_bits <= pair.max_key_size:
+            raise Forbidden("a key's size is outside the pair's key sizes")
+        if rec.expires_at - rec.allocated_at > ttl or rec.allocated_at > now + CLOCK_SKEW:
+            raise Forbidden("a key's lifetime is beyond the pair's time-to-live")
+    return pair
+
+
+def apply_allocated_in(ctx: NodeContext, s: Session, sender: str, msg: pm.KeyAllocated) -> Outcome:
+    """:func:`apply_allocated` in the caller's transaction."""
     now = ctx.clock.now()
+    pair = check_binding(s, ctx, sender, msg, now)
+    pair_id = pair.pair_id
     # The same message can be applied twice at once (the owner's push and this
     # station's pull, or two workers). Lock the segments it names first, in one
     # order: the later transaction then waits, and sees the keys as already here.
-    named = sorted({str(r["segment"]) for rec in body["keys"] for r in rec["ranges"]})
+    named = sorted({r.segment for rec in msg.keys for r in rec.ranges})
     s.execute(
         select(PairSegment.segment_id)
         .where(PairSegment.segment_id.in_(named))
         .order_by(PairSegment.segment_id)
         .with_for_update()
     ).all()
-    applied, taken = [], []
-    for rec in body["keys"]:
-        key_id = str(uuid.UUID(str(rec["key_ID"])))
+    applied: list[str] = []
+    taken: list[pm.AllocatedKey] = []
+    for rec in msg.keys:
+        key_id = rec.key_ID
         if s.get(KeyAlloc, key_id) is not None:
             continue
-        key = _carve_named(ctx, s, pair_id, sender, rec["ranges"])
-        if len(key) * 8 != int(rec["size_bits"]):
-            raise InvalidInput("size_bits does not match the ranges")
-        expires = datetime.fromisoformat(str(rec["expires_at"]))
-        live = expires > now
+        key = _carve_named(ctx, s, pair_id, sender, rec.ranges)
+        live = rec.expires_at > now
         s.add(
             KeyAlloc(
                 key_id=key_id,
                 pair_id=pair_id,
                 owner=sender,
-                master_sae=str(rec["master"]),
-                slaves=json.dumps(rec["slaves"]),
+                master_sae=rec.master,
+                slaves=json.dumps(rec.slaves),
                 fetched_by="[]",
-                ranges=json.dumps(rec["ranges"]),
-                size_bits=int(rec["size_bits"]),
+                ranges=json.dumps([r.model_dump() for r in rec.ranges]),
+                size_bits=rec.size_bits,
                 state="waiting" if live else "expired",
-                allocated_at=datetime.fromisoformat(str(rec["allocated_at"])),
-                expires_at=expires,
+                allocated_at=rec.allocated_at,
+                expires_at=rec.expires_at,
                 settled_at=None if live else now,
                 sealed=ctx.keyring.seal(key, key_context(key_id)) if live else None,
             )
@@ -123,9 +176,9 @@ def apply_allocated_in(ctx: NodeContext, s: Session, sender: str, body: dict[str
             fields={
                 "pair": pair_id,
                 "owner": sender,
-                "masters": sorted({str(r["master"]) for r in taken}),
-                "slaves": sorted({str(x) for r in taken for x in r["slaves"]}),
-                "bits": sum(int(r["size_bits"]) for r in taken),
+                "masters": sorted({r.master for r in taken}),
+                "slaves": sorted({x for r in taken for x in r.slaves}),
+                "bits": sum(r.size_bits for r in taken),
                 "key_ids": applied,
                 "segments": segments_of(taken),
                 "side": "slave",
@@ -134,30 +187,29 @@ def apply_allocated_in(ctx: NodeContext, s: Session, sender: str, body: dict[str
     return Outcome(applied[0] if applied else "", "applied" if applied else "already")
 
 
-def segments_of(records: Sequence[dict[str, Any]]) -> list[str]:
+def segments_of(records: Sequence[pm.AllocatedKey]) -> list[str]:
     """The segments (one per relay operation) that keys were cut from, in order."""
-    return list(dict.fromkeys(str(r["segment"]) for rec in records for r in rec["ranges"]))
+    return list(dict.fromkeys(r.segment for rec in records for r in rec.ranges))
 
 
 def _carve_named(
-    ctx: NodeContext, s: Session, pair_id: str, owner: str, ranges: list[dict[str, Any]]
+    ctx: NodeContext, s: Session, pair_id: str, owner: str, ranges: Sequence[pm.SegmentRange]
 ) -> bytes:
     out = b""
     for r in ranges:
-        row = s.get(PairSegment, str(r["segment"]), with_for_update=True)
+        row = s.get(PairSegment, r.segment, with_for_update=True)
+        if row is not None and (row.pair_id != pair_id or row.owner != owner):
+            raise Forbidden("a key range names a segment of another pair or owner")
         if row is None or row.state != "ready":
             raise NotYet("not yet: the segment of this key is not ready here")
-        if row.pair_id != pair_id or row.owner != owner:
-            raise InvalidInput("a key range names a segment of another pair or owner")
-        offset, length = int(r["offset"]), int(r["length"])
-        if offset > row.used:
+        if r.offset > row.used:
             raise NotYet("not yet: earlier keys of this segment have not arrived")
-        if offset < row.used or length <= 0 or offset + length > row.length:
+        if r.offset < row.used or r.offset + r.length > row.length:
             raise InvalidInput("a key range names segment bytes already used")
         assert row.sealed is not None
         rest = ctx.keyring.open(row.sealed, segment_context(row.segment_id, row.used))
-        out += rest[:length]
-        _advance(ctx, row, length, rest[length:])
+        out += rest[: r.length]
+        _advance(ctx, row, r.length, rest[r.length :])
     return out
 
 
@@ -185,14 +237,16 @@ def expire(ctx: NodeContext) -> int:
             by_owner.setdefault((row.owner, row.pair_id), []).append(row)
         for (owner, pair_id), expired in by_owner.items():
             key_ids = [r.key_id for r in expired]
-            outbox.enqueue(
-                s,
-                destination=owner,
-                kind="key.expired",
-                segment_id=None,
-                now=now,
-                body={"pair_id": pair_id, "key_ids": key_ids},
-            )
+            for start in range(0, len(key_ids), pm.MAX_KEYS):
+                outbox.send(
+                    s,
+                    destination=owner,
+                    message=pm.KeyExpired(
+                        pair_id=pair_id, key_ids=key_ids[start : start + pm.MAX_KEYS]
+                    ),
+                    segment_id=None,
+                    now=now,
+                )
             ledger.append(
                 s,
                 node_id=ctx.node_id,
@@ -208,28 +262,35 @@ def expire(ctx: NodeContext) -> int:
         return len(rows)
 
 
-def apply_expired(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcome:
-    """Owner: record that keys it allocated expired uncollected at the slave's station."""
+def apply_expired(ctx: NodeContext, sender: str, msg: pm.KeyExpired) -> Outcome:
+    """Owner: record that keys it allocated expired uncollected at the slave's station.
+
+    Only keys of the named pair that this station allocated, reported by its partner in
+    that pair; any other key ID named refuses the whole message.
+    """
     now = ctx.clock.now()
     with ctx.db.write() as s:
+        pair = s.get(Pair, msg.pair_id)
+        if pair is None or {sender, ctx.node_id} != {pair.station_a, pair.station_b}:
+            raise Forbidden("only the pair's other station reports its keys expired")
         rows = (
             s.execute(
                 select(KeyAlloc)
                 .where(
-                    KeyAlloc.key_id.in_([str(k) for k in body["key_ids"]]),
+                    KeyAlloc.key_id.in_(msg.key_ids),
                     KeyAlloc.owner == ctx.node_id,
+                    KeyAlloc.pair_id == pair.pair_id,
                 )
                 .with_for_update()
             )
             .scalars()
             .all()
         )
+        if len(rows) != len(set(msg.key_ids)):
+            raise Forbidden("a key ID named is not a key this station allocated in the pair")
         changed = [r.key_id for r in rows if r.state != "expired"]
         bits = sum(r.size_bits for r in rows if r.state != "expired")
         for row in rows:
-            pair = s.get(Pair, row.pair_id)
-            if pair is None or sender not in (pair.station_a, pair.station_b):
-                raise Forbidden("only the pair's other station reports its keys expired")
             row.state, row.settled_at = "expired", now
         if changed:
             ledger.append(
@@ -237,11 +298,6 @@ def apply_expired(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcom
                 node_id=ctx.node_id,
                 at=now,
                 event=Event.KEY_EXPIRED,
-                fields={
-                    "pair": str(body["pair_id"]),
-                    "bits": bits,
-                    "key_ids": changed,
-                    "side": "master",
-                },
+                fields={"pair": pair.pair_id, "bits": bits, "key_ids": changed, "side": "master"},
             )
     return Outcome("", "applied" if changed else "already")

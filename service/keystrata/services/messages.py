@@ -1,67 +1,107 @@
-"""Dispatch of node-to-node messages to their handlers, by node role and message kind."""
+"""Dispatch of node-to-node messages to their handlers, by node role and message kind.
+
+Every body is parsed once into its typed model (:mod:`keystrata.domain.peer_messages`):
+an unknown kind or version, or a malformed member, is a 400 before anything is read
+from the database. Handlers then check what the message claims against this node's own
+registry and rows; a claim that is not the sender's to make is refused (403), changes
+nothing, and is recorded as ``peer.message_refused`` (sender, kind, reason code: never
+the values the sender chose). A programming error inside a handler is a 500 that is
+logged, never a 400.
+"""
 
 from __future__ import annotations
 
+import logging
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
 from keystrata.config import Role
+from keystrata.domain import peer_messages as pm
+from keystrata.domain.ledger import Event
 from keystrata.errors import Forbidden, InvalidInput, KeystrataError
-from keystrata.services import allocations, relay, segments
+from keystrata.services import allocations, ledger, relay, segments
 from keystrata.services.context import NodeContext
 from keystrata.services.segments import Outcome
+from keystrata.storage.models import Pair
 
 #: Messages per batch request at most (the sender sends fewer; see workers/outbox.py).
 MAX_BATCH = 256
 
-Handler = Callable[[NodeContext, str, dict[str, Any]], Outcome]
+log = logging.getLogger("keystrata.peers")
+
+Handler = Callable[[NodeContext, str, Any], Outcome]
 
 
-def _settle(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcome:
-    segment_id = str(body["segment_id"])
-    if relay.notice_station_of(ctx, segment_id) != sender:
+def _settle(ctx: NodeContext, sender: str, msg: pm.SegmentSettled) -> Outcome:
+    if relay.notice_station_of(ctx, msg.segment_id) != sender:
         raise Forbidden("only the segment's notice station settles it")
-    changed = relay.settle(ctx, segment_id, str(body["outcome"]), body.get("reason"))
-    return Outcome(segment_id, "applied" if changed else "already")
+    changed = relay.settle(ctx, msg.segment_id, msg.outcome, msg.reason)
+    return Outcome(msg.segment_id, "applied" if changed else "already")
 
 
-HANDLERS: dict[Role, dict[str, Handler]] = {
+HANDLERS: dict[Role, dict[type[pm.PeerMessage], Handler]] = {
     Role.STATION: {
-        "relay.notice": segments.apply_notice,
-        "relay.ciphertext": segments.apply_ciphertext,
-        "segment.check": segments.apply_check,
-        "segment.confirmed": segments.apply_confirmed,
-        "segment.discarded": segments.apply_discarded,
-        "key.allocated": allocations.apply_allocated,
-        "key.expired": allocations.apply_expired,
+        pm.RelayNotice: segments.apply_notice,
+        pm.RelayCiphertext: segments.apply_ciphertext,
+        pm.SegmentCheck: segments.apply_check,
+        pm.SegmentConfirmed: segments.apply_confirmed,
+        pm.SegmentDiscarded: segments.apply_discarded,
+        pm.KeyAllocated: allocations.apply_allocated,
+        pm.KeyExpired: allocations.apply_expired,
     },
-    Role.RELAY: {"segment.settled": _settle},
+    Role.RELAY: {pm.SegmentSettled: _settle},
 }
 
 
-def _handler(ctx: NodeContext, body: Any) -> Handler:
-    if not isinstance(body, dict) or not isinstance(body.get("kind"), str):
-        raise InvalidInput("body: a JSON object with a kind")
-    handler = HANDLERS[ctx.role].get(body["kind"])
-    if handler is None:
-        raise InvalidInput(f"kind: a {ctx.role.value} does not take {body['kind'][:40]!r}")
-    return handler
+def read(ctx: NodeContext, body: Any) -> pm.PeerMessage:
+    """Parse a body into a message this node takes. Raises InvalidInput (400)."""
+    msg = pm.parse(body)
+    if type(msg) not in HANDLERS[ctx.role]:
+        raise InvalidInput(f"kind: a {ctx.role.value} does not take {msg.kind} messages")
+    return msg
+
+
+def apply(ctx: NodeContext, sender: str, msg: pm.PeerMessage) -> Outcome:
+    """Apply one parsed message from peer node ``sender``; a refusal is recorded.
+
+    Raises:
+        Forbidden: the message claims what is not the sender's to claim (recorded).
+        NotYet / LinkKeyReused (409), NotFound (404), InvalidInput (400).
+    """
+    try:
+        return HANDLERS[ctx.role][type(msg)](ctx, sender, msg)
+    except Forbidden as exc:
+        record_refusal(ctx, sender, msg, exc)
+        raise
 
 
 def handle(ctx: NodeContext, sender: str, body: Any) -> Outcome:
-    """Apply one message from peer node ``sender``.
+    """Parse and apply one message from peer node ``sender`` (see :func:`apply`)."""
+    return apply(ctx, sender, read(ctx, body))
 
-    Raises:
-        InvalidInput: not an object with a known kind, or a field missing or malformed.
-        Forbidden: the sender may not send this message.
-        NotYet / LinkKeyReused (409): apply later / never.
-    """
-    handler = _handler(ctx, body)
-    try:
-        return handler(ctx, sender, body)
-    except (KeyError, TypeError, ValueError) as exc:
-        raise InvalidInput(f"message {body['kind']}: missing or malformed field") from exc
+
+def record_refusal(ctx: NodeContext, sender: str, msg: pm.PeerMessage, exc: Forbidden) -> None:
+    """Write ``peer.message_refused`` in its own transaction (the refused change rolled
+    back). The pair is named only when it is registered here; the reason is the code of
+    the check that failed, never a value from the message."""
+    pair_id = getattr(msg, "pair_id", None)
+    log.warning("refused %s from %s: %s", msg.kind, sender, exc.message)
+    with ctx.db.write() as s:
+        if pair_id is not None and s.get(Pair, pair_id) is None:
+            pair_id = None
+        ledger.append(
+            s,
+            node_id=ctx.node_id,
+            at=ctx.clock.now(),
+            event=Event.PEER_MESSAGE_REFUSED,
+            fields={
+                "sender": sender,
+                "kind": msg.kind,
+                "pair": pair_id,
+                "reason": exc.message[:120],
+            },
+        )
 
 
 @dataclass(frozen=True)
@@ -86,15 +126,16 @@ def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[Answe
         InvalidInput: ``bodies`` holds something that is not a message this node takes
             (checked for every message before any is applied, so nothing changes).
     """
+    msgs: list[pm.PeerMessage] = []
     for i, body in enumerate(bodies):
         try:
-            _handler(ctx, body)
+            msgs.append(read(ctx, body))
         except InvalidInput as exc:
-            raise InvalidInput(f"messages[{i}]: {exc.message}") from None
+            raise InvalidInput(f"messages[{i}]: {exc.message}", details=exc.details) from None
     answers: list[Answer] = []
     i = 0
-    while i < len(bodies):
-        run = _allocations_from(ctx, bodies, i)
+    while i < len(msgs):
+        run = _allocations_from(msgs, i)
         if run:
             # Key allocations come in long runs under load: one transaction for a run.
             try:
@@ -103,12 +144,14 @@ def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[Answe
                 outcomes, error = [], exc
             answers += [Answer(200, o.segment_id, o.status) for o in outcomes]
             if error is not None:
+                if isinstance(error, Forbidden):
+                    record_refusal(ctx, sender, run[len(outcomes)], error)
                 answers.append(Answer(status=error.status, message=error.message))
                 break
             i += len(run)
             continue
         try:
-            outcome = handle(ctx, sender, bodies[i])
+            outcome = apply(ctx, sender, msgs[i])
         except KeystrataError as exc:
             answers.append(Answer(status=exc.status, message=exc.message))
             break
@@ -117,13 +160,11 @@ def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[Answe
     return answers
 
 
-def _allocations_from(ctx: NodeContext, bodies: list[Any], start: int) -> list[dict[str, Any]]:
-    """The run of ``key.allocated`` messages at ``start`` (none on a relay)."""
-    if ctx.role is not Role.STATION:
-        return []
-    run = []
-    for body in bodies[start:]:
-        if body.get("kind") != "key.allocated":
+def _allocations_from(msgs: list[pm.PeerMessage], start: int) -> list[pm.KeyAllocated]:
+    """The run of ``key.allocated`` messages at ``start``."""
+    run: list[pm.KeyAllocated] = []
+    for msg in msgs[start:]:
+        if not isinstance(msg, pm.KeyAllocated):
             break
-        run.append(body)
+        run.append(msg)
     return run

@@ -35,6 +35,7 @@ from typing import Any
 from sqlalchemy import Engine, delete, event, func, or_, select, update
 from sqlalchemy.orm import Session
 
+from keystrata.domain.peer_messages import PeerMessage
 from keystrata.services import leases
 from keystrata.storage.db import Database
 from keystrata.storage.models import OutboxMessage
@@ -56,6 +57,27 @@ class Pending:
     attempts: int
 
 
+def send(
+    session: Session,
+    *,
+    destination: str,
+    message: PeerMessage,
+    segment_id: str | None,
+    now: datetime,
+) -> None:
+    """Queue a typed message in the session's transaction (sent after commit; the commit
+    wakes this process's outbox loop). The one way services send to peers."""
+    body = message.to_body()
+    enqueue(
+        session,
+        destination=destination,
+        kind=body["kind"],
+        segment_id=segment_id,
+        body=body,
+        now=now,
+    )
+
+
 def enqueue(
     session: Session,
     *,
@@ -65,8 +87,8 @@ def enqueue(
     body: Mapping[str, Any],
     now: datetime,
 ) -> None:
-    """Add a message in the session's transaction (sent after commit; the commit wakes
-    this process's outbox loop)."""
+    """Queue a raw body (``kind`` added in front). For the outbox's own mechanics and
+    their tests; services send typed messages with :func:`send`."""
     session.info[_ENQUEUED] = True
     session.add(
         OutboxMessage(

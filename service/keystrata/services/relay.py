@@ -9,7 +9,6 @@ without KB (destroyed here) says nothing about KA.
 
 from __future__ import annotations
 
-import base64
 import json
 import uuid
 from dataclasses import dataclass
@@ -18,6 +17,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from keystrata.crypto.hazmat import one_time_mac, xor_bytes
+from keystrata.domain import peer_messages as pm
 from keystrata.domain import relay as method
 from keystrata.domain.ledger import Event
 from keystrata.errors import Conflict, NotFound
@@ -72,8 +72,9 @@ def make_segment(
 
     ``actor`` names who asked (the scheduler records its worker identity) in the ledger.
 
-    ``cipher_station`` (B) receives the ciphertext and spends 32 more link bytes for the
-    MAC key; by default the station whose link holds more key. ``owner`` defaults to A.
+    ``cipher_station`` (B) receives the ciphertext; by default the station whose link
+    holds more key. Each link gives ``n`` bytes of key and 32 bytes of one-time MAC key.
+    ``owner`` defaults to A (the notice station).
 
     Raises:
         NotFound: no such active pair at this relay, or a link is missing.
@@ -87,20 +88,24 @@ def make_segment(
             raise NotFound(f"no active pair {pair_id!r} through this relay")
         stations = (pair.station_a, pair.station_b)
         links = {st: link_of(s, ctx.node_id, st) for st in stations}
-        avail = {st: linkbytes.available(s, links[st], n + method.MAC_KEY_BYTES) for st in stations}
+        need = n + method.MAC_KEY_BYTES
+        avail = {st: linkbytes.available(s, links[st], need) for st in stations}
         if cipher_station is None:
-            # B pays the 32-byte MAC key: pick the side with more key on its link.
+            # The ciphertext goes to the side with more key on its link (common practice
+            # for spreading wear; both sides pay n + 32 bytes).
             free = {st: sum(b.length - b.used for b in avail[st]) for st in stations}
             cipher_station = max(stations, key=lambda st: (free[st], st))
         notice_station = stations[1] if cipher_station == stations[0] else stations[0]
         try:
-            ranges_a = method.take_ranges(avail[notice_station], n)
+            ranges_a, ranges_ma = method.split_after(
+                method.take_ranges(avail[notice_station], need), n
+            )
             ranges_b, ranges_m = method.split_after(
-                method.take_ranges(avail[cipher_station], n + method.MAC_KEY_BYTES), n
+                method.take_ranges(avail[cipher_station], need), n
             )
         except ValueError as exc:
             raise LinkKeyShort(str(exc)) from exc
-        key_a, eps_a = linkbytes.take(s, ctx.keyring, links[notice_station], ranges_a)
+        key_am, eps_a = linkbytes.take(s, ctx.keyring, links[notice_station], ranges_a + ranges_ma)
         key_bm, eps_b = linkbytes.take(s, ctx.keyring, links[cipher_station], ranges_b + ranges_m)
         epsilon = method.compose_epsilon(eps_a + eps_b)
         if pair.max_epsilon is not None and epsilon > pair.max_epsilon:
@@ -108,28 +113,33 @@ def make_segment(
                 f"segment epsilon {epsilon:.3g} exceeds the pair's maximum {pair.max_epsilon:.3g}"
             )
         owner = owner or notice_station
+        if owner not in stations:
+            raise NotFound(f"{owner!r} is not a station of pair {pair_id}")
         now = ctx.clock.now()
-        header = method.encode_header(
-            {
-                "segment": segment_id,
-                "pair": pair_id,
-                "relay": ctx.node_id,
-                "notice_station": notice_station,
-                "cipher_station": cipher_station,
-                "owner": owner,
-                "link": links[cipher_station],
-                "bytes": n,
-                "epsilon": epsilon,
-                "key_ranges": [r.to_json() for r in ranges_b],
-                "mac_ranges": [r.to_json() for r in ranges_m],
-                "made_at": now.isoformat(),
-            }
-        )
-        ciphertext = xor_bytes(key_a, key_bm[:n])
+        header = pm.SegmentHeader(
+            v=pm.HEADER_VERSION,
+            segment=segment_id,
+            pair=pair_id,
+            relay=ctx.node_id,
+            notice_station=notice_station,
+            cipher_station=cipher_station,
+            owner=owner,
+            length=n,
+            epsilon=epsilon,
+            made_at=now,
+            notice_link=links[notice_station],
+            notice_key_ranges=_wire(ranges_a),
+            notice_mac_ranges=_wire(ranges_ma),
+            cipher_link=links[cipher_station],
+            cipher_key_ranges=_wire(ranges_b),
+            cipher_mac_ranges=_wire(ranges_m),
+        ).encode()
+        ciphertext = xor_bytes(key_am[:n], key_bm[:n])
+        tag_a = one_time_mac(key_am[n:], method.mac_input(header))
         tag = one_time_mac(key_bm[n:], method.mac_input(header, ciphertext))
-        del key_a, key_bm  # nothing of KA, KB or M outlives this transaction
+        del key_am, key_bm  # nothing of KA, KB, MA or M outlives this transaction
         used = {
-            links[notice_station]: [r.to_json() for r in ranges_a],
+            links[notice_station]: [r.to_json() for r in ranges_a + ranges_ma],
             links[cipher_station]: [r.to_json() for r in ranges_b + ranges_m],
         }
         s.add(
@@ -147,36 +157,21 @@ def make_segment(
                 settled_at=None,
             )
         )
-        outbox.enqueue(
+        outbox.send(
             s,
             destination=notice_station,
-            kind="relay.notice",
+            message=pm.RelayNotice(segment_id=segment_id, header=header, tag=tag_a),
             segment_id=segment_id,
             now=now,
-            body={
-                "segment_id": segment_id,
-                "pair_id": pair_id,
-                "owner": owner,
-                "partner": cipher_station,
-                "link_id": links[notice_station],
-                "ranges": [r.to_json() for r in ranges_a],
-                "bytes": n,
-                "epsilon": epsilon,
-                "made_at": now.isoformat(),
-            },
         )
-        outbox.enqueue(
+        outbox.send(
             s,
             destination=cipher_station,
-            kind="relay.ciphertext",
+            message=pm.RelayCiphertext(
+                segment_id=segment_id, header=header, ciphertext=ciphertext, tag=tag
+            ),
             segment_id=segment_id,
             now=now,
-            body={
-                "segment_id": segment_id,
-                "header": base64.b64encode(header).decode(),
-                "ciphertext": base64.b64encode(ciphertext).decode(),
-                "tag": base64.b64encode(tag).decode(),
-            },
         )
         ledger.append(
             s,
@@ -196,6 +191,10 @@ def make_segment(
             },
         )
     return SegmentMade(segment_id, pair_id, n, owner, epsilon)
+
+
+def _wire(ranges: list[method.Range]) -> list[pm.LinkRange]:
+    return [pm.LinkRange(block=r.block_id, offset=r.offset, length=r.length) for r in ranges]
 
 
 def settle(ctx: NodeContext, segment_id: str, outcome: str, reason: str | None) -> bool:

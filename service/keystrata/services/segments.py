@@ -13,17 +13,15 @@ Every handler is idempotent by segment ID: a resent message changes nothing.
 
 from __future__ import annotations
 
-import base64
-import binascii
-import json
 from dataclasses import dataclass
 from datetime import datetime
-from typing import Any
+from typing import Literal
 
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from keystrata.crypto.hazmat import constant_time_equal, verify_one_time_mac, xor_bytes
+from keystrata.domain import peer_messages as pm
 from keystrata.domain import relay as method
 from keystrata.domain.ledger import Event
 from keystrata.domain.relay import Range
@@ -34,18 +32,13 @@ from keystrata.services.linkbytes import NotYet
 from keystrata.storage.models import Pair, PairSegment, QkdLink
 from keystrata.storage.sealed import segment_context
 
+Side = Literal["notice", "cipher"]
+
 
 @dataclass(frozen=True)
 class Outcome:
     segment_id: str
     status: str  # applied | already | discarded
-
-
-def _b64(value: Any, field: str) -> bytes:
-    try:
-        return base64.b64decode(str(value), validate=True)
-    except (binascii.Error, ValueError):
-        raise InvalidInput(f"{field}: not valid Base64") from None
 
 
 def _pair_for(s: Session, ctx: NodeContext, pair_id: str) -> Pair:
@@ -55,7 +48,7 @@ def _pair_for(s: Session, ctx: NodeContext, pair_id: str) -> Pair:
         or pair.retired_at is not None
         or ctx.node_id not in (pair.station_a, pair.station_b)
     ):
-        raise NotFound(f"no active pair {pair_id!r} with this station")
+        raise NotFound("no active pair of this station by that ID")
     return pair
 
 
@@ -67,60 +60,97 @@ def _own_link(s: Session, ctx: NodeContext, link_id: str, relay_id: str) -> None
         or link.station_id != ctx.node_id
         or link.relay_id != relay_id
     ):
-        raise InvalidInput(f"link {link_id!r} is not this station's link to {relay_id}")
+        raise Forbidden("the link named is not this station's link to the pair's relay")
 
 
 def _partner(pair: Pair, me: str) -> str:
     return pair.station_b if pair.station_a == me else pair.station_a
 
 
-def _ranges(raw: Any, field: str) -> list[Range]:
-    try:
-        ranges = [Range.from_json(r) for r in raw]
-    except (TypeError, KeyError, ValueError):
-        raise InvalidInput(f"{field}: a list of {{block, offset, length}}") from None
-    if not ranges or any(r.length <= 0 or r.offset < 0 for r in ranges):
-        raise InvalidInput(f"{field}: ranges must be non-empty with positive lengths")
-    return ranges
+def _ranges(wire: list[pm.LinkRange]) -> list[Range]:
+    return [Range(r.block, r.offset, r.length) for r in wire]
+
+
+def identity_of(row: PairSegment, me: str) -> method.SegmentIdentity:
+    """The segment's identity as this station holds it (what check values cover)."""
+    notice, cipher = (me, row.partner) if row.side == "notice" else (row.partner, me)
+    return method.SegmentIdentity(
+        segment=row.segment_id,
+        pair=row.pair_id,
+        notice_station=notice,
+        cipher_station=cipher,
+        owner=row.owner,
+        length=row.length,
+        epsilon=row.epsilon,
+    )
+
+
+def _header_for(
+    s: Session, ctx: NodeContext, sender: str, segment_id: str, raw: bytes, side: str
+) -> tuple[Pair, pm.SegmentHeader]:
+    """Parse and check a relay header against this station's registry. Raises
+    InvalidInput (malformed) or Forbidden (names what is not the sender's to name)."""
+    header = pm.SegmentHeader.decode(raw)
+    me = header.notice_station if side == "notice" else header.cipher_station
+    if header.segment != segment_id or me != ctx.node_id:
+        raise InvalidInput("header: names another segment or station")
+    pair = _pair_for(s, ctx, header.pair)
+    if sender != pair.relay_id or header.relay != sender:
+        raise Forbidden("only the pair's relay sends relay messages")
+    other = header.cipher_station if side == "notice" else header.notice_station
+    if other != _partner(pair, ctx.node_id):
+        raise Forbidden("header: the other station is not this station's partner in the pair")
+    return pair, header
+
+
+def _spend(
+    s: Session,
+    ctx: NodeContext,
+    link: str,
+    pair: Pair,
+    key_ranges: list[pm.LinkRange],
+    mac_ranges: list[pm.LinkRange],
+    n: int,
+) -> tuple[bytes, bytes]:
+    """Take (and destroy) the named link bytes: n key bytes and the 32-byte MAC key."""
+    _own_link(s, ctx, link, pair.relay_id)
+    keys, macs = _ranges(key_ranges), _ranges(mac_ranges)
+    if method.total(keys) != n:
+        raise InvalidInput("header: key ranges and bytes disagree")
+    if method.total(macs) != method.MAC_KEY_BYTES:
+        raise InvalidInput("header: MAC ranges must cover 32 bytes")
+    both, _ = linkbytes.take(s, ctx.keyring, link, keys + macs)
+    return both[:n], both[n:]
 
 
 def _store(
     s: Session,
     ctx: NodeContext,
     *,
-    segment_id: str,
+    header: pm.SegmentHeader,
     pair: Pair,
     side: str,
-    owner: str,
     key: bytes,
-    epsilon: float,
-    made_at: datetime,
 ) -> PairSegment:
     now = ctx.clock.now()
+    segment_id = header.segment
     row = s.get(PairSegment, segment_id, with_for_update=True)
     sealed = ctx.keyring.seal(key, segment_context(segment_id, 0))
-    if row is None:
-        row = PairSegment(
-            segment_id=segment_id,
-            pair_id=pair.pair_id,
-            side=side,
-            partner=_partner(pair, ctx.node_id),
-            owner=owner,
-            length=len(key),
-            used=0,
-            epsilon=epsilon,
-            state="pending",
-            reason=None,
-            link_applied=True,
-            made_at=made_at,
-            received_at=now,
-            settled_at=None,
-            sealed=sealed,
-        )
-        s.add(row)
-    else:  # a discard reached us first: the link bytes are spent, the key is not kept
-        row.link_applied, row.length, row.used, row.owner = True, len(key), len(key), owner
-        row.epsilon = epsilon
+    partner = _partner(pair, ctx.node_id)
+    forged = row is not None and (row.pair_id != pair.pair_id or row.partner != partner)
+    if row is None or forged:
+        # No record yet, or a tombstone some other station left under this ID for a
+        # pair it is in: the relay's authenticated header decides.
+        if row is None:
+            row = PairSegment(segment_id=segment_id)
+            s.add(row)
+        row.pair_id, row.side, row.partner, row.owner = pair.pair_id, side, partner, header.owner
+        row.length, row.used, row.epsilon = len(key), 0, header.epsilon
+        row.state, row.reason, row.link_applied = "pending", None, True
+        row.made_at, row.received_at, row.settled_at, row.sealed = header.made_at, now, None, sealed
+    else:  # the partner's discard reached us first: the link bytes are spent, no key kept
+        row.link_applied, row.length, row.used, row.owner = True, len(key), len(key), header.owner
+        row.epsilon = header.epsilon
     ledger.append(
         s,
         node_id=ctx.node_id,
@@ -131,131 +161,93 @@ def _store(
             "pair": pair.pair_id,
             "side": side,
             "bytes": len(key),
-            "owner": owner,
+            "owner": header.owner,
             "state": row.state,
         },
     )
     return row
 
 
-def apply_notice(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcome:
-    """A: take the named link bytes as the segment and wait for B's check value."""
-    segment_id = str(body["segment_id"])
+def _bad_tag(
+    s: Session, ctx: NodeContext, pair: Pair, segment_id: str, side: Side, sender: str
+) -> Outcome:
+    """A relay message whose one-time MAC fails: the link bytes are spent all the same
+    (the link stays in step with the relay), the segment is discarded on both sides."""
+    tell = [_partner(pair, ctx.node_id)] + ([pair.relay_id] if side == "notice" else [])
+    _discard(s, ctx, pair=pair, segment_id=segment_id, side=side, reason="bad_tag", tell=tell)
+    ledger.append(
+        s,
+        node_id=ctx.node_id,
+        at=ctx.clock.now(),
+        event=Event.RELAY_MESSAGE_REFUSED,
+        fields={"segment": segment_id, "pair": pair.pair_id, "reason": "bad_tag", "sender": sender},
+    )
+    return Outcome(segment_id, "discarded")
+
+
+def apply_notice(ctx: NodeContext, sender: str, msg: pm.RelayNotice) -> Outcome:
+    """A: check tagA, take the named link bytes as the segment, wait for B's check value."""
+    segment_id = msg.segment_id
     with ctx.db.write() as s:
-        pair = _pair_for(s, ctx, str(body["pair_id"]))
-        if sender != pair.relay_id:
-            raise Forbidden("only the pair's relay sends relay notices")
+        pair, header = _header_for(s, ctx, sender, segment_id, msg.header, "notice")
         existing = s.get(PairSegment, segment_id)
         if existing is not None and existing.link_applied:
             return Outcome(segment_id, "already")
-        link_id = str(body["link_id"])
-        _own_link(s, ctx, link_id, pair.relay_id)
-        if body.get("partner") != _partner(pair, ctx.node_id):
-            raise InvalidInput("partner: must be the other station of the pair")
-        key, _ = linkbytes.take(s, ctx.keyring, link_id, _ranges(body["ranges"], "ranges"))
-        if len(key) != int(body["bytes"]):
-            raise InvalidInput("bytes: does not match the ranges")
-        row = _store(
+        key, mac_key = _spend(
             s,
             ctx,
-            segment_id=segment_id,
-            pair=pair,
-            side="notice",
-            owner=str(body["owner"]),
-            key=key,
-            epsilon=float(body["epsilon"]),
-            made_at=datetime.fromisoformat(str(body["made_at"])),
+            header.notice_link,
+            pair,
+            header.notice_key_ranges,
+            header.notice_mac_ranges,
+            header.length,
         )
+        try:
+            verify_one_time_mac(mac_key, method.mac_input(msg.header), msg.tag)
+        except CryptoError:
+            return _bad_tag(s, ctx, pair, segment_id, "notice", sender)
+        row = _store(s, ctx, header=header, pair=pair, side="notice", key=key)
         return Outcome(segment_id, "discarded" if row.state == "discarded" else "applied")
 
 
-def apply_ciphertext(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcome:
+def apply_ciphertext(ctx: NodeContext, sender: str, msg: pm.RelayCiphertext) -> Outcome:
     """B: take KB and M, check the tag, recover KA, send A a check value.
 
     A bad tag spends the named link bytes all the same (so the link stays in step with
     the relay), records the refusal and discards the segment on both sides.
     """
-    segment_id = str(body["segment_id"])
-    header_bytes = _b64(body["header"], "header")
-    ciphertext = _b64(body["ciphertext"], "ciphertext")
-    tag = _b64(body["tag"], "tag")
-    try:
-        header = json.loads(header_bytes)
-    except ValueError:
-        raise InvalidInput("header: not JSON") from None
-    if header.get("segment") != segment_id or header.get("cipher_station") != ctx.node_id:
-        raise InvalidInput("header: names another segment or station")
+    segment_id = msg.segment_id
     with ctx.db.write() as s:
-        pair = _pair_for(s, ctx, str(header["pair"]))
-        if sender != pair.relay_id or header.get("relay") != sender:
-            raise Forbidden("only the pair's relay sends ciphertexts")
+        pair, header = _header_for(s, ctx, sender, segment_id, msg.header, "cipher")
         existing = s.get(PairSegment, segment_id)
         if existing is not None and existing.link_applied:
             return Outcome(segment_id, "already")
-        link_id = str(header["link"])
-        _own_link(s, ctx, link_id, pair.relay_id)
-        key_ranges = _ranges(header["key_ranges"], "header.key_ranges")
-        mac_ranges = _ranges(header["mac_ranges"], "header.mac_ranges")
-        n = int(header["bytes"])
-        if method.total(key_ranges) != n or len(ciphertext) != n:
-            raise InvalidInput("header: sizes of ranges and ciphertext disagree")
-        if method.total(mac_ranges) != method.MAC_KEY_BYTES:
-            raise InvalidInput("header.mac_ranges: must cover 32 bytes")
-        if header.get("notice_station") != _partner(pair, ctx.node_id):
-            raise InvalidInput("header.notice_station: must be the other station of the pair")
-        key_bm, _ = linkbytes.take(s, ctx.keyring, link_id, key_ranges + mac_ranges)
-        key_b, mac_key = key_bm[:n], key_bm[n:]
-        try:
-            verify_one_time_mac(mac_key, method.mac_input(header_bytes, ciphertext), tag)
-        except CryptoError:
-            _discard(
-                s,
-                ctx,
-                pair=pair,
-                segment_id=segment_id,
-                side="cipher",
-                reason="bad_tag",
-                tell=[_partner(pair, ctx.node_id)],
-            )
-            ledger.append(
-                s,
-                node_id=ctx.node_id,
-                at=ctx.clock.now(),
-                event=Event.RELAY_MESSAGE_REFUSED,
-                fields={
-                    "segment": segment_id,
-                    "pair": pair.pair_id,
-                    "reason": "bad_tag",
-                    "sender": sender,
-                },
-            )
-            return Outcome(segment_id, "discarded")
-        key_a = xor_bytes(ciphertext, key_b)
-        row = _store(
+        if len(msg.ciphertext) != header.length:
+            raise InvalidInput("ciphertext: its length is not the header's bytes")
+        key_b, mac_key = _spend(
             s,
             ctx,
-            segment_id=segment_id,
-            pair=pair,
-            side="cipher",
-            owner=str(header["owner"]),
-            key=key_a,
-            epsilon=float(header["epsilon"]),
-            made_at=datetime.fromisoformat(str(header["made_at"])),
+            header.cipher_link,
+            pair,
+            header.cipher_key_ranges,
+            header.cipher_mac_ranges,
+            header.length,
         )
+        try:
+            verify_one_time_mac(mac_key, method.mac_input(msg.header, msg.ciphertext), msg.tag)
+        except CryptoError:
+            return _bad_tag(s, ctx, pair, segment_id, "cipher", sender)
+        key_a = xor_bytes(msg.ciphertext, key_b)
+        row = _store(s, ctx, header=header, pair=pair, side="cipher", key=key_a)
         if row.state == "discarded":
             return Outcome(segment_id, "discarded")
-        check = method.check_value(key_a, segment_id, ctx.node_id)
-        outbox.enqueue(
+        check = method.check_value(key_a, identity_of(row, ctx.node_id), ctx.node_id)
+        outbox.send(
             s,
             destination=row.partner,
-            kind="segment.check",
+            message=pm.SegmentCheck(segment_id=segment_id, pair_id=pair.pair_id, check=check),
             segment_id=segment_id,
             now=ctx.clock.now(),
-            body={
-                "segment_id": segment_id,
-                "pair_id": pair.pair_id,
-                "check": base64.b64encode(check).decode(),
-            },
         )
         return Outcome(segment_id, "applied")
 
@@ -265,22 +257,27 @@ def _key_of(ctx: NodeContext, row: PairSegment) -> bytes:
     return ctx.keyring.open(row.sealed, segment_context(row.segment_id, row.used))
 
 
-def apply_check(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcome:
+def _partners_row(row: PairSegment, sender: str, pair_id: str, side: str) -> None:
+    """The sender must be this segment's partner station, about this segment's pair."""
+    if sender != row.partner or row.side != side or pair_id != row.pair_id:
+        raise Forbidden("only the partner station of this segment's pair may send this")
+
+
+def apply_check(ctx: NodeContext, sender: str, msg: pm.SegmentCheck) -> Outcome:
     """A: compare B's check value; on a match the segment is ready here, and B and the
     relay are told. On a mismatch it is discarded on both sides."""
-    segment_id = str(body["segment_id"])
-    check = _b64(body["check"], "check")
+    segment_id = msg.segment_id
     with ctx.db.write() as s:
         row = s.get(PairSegment, segment_id, with_for_update=True)
         if row is None or not row.link_applied:
             raise NotYet("not yet: the relay's notice for this segment has not arrived")
-        if sender != row.partner or row.side != "notice":
-            raise Forbidden("only the partner station sends this segment's check value")
+        _partners_row(row, sender, msg.pair_id, "notice")
         if row.state != "pending":
             return Outcome(segment_id, "already" if row.state == "ready" else "discarded")
         pair = _pair_for(s, ctx, row.pair_id)
         key = _key_of(ctx, row)
-        if not constant_time_equal(check, method.check_value(key, segment_id, sender)):
+        identity = identity_of(row, ctx.node_id)
+        if not constant_time_equal(msg.check, method.check_value(key, identity, sender)):
             _discard(
                 s,
                 ctx,
@@ -293,58 +290,57 @@ def apply_check(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcome:
             return Outcome(segment_id, "discarded")
         now = ctx.clock.now()
         row.state, row.settled_at = "ready", now
-        mine = method.check_value(key, segment_id, ctx.node_id)
-        outbox.enqueue(
+        confirmation = method.check_value(key, identity, ctx.node_id)
+        outbox.send(
             s,
             destination=row.partner,
-            kind="segment.confirmed",
+            message=pm.SegmentConfirmed(
+                segment_id=segment_id, pair_id=row.pair_id, check=confirmation
+            ),
             segment_id=segment_id,
             now=now,
-            body={
-                "segment_id": segment_id,
-                "pair_id": row.pair_id,
-                "check": base64.b64encode(mine).decode(),
-            },
         )
-        outbox.enqueue(
+        outbox.send(
             s,
             destination=pair.relay_id,
-            kind="segment.settled",
+            message=pm.SegmentSettled(segment_id=segment_id, outcome="ready"),
             segment_id=segment_id,
             now=now,
-            body={"segment_id": segment_id, "outcome": "ready"},
         )
-        ledger.append(
-            s,
-            node_id=ctx.node_id,
-            at=now,
-            event=Event.SEGMENT_READY,
-            fields={
-                "segment": segment_id,
-                "pair": row.pair_id,
-                "bytes": row.length,
-                "owner": row.owner,
-            },
-        )
+        _record_ready(s, ctx, row, now)
         return Outcome(segment_id, "applied")
 
 
-def apply_confirmed(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcome:
+def _record_ready(s: Session, ctx: NodeContext, row: PairSegment, now: datetime) -> None:
+    ledger.append(
+        s,
+        node_id=ctx.node_id,
+        at=now,
+        event=Event.SEGMENT_READY,
+        fields={
+            "segment": row.segment_id,
+            "pair": row.pair_id,
+            "bytes": row.length,
+            "owner": row.owner,
+        },
+    )
+
+
+def apply_confirmed(ctx: NodeContext, sender: str, msg: pm.SegmentConfirmed) -> Outcome:
     """B: A confirmed the segment; check A's value and turn the segment ready here."""
-    segment_id = str(body["segment_id"])
-    check = _b64(body["check"], "check")
+    segment_id = msg.segment_id
     with ctx.db.write() as s:
         row = s.get(PairSegment, segment_id, with_for_update=True)
         if row is None:
             raise NotFound(f"no segment {segment_id} here")
-        if sender != row.partner or row.side != "cipher":
-            raise Forbidden("only the partner station confirms this segment")
+        _partners_row(row, sender, msg.pair_id, "cipher")
         if row.state != "pending":
             return Outcome(segment_id, "already" if row.state == "ready" else "discarded")
         pair = _pair_for(s, ctx, row.pair_id)
         key = _key_of(ctx, row)
         now = ctx.clock.now()
-        if not constant_time_equal(check, method.check_value(key, segment_id, sender)):
+        identity = identity_of(row, ctx.node_id)
+        if not constant_time_equal(msg.check, method.check_value(key, identity, sender)):
             _discard(
                 s,
                 ctx,
@@ -356,41 +352,39 @@ def apply_confirmed(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outc
             )
             return Outcome(segment_id, "discarded")
         row.state, row.settled_at = "ready", now
-        ledger.append(
-            s,
-            node_id=ctx.node_id,
-            at=now,
-            event=Event.SEGMENT_READY,
-            fields={
-                "segment": segment_id,
-                "pair": row.pair_id,
-                "bytes": row.length,
-                "owner": row.owner,
-            },
-        )
+        _record_ready(s, ctx, row, now)
         return Outcome(segment_id, "applied")
 
 
-def apply_discarded(ctx: NodeContext, sender: str, body: dict[str, Any]) -> Outcome:
-    """Either station: the partner discarded the segment; do the same (idempotent)."""
-    segment_id = str(body["segment_id"])
+def apply_discarded(ctx: NodeContext, sender: str, msg: pm.SegmentDiscarded) -> Outcome:
+    """Either station: the partner discarded the segment; do the same (idempotent).
+
+    Only the partner of that segment, about that segment's pair: a neighbour in another
+    pair cannot reach this pair's key. A discard of a segment not here yet leaves a
+    tombstone bound to the pair and partner named; the relay's message of another pair
+    under that ID does not honour it.
+    """
+    segment_id = msg.segment_id
     with ctx.db.write() as s:
-        pair = _pair_for(s, ctx, str(body["pair_id"]))
+        pair = _pair_for(s, ctx, msg.pair_id)
         if sender != _partner(pair, ctx.node_id):
             raise Forbidden("only the partner station discards a segment")
         row = s.get(PairSegment, segment_id, with_for_update=True)
-        if row is not None and row.state == "discarded":
-            return Outcome(segment_id, "already")
-        side = "cipher" if body.get("sender_side") == "notice" else "notice"
-        tell = [pair.relay_id] if side == "notice" else []
+        side: Side = "cipher" if msg.sender_side == "notice" else "notice"
+        if row is not None:
+            _partners_row(row, sender, msg.pair_id, row.side)
+            if row.state == "discarded":
+                return Outcome(segment_id, "already")
+            if row.side != side:
+                raise Forbidden("sender_side: the partner holds the other side of this segment")
         _discard(
             s,
             ctx,
             pair=pair,
             segment_id=segment_id,
             side=side,
-            reason=str(body.get("reason", "partner_discarded"))[:64],
-            tell=tell,
+            reason=msg.reason,
+            tell=[pair.relay_id] if side == "notice" else [],
             notify_partner=False,
         )
         return Outcome(segment_id, "applied")
@@ -402,8 +396,8 @@ def _discard(
     *,
     pair: Pair,
     segment_id: str,
-    side: str,
-    reason: str,
+    side: Side,
+    reason: pm.Reason,
     tell: list[str],
     notify_partner: bool = True,
 ) -> None:
@@ -435,27 +429,24 @@ def _discard(
         row.used = row.length
     for dest in tell:
         if dest == pair.relay_id:
-            outbox.enqueue(
+            outbox.send(
                 s,
                 destination=dest,
-                kind="segment.settled",
+                message=pm.SegmentSettled(
+                    segment_id=segment_id, outcome="discarded", reason=reason
+                ),
                 segment_id=segment_id,
                 now=now,
-                body={"segment_id": segment_id, "outcome": "discarded", "reason": reason},
             )
         elif notify_partner:
-            outbox.enqueue(
+            outbox.send(
                 s,
                 destination=dest,
-                kind="segment.discarded",
+                message=pm.SegmentDiscarded(
+                    segment_id=segment_id, pair_id=pair.pair_id, reason=reason, sender_side=side
+                ),
                 segment_id=segment_id,
                 now=now,
-                body={
-                    "segment_id": segment_id,
-                    "pair_id": pair.pair_id,
-                    "reason": reason,
-                    "sender_side": side,
-                },
             )
     ledger.append(
         s,
