@@ -1,7 +1,8 @@
 """The auditor's export over real mutual TLS (`keystrata audit export`), checked by the
 offline verifier (`keystrata-ledger-check`); then the stored ledger is tampered with
 directly in the database (one byte changed, an entry deleted, two entries swapped) and
-the verifier names the entry. On SQLite and PostgreSQL."""
+the verifier names the entry. On SQLite and PostgreSQL. Both commands keep the auditor's
+state (pinned key, last checkpoint seen) in tmp_path, never in the real home folder."""
 
 from __future__ import annotations
 
@@ -29,6 +30,15 @@ CHECK = [str(Path(sys.executable).parent / "keystrata-ledger-check")]  # the con
 
 def _identity(pki: PkiFiles, name: str) -> TlsIdentity:
     return TlsIdentity(ca=pki.ca, cert=pki.cert(name), key=pki.key(name))
+
+
+@pytest.fixture(autouse=True)
+def state(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    """The auditor's state folder, for the commands started here (they inherit it)."""
+    folder = tmp_path / "auditor-state"
+    monkeypatch.setenv("KEYSTRATA_AUDIT_STATE", str(folder))
+    monkeypatch.setenv("XDG_STATE_HOME", str(tmp_path / "xdg-state"))
+    return folder
 
 
 @pytest.fixture
@@ -82,11 +92,19 @@ def _check(folder: Path) -> tuple[int, dict]:
     return result.returncode, json.loads(result.stdout)
 
 
-def test_export_verifies_and_tampering_is_named(node, pki, db_url, tmp_path) -> None:
+def test_export_verifies_and_tampering_is_named(node, pki, db_url, tmp_path, state) -> None:
     good = _export(node, pki, tmp_path / "good")
     assert good.returncode == 0, good.stdout + good.stderr
     code, report = _check(tmp_path / "good")
     assert code == 0 and report["ok"], report
+    # The first export pinned the node's key (printed) and kept its checkpoint.
+    with AuditClient(node.url, _identity(pki, "aud-ben")) as client:
+        served = client.latest_checkpoint()
+    assert f"pinned in {state}" in good.stdout and served["public_key"] in good.stdout
+    kept = json.loads((state / "station-a.json").read_text())
+    assert kept["public_key"] == served["public_key"] == report["public_key"]
+    assert kept["checkpoint"]["tree_size"] == report["tree_size"]
+    assert report["pinning"] == "pinned" and report["signed_at"] is not None
     lines = (tmp_path / "good" / "entries.jsonl").read_text().splitlines()
     size = len(lines)
     assert size == report["tree_size"] > 12
@@ -142,6 +160,18 @@ def test_export_verifies_and_tampering_is_named(node, pki, db_url, tmp_path) -> 
 
     assert tampered("swapped", swap)["first_bad"] == 3
     db.dispose()
+    # The state kept the good checkpoint through the refused exports; the ledger as it
+    # was, grown by new entries, is consistent with it.
+    assert json.loads((state / "station-a.json").read_text()) == kept
+    with OperatorClient(node.url, _identity(pki, "ops-ada")) as ops:
+        ops.create("nodes", {"node_id": "relay-late", "role": "relay"})
+    _wait_for_checkpoint(node.url, _identity(pki, "aud-ben"))
+    later = _export(node, pki, tmp_path / "later")
+    assert later.returncode == 0, later.stdout + later.stderr
+    assert "consistent with the last checkpoint seen" in later.stdout
+    code, report = _check(tmp_path / "later")
+    assert code == 0 and report["tree_size"] > size
+    assert "the same tree as the last checkpoint seen" in report["notes"]
 
 
 def _rows(db: Database) -> list[dict]:

@@ -81,12 +81,13 @@ def export_cmd(
             f"root {report.root}; signed at {report.signed_at or '(no time)'}; "
             f"verified offline: {'yes' if report.ok else 'NO'}",
             highlight=False,
+            soft_wrap=True,
         )
         for finding in report.findings:
-            console.print(f"  - {finding}", highlight=False)
+            console.print(f"  - {finding}", highlight=False, soft_wrap=True)
         for note in report.notes:
-            if "pinned" in note:
-                console.print(f"  {note}", highlight=False)
+            if "pinned" in note or "last checkpoint seen" in note:  # key and continuity
+                console.print(f"  {note}", highlight=False, soft_wrap=True)
     if not report.ok:
         sys.exit(1)
 
