@@ -256,3 +256,27 @@ def test_a_relay_that_tells_the_stations_different_stories_makes_no_segment(net)
     net.drain()
     assert net.segments("station-a")[made.segment_id].state == "discarded"
     assert net.segments("station-b")[made.segment_id].state == "discarded"
+
+
+def test_one_station_reporting_an_empty_buffer_does_not_drain_its_partners_link(
+    make_node, db_factory
+):
+    """Station A lies that its buffer of the pair is empty. Both stations hold the same
+    ready segments, so B's honest report shows the pair is above its target: the relay
+    spends no link key on it."""
+    from dataclasses import replace
+
+    from keystrata.services.buffers import record_report, station_report
+    from keystrata.workers.scheduler import schedule_once
+
+    policy = {"buffer_min_bits": 0, "buffer_target_bits": 65_536, "buffer_max_bits": 10**6}
+    net = relaynet.build(make_node, db_factory, policy=policy)
+    relaynet.ready_key(net, segments=4)
+    net.feed("station-a", 8)
+    net.feed("station-b", 8)
+    honest = station_report(net.b.ctx, relaynet.PAIR)
+    assert honest.ready_bits > 65_536
+    lie = replace(station_report(net.a.ctx, relaynet.PAIR), ready_bits=0, owned_ready_bits=0)
+    record_report(net.relay.ctx, lie)
+    record_report(net.relay.ctx, honest)
+    assert schedule_once(net.relay.ctx, None).made == []

@@ -15,9 +15,10 @@ from dataclasses import dataclass
 
 from sqlalchemy import func, select
 
+from keystrata.domain import peer_messages as pm
 from keystrata.domain import relay as method
 from keystrata.domain.fairness import PairDemand, allocate
-from keystrata.errors import Conflict, NotFound
+from keystrata.errors import Conflict, InvalidInput, NotFound
 from keystrata.services import buffers, linkbytes, relay
 from keystrata.services.buffers import BufferReport
 from keystrata.services.context import NodeContext
@@ -45,12 +46,17 @@ def _poll_stations(ctx: NodeContext, peers: PeerClient, pairs: list[Pair]) -> No
             if raw is None:
                 continue
             try:
-                report = BufferReport.from_json(raw)
-            except (KeyError, TypeError, ValueError):
-                log.warning("scheduler: malformed buffer report from %s", station)
+                wire = pm.BufferReport.from_json(raw)
+            except InvalidInput as exc:
+                log.warning("scheduler: malformed buffer report from %s: %s", station, exc.message)
                 continue
-            if report.station == station and report.pair_id == pair.pair_id:
-                buffers.record_report(ctx, report)
+            if wire.station != station or wire.pair_id != pair.pair_id:
+                log.warning(
+                    "scheduler: %s answered with a report of another pair or station", station
+                )
+                continue
+            report = BufferReport(**wire.model_dump(exclude={"v"}))
+            buffers.record_report(ctx, report)
 
 
 def schedule_once(
@@ -96,7 +102,10 @@ def schedule_once(
         if in_flight.get(pair.pair_id, 0) >= cfg.max_in_flight_segments:
             skipped[pair.pair_id] = "segments on their way at the limit"
             continue
-        ready = min(int(side["ready_bits"]) for side in view.sides)
+        # Both stations hold the same ready segments; they differ only by allocations on
+        # their way. The larger report counts, so one station reporting an empty buffer
+        # cannot by itself make the relay spend its partner's link key.
+        ready = max(int(side["ready_bits"]) for side in view.sides)
         deficit_bits = view.target_bits - ready - view.in_flight_bits
         if deficit_bits <= 0:
             continue
