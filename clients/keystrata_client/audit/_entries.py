@@ -34,6 +34,22 @@ def _no_constant(name: str) -> NoReturn:
     raise ValueError(f"{name} is not JSON")
 
 
+#: The integers a double holds exactly, to the last one (RFC 8785 section 3.2.2.3).
+_SAFE_INTEGER = 2**53 - 1
+
+
+def _number(text: str) -> int | float:
+    """A JSON integer as RFC 8785 reads it: an IEEE 754 double. Within the safe range
+    an int serialises the same; beyond it only the double does (a node writes 2^68 as
+    ``295147905179352830000``, which must read back as that double, not as an int)."""
+    value = int(text)
+    return value if -_SAFE_INTEGER <= value <= _SAFE_INTEGER else float(text)
+
+
+def _json(text: str | bytes) -> Any:
+    return json.loads(text, parse_constant=_no_constant, parse_int=_number)
+
+
 def _same_json(a: Any, b: Any) -> bool:
     """Equal JSON values, types included (unlike ``==``, which takes true for 1 and 1.0
     for 1); ``json.dumps`` writes each type its own way and is fast."""
@@ -66,7 +82,7 @@ def _entry(pos: int, line: bytes, scan: _Scan) -> tuple[bytes, str, bytes | None
     """Check one line of entries.jsonl; return the entry's bytes, its event and the hash
     it records of its predecessor (v2 only, else None)."""
     try:
-        record = json.loads(line, parse_constant=_no_constant)
+        record = _json(line)
     except ValueError:
         raise _Bad(pos, "its line in entries.jsonl is not JSON") from None
     at = record.get("index") if isinstance(record, dict) else None
@@ -78,7 +94,7 @@ def _entry(pos: int, line: bytes, scan: _Scan) -> tuple[bytes, str, bytes | None
     if raw is None:
         raise _Bad(pos, "entry_b64 is not canonical Base64")
     try:
-        entry = json.loads(raw.decode("utf-8"), parse_constant=_no_constant)
+        entry = _json(raw.decode("utf-8"))
     except ValueError:  # UnicodeDecodeError is a ValueError too
         raise _Bad(pos, "the stored bytes are not valid JSON (altered)") from None
     if not isinstance(entry, dict):
