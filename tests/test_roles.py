@@ -8,6 +8,7 @@ from fastapi.routing import APIRoute
 
 from keystrata.api.app import route_table
 from keystrata.domain.registry import PrincipalRole
+from keystrata.errors import Forbidden
 
 #: Test certificate of each role (see conftest.CLIENTS).
 CERT_OF_ROLE = {
@@ -18,6 +19,9 @@ CERT_OF_ROLE = {
     PrincipalRole.PEER: "peer-relay",
     PrincipalRole.MONITOR: "mon-cal",
 }
+
+
+ROLE_REFUSAL = Forbidden.default_message
 
 
 def _admitted(route: APIRoute) -> frozenset[PrincipalRole]:
@@ -69,9 +73,13 @@ def test_role_matrix(station, api) -> None:
         refused = _refusal_status(route)
         for method in route.methods:
             for role, cert in CERT_OF_ROLE.items():
-                status = clients[cert].request(method, path, json={}).status_code
+                r = clients[cert].request(method, path, json={})
+                status = r.status_code
                 if role in admitted:
-                    assert status not in (401, 403), (method, path, role, status)
+                    # A 403 of the route's own binding check (test_binding_matrix.py) is
+                    # not the role refusal, whose message is Forbidden's default.
+                    role_refused = status == 403 and r.json() == {"message": ROLE_REFUSAL}
+                    assert status != 401 and not role_refused, (method, path, role, status)
                 else:
                     assert status == refused, (method, path, role, status)
             for who in (clients["stranger"], nobody):
@@ -171,3 +179,28 @@ def test_proxy_mode_reads_and_checks_a_forwarded_certificate(station, pki) -> No
     app = plain
     with start_blocking_portal() as portal:
         assert portal.call(call, pki.pem("ops-ada")) == 401
+
+
+#: Roles that may read the API's own description (the OpenAPI document): the operator
+#: who provisions and the monitor who watches; it maps every route, so strangers, SAEs,
+#: modules and peers have no use for it.
+DOCUMENT_ROLES = {PrincipalRole.OPERATOR, PrincipalRole.MONITOR}
+
+
+def test_the_openapi_document_is_for_operators_and_monitors(station, api) -> None:
+    """A stranger with a certificate of the network's CA, and every other role, is
+    refused the document; /docs and /redoc are not served at all (attack test: any TLS
+    client got the whole map of the API)."""
+    for name in ("stranger", None):
+        r = api(station)(name).get("/openapi.json")
+        assert r.status_code == 401 and r.json() == {"message": "unauthorized"}, r.text
+    for role, cert in CERT_OF_ROLE.items():
+        r = api(station)(cert).get("/openapi.json")
+        if role in DOCUMENT_ROLES:
+            assert r.status_code == 200 and r.json()["openapi"].startswith("3."), r.text
+        else:
+            assert r.status_code == 403, (role, r.status_code)
+    for page in ("/docs", "/redoc"):
+        assert api(station)("ops-ada").get(page).status_code == 404
+    routes = {r.path: r for r in route_table()}
+    assert _admitted(routes["/openapi.json"]) == DOCUMENT_ROLES

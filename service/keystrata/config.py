@@ -159,6 +159,10 @@ class LedgerSection(_Section):
 
     checkpoint_seconds: Annotated[float, Field(gt=0, le=86_400)] = 60.0
     checkpoint_entries: Annotated[int, Field(ge=1, le=10_000_000)] = 1000
+    #: Refused requests of one certificate subject, reason and route: one ``auth.refused``
+    #: entry at once, the rest of this interval counted into the next entry (per worker
+    #: process), so that a stranger cannot force a ledger write (an fsync) per request.
+    refusal_interval_seconds: Annotated[float, Field(ge=0, le=3600)] = 60.0
 
 
 class Settings(_Section):

@@ -2,24 +2,43 @@
 
 from __future__ import annotations
 
+import asyncio
+import logging
 from collections.abc import AsyncIterator
-from contextlib import asynccontextmanager
+from contextlib import asynccontextmanager, suppress
 
 from cryptography import x509
 from fastapi import APIRouter, FastAPI
 from fastapi.routing import APIRoute
+from starlette.concurrency import run_in_threadpool
 
 from keystrata import __version__
 from keystrata.api import errors
 from keystrata.api.limits import BodyLimit
-from keystrata.api.routes import audit, etsi, health, links, node, pairs, peer, registry
-from keystrata.observability.http import RequestMetrics, RequestTimer
+from keystrata.api.routes import (
+    audit,
+    docs,
+    etsi,
+    health,
+    links,
+    node,
+    pairs,
+    peer,
+    registry,
+)
+from keystrata.errors import KeystrataError
+from keystrata.observability.http import RequestMetrics, RequestTimer, install_access_log_filter
+from keystrata.services import principals
 from keystrata.services.context import NodeContext
 from keystrata.workers.peer_client import PeerClient
 from keystrata.workers.runner import Background
 
 #: Bodies of routes other than ingest are small JSON documents.
 DEFAULT_BODY_LIMIT = 1024 * 1024
+#: Longest wait between two flushes of counted refusals (services/principals.py).
+REFUSAL_FLUSH_SECONDS = 10.0
+
+log = logging.getLogger("keystrata.api")
 
 
 ROUTERS: tuple[APIRouter, ...] = (
@@ -31,6 +50,7 @@ ROUTERS: tuple[APIRouter, ...] = (
     etsi.router,
     audit.router,
     health.router,
+    docs.router,
 )
 
 
@@ -47,16 +67,24 @@ def create_app(ctx: NodeContext) -> FastAPI:
         background = Background(ctx) if ctx.settings.server.background_work else None
         if background:
             background.start()
+        flusher = asyncio.create_task(_flush_refusals(ctx))
         try:
             yield
         finally:
+            flusher.cancel()
+            with suppress(asyncio.CancelledError):
+                await flusher
             if background:
                 background.stop()
+            await _flush_once(ctx, everything=True)
 
     app = FastAPI(
         lifespan=lifespan,
         title=f"keystrata node {ctx.node_id}",
         version=__version__,
+        # The document is served by routes/docs.py, behind the identity dependency;
+        # no interactive pages.
+        openapi_url=None,
         docs_url=None,
         redoc_url=None,
     )
@@ -76,4 +104,20 @@ def create_app(ctx: NodeContext) -> FastAPI:
     # Added last, so outermost: it also times refusals from the body limit.
     app.state.request_metrics = RequestMetrics()
     app.add_middleware(RequestTimer, metrics=app.state.request_metrics)
+    install_access_log_filter()  # uvicorn's access log: route templates, not raw paths
     return app
+
+
+async def _flush_refusals(ctx: NodeContext) -> None:
+    """Write counted refusals whose interval is over, until cancelled."""
+    interval = ctx.settings.ledger.refusal_interval_seconds
+    while True:
+        await asyncio.sleep(min(max(interval, 0.5), REFUSAL_FLUSH_SECONDS))
+        await _flush_once(ctx)
+
+
+async def _flush_once(ctx: NodeContext, *, everything: bool = False) -> None:
+    try:
+        await run_in_threadpool(principals.flush_refusals, ctx, everything=everything)
+    except KeystrataError as exc:  # the ledger is unavailable: the counts wait
+        log.warning("counted refusals not written yet: %s", exc.message)

@@ -79,6 +79,8 @@ def admit(*roles: PrincipalRole, hide_role: bool = False) -> Callable[[Request],
         pem = client_certificate_pem(request, proxy)
         parsed = _parse(pem) if pem else None
         method, path = request.method, request.url.path
+        # The template of the matched route (never the raw path, which may hold a key).
+        route = getattr(request.scope.get("route"), "path", None)
         if parsed is None:
             principals.record_refusal(
                 ctx,
@@ -86,6 +88,7 @@ def admit(*roles: PrincipalRole, hide_role: bool = False) -> Callable[[Request],
                 subject=None,
                 principal_id=None,
                 method=method,
+                route=route,
                 path=path,
             )
             raise Unauthenticated()
@@ -98,6 +101,7 @@ def admit(*roles: PrincipalRole, hide_role: bool = False) -> Callable[[Request],
                 subject=subject,
                 principal_id=None,
                 method=method,
+                route=route,
                 path=path,
             )
             raise Unauthenticated()
@@ -109,6 +113,7 @@ def admit(*roles: PrincipalRole, hide_role: bool = False) -> Callable[[Request],
                 subject=subject,
                 principal_id=None,
                 method=method,
+                route=route,
                 path=path,
             )
             raise Unauthenticated()
@@ -119,6 +124,7 @@ def admit(*roles: PrincipalRole, hide_role: bool = False) -> Callable[[Request],
                 subject=subject,
                 principal_id=caller.principal_id,
                 method=method,
+                route=route,
                 path=path,
             )
             # ETSI GS QKD 014 knows no 403: its routes answer every refusal with 401.

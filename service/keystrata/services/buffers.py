@@ -12,7 +12,7 @@ from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session
 
 from keystrata.domain import relay as method
-from keystrata.errors import NotFound
+from keystrata.errors import Forbidden, NotFound
 from keystrata.services.context import NodeContext
 from keystrata.storage.models import Pair, PairBuffer, PairSegment, RelayOp
 
@@ -76,7 +76,7 @@ def station_report(ctx: NodeContext, pair_id: str) -> BufferReport:
     with ctx.db.read() as s:
         pair = s.get(Pair, pair_id)
         if pair is None or ctx.node_id not in (pair.station_a, pair.station_b):
-            raise NotFound(f"no pair {pair_id!r} at this station")
+            raise NotFound("no such pair at this station")
         ready, owned, pending = _levels(s, pair_id, ctx.node_id)
     return BufferReport(
         pair_id=pair_id,
@@ -88,6 +88,22 @@ def station_report(ctx: NodeContext, pair_id: str) -> BufferReport:
         window_seconds=window,
         reported_at=ctx.clock.now(),
     )
+
+
+def report_for_relay(ctx: NodeContext, pair_id: str, relay_id: str) -> BufferReport:
+    """This station's buffer for ``pair_id``, asked by peer node ``relay_id``: only the
+    relay of that pair may read it (another station or relay learns nothing, not even
+    whether the pair exists here).
+
+    Raises:
+        Forbidden: the pair is not relayed by ``relay_id`` at this station.
+    """
+    with ctx.db.read() as s:
+        pair = s.get(Pair, pair_id)
+        mine = pair is not None and ctx.node_id in (pair.station_a, pair.station_b)
+        if not mine or pair is None or pair.relay_id != relay_id:
+            raise Forbidden("only the pair's relay reads its buffer report")
+    return station_report(ctx, pair_id)
 
 
 def record_report(ctx: NodeContext, report: BufferReport) -> None:

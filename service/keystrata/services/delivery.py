@@ -505,13 +505,10 @@ def _serve(ctx: NodeContext, fetches: Sequence[_Fetch]) -> list[list[DeliveredKe
             if f.unsettled and any(k not in rows for k in f.ids):
                 results.append(AllocationNotHere())  # before any per-key check
                 continue
-            if not all(_servable(rows.get(k), f, now) for k in f.ids):
+            problem = next((p for k in f.ids if (p := _unservable(rows.get(k), f, now))), None)
+            if problem is not None:
                 refusal = _refusal(
-                    s,
-                    ctx,
-                    f.caller,
-                    "key_not_allocated_to_this_sae",
-                    {"master": f.master[:64], "key_ids": f.ids[:16]},
+                    s, ctx, f.caller, problem, {"master": f.master[:64], "key_ids": f.ids[:16]}
                 )
                 entries.append((refusal["at"], refusal["event"], refusal["fields"]))
                 results.append(Unauthenticated())
@@ -543,12 +540,19 @@ def _serve(ctx: NodeContext, fetches: Sequence[_Fetch]) -> list[list[DeliveredKe
     return results
 
 
-def _servable(row: KeyAlloc | None, f: _Fetch, now: datetime) -> bool:
-    return (
-        row is not None
-        and row.master_sae == f.master
-        and row.state == "waiting"
-        and f.caller.principal_id in json.loads(row.slaves)
-        and f.caller.principal_id not in json.loads(row.fetched_by)
-        and row.expires_at > now
-    )
+def _unservable(row: KeyAlloc | None, f: _Fetch, now: datetime) -> str | None:
+    """Why the key of ``row`` cannot go to this fetch (its ``key.refused`` reason), or None.
+    The caller always gets the standard's one 401; the reason is for the auditor, who
+    must tell a replay from a mistake. Allocation is checked before state, so an SAE
+    the key was not allocated to learns nothing of it even from the ledger."""
+    if row is None:
+        return "unknown_key_id"
+    if row.master_sae != f.master or f.caller.principal_id not in json.loads(row.slaves):
+        return "not_allocated_to_this_sae"
+    if f.caller.principal_id in json.loads(row.fetched_by):
+        return "already_delivered"
+    if row.state == "expired" or row.expires_at <= now:
+        return "expired"
+    if row.state != "waiting":
+        return "already_delivered"  # every slave fetched it (row settled)
+    return None

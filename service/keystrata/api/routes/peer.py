@@ -17,7 +17,8 @@ import logging
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Request
-from pydantic import BaseModel, ConfigDict, Field
+from fastapi.exceptions import RequestValidationError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError
 from starlette.concurrency import run_in_threadpool
 
 from keystrata.api.errors import error_responses
@@ -59,6 +60,15 @@ class BatchResults(BaseModel):
     results: list[MessageResult]
 
 
+async def _json_body(request: Request) -> Any:
+    """The request body as JSON; called only after the identity dependency admitted the
+    caller, so that no one else makes the node read and parse up to the body limit."""
+    try:
+        return json.loads(await request.body())
+    except ValueError:
+        raise InvalidInput("body: not JSON") from None
+
+
 @router.post(
     "/messages",
     summary="Deliver a relay or segment message",
@@ -67,13 +77,20 @@ class BatchResults(BaseModel):
 )
 async def peer_message(request: Request, caller: Peer) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx
-    try:
-        body = json.loads(await request.body())
-    except ValueError:
-        raise InvalidInput("body: not JSON") from None
+    body = await _json_body(request)
     assert caller.node_id is not None  # peers are bound to a node (registry rule)
     outcome = await run_in_threadpool(messages.handle, ctx, caller.node_id, body)
     return {"segment_id": outcome.segment_id, "status": outcome.status}
+
+
+#: The batch body as the OpenAPI document describes it: the body is read by the handler
+#: only after the caller is known to be a peer, so FastAPI does not parse it itself.
+_BATCH_BODY = {
+    "requestBody": {
+        "required": True,
+        "content": {"application/json": {"schema": MessageBatch.model_json_schema()}},
+    }
+}
 
 
 @router.post(
@@ -82,15 +99,23 @@ async def peer_message(request: Request, caller: Peer) -> dict[str, Any]:
     operation_id="peer_message_batch",
     response_model=BatchResults,
     responses=error_responses(400, 401, 403, 413, 503),
+    openapi_extra=_BATCH_BODY,
 )
-def peer_message_batch(batch: MessageBatch, request: Request, caller: Peer) -> BatchResults:
+async def peer_message_batch(request: Request, caller: Peer) -> BatchResults:
     """Each message is applied in its own transaction, as if sent alone; a message that
     is not applied (not yet, refused) ends the run, and the sender sends it and those
     after it again later. A batch holding anything that is not a message this node takes
     is refused whole (400) before any message is applied."""
     ctx: NodeContext = request.app.state.ctx
     assert caller.node_id is not None  # peers are bound to a node (registry rule)
-    answers = messages.handle_batch(ctx, caller.node_id, list(batch.messages))
+    try:
+        batch = MessageBatch.model_validate(await _json_body(request))
+    except ValidationError as exc:
+        errors = exc.errors(include_input=False, include_url=False)
+        raise RequestValidationError([{**e, "loc": ("body", *e["loc"])} for e in errors]) from None
+    answers = await run_in_threadpool(
+        messages.handle_batch, ctx, caller.node_id, list(batch.messages)
+    )
     for a in answers:
         if a.status >= 500:
             log.warning("peer message failed: %s (%d)", a.message, a.status)
@@ -114,7 +139,8 @@ def pair_buffer(pair_id: str, request: Request, caller: Peer) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx
     if ctx.role is not Role.STATION:
         raise NotFound("only stations keep pair buffers")
-    return buffers.station_report(ctx, pair_id).to_json()
+    assert caller.node_id is not None  # peers are bound to a node (registry rule)
+    return buffers.report_for_relay(ctx, pair_id, caller.node_id).to_json()
 
 
 @router.get(
