@@ -21,7 +21,7 @@ import httpx
 import psycopg
 
 from keystrata.crypto.kek import write_new_kek
-from keystrata.crypto.pki import PkiDir
+from keystrata.crypto.pki import PkiDir, fingerprint_sha256
 from keystrata_client import LinkBlock, ModuleClient, OperatorClient, TlsIdentity
 
 PAIR = "pair-ab"
@@ -190,6 +190,7 @@ def start_nodes(folder: Path, pki: Pki, db_urls: dict[str, str]) -> dict[str, No
         )
         command = [sys.executable, "-m", "keystrata", "node", "init", "--config", str(config)]
         command += ["--operator-subject", OPERATOR, "--operator-id", OPERATOR]
+        command += ["--operator-cert", str(pki.dir / f"{OPERATOR}.crt")]
         init = subprocess.run(command, capture_output=True, text=True, timeout=120)  # noqa: S603
         if init.returncode != 0:
             raise RuntimeError(f"node init of {node_id} failed:\n{init.stdout}{init.stderr}")
@@ -218,6 +219,7 @@ def provision(
                         "principal_id": f"peer-{other}",
                         "role": "peer",
                         "cert_subject": other,
+                        "cert_sha256": fingerprint_sha256((pki.dir / f"{other}.crt").read_bytes()),
                         "node_id": other,
                     },
                 )

@@ -73,10 +73,20 @@ CLIENTS = {
     "sae-a2": "sae",
     "sae-b1": "sae",
     "sae-b2": "sae",
-    "peer-relay": "peer",
     "stranger": "operator",  # issued by our CA but never registered as a principal
 }
 NODES = ("relay-1", "station-a", "station-b", "station-c")
+#: Peers present node certificates (only those carry the node marker): ``peer-relay``,
+#: the peer caller of the API tests, is relay-1's node certificate under another name.
+PEER_ALIASES = {"peer-relay": "relay-1"}
+
+
+def cert_pin(folder: Path, name: str) -> str:
+    """The ``cert_sha256`` pin of certificate ``name`` in a PKI folder (hex SHA-256 of its
+    DER, as RFC 5280 certificates are fingerprinted: common practice)."""
+    from keystrata.crypto.pki import fingerprint_sha256
+
+    return fingerprint_sha256((folder / f"{name}.crt").read_bytes())
 
 
 @pytest.fixture(scope="session")
@@ -88,6 +98,9 @@ def pki(tmp_path_factory: pytest.TempPathFactory) -> PkiFiles:
         ours.issue_node(node, ["127.0.0.1", "localhost"])
     for name, role in CLIENTS.items():
         ours.issue_client(name, role)
+    for alias, node in PEER_ALIASES.items():
+        for suffix in (".crt", ".key"):
+            shutil.copy(ours.path / f"{node}{suffix}", ours.path / f"{alias}{suffix}")
     foreign = PkiDir(base / "foreign")
     foreign.init("Some Other CA")
     foreign.issue_client("ops-ada", "operator")  # same subject, wrong CA
@@ -411,8 +424,14 @@ def seed_registry(ctx: NodeContext) -> None:
             LinkSpec(link_id=link, relay_id="relay-1", station_id=station),
             actor="test",
         )
+    pki_dir = ctx.settings.tls.cert.parent  # the test PKI's folder
     principals: list[dict[str, Any]] = [
-        {"principal_id": "ops-ada", "role": "operator", "cert_subject": "ops-ada"},
+        {
+            "principal_id": "ops-ada",
+            "role": "operator",
+            "cert_subject": "ops-ada",
+            "cert_sha256": cert_pin(pki_dir, "ops-ada"),
+        },
         {"principal_id": "aud-ben", "role": "auditor", "cert_subject": "aud-ben"},
         {"principal_id": "mon-cal", "role": "monitor", "cert_subject": "mon-cal"},
         {
@@ -436,7 +455,8 @@ def seed_registry(ctx: NodeContext) -> None:
         {
             "principal_id": "peer-relay",
             "role": "peer",
-            "cert_subject": "peer-relay",
+            "cert_subject": "relay-1",
+            "cert_sha256": cert_pin(pki_dir, "relay-1"),
             "node_id": "relay-1",
         },
     ]

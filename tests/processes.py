@@ -16,7 +16,7 @@ from typing import Any
 
 import httpx
 
-from conftest import PkiFiles, write_config
+from conftest import PkiFiles, cert_pin, write_config
 
 KEYSTRATA = [sys.executable, "-m", "keystrata"]
 
@@ -125,6 +125,8 @@ def prepare_node(
         operator,
         "--operator-id",
         operator,
+        "--operator-cert",
+        str(pki.cert(operator)),
     )
     return NodeProcess(node_id=node_id, config=config, port=port, log=folder / f"{node_id}.log")
 
@@ -214,6 +216,7 @@ def start_network(
                             "principal_id": f"peer-{other}",
                             "role": "peer",
                             "cert_subject": other,
+                            "cert_sha256": cert_pin(pki.dir, other),
                             "node_id": other,
                         },
                     )

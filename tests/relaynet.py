@@ -15,7 +15,7 @@ from typing import Any
 
 from sqlalchemy import select
 
-from conftest import Node, NodeFactory
+from conftest import Node, NodeFactory, cert_pin
 from keystrata.domain.blocks import BlockIn
 from keystrata.domain.registry import (
     Kind,
@@ -119,7 +119,7 @@ class RelayNet:
         row = self.segments(station)[segment_id]
         assert row.sealed is not None
         ctx = self.nodes[station].ctx
-        key = ctx.keyring.open(row.sealed, segment_context(segment_id, row.used))
+        key = ctx.keyring.open(row.sealed, segment_context(row, row.used))
         return hashlib.sha256(key).hexdigest()
 
 
@@ -171,6 +171,7 @@ def provision(node: Node, policy: dict[str, Any] | None = None) -> None:
                         "principal_id": f"peer-{peer}",
                         "role": "peer",
                         "cert_subject": peer,
+                        "cert_sha256": cert_pin(ctx.settings.tls.cert.parent, peer),
                         "node_id": peer,
                     }
                 ),
@@ -264,7 +265,12 @@ def provision_saes(net: RelayNet) -> None:
                 node.ctx,
                 Kind.PRINCIPALS,
                 PrincipalSpec.model_validate(
-                    {"principal_id": pid, "role": role, "cert_subject": pid}
+                    {
+                        "principal_id": pid,
+                        "role": role,
+                        "cert_subject": pid,
+                        "cert_sha256": cert_pin(node.ctx.settings.tls.cert.parent, pid),
+                    }
                 ),
                 actor="test",
             )

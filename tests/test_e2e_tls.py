@@ -117,6 +117,54 @@ def test_module_pushes_binary_blocks_and_operator_sees_the_pool(station_process,
     assert pool["bits_available"] == 8 * 2048 * 8
 
 
+def _s_client(url: str, pki: PkiFiles, *args: str) -> subprocess.CompletedProcess[str]:
+    """openssl s_client (an outside TLS client) with the operator's certificate, so the
+    protocol version or cipher suite is the only thing that can be refused."""
+    port = url.rsplit(":", 1)[1]
+    cert = ["-cert", str(pki.cert("ops-ada")), "-key", str(pki.key("ops-ada"))]
+    return subprocess.run(
+        [
+            "openssl",
+            "s_client",
+            "-connect",
+            f"127.0.0.1:{port}",
+            "-CAfile",
+            str(pki.ca),
+            *cert,
+            *args,
+        ],
+        input="",
+        capture_output=True,
+        text=True,
+        timeout=30,
+        check=False,
+    )
+
+
+# The TLS layer is the same whatever the database: SQLite only.
+@pytest.mark.parametrize("station_process", ["sqlite"], indirect=True)
+@pytest.mark.skipif(shutil.which("openssl") is None, reason="openssl is not installed")
+def test_tls_policy_refuses_old_protocols_and_non_aead_suites(station_process, pki) -> None:
+    url = station_process.url
+    # Control: TLS 1.2 with ECDHE-ECDSA and AES-GCM (RFC 5289) completes.
+    good = _s_client(url, pki, "-tls1_2", "-cipher", "ECDHE-ECDSA-AES128-GCM-SHA256")
+    assert good.returncode == 0, good.stdout + good.stderr
+    assert "ECDHE-ECDSA-AES128-GCM-SHA256" in good.stdout
+    chacha = _s_client(url, pki, "-tls1_2", "-cipher", "ECDHE-ECDSA-CHACHA20-POLY1305")
+    assert chacha.returncode == 0, chacha.stdout + chacha.stderr
+    # TLS 1.2 with CBC suites (RFC 5289's SHA-2 CBC suites and RFC 4492's SHA-1 ones):
+    # refused, though OpenSSL's defaults (and uvicorn's) would take them.
+    for cbc in ("ECDHE-ECDSA-AES128-SHA256", "ECDHE-ECDSA-AES256-SHA"):
+        refused = _s_client(url, pki, "-tls1_2", "-cipher", cbc)
+        assert refused.returncode != 0, cbc
+        assert "Cipher is (NONE)" in refused.stdout, cbc
+    # TLS 1.1 (RFC 8996 deprecates it): refused even by a client willing to offer it
+    # (security level 0 lifts OpenSSL 3's own client-side ban).
+    old = _s_client(url, pki, "-tls1_1", "-cipher", "DEFAULT:@SECLEVEL=0")
+    assert old.returncode != 0
+    assert "Cipher is (NONE)" in old.stdout  # s_client's summary: nothing was agreed
+
+
 @pytest.mark.skipif(shutil.which("curl") is None, reason="curl is not installed")
 def test_curl_with_the_operator_certificate(station_process, pki) -> None:
     out = subprocess.run(

@@ -25,7 +25,7 @@ from prometheus_client.parser import text_string_to_metric_families
 from sqlalchemy import func, select, update
 
 import relaynet
-from conftest import _pg_admin
+from conftest import _pg_admin, cert_pin
 from helpers import snapshot
 from keystrata import __version__
 from keystrata.crypto.hazmat import Keyring
@@ -127,7 +127,12 @@ def _add_operator(node: Any) -> None:
         node.ctx,
         Kind.PRINCIPALS,
         PrincipalSpec.model_validate(
-            {"principal_id": "ops-ada", "role": "operator", "cert_subject": "ops-ada"}
+            {
+                "principal_id": "ops-ada",
+                "role": "operator",
+                "cert_subject": "ops-ada",
+                "cert_sha256": cert_pin(node.ctx.settings.tls.cert.parent, "ops-ada"),
+            }
         ),
         actor="test",
     )

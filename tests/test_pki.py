@@ -15,6 +15,7 @@ import os
 import ssl
 import stat
 import subprocess
+import uuid
 from collections.abc import Iterator
 from datetime import UTC, datetime, timedelta, timezone
 from pathlib import Path
@@ -37,6 +38,8 @@ ECDSA_WITH_SHA256 = "1.2.840.10045.4.3.2"
 # RFC 5280 section 4.2.1.12 (from memory): id-kp-serverAuth, id-kp-clientAuth
 SERVER_AUTH = "1.3.6.1.5.5.7.3.1"
 CLIENT_AUTH = "1.3.6.1.5.5.7.3.2"
+# Ours: 2.25 + the UUID of keystrata.crypto.pki.NODE_MARKER_UUID (checked below).
+NODE_MARKER = "2.25.38127369015564861991866485585501522055"
 
 
 @pytest.fixture(scope="module")
@@ -168,12 +171,23 @@ def test_key_usage(ca: IssuedCert, node: IssuedCert, client: IssuedCert) -> None
 
 def test_extended_key_usage(ca: IssuedCert, node: IssuedCert, client: IssuedCert) -> None:
     # RFC 5280 4.2.1.12: a node is a TLS server and also a client of its peers.
-    assert _eku(node) == [SERVER_AUTH, CLIENT_AUTH]
+    # Our own purpose beside them: the node marker.
+    assert _eku(node) == [SERVER_AUTH, CLIENT_AUTH, NODE_MARKER]
     assert not _ext(node, x509.ExtendedKeyUsage).critical
-    # RFC 5280 4.2.1.12: callers authenticate as TLS clients only.
+    # RFC 5280 4.2.1.12: callers authenticate as TLS clients only, never with the marker.
     assert _eku(client) == [CLIENT_AUTH]
+    assert pki.carries_node_marker(_cert(node)) and not pki.carries_node_marker(_cert(client))
     with pytest.raises(x509.ExtensionNotFound):
         _ext(ca, x509.ExtendedKeyUsage)
+
+
+def test_node_marker_is_the_uuid_under_the_2_25_arc() -> None:
+    # ITU-T X.667 section 6.3 (also RFC 4122 / RFC 9562; from memory): the OID of a UUID
+    # is "2.25." followed by its 128 bits read as one unsigned decimal integer.
+    u = uuid.UUID(pki.NODE_MARKER_UUID)
+    assert u.version == 4 and u.variant == uuid.RFC_4122  # a random UUID
+    assert pki.NODE_MARKER.dotted_string == f"2.25.{int.from_bytes(u.bytes, 'big')}"
+    assert pki.NODE_MARKER.dotted_string == NODE_MARKER
 
 
 def test_subject_alternative_name(node: IssuedCert, client: IssuedCert) -> None:
@@ -243,11 +257,18 @@ def test_subject_and_issuer_names(ca: IssuedCert, node: IssuedCert, client: Issu
     assert _cert(client).subject.rfc4514_string() == "OU=sae,CN=sae-a1"
 
 
-@pytest.mark.parametrize("role", ["sae", "operator", "auditor", "peer", "qkd-module"])
+@pytest.mark.parametrize("role", ["sae", "operator", "auditor", "qkd-module", "monitor"])
 def test_every_role_can_be_issued(ca: IssuedCert, role: str) -> None:
     cert = _cert(pki.issue_client_cert(ca, f"caller-{role}", role, now=NOW))
     [unit] = cert.subject.get_attributes_for_oid(x509.NameOID.ORGANIZATIONAL_UNIT_NAME)
     assert unit.value == role
+    assert not pki.carries_node_marker(cert)
+
+
+def test_no_client_certificate_for_peers(ca: IssuedCert) -> None:
+    # Peers speak with node certificates, the only ones with the node marker.
+    with pytest.raises(InvalidInput, match="node certificates"):
+        pki.issue_client_cert(ca, "caller", "peer", now=NOW)
 
 
 @pytest.mark.parametrize("role", ["admin", "SAE", "", "node"])

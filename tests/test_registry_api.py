@@ -150,7 +150,7 @@ BAD: list[tuple[str, str, Any, int, str]] = [
     (
         "POST",
         "principals",
-        {"principal_id": "p", "role": "operator", "cert_subject": "p", "station_id": "station-a"},
+        {"principal_id": "p", "role": "auditor", "cert_subject": "p", "station_id": "station-a"},
         400,
         "only for role sae",
     ),

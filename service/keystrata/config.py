@@ -19,6 +19,7 @@ Example ``node.toml``::
     ca = "pki/ca.crt"
     cert = "pki/station-a.crt"
     key = "pki/station-a.key"
+    crl = "pki/crl.pem"         # optional: the CA's revocation list, re-read when it changes
 
     [database]
     url = "sqlite:///data/station-a.db"   # or postgresql://user@host/db
@@ -87,6 +88,10 @@ class TlsSection(_Section):
     ca: Path
     cert: Path
     key: Path
+    #: The CA's revocation list (``keystrata pki revoke`` writes it). When set, every
+    #: handshake and every request checks the client certificate against it, and a new
+    #: file is picked up without a restart.
+    crl: Path | None = None
 
 
 class DatabaseSection(_Section):
@@ -208,7 +213,10 @@ def _env_overrides(env: Mapping[str, str]) -> dict[str, dict[str, str]]:
 
 
 def _resolve_paths(raw: dict[str, Any], base: Path) -> None:
-    for section, keys in (("tls", ("ca", "cert", "key")), ("kek", ("file", "previous_file"))):
+    for section, keys in (
+        ("tls", ("ca", "cert", "key", "crl")),
+        ("kek", ("file", "previous_file")),
+    ):
         sect = raw.get(section)
         if not isinstance(sect, dict):
             continue

@@ -5,6 +5,8 @@ from __future__ import annotations
 import logging
 import os
 import ssl
+from collections.abc import Callable
+from datetime import UTC, datetime
 
 import uvicorn
 from fastapi import FastAPI
@@ -12,7 +14,10 @@ from fastapi import FastAPI
 from keystrata.api.app import create_app
 from keystrata.api.tls import ClientCertHttpToolsProtocol
 from keystrata.config import CONFIG_ENV, Settings, load_settings
-from keystrata.errors import ConfigError
+from keystrata.crypto import tls
+from keystrata.crypto.pki import load_certificate
+from keystrata.crypto.revocation import read_crl
+from keystrata.errors import ConfigError, InvalidInput
 from keystrata.services.node import open_node
 from keystrata.storage.db import Database
 
@@ -39,15 +44,43 @@ def app_factory() -> FastAPI:
     return build_app(load_settings(os.environ[CONFIG_ENV]))
 
 
+def ssl_context_factory(config: object, default: Callable[[], ssl.SSLContext]) -> ssl.SSLContext:
+    """uvicorn's hook, run in each worker process: our server context, not uvicorn's
+    (TLS policy, CRL checked at each handshake and reloaded when the file changes)."""
+    return tls.server_context(load_settings(os.environ[CONFIG_ENV]).tls)
+
+
+def _check_crl(settings: Settings) -> None:
+    crl = settings.tls.crl
+    if crl is None:
+        return
+    try:
+        parsed = read_crl(crl.read_bytes(), load_certificate(settings.tls.ca.read_bytes()))
+    except InvalidInput as exc:
+        raise ConfigError(f"setting tls.crl: {crl}: {exc.message}") from exc
+    next_update = parsed.next_update_utc
+    if next_update is not None and next_update <= datetime.now(UTC):
+        raise ConfigError(
+            f"setting tls.crl: {crl} passed its next update ({next_update.isoformat()}); "
+            "issue a fresh one with `keystrata pki crl`, or every handshake would fail"
+        )
+
+
 def serve(settings: Settings, config_path: str) -> None:
     """Check the node once in this process, then serve until interrupted."""
     for path, what in (
         (settings.tls.cert, "certificate"),
         (settings.tls.key, "private key"),
         (settings.tls.ca, "CA certificate"),
+        (settings.tls.crl, "revocation list"),
     ):
-        if not path.is_file():
+        if path is not None and not path.is_file():
             raise ConfigError(f"setting tls: {what} file {path} does not exist")
+    _check_crl(settings)
+    try:
+        tls.server_context(settings.tls)
+    except (OSError, ssl.SSLError, InvalidInput) as exc:
+        raise ConfigError(f"setting tls: the server's TLS context cannot be built: {exc}") from exc
     build_app(settings)  # refuse to start here, with a clear message, not in each worker
     os.environ[CONFIG_ENV] = config_path
     uvicorn.run(
@@ -61,6 +94,7 @@ def serve(settings: Settings, config_path: str) -> None:
         ssl_keyfile=str(settings.tls.key),
         ssl_ca_certs=str(settings.tls.ca),
         ssl_cert_reqs=ssl.CERT_REQUIRED,
+        ssl_context_factory=ssl_context_factory,
         log_level="info",
         proxy_headers=False,
         server_header=False,

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from functools import lru_cache
+from pathlib import Path
 from typing import Any
 from urllib.parse import unquote
 
@@ -19,8 +20,10 @@ from cryptography.hazmat.primitives import hashes
 from cryptography.x509.oid import NameOID
 from fastapi import Request
 
+from keystrata.crypto.pki import carries_node_marker
+from keystrata.crypto.revocation import CrlWatch
 from keystrata.domain.registry import PrincipalRole
-from keystrata.errors import Forbidden, Unauthenticated
+from keystrata.errors import Forbidden, InvalidInput, Unauthenticated
 from keystrata.services import principals
 from keystrata.services.context import NodeContext
 from keystrata.services.principals import Caller
@@ -58,6 +61,22 @@ def _verify_from_proxy(cert: x509.Certificate, ca: x509.Certificate, now: Any) -
     except (ValueError, TypeError, InvalidSignature):
         return False
     return bool(cert.not_valid_before_utc <= now <= cert.not_valid_after_utc)
+
+
+def _revoked(ctx: NodeContext, cert: x509.Certificate) -> str | None:
+    """The refusal reason if ``[tls] crl`` lists the certificate (or cannot be read)."""
+    tls = ctx.settings.tls
+    if tls.crl is None:
+        return None
+    try:
+        return "certificate_revoked" if _crl_watch(tls.crl, tls.ca).revoked(cert) else None
+    except (OSError, InvalidInput):
+        return "revocation_list_unreadable"  # fail closed
+
+
+@lru_cache(maxsize=8)
+def _crl_watch(crl: Path, ca: Path) -> CrlWatch:
+    return CrlWatch(crl, ca)
 
 
 def admit(*roles: PrincipalRole, hide_role: bool = False) -> Callable[[Request], Caller]:
@@ -105,7 +124,34 @@ def admit(*roles: PrincipalRole, hide_role: bool = False) -> Callable[[Request],
                 path=path,
             )
             raise Unauthenticated()
+        revoked = _revoked(ctx, cert)
+        if revoked is not None:
+            principals.record_refusal(
+                ctx,
+                reason=revoked,
+                subject=subject,
+                principal_id=None,
+                method=method,
+                route=route,
+                path=path,
+            )
+            raise Unauthenticated()
         caller = principals.resolve(ctx, subject, sha256)
+        if caller is not None and (caller.role is PrincipalRole.PEER) != carries_node_marker(cert):
+            # Only a node certificate (with the node marker) speaks as a peer, and a node
+            # certificate is nothing else: a stolen node key never becomes an operator.
+            principals.record_refusal(
+                ctx,
+                reason="peer_needs_node_certificate"
+                if caller.role is PrincipalRole.PEER
+                else "node_certificate_not_a_peer",
+                subject=subject,
+                principal_id=caller.principal_id,
+                method=method,
+                route=route,
+                path=path,
+            )
+            raise Unauthenticated()
         if caller is None:
             principals.record_refusal(
                 ctx,

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import click
@@ -9,8 +10,9 @@ import click
 from keystrata.cli.common import config_option, console, handled, settings_from
 from keystrata.config import Settings
 from keystrata.crypto.kek import read_kek, write_new_kek
+from keystrata.crypto.pki import fingerprint_sha256, subject_common_name
 from keystrata.domain.registry import Kind, PrincipalRole, PrincipalSpec
-from keystrata.errors import AlreadyExists
+from keystrata.errors import AlreadyExists, InvalidInput
 from keystrata.services import kek as kek_service
 from keystrata.services import registry
 from keystrata.services.node import initialise, load_keyring, open_node
@@ -33,12 +35,29 @@ def node() -> None:
 @config_option
 @click.option("--operator-subject", help="certificate subject (CN) of a first operator")
 @click.option("--operator-id", default="operator-1", show_default=True)
-def node_init(config_path: Path, operator_subject: str | None, operator_id: str) -> None:
+@click.option(
+    "--operator-cert",
+    type=click.Path(exists=True, dir_okay=False, path_type=Path),
+    help="the first operator's certificate file: its SHA-256 becomes the pin",
+)
+@click.option(
+    "--operator-sha256",
+    help="or the pin itself: hex SHA-256 of the operator's certificate (DER)",
+)
+def node_init(
+    config_path: Path,
+    operator_subject: str | None,
+    operator_id: str,
+    operator_cert: Path | None,
+    operator_sha256: str | None,
+) -> None:
     """Create the database schema and this node's secrets; optionally add an operator.
 
-    Safe to run again: an initialised node is only checked.
+    An operator is pinned to its certificate: give --operator-cert or --operator-sha256
+    with --operator-subject. Safe to run again: an initialised node is only checked.
     """
     with handled():
+        pin = _operator_pin(operator_subject, operator_cert, operator_sha256)
         settings = settings_from(config_path)
         db = _db(settings)
         created = initialise(settings, db, load_keyring(settings))
@@ -56,6 +75,7 @@ def node_init(config_path: Path, operator_subject: str | None, operator_id: str)
                         principal_id=operator_id,
                         role=PrincipalRole.OPERATOR,
                         cert_subject=operator_subject,
+                        cert_sha256=pin,
                         description="first operator",
                     ),
                     actor="local-admin",
@@ -63,6 +83,31 @@ def node_init(config_path: Path, operator_subject: str | None, operator_id: str)
                 console.print(f"operator {operator_id} ({operator_subject}) added")
             except AlreadyExists:
                 console.print(f"operator {operator_id} already present")
+
+
+def _operator_pin(subject: str | None, cert: Path | None, sha256: str | None) -> str | None:
+    """The pin of the first operator, checked against the subject when a file is given.
+
+    Raises click.UsageError for a missing or doubled pin, InvalidInput for a file that is
+    not a certificate or names another subject.
+    """
+    if subject is None:
+        if cert is not None or sha256 is not None:
+            raise click.UsageError("--operator-cert/--operator-sha256 need --operator-subject")
+        return None
+    if (cert is None) == (sha256 is None):
+        raise click.UsageError(
+            "--operator-subject needs exactly one of --operator-cert FILE or --operator-sha256"
+        )
+    if sha256 is not None:
+        if not re.fullmatch(r"[0-9a-f]{64}", sha256.lower()):
+            raise click.UsageError("--operator-sha256 takes 64 hexadecimal digits")
+        return sha256.lower()
+    assert cert is not None
+    data = cert.read_bytes()
+    if subject_common_name(data) != subject:
+        raise InvalidInput(f"{cert} is not a certificate of {subject!r} (its CN differs)")
+    return fingerprint_sha256(data)
 
 
 @click.command("serve")

@@ -1,4 +1,5 @@
-"""``keystrata pki``: create the network's CA and issue node and client certificates.
+"""``keystrata pki``: create the network's CA, issue node and client certificates, and
+revoke certificates (a CRL signed by the CA, ``crl.pem`` in the PKI folder).
 
 A thin layer over :mod:`keystrata.crypto.pki`: it parses options, calls one function and
 prints what was written. Errors of the service become :class:`click.ClickException`, so
@@ -18,7 +19,15 @@ from cryptography import x509
 from cryptography.hazmat.primitives import hashes
 from cryptography.x509.oid import ExtendedKeyUsageOID
 
-from keystrata.crypto.pki import ROLES, PkiDir, WrittenFiles, fingerprint_sha256, load_certificate
+from keystrata.crypto import revocation
+from keystrata.crypto.pki import (
+    CLIENT_ROLES,
+    NODE_MARKER,
+    PkiDir,
+    WrittenFiles,
+    fingerprint_sha256,
+    load_certificate,
+)
 from keystrata.errors import KeystrataError
 
 DEFAULT_CA_NAME = "Example Network CA"
@@ -33,6 +42,7 @@ _SAN_KINDS: dict[type[x509.GeneralName], str] = {
 _EKU_NAMES = {
     ExtendedKeyUsageOID.SERVER_AUTH: "serverAuth",
     ExtendedKeyUsageOID.CLIENT_AUTH: "clientAuth",
+    NODE_MARKER: "keystrata node marker",
 }
 
 _dir_option = click.option(
@@ -98,7 +108,7 @@ def issue_node_cmd(directory: Path, node_id: str, hosts: tuple[str, ...], force:
 @pki.command("issue-client")
 @_dir_option
 @click.option("--name", required=True, help="Common name of the caller; also the file name.")
-@click.option("--role", required=True, help=f"One of: {', '.join(ROLES)}.")
+@click.option("--role", required=True, help=f"One of: {', '.join(CLIENT_ROLES)}.")
 @_force_option
 def issue_client_cmd(directory: Path, name: str, role: str, force: bool) -> None:
     """Issue a client certificate for a role; writes NAME.crt and NAME.key."""
@@ -107,6 +117,82 @@ def issue_client_cmd(directory: Path, name: str, role: str, force: bool) -> None
     with _errors():
         written = PkiDir(directory).issue_client(name, role, force=force)
     _echo_written(written)
+
+
+_days_option = click.option(
+    "--next-update-days",
+    default=revocation.DEFAULT_NEXT_UPDATE_DAYS,
+    show_default=True,
+    help="Days until the CRL's next update; nodes refuse every client after it.",
+)
+
+
+@pki.command("revoke")
+@_dir_option
+@click.option(
+    "--cert",
+    "cert_file",
+    type=click.Path(exists=True, dir_okay=False, path_type=Path),
+    help="The certificate to revoke.",
+)
+@click.option("--serial", help="Or its serial number, hex (as `pki show` prints it).")
+@click.option(
+    "--reason",
+    default="unspecified",
+    show_default=True,
+    help=f"One of: {', '.join(revocation.REASONS)}.",
+)
+@_days_option
+def revoke_cmd(
+    directory: Path,
+    cert_file: Path | None,
+    serial: str | None,
+    reason: str,
+    next_update_days: int,
+) -> None:
+    """Revoke a certificate: add it to the CA's CRL and write DIR/crl.pem anew.
+
+    Nodes with [tls] crl pointing at a copy of crl.pem refuse it from their next
+    handshake on, without a restart.
+    """
+    with _errors():
+        number: int | None = None
+        if serial is not None:
+            try:
+                number = int(serial.replace(":", ""), 16)
+            except ValueError:
+                raise click.BadParameter("a hexadecimal serial", param_hint="--serial") from None
+        written = revocation.revoke(
+            PkiDir(directory),
+            cert=cert_file.read_bytes() if cert_file else None,
+            serial=number,
+            reason=reason,
+            next_update_days=next_update_days,
+        )
+    if not written.added:
+        click.echo("that certificate was revoked already; its entry is kept")
+    _echo_crl(written)
+
+
+@pki.command("crl")
+@_dir_option
+@_days_option
+def crl_cmd(directory: Path, next_update_days: int) -> None:
+    """Issue the CRL again with the same entries (new number and next update).
+
+    Run it before the next update passes (cron, a systemd timer) and copy crl.pem to
+    the nodes.
+    """
+    with _errors():
+        written = revocation.refresh(PkiDir(directory), next_update_days=next_update_days)
+    _echo_crl(written)
+
+
+def _echo_crl(written: revocation.CrlWritten) -> None:
+    click.echo(
+        f"wrote {written.path} (CRL number {written.number}, {written.revoked} revoked, "
+        f"next update {written.next_update.isoformat()})"
+    )
 
 
 @pki.command("show")

@@ -10,9 +10,12 @@ section 3.2), X.509 v3 profiles from RFC 5280:
   critical (4.2.1.3); ``subjectKeyIdentifier`` (4.2.1.2).
 * node: CN is the node ID, OU ``node``; ``subjectAltName`` (4.2.1.6) with a dNSName per
   host name and an iPAddress per IP literal; ``extKeyUsage`` serverAuth and clientAuth
-  (4.2.1.12), because nodes serve their API and also call their peers.
+  (4.2.1.12), because nodes serve their API and also call their peers, and the node
+  marker :data:`NODE_MARKER` (below): only a certificate with it may act as a peer, and
+  a certificate with it may act as nothing else.
 * client: CN is the caller's name, OU its role (``sae``, ``operator``, ``auditor``,
-  ``peer``, ``qkd-module``); ``extKeyUsage`` clientAuth only.
+  ``qkd-module``, ``monitor``); ``extKeyUsage`` clientAuth only, never the node marker.
+  There is no client certificate for role ``peer``: peers present node certificates.
 * end-entity certificates: cA=FALSE critical, keyUsage digitalSignature critical (enough
   for ECDHE-ECDSA TLS), subject and authority key identifiers (4.2.1.2, 4.2.1.1).
 
@@ -50,7 +53,16 @@ from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
 from keystrata.errors import AlreadyExists, InvalidInput
 
 ROLES: tuple[str, ...] = ("sae", "operator", "auditor", "peer", "qkd-module", "monitor")
+#: Roles a client certificate may carry: every role but ``peer`` (nodes speak as peers
+#: with their node certificates, which carry the node marker).
+CLIENT_ROLES: tuple[str, ...] = tuple(r for r in ROLES if r != "peer")
 NODE_OU = "node"
+#: Extended key usage that marks a node certificate. It is an OID of our own, minted
+#: from a random UUID (1caf106d-5d72-4532-a0ba-c813df0c8887) under the 2.25 arc: ITU-T
+#: X.667 section 6.3 (also RFC 4122 / RFC 9562) lets anyone form "2.25." followed by the
+#: UUID read as one unsigned integer, without registering it.
+NODE_MARKER_UUID = "1caf106d-5d72-4532-a0ba-c813df0c8887"
+NODE_MARKER = x509.ObjectIdentifier("2.25.38127369015564861991866485585501522055")
 CLOCK_SKEW = timedelta(minutes=5)
 CA_VALID_DAYS = 3650
 # 825 days is the longest lifetime browsers accepted for TLS server certificates from
@@ -117,7 +129,7 @@ def issue_node_cert(
         raise InvalidInput("a node certificate needs at least one host name or IP address")
     # dict.fromkeys drops repeats (after case folding) while keeping the caller's order.
     san = x509.SubjectAlternativeName(list(dict.fromkeys(_general_name(h) for h in hosts)))
-    ekus = [ExtendedKeyUsageOID.SERVER_AUTH, ExtendedKeyUsageOID.CLIENT_AUTH]
+    ekus = [ExtendedKeyUsageOID.SERVER_AUTH, ExtendedKeyUsageOID.CLIENT_AUTH, NODE_MARKER]
     return _issue_leaf(ca, _name(node_id, NODE_OU), ekus, san, valid_days, now)
 
 
@@ -131,13 +143,18 @@ def issue_client_cert(
 ) -> IssuedCert:
     """Return a new TLS client certificate and key; the subject's OU carries the role.
 
-    Raises InvalidInput for an unknown role, a bad name, bad validity, a lifetime that
-    would outlast the CA, or a bad CA.
+    Raises InvalidInput for an unknown role or ``peer`` (peers use node certificates),
+    a bad name, bad validity, a lifetime that would outlast the CA, or a bad CA.
     """
-    if role not in ROLES:
+    if role == "peer":
         raise InvalidInput(
-            f"unknown role {role!r}; expected one of {', '.join(ROLES)}",
-            details=[{"field": "role", "allowed": list(ROLES)}],
+            "peers present node certificates (issue-node), never client certificates",
+            details=[{"field": "role", "allowed": list(CLIENT_ROLES)}],
+        )
+    if role not in CLIENT_ROLES:
+        raise InvalidInput(
+            f"unknown role {role!r}; expected one of {', '.join(CLIENT_ROLES)}",
+            details=[{"field": "role", "allowed": list(CLIENT_ROLES)}],
         )
     ekus = [ExtendedKeyUsageOID.CLIENT_AUTH]
     return _issue_leaf(ca, _name(common_name, role), ekus, None, valid_days, now)
@@ -195,6 +212,15 @@ def subject_common_name(cert_pem_or_der: bytes) -> str:
     if len(attrs) != 1:
         raise InvalidInput("the certificate subject must carry exactly one common name")
     return str(attrs[0].value)
+
+
+def carries_node_marker(cert: x509.Certificate) -> bool:
+    """Return whether ``cert`` carries the node marker in its extended key usage."""
+    try:
+        usages = cert.extensions.get_extension_for_class(x509.ExtendedKeyUsage).value
+    except x509.ExtensionNotFound:
+        return False
+    return NODE_MARKER in usages
 
 
 def fingerprint_sha256(cert_pem: bytes) -> str:

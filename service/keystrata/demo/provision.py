@@ -6,6 +6,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
+from keystrata.crypto.pki import fingerprint_sha256
 from keystrata.demo import scenario
 from keystrata.demo.workdir import DemoNode
 from keystrata_client import ApiError, OperatorClient, TlsIdentity
@@ -28,7 +29,7 @@ def _create(client: OperatorClient, kind: str, body: dict[str, Any]) -> None:
             raise
 
 
-def _facts_for(node_id: str) -> list[tuple[str, dict[str, Any]]]:
+def _facts_for(node_id: str, pki: Path) -> list[tuple[str, dict[str, Any]]]:
     """The registry entries node ``node_id`` needs, in an order that satisfies references."""
     relay = node_id == scenario.RELAY
     stations = (
@@ -106,7 +107,14 @@ def _facts_for(node_id: str) -> list[tuple[str, dict[str, Any]]]:
     facts += [
         (
             "principals",
-            {"principal_id": f"peer-{p}", "role": "peer", "cert_subject": p, "node_id": p},
+            {
+                "principal_id": f"peer-{p}",
+                "role": "peer",
+                "cert_subject": p,
+                # Peers are pinned to their node certificates.
+                "cert_sha256": fingerprint_sha256((pki / f"{p}.crt").read_bytes()),
+                "node_id": p,
+            },
         )
         for p in peers
     ]
@@ -128,7 +136,7 @@ def provision(workdir: Path, nodes: list[DemoNode]) -> int:
     sent = 0
     for node in nodes:
         with OperatorClient(node.url, identity) as client:
-            for kind, body in _facts_for(node.node_id):
+            for kind, body in _facts_for(node.node_id, workdir / "pki"):
                 _create(client, kind, body)
                 sent += 1
     return sent

@@ -11,7 +11,7 @@ from typing import Any
 
 from keystrata.config import load_settings
 from keystrata.crypto.kek import write_new_kek
-from keystrata.crypto.pki import PkiDir
+from keystrata.crypto.pki import PkiDir, fingerprint_sha256
 from keystrata.demo import scenario
 from keystrata.services.node import initialise, load_keyring
 from keystrata.storage.db import Database
@@ -122,6 +122,9 @@ def init_databases(nodes: list[DemoNode]) -> None:
                     principal_id=scenario.OPERATOR,
                     role=PrincipalRole.OPERATOR,
                     cert_subject=scenario.OPERATOR,
+                    cert_sha256=fingerprint_sha256(
+                        (settings.tls.cert.parent / f"{scenario.OPERATOR}.crt").read_bytes()
+                    ),
                     description="Ida Varga, network operator",
                 ),
                 actor="local-admin",

@@ -12,6 +12,7 @@ from typing import Annotated, Any, ClassVar, Self
 
 from pydantic import BaseModel, ConfigDict, Field, StringConstraints, model_validator
 
+from keystrata.errors import InvalidInput
 from keystrata.ids import ID_PATTERN
 
 Ident = Annotated[str, StringConstraints(strict=True, pattern=ID_PATTERN)]
@@ -149,6 +150,32 @@ class PairChange(_Input):
     policy: dict[str, Any] = {}
 
 
+#: Roles whose principals must pin their certificate (``cert_sha256``): a peer speaks for
+#: a whole node and an operator changes the registry, so a second certificate with the
+#: same common name (a CA mistake, a stolen CA key) must not be enough.
+PINNED_ROLES = frozenset({PrincipalRole.PEER, PrincipalRole.OPERATOR})
+
+
+def _pin_needed(role: PrincipalRole) -> str:
+    return (
+        f"a principal with role {role.value} needs cert_sha256, the SHA-256 fingerprint of "
+        "its certificate (`keystrata pki show FILE` prints it)"
+    )
+
+
+def check_pin_kept(role: str, change: PrincipalChange) -> None:
+    """Refuse a change that would clear the pin of a peer or operator.
+
+    Raises InvalidInput (400).
+    """
+    principal_role = PrincipalRole(role)
+    cleared = "cert_sha256" in change.model_fields_set and change.cert_sha256 is None
+    if principal_role in PINNED_ROLES and cleared:
+        raise InvalidInput(
+            _pin_needed(principal_role), details=[{"field": "cert_sha256", "problem": "required"}]
+        )
+
+
 class PrincipalSpec(_Input):
     principal_id: Ident
     role: PrincipalRoleIn
@@ -161,6 +188,8 @@ class PrincipalSpec(_Input):
 
     @model_validator(mode="after")
     def _binding_matches_role(self) -> Self:
+        if self.role in PINNED_ROLES and self.cert_sha256 is None:
+            raise ValueError(_pin_needed(self.role))
         wanted = {
             PrincipalRole.SAE: "station_id",
             PrincipalRole.QKD_MODULE: "link_id",

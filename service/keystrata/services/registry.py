@@ -26,6 +26,7 @@ from keystrata.domain.registry import (
     PrincipalChange,
     PrincipalRole,
     PrincipalSpec,
+    check_pin_kept,
 )
 from keystrata.errors import AlreadyExists, Conflict, InvalidInput, NotFound
 from keystrata.services import ledger
@@ -270,6 +271,8 @@ def change(ctx: NodeContext, kind: Kind, key: str, change: Change, *, actor: str
                     ],
                 ) from None
             given = {f: v for f, v in policy.model_dump().items() if v != current[f]}
+        if isinstance(change, PrincipalChange):
+            check_pin_kept(row.role, change)
         if isinstance(change, PrincipalChange) and "cert_subject" in given:
             _subject_free(s, given["cert_subject"], key)
         if not given:

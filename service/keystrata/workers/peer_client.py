@@ -1,32 +1,55 @@
-"""HTTPS client a node uses to reach its peers, with its own certificate (mutual TLS)."""
+"""HTTPS client a node uses to reach its peers, with its own certificate (mutual TLS).
+
+Each peer gets a connection pool of its own whose TLS context expects that peer: the
+certificate must chain to the network CA, match the URL's host, carry the node marker
+and name the ``[[peers]]`` entry's node ID (:func:`keystrata.crypto.tls.peer_context`).
+A peer that fails the check is :class:`PeerUnavailable`; nothing is sent to it.
+"""
 
 from __future__ import annotations
 
-import ssl
+import logging
 from typing import Any
 
 import httpx
 
 from keystrata.config import Settings
+from keystrata.crypto.tls import PeerIdentityError, peer_context
+
+log = logging.getLogger("keystrata.peer_client")
 
 
 class PeerUnavailable(Exception):
     """The peer did not answer (connection, TLS or timeout)."""
 
 
+def _identity_error(exc: BaseException) -> PeerIdentityError | None:
+    """The identity refusal under an httpx error (httpx and httpcore each wrap it)."""
+    seen: BaseException | None = exc
+    for _ in range(8):
+        if seen is None or isinstance(seen, PeerIdentityError):
+            return seen
+        seen = seen.__cause__ or seen.__context__
+    return None
+
+
 class PeerClient:
     """Talks to the peers listed in the node's ``[[peers]]`` settings."""
 
     def __init__(self, settings: Settings, *, transport: httpx.BaseTransport | None = None):
-        ctx = ssl.create_default_context(cafile=str(settings.tls.ca))
-        ctx.load_cert_chain(str(settings.tls.cert), str(settings.tls.key))
         self.urls = {p.id: p.url.rstrip("/") for p in settings.peers}
-        self._client = httpx.Client(
-            verify=ctx, timeout=settings.outbox.timeout_seconds, transport=transport
-        )
+        self._clients = {
+            node_id: httpx.Client(
+                verify=peer_context(settings.tls, node_id),
+                timeout=settings.outbox.timeout_seconds,
+                transport=transport,
+            )
+            for node_id in self.urls
+        }
 
     def close(self) -> None:
-        self._client.close()
+        for client in self._clients.values():
+            client.close()
 
     def _url(self, node_id: str, path: str) -> str:
         base = self.urls.get(node_id)
@@ -34,12 +57,24 @@ class PeerClient:
             raise PeerUnavailable(f"no [[peers]] entry for node {node_id}")
         return base + path
 
+    def _send(self, method: str, node_id: str, path: str, **kw: Any) -> httpx.Response:
+        """One request to a peer. Raises PeerUnavailable (also for a wrong identity)."""
+        url = self._url(node_id, path)
+        try:
+            return self._clients[node_id].request(method, url, **kw)
+        except httpx.HTTPError as exc:
+            wrong = _identity_error(exc)
+            if wrong is not None:
+                # Not the node this entry names: a wrong URL, or someone else answering.
+                log.warning(
+                    "peer %s at %s refused: %s; nothing sent", node_id, self.urls[node_id], wrong
+                )
+                raise PeerUnavailable(f"{node_id}: not the node of that [[peers]] entry") from exc
+            raise PeerUnavailable(f"{node_id}: {type(exc).__name__}") from exc
+
     def post_message(self, node_id: str, body: dict[str, Any]) -> tuple[int, dict[str, Any]]:
         """POST a message; return (status, answer object)."""
-        try:
-            r = self._client.post(self._url(node_id, "/api/v1/peer/messages"), json=body)
-        except httpx.HTTPError as exc:
-            raise PeerUnavailable(f"{node_id}: {type(exc).__name__}") from exc
+        r = self._send("POST", node_id, "/api/v1/peer/messages", json=body)
         try:
             answer = r.json()
         except ValueError:
@@ -60,12 +95,7 @@ class PeerClient:
         Raises:
             PeerUnavailable: the peer did not answer.
         """
-        try:
-            r = self._client.post(
-                self._url(node_id, "/api/v1/peer/messages/batch"), json={"messages": bodies}
-            )
-        except httpx.HTTPError as exc:
-            raise PeerUnavailable(f"{node_id}: {type(exc).__name__}") from exc
+        r = self._send("POST", node_id, "/api/v1/peer/messages/batch", json={"messages": bodies})
         if r.status_code in (404, 405):
             return self._one_by_one(node_id, bodies)
         try:
@@ -113,8 +143,8 @@ class PeerClient:
     def pair_buffer(self, node_id: str, pair_id: str) -> dict[str, Any] | None:
         """A station's buffer report for a pair, or None when it cannot be had now."""
         try:
-            r = self._client.get(self._url(node_id, f"/api/v1/peer/pairs/{pair_id}/buffer"))
-        except (httpx.HTTPError, PeerUnavailable):
+            r = self._send("GET", node_id, f"/api/v1/peer/pairs/{pair_id}/buffer")
+        except PeerUnavailable:
             return None
         if r.status_code != 200:
             return None
@@ -128,10 +158,31 @@ class PeerClient:
         if node_id not in self.urls:
             return []
         try:
-            r = self._client.get(self._url(node_id, "/api/v1/peer/allocations"))
+            r = self._send("GET", node_id, "/api/v1/peer/allocations")
             messages = r.json().get("messages", []) if r.status_code == 200 else None
-        except (httpx.HTTPError, ValueError, AttributeError):
+        except (PeerUnavailable, ValueError, AttributeError):
             return None
         if not isinstance(messages, list):
             return None
         return [m for m in messages if isinstance(m, dict)]
+
+    def pair_progress(
+        self, node_id: str, pair_id: str, after: str | None, timeout: float
+    ) -> dict[str, Any] | None:
+        """One page of a partner station's consumption points for a pair (restore
+        detection), or None when it cannot be asked or does not answer 200 now."""
+        if node_id not in self.urls:
+            return None
+        params = {} if after is None else {"after": after}
+        try:
+            r = self._send(
+                "GET",
+                node_id,
+                f"/api/v1/peer/pairs/{pair_id}/progress",
+                params=params,
+                timeout=timeout,
+            )
+            answer = r.json() if r.status_code == 200 else None
+        except (PeerUnavailable, ValueError):
+            return None
+        return answer if isinstance(answer, dict) else None

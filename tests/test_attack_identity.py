@@ -1,0 +1,312 @@
+"""Attacks on identity, written from the attacker's side (issue 11, problem 6).
+
+* a holder of a revoked operator certificate: refused at the TLS handshake, and also
+  when the certificate is revoked while the node runs (the node reloads the CRL);
+* a client certificate registered as a peer principal (a stolen SAE certificate plus a
+  careless registry entry): it cannot post peer messages, because only node
+  certificates carry the node marker;
+* a stolen node certificate registered as an operator: refused, a node certificate can
+  act only as a peer;
+* a node that answers at another node's URL with its own valid certificate: our peer
+  client refuses to send it anything;
+* an operator who creates a peer or operator principal without a certificate pin:
+  refused at creation.
+
+Each scenario failed on the code before these checks existed (see the issue's note).
+TLS is real where TLS is the subject: `keystrata serve` processes on loopback and a
+real TLS server standing in for a peer (tests/peerstub.py).
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import shutil
+import ssl
+import time
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pytest
+
+from conftest import PkiFiles, write_config
+from helpers import ledger_events, snapshot
+from keystrata.crypto.pki import PkiDir, fingerprint_sha256
+from peerstub import PeerStub
+from processes import NodeProcess, prepare_node, run_cli
+
+# ---------------------------------------------------------------- a PKI of the module's own
+
+#: Operators of the revocation tests: ada stays valid, eve is revoked before the node
+#: starts, mallory while it runs.
+OPERATORS = ("ops-ada", "ops-eve", "ops-mallory")
+
+
+@pytest.fixture(scope="module")
+def own_pki(tmp_path_factory: pytest.TempPathFactory) -> PkiFiles:
+    """A PKI of this module only: revoking here never touches the session's PKI."""
+    folder = PkiDir(tmp_path_factory.mktemp("revoking-pki") / "ca")
+    folder.init("Revocation Test CA")
+    folder.issue_node("station-a", ["127.0.0.1", "localhost"])
+    for name in OPERATORS:
+        folder.issue_client(name, "operator")
+    return PkiFiles(dir=folder.path, foreign_dir=folder.path)
+
+
+def _handshake(url: str, pki: PkiFiles, name: str) -> int | None:
+    """Status of GET /api/v1/node as ``name``, or None when TLS refused the client."""
+    ctx = ssl.create_default_context(cafile=str(pki.ca))
+    ctx.load_cert_chain(str(pki.cert(name)), str(pki.key(name)))
+    try:
+        return httpx.get(url + "/api/v1/node", verify=ctx, timeout=5).status_code
+    except (httpx.ConnectError, httpx.ReadError, httpx.RemoteProtocolError):
+        # TLS 1.3: the server's refusal of the client certificate comes after the
+        # client's side of the handshake ended, so httpx sees the connection drop.
+        return None
+
+
+@pytest.fixture(scope="module")
+def revoking_node(
+    own_pki: PkiFiles, tmp_path_factory: pytest.TempPathFactory, sqlite_template: Path
+) -> Iterator[NodeProcess]:
+    """station-a with ``[tls] crl``, ops-eve revoked before it starts, the other two
+    operators registered (pinned) and valid."""
+    folder = tmp_path_factory.mktemp("revoking-node")
+    db = folder / "station-a.db"
+    shutil.copy(sqlite_template, db)
+    run_cli("pki", "revoke", "--dir", str(own_pki.dir), "--cert", str(own_pki.cert("ops-eve")))
+    node = prepare_node(folder, own_pki, "station-a", "station", f"sqlite:///{db}")
+    text = node.config.read_text()
+    key_line = f'key = "{own_pki.key("station-a")}"\n'
+    # A relative path, taken from the config file's folder like the other tls paths.
+    crl = os.path.relpath(own_pki.dir / "crl.pem", node.config.parent)
+    node.config.write_text(text.replace(key_line, key_line + f'crl = "{crl}"\n', 1))
+    node.start(own_pki)
+    try:
+        from keystrata_client import OperatorClient, TlsIdentity
+
+        ops = TlsIdentity(ca=own_pki.ca, cert=own_pki.cert("ops-ada"), key=own_pki.key("ops-ada"))
+        with OperatorClient(node.url, ops) as client:
+            for name in ("ops-eve", "ops-mallory"):
+                client.create(
+                    "principals",
+                    {
+                        "principal_id": name,
+                        "role": "operator",
+                        "cert_subject": name,
+                        "cert_sha256": fingerprint_sha256(own_pki.cert(name).read_bytes()),
+                    },
+                )
+        yield node
+    finally:
+        node.stop()
+
+
+@pytest.mark.e2e
+def test_revoked_operator_certificate_is_refused_at_the_handshake(
+    revoking_node: NodeProcess, own_pki: PkiFiles
+) -> None:
+    # Attacker: holds ops-eve's key and certificate, revoked before the node started;
+    # the principal is still registered (nobody retired it), so only the CRL stops it.
+    assert _handshake(revoking_node.url, own_pki, "ops-ada") == 200  # control
+    assert _handshake(revoking_node.url, own_pki, "ops-eve") is None
+
+
+@pytest.mark.e2e
+def test_certificate_revoked_while_the_node_runs_is_refused_without_restart(
+    revoking_node: NodeProcess, own_pki: PkiFiles
+) -> None:
+    assert _handshake(revoking_node.url, own_pki, "ops-mallory") == 200
+    pid = revoking_node.proc.pid if revoking_node.proc else None
+    run_cli("pki", "revoke", "--dir", str(own_pki.dir), "--cert", str(own_pki.cert("ops-mallory")))
+    # The next handshake already sees the new CRL: the node checks the file's identity
+    # (inode, size, modification time) at each handshake. A short wait covers file
+    # systems with coarse modification times.
+    deadline = time.monotonic() + 5
+    while _handshake(revoking_node.url, own_pki, "ops-mallory") is not None:
+        assert time.monotonic() < deadline, "the node still accepts a revoked certificate"
+        time.sleep(0.2)
+    assert revoking_node.proc is not None and revoking_node.proc.pid == pid  # no restart
+    assert _handshake(revoking_node.url, own_pki, "ops-ada") == 200
+
+
+# ---------------------------------------------------------------- markers (ASGI, both backends)
+
+
+def test_client_certificate_registered_as_peer_cannot_post_peer_messages(
+    station, api, pki: PkiFiles
+) -> None:
+    # Attacker: holds SAE sae-b2's client certificate (no node marker) and got an
+    # operator to register it as the peer relay-2 (a registry mistake or social
+    # engineering). It tries to speak as a node.
+    ops = api(station)("ops-ada")
+    assert ops.post(
+        "/api/v1/registry/nodes", json={"node_id": "relay-2", "role": "relay"}
+    ).is_success
+    created = ops.post(
+        "/api/v1/registry/principals",
+        json={
+            "principal_id": "peer-relay-2",
+            "role": "peer",
+            "cert_subject": "sae-b2",
+            "node_id": "relay-2",
+            "cert_sha256": fingerprint_sha256(pki.cert("sae-b2").read_bytes()),
+        },
+    )
+    assert created.status_code == 201, created.text
+    before, events = snapshot(station.ctx), len(ledger_events(station.ctx))
+    attacker = api(station)("sae-b2")
+    message = {"kind": "segment.discarded", "v": 1, "pair_id": "pair-ac", "segment_id": "s-1"}
+    for path, body in (
+        ("/api/v1/peer/messages", message),
+        ("/api/v1/peer/messages/batch", {"messages": [message]}),
+    ):
+        answer = attacker.post(path, json=body)
+        assert answer.status_code == 401, (path, answer.status_code, answer.text)
+        assert answer.json() == {"message": "unauthorized"}
+    assert attacker.get("/api/v1/peer/pairs/pair-ac/buffer").status_code == 401
+    after = ledger_events(station.ctx)
+    assert "auth.refused" in after[events:]  # recorded
+    assert _without_ledger(snapshot(station.ctx)) == _without_ledger(before)  # no change
+
+
+def _without_ledger(tables: dict[str, Any]) -> dict[str, Any]:
+    return {name: rows for name, rows in tables.items() if not name.startswith("ledger")}
+
+
+def test_node_certificate_cannot_act_as_an_operator(station, api, pki: PkiFiles) -> None:
+    # Attacker: stole station-b's node key and certificate (a node's disk) and an operator
+    # principal was registered for that subject, pinned to that very certificate.
+    ops = api(station)("ops-ada")
+    created = ops.post(
+        "/api/v1/registry/principals",
+        json={
+            "principal_id": "ops-node",
+            "role": "operator",
+            "cert_subject": "station-b",
+            "cert_sha256": fingerprint_sha256(pki.cert("station-b").read_bytes()),
+        },
+    )
+    assert created.status_code == 201, created.text
+    events = len(ledger_events(station.ctx))
+    attacker = api(station)("station-b")
+    assert attacker.get("/api/v1/registry/nodes").status_code == 401
+    answer = attacker.post(
+        "/api/v1/registry/principals",
+        json={
+            "principal_id": "ops-mine",
+            "role": "operator",
+            "cert_subject": "mine",
+            "cert_sha256": "0" * 64,
+        },
+    )
+    assert answer.status_code == 401
+    assert ops.get("/api/v1/registry/principals/ops-mine").status_code == 404
+    assert "auth.refused" in ledger_events(station.ctx)[events:]
+
+
+@pytest.mark.parametrize("role", ["peer", "operator"])
+def test_peer_or_operator_principal_without_a_pin_is_refused(station, api, role: str) -> None:
+    # Attacker's aim: a principal that any certificate with the right CN can use (a CA
+    # that issues one more certificate with that name is enough).
+    ops = api(station)("ops-ada")
+    body = {"principal_id": "unpinned", "role": role, "cert_subject": "unpinned"}
+    if role == "peer":
+        body["node_id"] = "station-b"
+    before = snapshot(station.ctx)
+    answer = ops.post("/api/v1/registry/principals", json=body)
+    assert answer.status_code == 400, answer.text
+    assert "cert_sha256" in answer.json()["message"]
+    assert snapshot(station.ctx) == before  # nothing written, not even a ledger entry
+    # Nor can an existing pinned one lose its pin.
+    answer = ops.patch("/api/v1/registry/principals/ops-ada", json={"cert_sha256": None})
+    assert answer.status_code == 400, answer.text
+    assert "cert_sha256" in answer.json()["message"]
+    assert snapshot(station.ctx) == before
+
+
+# ---------------------------------------------------------------- the peer client
+
+
+def _relay_settings(folder: Path, pki: PkiFiles, peers: dict[str, str]):
+    from keystrata.config import load_settings
+
+    extra = "".join(f'\n[[peers]]\nid = "{p}"\nurl = "{u}"\n' for p, u in peers.items())
+    path = write_config(
+        folder, node_id="relay-1", role="relay", db_url="sqlite:///unused.db", pki=pki, extra=extra
+    )
+    return load_settings(path, env={})
+
+
+def test_peer_client_pointed_at_another_nodes_url_refuses_to_send(
+    tmp_path: Path, pki: PkiFiles, caplog: pytest.LogCaptureFixture
+) -> None:
+    from keystrata.workers.peer_client import PeerClient, PeerUnavailable
+
+    # Attacker: station-b (a valid node of the network) answers at the URL the relay has
+    # for station-a (a DNS or routing change, or a wrong [[peers]] entry); it would read
+    # what the relay sends station-a.
+    impostor = PeerStub(pki, "station-b")
+    honest = PeerStub(pki, "station-b")
+    try:
+        settings = _relay_settings(
+            tmp_path, pki, {"station-a": impostor.url, "station-b": honest.url}
+        )
+        client = PeerClient(settings)
+        try:
+            message = {"kind": "test.seq", "seq": 0}
+            with caplog.at_level(logging.WARNING), pytest.raises(PeerUnavailable):
+                client.post_messages("station-a", [message])
+            with pytest.raises(PeerUnavailable):
+                client.post_message("station-a", message)
+            assert client.pending_allocations("station-a") is None
+            assert client.pair_buffer("station-a", "pair-ab") is None
+            assert impostor.record.requests == 0  # nothing reached the wrong node
+            assert any("station-a" in r.getMessage() for r in caplog.records)
+            # Control: the same client reaches station-b at station-b's URL.
+            assert client.post_messages("station-b", [message]) == [
+                (200, {"segment_id": None, "status": "applied"})
+            ]
+            assert honest.record.requests == 1
+        finally:
+            client.close()
+    finally:
+        impostor.close()
+        honest.close()
+
+
+def test_revoked_certificate_is_refused_by_the_identity_check_too(
+    station, pki: PkiFiles, tmp_path: Path
+) -> None:
+    # Attacker: reaches the app past our TLS layer (proxy mode, or a TLS session that
+    # began before the revocation) with aud-ben's revoked certificate.
+    import dataclasses
+
+    from anyio.from_thread import start_blocking_portal
+
+    from keystrata.api.app import create_app
+    from keystrata.crypto.revocation import revoke
+
+    copy = PkiDir(tmp_path / "pki")  # the session's CA, in a folder of this test
+    shutil.copytree(pki.dir, copy.path)
+    revoke(copy, cert=pki.cert("aud-ben").read_bytes())
+    settings = station.ctx.settings
+    with_crl = settings.model_copy(
+        update={"tls": settings.tls.model_copy(update={"crl": copy.path / "crl.pem"})}
+    )
+    app = create_app(dataclasses.replace(station.ctx, settings=with_crl))
+
+    async def call(name: str) -> int:
+        from conftest import _WithClientCert
+
+        transport = httpx.ASGITransport(app=_WithClientCert(app, pki.pem(name)))
+        async with httpx.AsyncClient(transport=transport, base_url="https://t") as client:
+            return (await client.get("/api/v1/node")).status_code
+
+    events = len(ledger_events(station.ctx))
+    with start_blocking_portal() as portal:
+        assert portal.call(call, "ops-ada") == 200
+        assert portal.call(call, "aud-ben") == 401
+    assert "auth.refused" in ledger_events(station.ctx)[events:]
