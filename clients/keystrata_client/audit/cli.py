@@ -169,7 +169,8 @@ def render(report: Report, folder: Path) -> str:
     "--public-key",
     metavar="B64_OR_FILE",
     help="The node's Ed25519 public key, obtained out of band: Base64 of the raw 32 "
-    "bytes, or a file holding that, the raw bytes or a PEM public key.",
+    "bytes, or a file holding that, the raw bytes or a PEM public key. Overrides the key "
+    "pinned in the state folder and, when the export verifies, replaces it.",
 )
 @click.option(
     "--earlier",
