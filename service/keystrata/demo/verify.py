@@ -75,7 +75,7 @@ def _station_segments(config: Path) -> dict[str, tuple[str, str, int, bytes | No
             for row in s.execute(select(PairSegment)).scalars():
                 key = None
                 if row.sealed is not None:
-                    key = ctx.keyring.open(row.sealed, segment_context(row.segment_id, row.used))
+                    key = ctx.keyring.open(row.sealed, segment_context(row, row.used))
                 out[row.segment_id] = (row.pair_id, row.state, row.used, key)
         return out
     finally:

@@ -148,23 +148,24 @@ def apply_allocated_in(ctx: NodeContext, s: Session, sender: str, msg: pm.KeyAll
             continue
         key = _carve_named(ctx, s, pair_id, sender, rec.ranges)
         live = rec.expires_at > now
-        s.add(
-            KeyAlloc(
-                key_id=key_id,
-                pair_id=pair_id,
-                owner=sender,
-                master_sae=rec.master,
-                slaves=json.dumps(rec.slaves),
-                fetched_by="[]",
-                ranges=json.dumps([r.model_dump() for r in rec.ranges]),
-                size_bits=rec.size_bits,
-                state="waiting" if live else "expired",
-                allocated_at=rec.allocated_at,
-                expires_at=rec.expires_at,
-                settled_at=None if live else now,
-                sealed=ctx.keyring.seal(key, key_context(key_id)) if live else None,
-            )
+        row = KeyAlloc(
+            key_id=key_id,
+            pair_id=pair_id,
+            owner=sender,
+            master_sae=rec.master,
+            slaves=json.dumps(rec.slaves),
+            fetched_by="[]",
+            ranges=json.dumps([r.model_dump() for r in rec.ranges]),
+            size_bits=rec.size_bits,
+            state="waiting" if live else "expired",
+            allocated_at=rec.allocated_at,
+            expires_at=rec.expires_at,
+            settled_at=None if live else now,
+            sealed=None,
         )
+        # Bound to the key's pair, owner, master, slaves and size (storage/sealed.py).
+        row.sealed = ctx.keyring.seal(key, key_context(row)) if live else None
+        s.add(row)
         applied.append(key_id)
         taken.append(rec)
     if applied:
@@ -207,7 +208,7 @@ def _carve_named(
         if r.offset < row.used or r.offset + r.length > row.length:
             raise InvalidInput("a key range names segment bytes already used")
         assert row.sealed is not None
-        rest = ctx.keyring.open(row.sealed, segment_context(row.segment_id, row.used))
+        rest = ctx.keyring.open(row.sealed, segment_context(row, row.used))
         out += rest[: r.length]
         _advance(ctx, row, r.length, rest[r.length :])
     return out
@@ -215,7 +216,7 @@ def _carve_named(
 
 def _advance(ctx: NodeContext, row: PairSegment, taken: int, rest: bytes) -> None:
     row.used += taken
-    row.sealed = ctx.keyring.seal(rest, segment_context(row.segment_id, row.used)) if rest else None
+    row.sealed = ctx.keyring.seal(rest, segment_context(row, row.used)) if rest else None
 
 
 def expire(ctx: NodeContext) -> int:

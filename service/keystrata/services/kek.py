@@ -95,7 +95,7 @@ def rotate(
         progress,
         model=PairSegment,
         key=PairSegment.segment_id,
-        context=lambda r: segment_context(r.segment_id, r.used),
+        context=lambda r: segment_context(r, r.used),
     )
     keys, done_keys = _reseal_all(
         db,
@@ -105,7 +105,7 @@ def rotate(
         progress,
         model=KeyAlloc,
         key=KeyAlloc.key_id,
-        context=lambda r: key_context(r.key_id),
+        context=key_context,
     )
     done_before += done_segments + done_keys
     segments += keys  # keys waiting for their slaves are pair key too

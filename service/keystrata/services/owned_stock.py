@@ -9,14 +9,29 @@ ready key can be large; a Get key costs the same whatever its size.
 
 from __future__ import annotations
 
+import logging
 from dataclasses import dataclass
 
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from keystrata.crypto.hazmat import Keyring
+from keystrata.errors import SealBroken, Unavailable
 from keystrata.storage.models import PairSegment
 from keystrata.storage.sealed import segment_context
+
+log = logging.getLogger("keystrata.delivery")
+
+
+class StoredKeyBroken(Unavailable):
+    """A segment's sealed key does not open in its row: its owner, pair or offset was
+    changed outside keystrata. Nothing is handed out; an operator must look."""
+
+    default_message = (
+        "stored pair key failed its integrity check; nothing was handed out "
+        "(an operator must look at this station's database)"
+    )
+
 
 #: Attempts to lock enough front segments when another worker process takes from the
 #: same front at the same time (PostgreSQL; SQLite has one writer).
@@ -130,13 +145,15 @@ class OwnedStock:
                 continue
             row = self.session.get(PairSegment, f.segment_id)
             assert row is not None and row.sealed is not None and row.used == f.start
-            rest = self.keyring.open(row.sealed, segment_context(f.segment_id, f.start))
+            try:
+                rest = self.keyring.open(row.sealed, segment_context(row, f.start))
+            except SealBroken:
+                log.error("segment %s does not open in its row: tampered", row.segment_id)
+                raise StoredKeyBroken() from None
             out[f.segment_id] = (f.start, rest[: f.taken])
             row.used = f.start + f.taken
             rest = rest[f.taken :]
-            row.sealed = (
-                self.keyring.seal(rest, segment_context(f.segment_id, row.used)) if rest else None
-            )
+            row.sealed = self.keyring.seal(rest, segment_context(row, row.used)) if rest else None
         return out
 
 

@@ -135,7 +135,6 @@ def _store(
     now = ctx.clock.now()
     segment_id = header.segment
     row = s.get(PairSegment, segment_id, with_for_update=True)
-    sealed = ctx.keyring.seal(key, segment_context(segment_id, 0))
     partner = _partner(pair, ctx.node_id)
     forged = row is not None and (row.pair_id != pair.pair_id or row.partner != partner)
     if row is None or forged:
@@ -147,7 +146,9 @@ def _store(
         row.pair_id, row.side, row.partner, row.owner = pair.pair_id, side, partner, header.owner
         row.length, row.used, row.epsilon = len(key), 0, header.epsilon
         row.state, row.reason, row.link_applied = "pending", None, True
-        row.made_at, row.received_at, row.settled_at, row.sealed = header.made_at, now, None, sealed
+        row.made_at, row.received_at, row.settled_at = header.made_at, now, None
+        # Sealed last: the context binds the fields just set (storage/sealed.py).
+        row.sealed = ctx.keyring.seal(key, segment_context(row, 0))
     else:  # the partner's discard reached us first: the link bytes are spent, no key kept
         row.link_applied, row.length, row.used, row.owner = True, len(key), len(key), header.owner
         row.epsilon = header.epsilon
@@ -254,7 +255,7 @@ def apply_ciphertext(ctx: NodeContext, sender: str, msg: pm.RelayCiphertext) -> 
 
 def _key_of(ctx: NodeContext, row: PairSegment) -> bytes:
     assert row.sealed is not None
-    return ctx.keyring.open(row.sealed, segment_context(row.segment_id, row.used))
+    return ctx.keyring.open(row.sealed, segment_context(row, row.used))
 
 
 def _partners_row(row: PairSegment, sender: str, pair_id: str, side: str) -> None:
