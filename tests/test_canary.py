@@ -32,7 +32,7 @@ from anyio.from_thread import start_blocking_portal
 from sqlalchemy import select
 
 import relaynet
-from conftest import AsgiClient, Node, NodeFactory, PkiFiles, _WithClientCert
+from conftest import AsgiClient, Node, NodeFactory, PkiFiles, _WithClientCert, cert_pin
 from helpers import snapshot
 from keystrata.api.app import create_app
 from keystrata.domain.blocks import BlockIn
@@ -204,7 +204,7 @@ def harness(make_node: NodeFactory, db_factory: Any, pki: PkiFiles) -> Iterator[
     net = relaynet.build(make_node, db_factory)
     relaynet.provision_saes(net)
     for pid, role, extra in (
-        ("ops-ada", "operator", {}),
+        ("ops-ada", "operator", {"cert_sha256": cert_pin(pki.dir, "ops-ada")}),
         ("mod-link-a", "qkd-module", {"link_id": "link-a"}),
     ):
         registry.create(
@@ -257,7 +257,7 @@ def pair_keys(node: Node) -> dict[str, bytes]:
         for row in s.execute(select(PairSegment)).scalars():
             if row.state == "ready" and row.sealed is not None:
                 out[row.segment_id] = node.ctx.keyring.open(
-                    row.sealed, segment_context(row.segment_id, row.used)
+                    row.sealed, segment_context(row, row.used)
                 )
     return out
 
@@ -506,3 +506,128 @@ def test_key_material_a_client_sends_is_not_echoed(harness: Harness) -> None:
         if h.scanner.find(entry)
     ]
     assert not found + ledger, "\n".join(found + ledger)
+
+
+# ---------------------------------------------------------------- refusal paths
+
+#: The link key a hostile or confused client puts into refused requests: in a path
+#: segment (URL-safe Base64, RFC 4648 section 5), the query (standard Base64, section 4,
+#: percent-encoded; and hex) and a header.
+LINK_KEY = pattern("canary:refused link key", 48)
+
+
+def _probe(key: bytes, template: str) -> tuple[str, dict[str, str]]:
+    """A path holding ``key`` in a segment and the query, and headers holding it."""
+    import urllib.parse
+
+    segment = base64.urlsafe_b64encode(key).decode().rstrip("=")
+    query = urllib.parse.urlencode({"key_ID": base64.b64encode(key).decode(), "x": key.hex()})
+    headers = {"x-key": base64.b64encode(key).decode(), "x-key-hex": key.hex()}
+    return template.format(segment) + "?" + query, headers
+
+
+#: (certificate, method, path template) refused for each reason: a subject no principal
+#: has, a role the route does not admit (403, and the ETSI routes' 401), a retired
+#: principal, an SAE of another station, and an SAE asking for a slave that does not exist.
+REFUSED: list[tuple[str, str, str, str]] = [
+    ("unknown subject", "stranger", "GET", "/api/v1/registry/nodes/{}"),
+    ("unknown subject", "stranger", "GET", "/api/v1/keys/{}/status"),
+    ("wrong role", "mon-cal", "GET", "/api/v1/registry/links/{}"),
+    ("wrong role", "mon-cal", "GET", "/api/v1/keys/{}/enc_keys"),
+    ("wrong role", "sae-a1", "GET", "/api/v1/links/{}/pool"),
+    ("retired principal", "aud-ben", "GET", "/api/v1/links/{}/pool"),
+    ("SAE of another station", "sae-b2", "GET", "/api/v1/keys/{}/status"),
+    ("SAE of another station", "sae-b2", "POST", "/api/v1/keys/{}/dec_keys"),
+    ("unknown slave", "sae-a1", "GET", "/api/v1/keys/{}/status"),
+    ("unknown slave", "sae-a1", "GET", "/api/v1/keys/{}/enc_keys"),
+]
+
+
+def test_refusals_of_every_kind_do_not_repeat_a_key_in_the_request(
+    station: Node, api: Any, caplog: pytest.LogCaptureFixture
+) -> None:
+    """Refused requests carrying a link key in path, query and headers: the key is in no
+    ledger entry, error body, log record (DEBUG, every logger) or metric."""
+    caplog.set_level(logging.DEBUG)
+    for name in ("keystrata", "sqlalchemy.engine"):
+        caplog.set_level(logging.DEBUG, logger=name)
+    ctx = station.ctx
+    # The canary is a real link key of this node (sealed at rest, as it must be).
+    block = BlockIn(str(uuid.uuid4()), LINK_KEY, 0.02, 1e-10, datetime.now(UTC))
+    ingest.ingest(ctx, "link-a", [block], actor="test-module", actor_link="link-a")
+    registry.create(
+        ctx,
+        Kind.PRINCIPALS,
+        PrincipalSpec.model_validate(
+            {"principal_id": "sae-c2", "role": "sae", "cert_subject": "sae-b2"}
+            | {"station_id": "station-c"}
+        ),
+        actor="test",
+    )
+    assert api(station)("ops-ada").delete("/api/v1/registry/principals/aud-ben").status_code == 200
+    scanner = Scanner()
+    scanner.add(LINK_KEY)
+    before = len(_ledger(station))
+    bodies: list[tuple[str, bytes]] = []
+    for why, cert, method, template in REFUSED:
+        path, headers = _probe(LINK_KEY, template)
+        body = {"key_IDs": [{"key_ID": str(uuid.uuid4())}]} if method == "POST" else None
+        r = api(station)(cert).request(method, path, headers=headers, json=body)
+        assert r.status_code in (401, 403), (why, cert, path, r.status_code, r.text)
+        bodies.append((f"{why}: {cert} {method} {template}", r.content))
+    new = _ledger(station)[before:]
+    events = [json.loads(e)["event"] for e in new]
+    assert events.count("auth.refused") >= 5 and events.count("key.refused") >= 3, events
+    metrics = api(station)("ops-ada").get("/api/v1/metrics")
+    assert metrics.status_code == 200
+    leaks = [f"error body of {req}" for req, body in bodies if scanner.find(body)]
+    leaks += [f"ledger entry {json.loads(e)['event']}" for e in new if scanner.find(e)]
+    leaks += ["metrics"] if scanner.find(metrics.content) else []
+    assert caplog.records, "nothing was logged"
+    # The test's own HTTP client (httpx, httpcore) logs the URL it sent: the caller's
+    # side, not the node's.
+    node_records = [r for r in caplog.records if not r.name.startswith(("httpx", "httpcore"))]
+    assert node_records, "the node logged nothing"
+    leaks += [f"log {r.name}" for r in node_records if scanner.find(r.getMessage())]
+    assert not leaks, "key material found:\n" + "\n".join(leaks)
+
+
+@pytest.mark.e2e
+def test_the_access_log_of_a_real_node_shows_route_templates(
+    tmp_path: Any, pki: PkiFiles, sqlite_template: Any
+) -> None:
+    """`keystrata serve` with uvicorn's access log at INFO: refused and accepted requests
+    whose path and query hold a link key. The process's output names each request by
+    its route template and status, and holds no trace of the key (attack test: uvicorn
+    printed every raw path and query)."""
+    import shutil
+    import ssl
+
+    from processes import prepare_node
+
+    shutil.copy(sqlite_template, tmp_path / "station-a.db")
+    url = f"sqlite:///{tmp_path / 'station-a.db'}"  # the access log is the same on both
+    node = prepare_node(tmp_path / "station-a", pki, "station-a", "station", url)
+    node.start(pki)
+    scanner = Scanner()
+    scanner.add(LINK_KEY)
+    answers = []
+    try:
+        for cert, template in [
+            ("stranger", "/api/v1/keys/{}/status"),  # refused: unknown subject
+            ("ops-ada", "/api/v1/registry/nodes/{}"),  # accepted, 404
+            ("ops-ada", "/api/v1/node/../node?{}"),  # accepted, 200 (query only)
+        ]:
+            tls = ssl.create_default_context(cafile=str(pki.ca))
+            tls.load_cert_chain(str(pki.cert(cert)), str(pki.key(cert)))
+            path, headers = _probe(LINK_KEY, template)
+            with httpx.Client(base_url=node.url, verify=tls, timeout=10) as client:
+                answers.append(client.get(path, headers=headers).status_code)
+    finally:
+        node.stop()
+    assert answers[:2] == [401, 404], answers
+    output = node.log.read_text()
+    assert '"GET /api/v1/keys/{slave_SAE_ID}/status HTTP/1.1" 401' in output, output
+    assert '"GET /api/v1/registry/nodes/{entry_id} HTTP/1.1" 404' in output, output
+    found = scanner.find(output)
+    assert not found, f"key material in the node's output ({found}):\n{output}"

@@ -102,6 +102,7 @@ _REF_FIELDS: dict[str, Ref] = {
     "slave": Ref.SAE,
     "slaves": Ref.SAE,
     "delivered_to": Ref.SAE,
+    "principal": Ref.SAE,  # auth.refused: the registered principal refused, if any
     "key_ids": Ref.KEY,
     "segment": Ref.SEGMENT,
     "segments": Ref.SEGMENT,

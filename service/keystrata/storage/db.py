@@ -51,6 +51,7 @@ def make_engine(url: str, *, sqlite_synchronous: str = "FULL", pool_size: int = 
             connect_args={"check_same_thread": False, "timeout": 30},
             pool_size=pool_size,
             max_overflow=pool_size,
+            hide_parameters=True,  # see below
         )
         _install_sqlite_hooks(engine, sqlite_synchronous)
         return engine
@@ -60,6 +61,10 @@ def make_engine(url: str, *, sqlite_synchronous: str = "FULL", pool_size: int = 
         max_overflow=pool_size,
         pool_pre_ping=True,
         connect_args={"connect_timeout": 5},
+        # Statement parameters stay out of SQLAlchemy's log lines and exception text:
+        # they hold what clients put in paths and queries (a key, by mistake or on
+        # purpose) and sealed values.
+        hide_parameters=True,
     )
 
 
