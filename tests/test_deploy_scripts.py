@@ -203,7 +203,10 @@ def test_health_check_over_mutual_tls(
         monkeypatch.setenv("KEYSTRATA_" + item.split("=")[0], item.split("=", 1)[1])
     config = DEPLOY / "compose" / "relay-vela.toml"
     ops, monitor, ca = make_secrets.OPERATOR, make_secrets.MONITOR, pki / "ca.crt"
-    run_cli(*f"node init --config {config} --operator-subject {ops} --operator-id {ops}".split())
+    run_cli(
+        *f"node init --config {config} --operator-subject {ops} --operator-id {ops}".split(),
+        *("--operator-cert", str(pki / f"{ops}.crt")),
+    )
     base = f"https://localhost:{port}"  # a name in the node certificate's SAN
     path = "/api/v1/health/ready"
     with open(tmp_path / "node.log", "wb") as log:
