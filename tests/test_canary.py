@@ -623,9 +623,18 @@ def test_the_access_log_of_a_real_node_shows_route_templates(
             path, headers = _probe(LINK_KEY, template)
             with httpx.Client(base_url=node.url, verify=tls, timeout=10) as client:
                 answers.append(client.get(path, headers=headers).status_code)
+                if cert == "stranger":  # five more: counted, not written one by one
+                    answers += [client.get(path).status_code for _ in range(5)]
     finally:
-        node.stop()
-    assert answers[:2] == [401, 404], answers
+        node.stop()  # SIGTERM: the app's shutdown writes the counted refusals
+    assert answers[:7] == [401] * 6 + [404], answers
+    import sqlite3
+
+    with sqlite3.connect(tmp_path / "station-a.db") as db:
+        rows = db.execute("SELECT entry FROM ledger_entry WHERE event = 'auth.refused'")
+        refused = [json.loads(bytes(r[0])) for r in rows]
+    status_route = [e for e in refused if e["route"] == "/api/v1/keys/{slave_SAE_ID}/status"]
+    assert len(status_route) == 2 and sum(e["count"] for e in status_route) == 6, refused
     output = node.log.read_text()
     assert '"GET /api/v1/keys/{slave_SAE_ID}/status HTTP/1.1" 401' in output, output
     assert '"GET /api/v1/registry/nodes/{entry_id} HTTP/1.1" 404' in output, output
