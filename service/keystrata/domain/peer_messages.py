@@ -96,12 +96,12 @@ def _b64(value: Any) -> bytes:
 Time = Annotated[
     datetime,
     BeforeValidator(_iso_time),
-    PlainSerializer(lambda t: t.isoformat(), return_type=str),
+    PlainSerializer(lambda t: t.isoformat(), return_type=str, when_used="json"),
 ]
 B64 = Annotated[
     bytes,
     BeforeValidator(_b64),
-    PlainSerializer(lambda b: base64.b64encode(b).decode(), return_type=str),
+    PlainSerializer(lambda b: base64.b64encode(b).decode(), return_type=str, when_used="json"),
 ]
 
 
