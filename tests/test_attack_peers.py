@@ -280,3 +280,23 @@ def test_one_station_reporting_an_empty_buffer_does_not_drain_its_partners_link(
     record_report(net.relay.ctx, lie)
     record_report(net.relay.ctx, honest)
     assert schedule_once(net.relay.ctx, None).made == []
+
+
+def test_a_programming_error_in_a_handler_is_not_a_400(net, api, monkeypatch):
+    """A bug surfaces as itself (the app's handler answers 500 and logs it,
+    ``api/errors.py``), never as a "malformed message" the sender would give up on."""
+    from keystrata.config import Role
+
+    def broken(ctx, sender, msg):
+        raise KeyError("a bug")
+
+    monkeypatch.setitem(messages.HANDLERS[Role.STATION], pm.RelayNotice, broken)
+    net.feed("station-a", 2)
+    net.feed("station-b", 2)
+    relay.make_segment(net.relay.ctx, relaynet.PAIR, 2048, cipher_station="station-b")
+    notice, _ = _notice_and_cipher(net)
+    with pytest.raises(KeyError):
+        messages.handle(net.a.ctx, "relay-1", notice.body)
+    # Through the route: the ASGI test transport re-raises what the app answered 500 to.
+    with pytest.raises(KeyError):
+        api(net.a)("relay-1").post("/api/v1/peer/messages", json=notice.body)
