@@ -12,6 +12,7 @@ on both backends.
 
 from __future__ import annotations
 
+import hashlib
 import os
 import random
 import signal
@@ -29,7 +30,7 @@ from keystrata.demo.verify import check_network
 from keystrata.services.node import open_node
 from keystrata.storage.db import Database
 from keystrata.storage.models import LinkBlock, PairSegment
-from keystrata.storage.sealed import block_context
+from keystrata.storage.sealed import block_context, segment_context
 from keystrata_client import LinkBlock as Block
 from keystrata_client import ModuleClient, OperatorClient, TlsIdentity
 from processes import NETWORK as NODES
@@ -131,6 +132,7 @@ def test_sigkill_during_relay_keeps_the_invariants(tmp_path, pki, db_factory) ->
     assert check.problems == []
     assert check.segments_ready_both > 0
     _both_ends_consumed_alike(configs)
+    _no_two_segments_share_bytes(configs)
     _relay_holds_no_pair_key(configs["relay-1"])
     assert len(killed) == KILLS
 
@@ -154,6 +156,30 @@ def _both_ends_consumed_alike(configs: dict[str, Path]) -> None:
                 node.db.dispose()
     finally:
         relay.db.dispose()
+
+
+def _no_two_segments_share_bytes(configs: dict[str, Path]) -> None:
+    """Pair key under two segment IDs would be served twice under two key IDs: the
+    SHA-256 digests (FIPS 180-4) of the bytes each station still holds are unique
+    across segments, and both stations hold the same bytes per segment."""
+    held: dict[str, dict[str, str]] = {}
+    for station in ("station-a", "station-b"):
+        node = _open(configs[station])
+        try:
+            with node.db.read() as s:
+                rows = s.execute(select(PairSegment).where(PairSegment.state == "ready"))
+                held[station] = {
+                    row.segment_id: hashlib.sha256(
+                        node.keyring.open(row.sealed, segment_context(row, row.used))
+                    ).hexdigest()
+                    for row in rows.scalars()
+                    if row.sealed is not None
+                }
+        finally:
+            node.db.dispose()
+        digests = list(held[station].values())
+        assert len(set(digests)) == len(digests), station
+    assert held["station-a"] == held["station-b"]
 
 
 def _relay_holds_no_pair_key(config: Path) -> None:

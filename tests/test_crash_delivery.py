@@ -297,6 +297,13 @@ def _ends_agree(seen: Seen) -> None:
     for key_id, (_, digest) in seen.slave.items():
         assert key_id in seen.master, key_id  # a slave only gets keys a master got
         assert seen.master[key_id][1] == digest, key_id  # byte-identical (SHA-256)
+    # No two key IDs carry the same bytes: digests unique across IDs, not only per ID
+    # (a station that lost commits would hand its bytes out again under a new key ID).
+    for side in (seen.master, seen.slave):
+        ids_of: dict[str, list[str]] = {}
+        for key_id, (_, digest) in side.items():
+            ids_of.setdefault(digest, []).append(key_id)
+        assert [ids for ids in ids_of.values() if len(ids) > 1] == []
 
 
 def _ledgers_account_for_every_key(seen: Seen, ledgers: dict[str, list[dict[str, Any]]]) -> None:

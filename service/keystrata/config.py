@@ -99,6 +99,12 @@ class DatabaseSection(_Section):
     #: SQLite ``synchronous`` pragma: FULL survives power loss, NORMAL only process crashes.
     sqlite_synchronous: Literal["FULL", "NORMAL"] = "FULL"
     pool_size: Annotated[int, Field(ge=1, le=200)] = 10
+    #: The node refuses to start when the database can lose a committed transaction on
+    #: power loss (SQLite synchronous below FULL; PostgreSQL synchronous_commit, fsync or
+    #: full_page_writes off): a Get key whose answer already left could be rolled back
+    #: and its bytes served again. True starts it anyway, with a WARNING at every start,
+    #: a marked readiness check and the ``keystrata_durability_override`` gauge.
+    accept_data_loss_on_power_failure: bool = False
 
     @field_validator("url")
     @classmethod
@@ -106,6 +112,15 @@ class DatabaseSection(_Section):
         if not v.startswith(("sqlite:", "sqlite+pysqlite:", "postgresql:", "postgresql+psycopg:")):
             raise ValueError("must start with sqlite:/// or postgresql://")
         return v
+
+
+class RestoreCheckSection(_Section):
+    """A station compares its pairs' consumption points with each partner's (restore
+    detection, services/progress.py): at start and every ``interval_seconds``."""
+
+    interval_seconds: Annotated[float, Field(gt=0, le=86_400)] = 30.0
+    #: Longest wait for a partner's answer (at start the node waits this long per pair).
+    peer_timeout_seconds: Annotated[float, Field(gt=0, le=60)] = 3.0
 
 
 class KekSection(_Section):
@@ -182,6 +197,7 @@ class Settings(_Section):
     segments: SegmentsSection = SegmentsSection()
     outbox: OutboxSection = OutboxSection()
     ledger: LedgerSection = LedgerSection()
+    restore_check: RestoreCheckSection = RestoreCheckSection()
     #: Folder of the TOML file; relative paths above were resolved against it.
     base_dir: Path = Path(".")
 

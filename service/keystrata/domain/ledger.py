@@ -44,6 +44,8 @@ class Event(StrEnum):
     KEY_REFUSED = "key.refused"
     KEK_ROTATION_STARTED = "kek.rotation_started"
     KEK_ROTATED = "kek.rotated"
+    PAIR_HELD = "pair.held"
+    PAIR_RELEASED = "pair.released"
 
 
 def timestamp(at: datetime) -> str:
@@ -110,6 +112,7 @@ _REF_FIELDS: dict[str, Ref] = {
     "sender": Ref.NODE,
     "notice_station": Ref.NODE,
     "cipher_station": Ref.NODE,
+    "partner": Ref.NODE,
 }
 #: Registry kinds whose IDs are searchable, by the kind of reference they are.
 _REGISTRY_REFS = {"pairs": Ref.PAIR, "principals": Ref.SAE, "nodes": Ref.NODE}

@@ -19,8 +19,9 @@ from sqlalchemy import func, select
 
 from keystrata import __version__
 from keystrata.config import Role
-from keystrata.services import accounting, buffers, checkpoints, pools
+from keystrata.services import accounting, buffers, checkpoints, pools, progress
 from keystrata.services.context import NodeContext
+from keystrata.storage.db import durability_risks
 from keystrata.storage.models import LedgerHead, OutboxMessage, RelayOp
 
 
@@ -47,7 +48,35 @@ def collect(ctx: NodeContext) -> list[Metric]:
         out += _station(ctx)
     out += _outbox(ctx)
     out += _ledger(ctx)
+    out += _safety(ctx)
     return out
+
+
+def _safety(ctx: NodeContext) -> list[Metric]:
+    """The durability override and the restore check's open findings."""
+    override = GaugeMetricFamily(
+        "keystrata_durability_override",
+        "1 when the node runs on database settings that can lose committed transactions "
+        "on power loss, accepted by [database] accept_data_loss_on_power_failure.",
+    )
+    unsafe = GaugeMetricFamily(
+        "keystrata_durability_unsafe_setting",
+        "1 per database setting in force that can lose commits on power loss.",
+        labels=["setting"],
+    )
+    risks = durability_risks(ctx.db.engine)
+    override.add_metric([], 1 if risks else 0)
+    for risk in risks:
+        unsafe.add_metric([risk.setting], 1)
+    held = GaugeMetricFamily(
+        "keystrata_pair_held",
+        "1 per open restore-check finding: behind=self (this station lost commits; the "
+        "pair serves no key here until an operator releases it) or partner.",
+        labels=["pair", "behind", "reason"],
+    )
+    for hold in progress.open_holds(ctx):
+        held.add_metric([hold.pair_id, hold.behind, hold.reason], 1)
+    return [override, unsafe, held]
 
 
 def _build_info(ctx: NodeContext) -> Metric:

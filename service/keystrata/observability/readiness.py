@@ -9,6 +9,16 @@
   grant or a lock held too long shows up the way it would for a real append. Waiting
   for the lock is bounded (SQLite ``busy_timeout``, PostgreSQL ``lock_timeout``).
 
+- ``durability`` (advisory): the database settings in force cannot lose a committed
+  transaction on power loss. With ``[database] accept_data_loss_on_power_failure`` the
+  node runs anyway and the check reads ``overridden: <settings>``; readiness stays 200,
+  because the operator chose it and a failing readiness would only make an orchestrator
+  restart the node into the same settings (or take every pair out of service). An unsafe
+  setting without the override (changed while the node runs) fails the check.
+- ``pairs`` (advisory): pairs held by the restore check (services/progress.py) are
+  named; readiness stays 200, since the node still serves its other pairs and a
+  restart does not resolve a hold (an operator does).
+
 Problems are reported in fixed words of our own, never with the database's error text.
 """
 
@@ -23,8 +33,10 @@ from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session
 
 from keystrata.errors import KeystrataError
+from keystrata.services import progress
 from keystrata.services.context import NodeContext
-from keystrata.services.node import check_kek
+from keystrata.services.node import check_kek, describe_risks
+from keystrata.storage.db import durability_risks
 from keystrata.storage.models import LedgerEntry, LedgerHead, NodeMeta
 
 log = logging.getLogger("keystrata.readiness")
@@ -36,6 +48,10 @@ OK = "ok"
 UNREACHABLE = "unreachable"
 NOT_CHECKED = "not checked: the database is unavailable"
 PROBE_EVENT = "readiness.probe"
+#: An advisory check that is not ``ok`` starts with one of these; readiness stays true.
+OVERRIDDEN = "overridden: "
+HELD = "held: "
+ADVISORY = ("durability", "pairs")
 
 
 class NotReady(Exception):
@@ -50,11 +66,17 @@ class Readiness:
 
     @property
     def ready(self) -> bool:
-        return all(v == OK for v in self.checks.values())
+        return not self.failing
 
     @property
     def failing(self) -> list[str]:
-        return [name for name, v in self.checks.items() if v != OK]
+        return [name for name, v in self.checks.items() if not _passes(name, v)]
+
+
+def _passes(name: str, value: str) -> bool:
+    if value == OK:
+        return True
+    return name in ADVISORY and value.startswith((OVERRIDDEN, HELD))
 
 
 def assess(ctx: NodeContext) -> Readiness:
@@ -71,9 +93,41 @@ def assess(ctx: NodeContext) -> Readiness:
             lambda: _ledger(ctx),
             f"the ledger cannot be written (refused, or locked for over {LOCK_WAIT_MS} ms)",
         )
+        checks["durability"] = _advise(
+            "durability", lambda: _durability(ctx), "the database settings cannot be read"
+        )
+        checks["pairs"] = _advise("pairs", lambda: _pairs(ctx), "pair holds cannot be read")
     else:
         checks["kek"] = checks["ledger"] = NOT_CHECKED
+        checks["durability"] = checks["pairs"] = NOT_CHECKED
     return Readiness(checks)
+
+
+def _advise(name: str, check: Callable[[], str], problem: str) -> str:
+    """Run an advisory check that returns ``ok`` or its marked value."""
+    out = [OK]
+
+    def run() -> None:
+        out[0] = check()
+
+    result = _run(name, run, problem)
+    return out[0] if result == OK else result
+
+
+def _durability(ctx: NodeContext) -> str:
+    risks = durability_risks(ctx.db.engine)
+    if not risks:
+        return OK
+    if ctx.settings.database.accept_data_loss_on_power_failure:
+        return OVERRIDDEN + describe_risks(risks)
+    raise NotReady("the database can lose committed transactions on power loss")
+
+
+def _pairs(ctx: NodeContext) -> str:
+    held = progress.open_holds(ctx)
+    if not held:
+        return OK
+    return HELD + ", ".join(f"{h.pair_id} ({h.behind} {h.reason})" for h in held)
 
 
 def _run(name: str, check: Callable[[], None], problem: str) -> str:

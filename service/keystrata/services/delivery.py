@@ -39,7 +39,7 @@ from keystrata.errors import (
     Unauthenticated,
     Unavailable,
 )
-from keystrata.services import ledger, outbox
+from keystrata.services import ledger, outbox, progress
 from keystrata.services.allocations import apply_allocated_in, segments_of
 from keystrata.services.context import NodeContext
 from keystrata.services.group_commit import GroupCommit
@@ -231,6 +231,7 @@ def get_keys(
         BadRequest: malformed request values (400).
         QuotaReached / NotEnoughKey: 503 with a clear message.
     """
+    progress.refuse_if_held(ctx, caller, slave_sae_id)  # restore check: 503 while held
     if len(request.additional_slave_SAE_IDs or ()) > MAX_SAE_ID_COUNT:
         raise BadRequest(f"at most {MAX_SAE_ID_COUNT} additional_slave_SAE_IDs (max_SAE_ID_count)")
     route = route_for_master(ctx, caller, slave_sae_id, request.additional_slave_SAE_IDs or ())
@@ -404,6 +405,7 @@ def get_keys_with_ids(
         AllocationNotHere: a key ID is unknown here while the master's station could not
             be asked, or named key this station cannot take yet (503, try again).
     """
+    progress.refuse_if_held(ctx, caller, master_sae_id)  # restore check: 503 while held
     ids = [str(uuid.UUID(k)) for k in key_ids]
     if len(set(ids)) != len(ids):
         raise BadRequest("the same key_ID is asked for more than once")

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import logging
+
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
@@ -11,15 +13,18 @@ from keystrata.config import Settings
 from keystrata.crypto.hazmat import Keyring, generate_signing_key, random_bytes
 from keystrata.crypto.kek import read_kek
 from keystrata.domain.ledger import Event
-from keystrata.errors import SealBroken, StartupRefused
+from keystrata.errors import ConfigError, SealBroken, StartupRefused
 from keystrata.services import ledger
 from keystrata.services.context import NodeContext
 from keystrata.storage import migrate
-from keystrata.storage.db import Database
+from keystrata.storage.db import Database, DurabilityRisk, durability_risks
 from keystrata.storage.models import NodeMeta, RegistryNode
 from keystrata.storage.sealed import meta_context
 
+log = logging.getLogger("keystrata.node")
+
 KEK_CHECK_PLAINTEXT = b"keystrata key-encryption-key check v1"
+OVERRIDE_SETTING = "accept_data_loss_on_power_failure"
 ROTATION_MARK = "kek_rotation_target"
 
 
@@ -107,13 +112,47 @@ def initialise(
     return True
 
 
+def describe_risks(risks: list[DurabilityRisk]) -> str:
+    """The risks in fixed words: setting names and the values in force."""
+    return ", ".join(f"{r.setting}={r.value}" for r in risks)
+
+
+def check_durability(settings: Settings, db: Database) -> list[DurabilityRisk]:
+    """Refuse a database that can lose committed transactions on power loss, unless
+    ``[database] accept_data_loss_on_power_failure`` says to start anyway (then log a
+    WARNING). Returns the risks accepted by the override (empty when durable).
+
+    Raises:
+        ConfigError: an unsafe setting is in force and the override is not set.
+    """
+    risks = durability_risks(db.engine)
+    if not risks:
+        return []
+    if not settings.database.accept_data_loss_on_power_failure:
+        fixes = "; ".join(f"{r.setting} is {r.value}: {r.fix}" for r in risks)
+        raise ConfigError(
+            f"setting database: the database can lose committed transactions on power "
+            f"loss ({fixes}); a lost Get key would hand the same key bytes out again. "
+            f"Fix the setting, or set [database] {OVERRIDE_SETTING} = true to start anyway"
+        )
+    log.warning(
+        "durability guard overridden by [database] %s: %s; a power loss can undo "
+        "committed key deliveries and serve their bytes again",
+        OVERRIDE_SETTING,
+        describe_risks(risks),
+    )
+    return risks
+
+
 def open_node(settings: Settings, db: Database, clock: Clock | None = None) -> NodeContext:
     """Run every start-up check and return the node's context.
 
     Raises:
         StartupRefused: KEK file unsafe or wrong, schema not at the current revision, a
             KEK rotation left unfinished, or the database belongs to another node.
+        ConfigError: the database is not durable on power loss and the override is unset.
     """
+    check_durability(settings, db)
     keyring = load_keyring(settings)
     current, head = migrate.current_revision(db.engine), migrate.head_revision(db.engine)
     if current != head:

@@ -18,6 +18,7 @@ from __future__ import annotations
 import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
+from dataclasses import dataclass
 from typing import Any
 
 from sqlalchemy import Engine, create_engine, event, exc
@@ -90,6 +91,64 @@ def _install_sqlite_hooks(engine: Engine, synchronous: str) -> None:
             conn.exec_driver_sql("BEGIN IMMEDIATE")
         else:
             conn.exec_driver_sql("BEGIN")
+
+
+#: SQLite ``PRAGMA synchronous`` answers a number: 0 OFF, 1 NORMAL, 2 FULL, 3 EXTRA
+#: (sqlite.org, "PRAGMA synchronous"). In WAL mode NORMAL survives a process crash but
+#: a power loss can roll back the last commits; FULL and EXTRA do not.
+_SQLITE_SYNC_NAMES = {0: "OFF", 1: "NORMAL", 2: "FULL", 3: "EXTRA"}
+
+
+@dataclass(frozen=True)
+class DurabilityRisk:
+    """A database setting in force that lets a power loss undo committed transactions."""
+
+    setting: str  # fixed words: sqlite_synchronous, synchronous_commit, fsync, full_page_writes
+    value: str
+    fix: str
+
+
+def durability_risks(engine: Engine) -> list[DurabilityRisk]:
+    """Read the settings in force on a new connection and return those that can lose a
+    committed transaction on power loss (empty when the database is durable).
+
+    PostgreSQL (postgresql.org, "Write Ahead Log" settings): ``fsync = off`` and
+    ``full_page_writes = off`` can lose or corrupt committed data on a crash of the
+    machine; ``synchronous_commit = off`` acknowledges commits before their WAL is on
+    disk. ``local``, ``remote_write``, ``on`` and ``remote_apply`` all flush locally.
+
+    Raises:
+        Unavailable: the database cannot be reached.
+    """
+    risks: list[DurabilityRisk] = []
+    with _translate_db_errors(), engine.connect() as conn:
+        if engine.dialect.name == "sqlite":
+            level = int(conn.exec_driver_sql("PRAGMA synchronous").scalar_one())
+            if level < 2:
+                risks.append(
+                    DurabilityRisk(
+                        "sqlite_synchronous",
+                        _SQLITE_SYNC_NAMES.get(level, str(level)),
+                        'set [database] sqlite_synchronous = "FULL"',
+                    )
+                )
+            return risks
+        for name, unsafe in (
+            ("synchronous_commit", "off"),
+            ("fsync", "off"),
+            ("full_page_writes", "off"),
+        ):
+            value = str(conn.exec_driver_sql(f"SHOW {name}").scalar_one())
+            if value.lower() == unsafe:
+                risks.append(
+                    DurabilityRisk(
+                        name,
+                        value,
+                        f"set {name} = on in postgresql.conf, or `ALTER DATABASE ... RESET "
+                        f"{name}` / `ALTER ROLE ... RESET {name}` where it was turned off",
+                    )
+                )
+    return risks
 
 
 class Database:

@@ -16,7 +16,7 @@ from keystrata.config import Role
 from keystrata.services import allocations, checkpoints, leases, segments
 from keystrata.services import outbox as outbox_service
 from keystrata.services.context import NodeContext
-from keystrata.workers import outbox, scheduler
+from keystrata.workers import outbox, progress, scheduler
 from keystrata.workers.peer_client import PeerClient
 
 log = logging.getLogger("keystrata.workers")
@@ -46,6 +46,14 @@ class Background:
             loops.append(("scheduler", self._schedule, self.ctx.settings.relay.cycle_seconds))
         else:
             loops.append(("expiry", self._expire, 5.0))
+            progress.at_start(self.ctx, self.peers)
+            loops.append(
+                (
+                    "restore-check",
+                    lambda: progress.check_once(self.ctx, self.peers, self.holder),
+                    self.ctx.settings.restore_check.interval_seconds,
+                )
+            )
         for name, step, idle in loops:
             t = threading.Thread(
                 target=self._loop, args=(name, step, idle), name=f"keystrata-{name}", daemon=True

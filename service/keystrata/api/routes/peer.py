@@ -26,7 +26,7 @@ from keystrata.api.identity import admit
 from keystrata.config import Role
 from keystrata.domain.registry import PrincipalRole
 from keystrata.errors import InvalidInput, NotFound
-from keystrata.services import buffers, messages, outbox
+from keystrata.services import buffers, messages, outbox, progress
 from keystrata.services.context import NodeContext
 from keystrata.services.principals import Caller
 
@@ -140,6 +140,7 @@ def pair_buffer(pair_id: str, request: Request, caller: Peer) -> dict[str, Any]:
     if ctx.role is not Role.STATION:
         raise NotFound("only stations keep pair buffers")
     assert caller.node_id is not None  # peers are bound to a node (registry rule)
+    progress.refuse_pair_if_held(ctx, pair_id)  # a held pair tells the relay nothing new
     return buffers.report_for_relay(ctx, pair_id, caller.node_id).to_json()
 
 
@@ -157,3 +158,24 @@ def pending_allocations(request: Request, caller: Peer) -> dict[str, Any]:
     return {
         "messages": outbox.pending_bodies(ctx.db, destination=caller.node_id, kind="key.allocated")
     }
+
+
+@router.get(
+    "/pairs/{pair_id}/progress",
+    summary="This station's consumption point of each segment of a pair (one page)",
+    operation_id="peer_pair_progress",
+    responses=error_responses(400, 401, 403, 404, 503),
+)
+def pair_progress(
+    pair_id: str, request: Request, caller: Peer, after: str | None = None
+) -> dict[str, Any]:
+    """For the pair's other station only (else 403): ``points`` (segment_id, owner,
+    used, unacked) ordered by segment ID, at most 1000; ``next_after`` pages on. No key
+    material. The restore check of services/progress.py compares them."""
+    ctx: NodeContext = request.app.state.ctx
+    if ctx.role is not Role.STATION:
+        raise NotFound("only stations keep pair segments")
+    if after is not None and len(after) > 36:
+        raise InvalidInput("after: a segment ID", details=[{"field": "after"}])
+    assert caller.node_id is not None  # peers are bound to a node (registry rule)
+    return progress.report(ctx, caller.node_id, pair_id, after)

@@ -1,0 +1,371 @@
+"""Restore detection at a station: compare each pair's consumption points with the
+partner's (rules in :mod:`keystrata.domain.progress`), hold the pair when this station
+is behind, and let an operator release the hold without serving any byte again.
+
+* A finding about this station itself (``behind = self``) holds the pair: Get key and
+  Get key with key IDs answer 503 for it, the buffer report to the relay answers 503
+  (the relay is told nothing new), until an operator releases it.
+* A finding about the partner is recorded and alerted the same way, but this station
+  keeps serving: it cannot serve a byte twice because of the partner's loss (keys the
+  partner re-allocates from bytes we already used are refused here, offset < used).
+  It closes by itself when a later comparison is clean (the partner was released).
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass
+from typing import Any, Protocol
+
+from sqlalchemy import select, text
+from sqlalchemy.exc import IntegrityError
+from sqlalchemy.orm import Session
+
+from keystrata.domain.ledger import Event
+from keystrata.domain.progress import Behind, Finding, Point, Reason, compare
+from keystrata.errors import Forbidden, InvalidInput, Unavailable
+from keystrata.services import ledger
+from keystrata.services.context import NodeContext
+from keystrata.services.principals import Caller
+from keystrata.storage.models import OutboxMessage, Pair, PairHold, PairSegment, Principal
+
+log = logging.getLogger("keystrata.progress")
+
+#: Segments per page of the peer route (bounded answers).
+PAGE = 1000
+#: Pages one comparison reads at most (a pair with more segments is compared in part
+#: and the log says so).
+MAX_PAGES = 1000
+
+
+class PairHeld(Unavailable):
+    default_message = (
+        "this station's state for the pair is behind its partner's; an operator must resolve it"
+    )
+
+
+class ProgressSource(Protocol):
+    """The port to a partner station's consumption points (the peer client)."""
+
+    def pair_progress(
+        self, node_id: str, pair_id: str, after: str | None, timeout: float
+    ) -> dict[str, Any] | None: ...
+
+
+@dataclass(frozen=True)
+class OpenHold:
+    pair_id: str
+    partner: str
+    behind: str
+    reason: str
+    segments: int
+    bytes_behind: int
+
+
+# ---------------------------------------------------------------- the hot path
+
+
+def refuse_if_held(ctx: NodeContext, caller: Caller, other_sae_id: str) -> None:
+    """Raise :class:`PairHeld` (503) when the pair between this station and the station
+    of ``other_sae_id`` is held because this station is behind. One indexed read;
+    requests that are not from an SAE of this station go on to be refused as usual.
+    """
+    if caller.role.value != "sae" or caller.station_id != ctx.node_id:
+        return
+    with ctx.db.read() as s:
+        partner = select(Principal.station_id).where(Principal.principal_id == other_sae_id)
+        held = s.execute(
+            select(PairHold.id)
+            .where(
+                PairHold.released_at.is_(None),
+                PairHold.behind == Behind.SELF.value,
+                PairHold.partner == partner.scalar_subquery(),
+            )
+            .limit(1)
+        ).first()
+    if held is not None:
+        raise PairHeld()
+
+
+def refuse_pair_if_held(ctx: NodeContext, pair_id: str) -> None:
+    """Raise :class:`PairHeld` when ``pair_id`` is held because this station is behind."""
+    if pair_id in {h.pair_id for h in open_holds(ctx) if h.behind == Behind.SELF.value}:
+        raise PairHeld()
+
+
+def open_holds(ctx: NodeContext) -> list[OpenHold]:
+    """Every open finding at this station, by pair."""
+    with ctx.db.read() as s:
+        rows = s.execute(
+            select(PairHold).where(PairHold.released_at.is_(None)).order_by(PairHold.id)
+        ).scalars()
+        return [
+            OpenHold(r.pair_id, r.partner, r.behind, r.reason, r.segments, r.bytes_behind)
+            for r in rows
+        ]
+
+
+# ---------------------------------------------------------------- what we report
+
+
+def _pair_and_partner(s: Session, ctx: NodeContext, pair_id: str) -> tuple[Pair, str] | None:
+    pair = s.get(Pair, pair_id)
+    if pair is None or ctx.node_id not in (pair.station_a, pair.station_b):
+        return None
+    return pair, pair.station_b if pair.station_a == ctx.node_id else pair.station_a
+
+
+def _snapshot(s: Session, backend: str) -> None:
+    # One snapshot for the points and the outbox: under READ COMMITTED an
+    # acknowledgement between two statements would make ``unacked`` too small.
+    # (SQLite in WAL mode keeps one snapshot per read transaction already.)
+    if backend == "postgresql":
+        s.execute(text("SET TRANSACTION ISOLATION LEVEL REPEATABLE READ"))
+
+
+def _unacked(s: Session, pair_id: str, partner: str) -> dict[str, int]:
+    """Bytes per segment of ``pair_id`` in key allocations still queued for ``partner``."""
+    out: dict[str, int] = {}
+    bodies = s.execute(
+        select(OutboxMessage.body).where(
+            OutboxMessage.destination == partner, OutboxMessage.kind == "key.allocated"
+        )
+    ).scalars()
+    for raw in bodies:
+        for seg, length in _ranges(json.loads(raw), pair_id):
+            out[seg] = out.get(seg, 0) + length
+    return out
+
+
+def _ranges(body: Any, pair_id: str) -> Iterator[tuple[str, int]]:
+    if not isinstance(body, dict) or body.get("pair_id") != pair_id:
+        return
+    for key in body.get("keys") or ():
+        for r in key.get("ranges") or () if isinstance(key, dict) else ():
+            if isinstance(r, dict):
+                yield str(r.get("segment")), int(r.get("length", 0))
+
+
+def _points(
+    s: Session, ctx: NodeContext, pair_id: str, partner: str, after: str | None, limit: int
+) -> list[Point]:
+    query = select(PairSegment.segment_id, PairSegment.owner, PairSegment.used).where(
+        PairSegment.pair_id == pair_id
+    )
+    if after is not None:
+        query = query.where(PairSegment.segment_id > after)
+    rows = s.execute(query.order_by(PairSegment.segment_id).limit(limit)).all()
+    unacked = _unacked(s, pair_id, partner) if rows else {}
+    return [
+        Point(seg, owner, int(used), unacked.get(seg, 0) if owner == ctx.node_id else 0)
+        for seg, owner, used in rows
+    ]
+
+
+def report(ctx: NodeContext, caller_node: str, pair_id: str, after: str | None) -> dict[str, Any]:
+    """The consumption points of ``pair_id`` here, one page, for the pair's other station.
+
+    Raises:
+        Forbidden: the caller is not the other station of this pair (or no such pair).
+    """
+    with ctx.db.read() as s:
+        _snapshot(s, ctx.db.backend)
+        found = _pair_and_partner(s, ctx, pair_id)
+        if found is None or found[1] != caller_node:
+            raise Forbidden("only the pair's other station may read its progress")
+        points = _points(s, ctx, pair_id, caller_node, after, PAGE)
+    return {
+        "pair_id": pair_id,
+        "station": ctx.node_id,
+        "points": [
+            {"segment_id": p.segment_id, "owner": p.owner, "used": p.used, "unacked": p.unacked}
+            for p in points
+        ],
+        "next_after": points[-1].segment_id if len(points) == PAGE else None,
+    }
+
+
+def _all_points(ctx: NodeContext, pair_id: str, partner: str) -> dict[str, Point]:
+    out: dict[str, Point] = {}
+    after: str | None = None
+    with ctx.db.read() as s:
+        _snapshot(s, ctx.db.backend)
+        for _ in range(MAX_PAGES):
+            page = _points(s, ctx, pair_id, partner, after, PAGE)
+            out.update((p.segment_id, p) for p in page)
+            if len(page) < PAGE:
+                break
+            after = page[-1].segment_id
+    return out
+
+
+def _parse_page(raw: Mapping[str, Any], pair_id: str, partner: str) -> list[Point]:
+    if raw.get("pair_id") != pair_id or raw.get("station") != partner:
+        raise InvalidInput("progress answer names another pair or station")
+    points = raw.get("points")
+    if not isinstance(points, list) or len(points) > PAGE:
+        raise InvalidInput("progress answer: points missing or too many")
+    out = []
+    for p in points:
+        used, unacked = p.get("used"), p.get("unacked")
+        if not (type(used) is int and type(unacked) is int and 0 <= unacked <= used):
+            raise InvalidInput("progress answer: used and unacked must be counts")
+        out.append(Point(str(p["segment_id"]), str(p["owner"]), used, unacked))
+    return out
+
+
+def partner_points(
+    ctx: NodeContext, source: ProgressSource, pair_id: str, partner: str
+) -> dict[str, Point] | None:
+    """Every page of the partner's points, or None when it cannot be asked now."""
+    timeout = ctx.settings.restore_check.peer_timeout_seconds
+    out: dict[str, Point] = {}
+    after: str | None = None
+    for _ in range(MAX_PAGES):
+        raw = source.pair_progress(partner, pair_id, after, timeout)
+        if raw is None:
+            return None
+        try:
+            page = _parse_page(raw, pair_id, partner)
+        except (InvalidInput, KeyError, TypeError, ValueError, AttributeError):
+            log.warning("restore check: malformed progress answer from %s", partner)
+            return None
+        out.update((p.segment_id, p) for p in page)
+        nxt = raw.get("next_after")
+        if not isinstance(nxt, str) or not page:
+            break
+        after = nxt
+    return out
+
+
+# ---------------------------------------------------------------- comparing
+
+
+def check_pair(ctx: NodeContext, source: ProgressSource, pair_id: str) -> list[Finding] | None:
+    """Compare one pair with the partner and record what was found. Returns the findings,
+    or None when the partner could not be asked."""
+    with ctx.db.read() as s:
+        found = _pair_and_partner(s, ctx, pair_id)
+    if found is None:
+        return None
+    partner = found[1]
+    before = _all_points(ctx, pair_id, partner)
+    theirs = partner_points(ctx, source, pair_id, partner)
+    if theirs is None:
+        return None
+    after = _all_points(ctx, pair_id, partner)
+    findings = compare(ctx.node_id, before, theirs, after)
+    _record(ctx, pair_id, partner, findings)
+    return findings
+
+
+def check_all(ctx: NodeContext, source: ProgressSource) -> int:
+    """Compare every active pair of this station; return how many could be compared."""
+    with ctx.db.read() as s:
+        pairs = (
+            s.execute(
+                select(Pair.pair_id)
+                .where(
+                    Pair.retired_at.is_(None),
+                    (Pair.station_a == ctx.node_id) | (Pair.station_b == ctx.node_id),
+                )
+                .order_by(Pair.pair_id)
+            )
+            .scalars()
+            .all()
+        )
+    done = 0
+    for pair_id in pairs:
+        if check_pair(ctx, source, pair_id) is not None:
+            done += 1
+        else:
+            log.info("restore check: %s not compared (partner unreachable)", pair_id)
+    return done
+
+
+def _record(ctx: NodeContext, pair_id: str, partner: str, findings: list[Finding]) -> None:
+    now = ctx.clock.now()
+    seen = {(f.behind.value, f.reason.value) for f in findings}
+    try:
+        with ctx.db.write() as s:
+            open_rows = {
+                (r.behind, r.reason): r
+                for r in s.execute(
+                    select(PairHold).where(
+                        PairHold.pair_id == pair_id, PairHold.released_at.is_(None)
+                    )
+                ).scalars()
+            }
+            entries = []
+            for f in findings:
+                if (f.behind.value, f.reason.value) in open_rows:
+                    continue
+                s.add(
+                    PairHold(
+                        pair_id=pair_id,
+                        partner=partner,
+                        behind=f.behind.value,
+                        reason=f.reason.value,
+                        segments=f.segments,
+                        bytes_behind=f.bytes_behind,
+                        detected_at=now,
+                    )
+                )
+                entries.append((now, Event.PAIR_HELD, _fields(pair_id, partner, f)))
+                log.error(
+                    "restore check: pair %s: %s is behind (%s) on %d segments; %s",
+                    pair_id,
+                    "this station" if f.behind is Behind.SELF else f"partner {partner}",
+                    f.reason.value,
+                    f.segments,
+                    "the pair is held until an operator releases it"
+                    if f.behind is Behind.SELF
+                    else "its operator must resolve it",
+                )
+            # Findings about the partner close when the partner has caught up.
+            for (behind, reason), row in open_rows.items():
+                if behind == Behind.PARTNER.value and (behind, reason) not in seen:
+                    row.released_at, row.released_by = now, "restore-check"
+                    row.release_reason = "a later comparison found the partner in step"
+                    entries.append(
+                        (
+                            now,
+                            Event.PAIR_RELEASED,
+                            {
+                                "pair": pair_id,
+                                "partner": partner,
+                                "behind": behind,
+                                "reason": reason,
+                                "actor": "restore-check",
+                            },
+                        )
+                    )
+            ledger.append_many(s, node_id=ctx.node_id, entries=entries)
+    except IntegrityError:
+        pass  # another worker recorded the same finding at the same moment
+
+
+def _fields(pair_id: str, partner: str, f: Finding) -> dict[str, Any]:
+    return {
+        "pair": pair_id,
+        "partner": partner,
+        "behind": f.behind.value,
+        "reason": f.reason.value,
+        "segments": f.segments,
+        "bytes": f.bytes_behind,
+    }
+
+
+__all__ = [
+    "OpenHold",
+    "PairHeld",
+    "ProgressSource",
+    "Reason",
+    "check_all",
+    "check_pair",
+    "open_holds",
+    "refuse_if_held",
+    "report",
+]

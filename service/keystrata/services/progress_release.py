@@ -1,0 +1,131 @@
+"""An operator's release of a pair held by the restore check (services/progress.py).
+
+Releasing must not serve any byte again, so in one transaction, with the partner's
+current points in hand:
+
+* ``owner_behind``: every segment this station owns is advanced to the partner's
+  consumption point; the bytes in between (handed out before the loss, under key IDs
+  this station forgot) are destroyed.
+* ``non_owner_behind``: every segment the partner owns is advanced to the point the
+  partner knows was applied here, and every key of the pair still waiting here for
+  slaves is destroyed (state ``expired``): after the loss this station cannot tell
+  which of them were already fetched.
+
+The hold rows are closed with the operator and the reason, and one ledger entry records
+the release with counts only.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from sqlalchemy import select
+
+from keystrata.domain.ledger import Event
+from keystrata.domain.progress import Behind, Reason
+from keystrata.errors import Conflict, InvalidInput, Unavailable
+from keystrata.services import ledger
+from keystrata.services.context import NodeContext
+from keystrata.services.progress import ProgressSource, partner_points
+from keystrata.storage.models import KeyAlloc, PairHold, PairSegment
+from keystrata.storage.sealed import segment_context
+
+MAX_REASON = 200
+
+
+def release(
+    ctx: NodeContext, source: ProgressSource, pair_id: str, *, actor: str, reason: str
+) -> dict[str, Any]:
+    """Release the open holds of ``pair_id`` at this station; return what was done.
+
+    Raises:
+        InvalidInput: the reason is empty, too long or not printable (400).
+        Conflict: the pair is not held at this station (409).
+        Unavailable: the partner cannot be asked for its points now (503).
+    """
+    reason = reason.strip()
+    if not reason or len(reason) > MAX_REASON or not reason.isprintable():
+        raise InvalidInput(f"reason: 1 to {MAX_REASON} printable characters")
+    with ctx.db.read() as s:
+        holds = (
+            s.execute(
+                select(PairHold).where(
+                    PairHold.pair_id == pair_id,
+                    PairHold.released_at.is_(None),
+                    PairHold.behind == Behind.SELF.value,
+                )
+            )
+            .scalars()
+            .all()
+        )
+    if not holds:
+        raise Conflict("this pair is not held at this station")
+    partner = holds[0].partner
+    theirs = partner_points(ctx, source, pair_id, partner)
+    if theirs is None:
+        raise Unavailable("the partner station cannot be asked for its progress; try again")
+    reasons = {h.reason for h in holds}
+    now = ctx.clock.now()
+    advanced = destroyed = keys = 0
+    with ctx.db.write() as s:
+        rows = s.execute(
+            select(PairSegment)
+            .where(PairSegment.pair_id == pair_id, PairSegment.state != "discarded")
+            .order_by(PairSegment.segment_id)
+            .with_for_update()
+        ).scalars()
+        for row in rows:
+            other = theirs.get(row.segment_id)
+            if other is None:
+                continue
+            target = other.used if row.owner == ctx.node_id else other.acknowledged
+            if target > row.used:
+                destroyed += _advance(ctx, row, min(target, row.length))
+                advanced += 1
+        if Reason.NON_OWNER_BEHIND.value in reasons:
+            waiting = s.execute(
+                select(KeyAlloc)
+                .where(
+                    KeyAlloc.pair_id == pair_id,
+                    KeyAlloc.owner == partner,
+                    KeyAlloc.state == "waiting",
+                )
+                .with_for_update()
+            ).scalars()
+            for key in waiting:
+                key.state, key.sealed, key.settled_at = "expired", None, now
+                keys += 1
+        for hold in s.execute(
+            select(PairHold)
+            .where(
+                PairHold.pair_id == pair_id,
+                PairHold.released_at.is_(None),
+                PairHold.behind == Behind.SELF.value,
+            )
+            .with_for_update()
+        ).scalars():
+            hold.released_at, hold.released_by, hold.release_reason = now, actor, reason
+        fields = {
+            "pair": pair_id,
+            "partner": partner,
+            "behind": Behind.SELF.value,
+            "reasons": sorted(reasons),
+            "actor": actor,
+            "note": reason,
+            "segments_advanced": advanced,
+            "bytes_destroyed": destroyed,
+            "keys_destroyed": keys,
+        }
+        ledger.append(s, node_id=ctx.node_id, at=now, event=Event.PAIR_RELEASED, fields=fields)
+    return {k: v for k, v in fields.items() if k != "note"}
+
+
+def _advance(ctx: NodeContext, row: PairSegment, target: int) -> int:
+    """Move ``row``'s consumption point to ``target``, destroying the bytes before it."""
+    skipped = target - row.used
+    if row.sealed is not None:
+        rest = ctx.keyring.open(row.sealed, segment_context(row, row.used))
+        rest = rest[skipped:]
+        row.sealed = ctx.keyring.seal(rest, segment_context(row, target)) if rest else None
+    row.used = target
+    return skipped
