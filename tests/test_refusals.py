@@ -162,11 +162,14 @@ def test_a_retired_principal_is_refused_like_an_unknown_one_and_counted(clocked,
 
 
 def test_refusal_windows_are_bounded_in_memory(clocked) -> None:
-    """However many distinct keys arrive, the process keeps at most MAX_WINDOWS of them;
-    the rest share one overflow window (and are still counted)."""
+    """However many distinct subjects arrive, the process keeps at most ``max_windows``
+    of them; the rest share one overflow window per reason and route, and are still
+    counted (here with 8 windows instead of MAX_WINDOWS, to stay fast)."""
     station, _ = clocked
-    digest = principals.refusal_digest(station.ctx)
-    for i in range(principals.MAX_WINDOWS + 50):
+    digest = principals.RefusalDigest(max_windows=8)
+    station.ctx.lanes["auth.refused"] = digest
+    before = len(entries(station, "auth.refused"))
+    for i in range(58):
         principals.record_refusal(
             station.ctx,
             reason="unknown_certificate",
@@ -176,7 +179,11 @@ def test_refusal_windows_are_bounded_in_memory(clocked) -> None:
             route="/api/v1/node",
             path="/api/v1/node",
         )
-    assert len(digest.windows) <= principals.MAX_WINDOWS + 1
+        assert len(digest.windows) <= 9
+    assert len(entries(station, "auth.refused")) - before == 9  # 8 windows and the overflow
+    principals.flush_refusals(station.ctx, everything=True)
+    written = entries(station, "auth.refused")[before:]
+    assert sum(e["count"] for e in written) == 58, written
 
 
 # ---------------------------------------------------------------- peer routes

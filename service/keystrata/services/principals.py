@@ -93,9 +93,10 @@ class _Window:
 class RefusalDigest:
     """This process's aggregation windows, keyed by (subject key, reason, route)."""
 
-    def __init__(self) -> None:
+    def __init__(self, max_windows: int = MAX_WINDOWS) -> None:
         self.lock = threading.Lock()
         self.windows: dict[tuple[str, str, str], _Window] = {}
+        self.max_windows = max_windows
 
 
 def refusal_digest(ctx: NodeContext) -> RefusalDigest:
@@ -145,9 +146,9 @@ def record_refusal(
     interval = timedelta(seconds=ctx.settings.ledger.refusal_interval_seconds)
     digest = refusal_digest(ctx)
     with digest.lock:
-        if key not in digest.windows and len(digest.windows) >= MAX_WINDOWS:
+        if key not in digest.windows and len(digest.windows) >= digest.max_windows:
             _prune(digest, now, interval)
-            if len(digest.windows) >= MAX_WINDOWS:
+            if len(digest.windows) >= digest.max_windows:
                 key = (_OVERFLOW, reason, fields["route"])
         window = digest.windows.get(key)
         if window is not None and now < window.opened + interval:
