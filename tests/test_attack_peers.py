@@ -169,7 +169,7 @@ def test_relay_certificate_holder_cannot_make_both_stations_owners(net):
         owner="station-b",
         cipher_station="station-b",
     )
-    notice, cipher = _notice_and_cipher(net)
+    notice, _ = _notice_and_cipher(net)
     forged = dict(notice.body)
     header = json.loads(base64.b64decode(forged["header"]))
     header["owner"] = "station-a"

@@ -188,11 +188,12 @@ def test_accounting_per_day(net, api) -> None:  # noqa: F811
     saes = {s["sae_id"]: s for s in at_b["saes"]}
     assert saes["sae-b1"]["as_slave"] == {"keys": 1, "bits": 256}
     assert saes["sae-b2"]["refused"] == 1
-    # At the relay: each segment used KA and KB of its own length plus a 32-byte MAC key.
+    # At the relay: each segment used KA and KB of its own length plus a 32-byte one-time
+    # MAC key from each link (MA and M).
     (relay_day,) = accounting.per_day(net.relay.ctx)["days"]  # the relay has no auditor here
     relayed = {p["pair_id"]: p["relayed"] for p in relay_day["pairs"]}["pair-ab"]
     assert relayed["segments"] > 0
-    assert relayed["link_bits"] == 2 * relayed["bits"] + 256 * relayed["segments"]
+    assert relayed["link_bits"] == 2 * relayed["bits"] + 2 * 256 * relayed["segments"]
     # A range that ends before today holds nothing.
     empty = api(net.a)("aud-ben").get(
         "/api/v1/audit/accounting", params={"until": "2000-01-01T00:00:00Z"}

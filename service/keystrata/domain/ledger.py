@@ -38,6 +38,7 @@ class Event(StrEnum):
     SEGMENT_READY = "segment.ready"
     SEGMENT_DISCARDED = "segment.discarded"
     RELAY_MESSAGE_REFUSED = "segment.message_refused"
+    PEER_MESSAGE_REFUSED = "peer.message_refused"
     KEY_ALLOCATED = "key.allocated"
     KEY_DELIVERED = "key.delivered"
     KEY_EXPIRED = "key.expired"

@@ -115,9 +115,19 @@ class PairPolicy(_Input):
     priority: Annotated[int, Field(strict=True, ge=1, le=1000)] = 100
     max_epsilon: Annotated[float, Field(strict=True, gt=0, lt=1)] | None = None
     key_ttl_seconds: Annotated[int, Field(strict=True, ge=1, le=30 * 86_400)] = 3600
+    #: SAEs that may take this pair's key as master (Get key) and be named as slaves
+    #: (Get key with key IDs); null: every active SAE of the pair's two stations.
+    masters: Annotated[list[Ident], Field(max_length=1024)] | None = None
+    slaves: Annotated[list[Ident], Field(max_length=1024)] | None = None
+    #: Bits of this pair's key one master SAE may take per UTC day; null: no such quota.
+    sae_daily_quota_bits: Annotated[int, Field(strict=True, gt=0, le=2**53)] | None = None
 
     @model_validator(mode="after")
     def _consistent(self) -> Self:
+        for name in ("masters", "slaves"):
+            saes = getattr(self, name)
+            if saes is not None and len(set(saes)) != len(saes):
+                raise ValueError(f"{name} must name each SAE once")
         if not self.min_key_size <= self.default_key_size <= self.max_key_size:
             raise ValueError(
                 "key sizes must satisfy min_key_size <= default_key_size <= max_key_size"

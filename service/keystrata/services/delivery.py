@@ -20,6 +20,7 @@ Every refusal on these routes is the same 401 answer (no oracle), recorded in th
 from __future__ import annotations
 
 import json
+import logging
 import uuid
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -30,16 +31,18 @@ from typing import Any
 from sqlalchemy import func, insert, select
 from sqlalchemy.orm import Session
 
+from keystrata.domain import peer_messages as pm
 from keystrata.domain.etsi import KeyRequest
 from keystrata.domain.ledger import Event
 from keystrata.errors import (
     BadRequest,
     Forbidden,
     InvalidInput,
+    SealBroken,
     Unauthenticated,
     Unavailable,
 )
-from keystrata.services import ledger, outbox, progress
+from keystrata.services import ledger, messages, outbox, progress
 from keystrata.services.allocations import apply_allocated_in, segments_of
 from keystrata.services.context import NodeContext
 from keystrata.services.group_commit import GroupCommit
@@ -48,6 +51,8 @@ from keystrata.services.owned_stock import OwnedStock, Range, key_bytes
 from keystrata.services.principals import Caller
 from keystrata.storage.models import KeyAlloc, Pair, PairSegment, Principal
 from keystrata.storage.sealed import key_context
+
+log = logging.getLogger("keystrata.delivery")
 
 #: Keys one Get key may ask for, and additional slaves one key may have.
 MAX_KEY_PER_REQUEST = 1024
@@ -121,23 +126,30 @@ def _sae(s: Session, sae_id: str) -> Principal | None:
     return row
 
 
-def _pair_between(s: Session, a: str, b: str) -> Pair | None:
+def _pairs_between(s: Session, a: str, b: str) -> list[Pair]:
     first, second = sorted((a, b))
-    return (
+    return list(
         s.execute(
             select(Pair)
             .where(Pair.station_a == first, Pair.station_b == second, Pair.retired_at.is_(None))
             .order_by(Pair.pair_id)
-        )
-        .scalars()
-        .first()
+        ).scalars()
+    )
+
+
+def allowed(pair: Pair, master: str, slaves: Sequence[str]) -> bool:
+    """Whether the pair's registry entry lets ``master`` take key for ``slaves``."""
+    return (pair.masters is None or master in pair.masters) and (
+        pair.slaves is None or all(x in pair.slaves for x in slaves)
     )
 
 
 def route_for_master(
     ctx: NodeContext, caller: Caller, slave_sae_id: str, additional: Sequence[str] = ()
 ) -> Route:
-    """Check that ``caller`` (an SAE of this station) may get keys for the slave(s).
+    """Check that ``caller`` (an SAE of this station) may get keys for the slave(s): an
+    active pair joins this station and the slaves' station, and its registry entry lets
+    the caller be master and the slaves be slaves (the first such pair by ID).
 
     Raises:
         Unauthenticated: any reason at all (recorded).
@@ -145,10 +157,10 @@ def route_for_master(
     with ctx.db.read() as s:
         slave = _sae(s, slave_sae_id)
         ok = caller.role.value == "sae" and caller.station_id == ctx.node_id
-        pair = None
+        pairs = []
         if ok and slave is not None and slave.station_id not in (None, ctx.node_id):
-            pair = _pair_between(s, ctx.node_id, str(slave.station_id))
-        if pair is None or slave is None:
+            pairs = _pairs_between(s, ctx.node_id, str(slave.station_id))
+        if not pairs or slave is None:
             raise _refuse(ctx, caller, "no_pair_for_these_saes", slave=slave_sae_id[:64])
         slaves = [slave_sae_id]
         for extra in additional:
@@ -156,6 +168,9 @@ def route_for_master(
             if other is None or other.station_id != slave.station_id or extra in slaves:
                 raise _refuse(ctx, caller, "additional_slave_not_allowed", slave=extra[:64])
             slaves.append(extra)
+        pair = next((p for p in pairs if allowed(p, caller.principal_id, slaves)), None)
+        if pair is None:
+            raise _refuse(ctx, caller, "saes_not_allowed_in_pair", slave=slave_sae_id[:64])
         return Route(pair=pair, partner=str(slave.station_id), slaves=slaves)
 
 
@@ -274,9 +289,11 @@ def _allocate(ctx: NodeContext, asks: Sequence[_Ask]) -> list[list[DeliveredKey]
             stock = OwnedStock(s, ctx.keyring, pair_id, ctx.node_id)
             stock.reserve(sum(asks[i].need for i in members))
             used = _used_today(s, ctx, pair, now)
+            used_by: dict[str, int] = {}
             planned: list[tuple[int, list[tuple[str, list[Range]]]]] = []
             for i in members:
                 ask = asks[i]
+                master = ask.caller.principal_id
                 if (
                     pair.daily_quota_bits is not None
                     and used + 8 * ask.need > pair.daily_quota_bits
@@ -286,6 +303,17 @@ def _allocate(ctx: NodeContext, asks: Sequence[_Ask]) -> list[list[DeliveredKey]
                         f"would be exceeded: {used} bits delivered today"
                     )
                     continue
+                if pair.sae_daily_quota_bits is not None:
+                    if master not in used_by:
+                        used_by[master] = _used_today(s, ctx, pair, now, master=master)
+                    if used_by[master] + 8 * ask.need > pair.sae_daily_quota_bits:
+                        results[i] = QuotaReached(
+                            f"this SAE's daily quota in pair {pair_id} "
+                            f"({pair.sae_daily_quota_bits} bits) would be exceeded: "
+                            f"{used_by[master]} bits delivered to it today"
+                        )
+                        continue
+                    used_by[master] += 8 * ask.need
                 if ask.need > stock.left:
                     results[i] = NotEnoughKey(
                         f"{8 * stock.left} of the {8 * ask.need} bits asked for are ready"
@@ -325,62 +353,65 @@ def _allocate(ctx: NodeContext, asks: Sequence[_Ask]) -> list[list[DeliveredKey]
                         },
                     )
                 )
-            outbox.enqueue(
+            outbox.send(
                 s,
                 destination=asks[planned[0][0]].route.partner,
-                kind="key.allocated",
+                message=pm.KeyAllocated(pair_id=pair_id, owner=ctx.node_id, keys=records),
                 segment_id=None,
                 now=now,
-                body={"pair_id": pair_id, "owner": ctx.node_id, "keys": records},
             )
         ledger.append_many(s, node_id=ctx.node_id, entries=entries)
     return results
 
 
-def _used_today(s: Session, ctx: NodeContext, pair: Pair, now: datetime) -> int:
-    """Bits this station allocated for ``pair`` since midnight (0 when no quota)."""
-    if pair.daily_quota_bits is None:
+def _used_today(
+    s: Session, ctx: NodeContext, pair: Pair, now: datetime, *, master: str | None = None
+) -> int:
+    """Bits this station allocated for ``pair`` (to ``master`` only, if given) since
+    midnight UTC; 0 when no pair quota applies."""
+    if master is None and pair.daily_quota_bits is None:
         return 0
     day = now.replace(hour=0, minute=0, second=0, microsecond=0)
-    return int(
-        s.execute(
-            select(func.coalesce(func.sum(KeyAlloc.size_bits), 0)).where(
-                KeyAlloc.pair_id == pair.pair_id,
-                KeyAlloc.owner == ctx.node_id,
-                KeyAlloc.allocated_at >= day,
-            )
-        ).scalar_one()
+    query = select(func.coalesce(func.sum(KeyAlloc.size_bits), 0)).where(
+        KeyAlloc.pair_id == pair.pair_id,
+        KeyAlloc.owner == ctx.node_id,
+        KeyAlloc.allocated_at >= day,
     )
+    if master is not None:
+        query = query.where(KeyAlloc.master_sae == master)
+    return int(s.execute(query).scalar_one())
 
 
 def _record(
     ask: _Ask, key_id: str, ranges: list[Range], now: datetime, expires: datetime
-) -> dict[str, Any]:
+) -> pm.AllocatedKey:
     """A key as the ``key.allocated`` message tells the slave's station about it."""
-    return {
-        "key_ID": key_id,
-        "master": ask.caller.principal_id,
-        "slaves": ask.route.slaves,
-        "ranges": [r.as_record() for r in ranges],
-        "size_bits": ask.size,
-        "allocated_at": now.isoformat(),
-        "expires_at": expires.isoformat(),
-    }
+    return pm.AllocatedKey(
+        key_ID=key_id,
+        master=ask.caller.principal_id,
+        slaves=ask.route.slaves,
+        ranges=[
+            pm.SegmentRange(segment=r.segment, offset=r.offset, length=r.length) for r in ranges
+        ],
+        size_bits=ask.size,
+        allocated_at=now,
+        expires_at=expires,
+    )
 
 
 def _owned_row(
-    pair_id: str, owner: str, record: dict[str, Any], now: datetime, expires: datetime
+    pair_id: str, owner: str, record: pm.AllocatedKey, now: datetime, expires: datetime
 ) -> dict[str, Any]:
     """The owner's ``key_alloc`` row of a key handed to its master at once."""
     return {
-        "key_id": record["key_ID"],
+        "key_id": record.key_ID,
         "pair_id": pair_id,
         "owner": owner,
-        "master_sae": record["master"],
-        "slaves": json.dumps(record["slaves"]),
+        "master_sae": record.master,
+        "slaves": json.dumps(record.slaves),
         "fetched_by": "[]",
-        "ranges": json.dumps(record["ranges"]),
-        "size_bits": record["size_bits"],
+        "ranges": json.dumps([r.model_dump() for r in record.ranges]),
+        "size_bits": record.size_bits,
         "state": "delivered",
         "allocated_at": now,
         "expires_at": expires,
@@ -466,19 +497,31 @@ def _pull_and_apply(ctx: NodeContext, owner: str, missing: set[str], pull: Pull)
         return True
     # All in one transaction (one commit however many messages), each message in a
     # savepoint of its own: one that cannot apply leaves the others applied.
+    refused: list[tuple[pm.KeyAllocated, Forbidden]] = []
     with ctx.db.write() as s:
         for body in bodies:
             try:
+                msg = pm.parse(body)
+            except InvalidInput:
+                continue  # a malformed message holds no key of this request; others may
+            if not isinstance(msg, pm.KeyAllocated):
+                continue
+            try:
                 with s.begin_nested():
-                    apply_allocated_in(ctx, s, owner, body)
+                    apply_allocated_in(ctx, s, owner, msg)
             except NotYet:
                 return True
-            except (InvalidInput, Forbidden, KeyError, TypeError, ValueError):
-                continue  # a bad message holds no key of this request; others may
+            except Forbidden as refusal:
+                refused.append((msg, refusal))
+                continue
+            except InvalidInput:
+                continue
             # Messages apply in order; later ones can wait for the owner's push.
-            missing -= {str(k.get("key_ID", "")).lower() for k in body.get("keys", [])}
+            missing -= {k.key_ID for k in msg.keys}
             if not missing:
                 break
+    for refused_msg, error in refused:
+        messages.record_refusal(ctx, owner, refused_msg, error)
     return False
 
 
@@ -515,11 +558,24 @@ def _serve(ctx: NodeContext, fetches: Sequence[_Fetch]) -> list[list[DeliveredKe
                 entries.append((refusal["at"], refusal["event"], refusal["fields"]))
                 results.append(Unauthenticated())
                 continue
-            out = []
+            try:
+                out = [_open(ctx, rows[key_id]) for key_id in f.ids]
+            except SealBroken:
+                # The row's authorisation fields or sealed value were changed outside
+                # keystrata (database write access without the KEK): serve nothing.
+                log.error("a waiting key's sealed value does not open in its row: tampered")
+                refusal = _refusal(
+                    s,
+                    ctx,
+                    f.caller,
+                    "sealed_value_does_not_open",
+                    {"master": f.master[:64], "key_ids": f.ids[:16]},
+                )
+                entries.append((refusal["at"], refusal["event"], refusal["fields"]))
+                results.append(Unauthenticated())
+                continue
             for key_id in f.ids:
                 row = rows[key_id]
-                assert row.sealed is not None
-                out.append(DeliveredKey(key_id, ctx.keyring.open(row.sealed, key_context(key_id))))
                 fetched = [*json.loads(row.fetched_by), f.caller.principal_id]
                 row.fetched_by = json.dumps(fetched)
                 if set(fetched) >= set(json.loads(row.slaves)):
@@ -540,6 +596,12 @@ def _serve(ctx: NodeContext, fetches: Sequence[_Fetch]) -> list[list[DeliveredKe
             )
         ledger.append_many(s, node_id=ctx.node_id, entries=entries)
     return results
+
+
+def _open(ctx: NodeContext, row: KeyAlloc) -> DeliveredKey:
+    """The key of a waiting row. Raises SealBroken when it does not open in this row."""
+    assert row.sealed is not None
+    return DeliveredKey(row.key_id, ctx.keyring.open(row.sealed, key_context(row)))
 
 
 def _unservable(row: KeyAlloc | None, f: _Fetch, now: datetime) -> str | None:

@@ -14,9 +14,9 @@ from keystrata.crypto.hazmat import Keyring, generate_signing_key, random_bytes
 from keystrata.crypto.kek import read_kek
 from keystrata.domain.ledger import Event
 from keystrata.errors import ConfigError, SealBroken, StartupRefused
-from keystrata.services import ledger
+from keystrata.services import ledger, reseal
 from keystrata.services.context import NodeContext
-from keystrata.storage import migrate
+from keystrata.storage import migrate, sealed
 from keystrata.storage.db import Database, DurabilityRisk, durability_risks
 from keystrata.storage.models import NodeMeta, RegistryNode
 from keystrata.storage.sealed import meta_context
@@ -92,6 +92,7 @@ def initialise(
             s.add(NodeMeta(name=name, value=keyring.seal(value, meta_context(name))))
         s.add(NodeMeta(name="node_id", value=settings.node.id.encode()))
         s.add(NodeMeta(name="node_role", value=settings.node.role.value.encode()))
+        s.add(NodeMeta(name=sealed.LAYOUT_META, value=str(sealed.LAYOUT).encode()))
         s.add(
             RegistryNode(
                 node_id=settings.node.id,
@@ -172,6 +173,7 @@ def open_node(settings: Settings, db: Database, clock: Clock | None = None) -> N
             select(NodeMeta.value).where(NodeMeta.name == "fingerprint_key")
         ).scalar_one()
     fingerprint_key = keyring.open(fingerprint_sealed, meta_context("fingerprint_key"))
+    reseal.reseal(db, keyring)  # pair key sealed before layout 2 (storage/sealed.py)
     return NodeContext(
         settings=settings,
         db=db,

@@ -10,6 +10,7 @@ from datetime import UTC, datetime
 from typing import Any
 
 from sqlalchemy import (
+    JSON,
     BigInteger,
     CheckConstraint,
     DateTime,
@@ -117,6 +118,9 @@ class Pair(_Lifecycle, Base):
         ),
         CheckConstraint("priority BETWEEN 1 AND 1000", name="priority"),
         CheckConstraint("daily_quota_bits IS NULL OR daily_quota_bits > 0", name="quota"),
+        CheckConstraint(
+            "sae_daily_quota_bits IS NULL OR sae_daily_quota_bits > 0", name="sae_quota"
+        ),
         CheckConstraint("key_ttl_seconds > 0", name="ttl"),
         CheckConstraint("max_epsilon IS NULL OR max_epsilon > 0", name="epsilon"),
     )
@@ -138,6 +142,17 @@ class Pair(_Lifecycle, Base):
         Float, comment="segments whose composed security parameter exceeds this are not made"
     )
     key_ttl_seconds: Mapped[int] = mapped_column(Integer)
+    masters: Mapped[list[str] | None] = mapped_column(
+        JSON(none_as_null=True),
+        comment="SAE IDs that may be master in this pair; NULL: any SAE of its stations",
+    )
+    slaves: Mapped[list[str] | None] = mapped_column(
+        JSON(none_as_null=True),
+        comment="SAE IDs that may be slave in this pair; NULL: any SAE of its stations",
+    )
+    sae_daily_quota_bits: Mapped[int | None] = mapped_column(
+        BigInteger, comment="bits one master SAE may take per UTC day; NULL: no such quota"
+    )
 
 
 class Principal(_Lifecycle, Base):
