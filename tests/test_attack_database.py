@@ -46,9 +46,7 @@ def _last_refusal(node) -> dict:
 def test_a_waiting_key_re_pointed_to_another_slave_does_not_open(net, api, caplog) -> None:
     key_ids = _allocate(net, api)
     with net.b.ctx.db.write() as s:
-        s.execute(
-            update(KeyAlloc).where(KeyAlloc.key_id.in_(key_ids)).values(slaves='["sae-b2"]')
-        )
+        s.execute(update(KeyAlloc).where(KeyAlloc.key_id.in_(key_ids)).values(slaves='["sae-b2"]'))
     before = snapshot(net.b.ctx)["key_alloc"]
     query = "&".join(f"key_ID={k}" for k in key_ids)
     r = api(net.b)("sae-b2").get(f"/api/v1/keys/sae-a1/dec_keys?{query}")
