@@ -310,3 +310,38 @@ def test_revoked_certificate_is_refused_by_the_identity_check_too(
         assert portal.call(call, "ops-ada") == 200
         assert portal.call(call, "aud-ben") == 401
     assert "auth.refused" in ledger_events(station.ctx)[events:]
+
+
+def test_an_operator_registered_before_pins_were_required_is_refused_until_pinned(
+    station, api, pki: PkiFiles
+) -> None:
+    """A database from before pins: its operator row has none. That certificate is
+    refused (a stolen one would otherwise act as the operator); the local command pins
+    it, recorded in the ledger, and the operator is back."""
+    from click.testing import CliRunner
+    from sqlalchemy import update
+
+    from keystrata.cli.main import cli
+    from keystrata.storage.models import Principal
+
+    with station.ctx.db.write() as s:
+        s.execute(
+            update(Principal).where(Principal.principal_id == "ops-ada").values(cert_sha256=None)
+        )
+    assert api(station)("ops-ada").get("/api/v1/registry/nodes").status_code == 401
+    result = CliRunner().invoke(
+        cli,
+        [
+            "node",
+            "pin",
+            "--config",
+            str(station.config_path),
+            "--principal",
+            "ops-ada",
+            "--cert",
+            str(pki.cert("ops-ada")),
+        ],
+    )
+    assert result.exit_code == 0, result.output
+    assert api(station)("ops-ada").get("/api/v1/registry/nodes").status_code == 200
+    assert ledger_events(station.ctx)[-1] == "registry.changed"

@@ -11,7 +11,7 @@ from keystrata.cli.common import config_option, console, handled, settings_from
 from keystrata.config import Settings
 from keystrata.crypto.kek import read_kek, write_new_kek
 from keystrata.crypto.pki import fingerprint_sha256, subject_common_name
-from keystrata.domain.registry import Kind, PrincipalRole, PrincipalSpec
+from keystrata.domain.registry import Kind, PrincipalChange, PrincipalRole, PrincipalSpec
 from keystrata.errors import AlreadyExists, InvalidInput
 from keystrata.services import kek as kek_service
 from keystrata.services import registry
@@ -95,19 +95,57 @@ def _operator_pin(subject: str | None, cert: Path | None, sha256: str | None) ->
         if cert is not None or sha256 is not None:
             raise click.UsageError("--operator-cert/--operator-sha256 need --operator-subject")
         return None
+    return _pin(subject, cert, sha256, ("--operator-cert", "--operator-sha256"))
+
+
+def _pin(subject: str, cert: Path | None, sha256: str | None, flags: tuple[str, str]) -> str:
+    """The pin given as a certificate file (its CN must be ``subject``) or as hex."""
     if (cert is None) == (sha256 is None):
-        raise click.UsageError(
-            "--operator-subject needs exactly one of --operator-cert FILE or --operator-sha256"
-        )
+        raise click.UsageError(f"give exactly one of {flags[0]} FILE or {flags[1]}")
     if sha256 is not None:
         if not re.fullmatch(r"[0-9a-f]{64}", sha256.lower()):
-            raise click.UsageError("--operator-sha256 takes 64 hexadecimal digits")
+            raise click.UsageError(f"{flags[1]} takes 64 hexadecimal digits")
         return sha256.lower()
     assert cert is not None
     data = cert.read_bytes()
     if subject_common_name(data) != subject:
         raise InvalidInput(f"{cert} is not a certificate of {subject!r} (its CN differs)")
     return fingerprint_sha256(data)
+
+
+@node.command("pin")
+@config_option
+@click.option("--principal", "principal_id", required=True, help="the principal's ID")
+@click.option(
+    "--cert",
+    type=click.Path(exists=True, dir_okay=False, path_type=Path),
+    help="the principal's certificate file: its SHA-256 becomes the pin",
+)
+@click.option("--sha256", help="or the pin itself: hex SHA-256 of the certificate (DER)")
+def node_pin(config_path: Path, principal_id: str, cert: Path | None, sha256: str | None) -> None:
+    """Pin a principal to its certificate, on this node's database directly.
+
+    Peers and operators must be pinned; one registered before pins were required is
+    refused until it is (there may be no pinned operator left to do it over the API).
+    Recorded in the ledger as a registry change by `local-admin`.
+    """
+    with handled():
+        settings = settings_from(config_path)
+        database = _db(settings)
+        try:
+            ctx = open_node(settings, database)
+            row = registry.get(ctx, Kind.PRINCIPALS, principal_id)
+            pin = _pin(str(row["cert_subject"]), cert, sha256, ("--cert", "--sha256"))
+            registry.change(
+                ctx,
+                Kind.PRINCIPALS,
+                principal_id,
+                PrincipalChange(cert_sha256=pin),
+                actor="local-admin",
+            )
+        finally:
+            database.dispose()
+        console.print(f"principal {principal_id} pinned to {pin}")
 
 
 @click.command("serve")

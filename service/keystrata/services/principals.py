@@ -13,6 +13,7 @@ at most N entries per interval); a crash loses the counts not yet written.
 
 from __future__ import annotations
 
+import logging
 import threading
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
@@ -22,10 +23,12 @@ from sqlalchemy import select
 
 from keystrata.crypto.hazmat import constant_time_equal, keyed_fingerprint
 from keystrata.domain.ledger import Event, timestamp
-from keystrata.domain.registry import PrincipalRole
+from keystrata.domain.registry import PINNED_ROLES, PrincipalRole
 from keystrata.services import ledger
 from keystrata.services.context import NodeContext
 from keystrata.storage.models import Principal
+
+log = logging.getLogger("keystrata.identity")
 
 #: Domain separation of the keyed hashes under the node's fingerprint key (which also
 #: recognises re-sent link blocks, whose first part is a link ID: no spaces there).
@@ -67,6 +70,10 @@ def resolve(ctx: NodeContext, subject: str, cert_sha256: str) -> Caller | None:
             )
         ).scalar()
     if row is None:
+        return None
+    if row.cert_sha256 is None and PrincipalRole(row.role) in PINNED_ROLES:
+        # Registered before pins were required: refused until pinned (`keystrata node pin`).
+        log.warning("principal %s (%s) has no certificate pin: refused", row.principal_id, row.role)
         return None
     if row.cert_sha256 and not constant_time_equal(row.cert_sha256.encode(), cert_sha256.encode()):
         return None
