@@ -18,7 +18,7 @@ from sqlalchemy import select
 
 from conftest import Node, cert_pin
 from keystrata.domain.ledger import Event
-from keystrata.domain.progress import Behind, Finding, Point, Reason, compare
+from keystrata.domain.progress import Behind, Finding, Point, Reason, compare, deliveries
 from keystrata.domain.registry import Kind, PrincipalRole, PrincipalSpec
 from keystrata.errors import Conflict
 from keystrata.services import delivery, progress, progress_release, registry
@@ -86,6 +86,14 @@ def test_reads_at_different_moments_give_no_false_finding() -> None:
     assert compare(C, mine_before, owner, mine_after) == []
 
 
+def test_forgotten_deliveries_show_against_what_the_partner_saw() -> None:
+    # (own count now, what the partner saw of us, partner's count now, our mark of it)
+    assert deliveries(5, 5, 7, 7) == []
+    assert deliveries(2, 5, 7, 7) == [Finding(Behind.SELF, Reason.DELIVERIES_LOST, 3, 0)]
+    assert deliveries(5, 5, 4, 7) == [Finding(Behind.PARTNER, Reason.DELIVERIES_LOST, 3, 0)]
+    assert deliveries(0, None, None, 9) == []  # a later page, or an older partner
+
+
 # ---------------------------------------------------------------- the peer route
 
 
@@ -151,16 +159,29 @@ def test_progress_route_answers_only_the_pairs_other_station(station, api) -> No
 
 
 class Partner:
-    """The partner's side of the port (``ProgressSource``): the points it reports."""
+    """The partner's side of the port (``ProgressSource``): the points it reports, and
+    optionally its count of served keys and what it saw of ours."""
 
-    def __init__(self, points: list[dict[str, Any]]) -> None:
+    def __init__(
+        self,
+        points: list[dict[str, Any]],
+        fetched_keys: int | None = None,
+        seen_fetched: int | None = None,
+    ) -> None:
         self.points = points
+        self.extra = {"fetched_keys": fetched_keys, "seen_fetched": seen_fetched}
 
     def pair_progress(
         self, node_id: str, pair_id: str, after: str | None, timeout: float
     ) -> dict[str, Any] | None:
         assert (node_id, pair_id, after) == (C, "pair-ac", None)
-        return {"pair_id": pair_id, "station": C, "points": self.points, "next_after": None}
+        return {
+            "pair_id": pair_id,
+            "station": C,
+            "points": self.points,
+            "next_after": None,
+            **self.extra,
+        }
 
 
 A1 = Caller(principal_id="sae-a1", role=PrincipalRole.SAE, station_id=A)
@@ -222,3 +243,42 @@ def test_malformed_partner_answer_changes_nothing(station) -> None:
     liar = Partner([{"segment_id": S1, "owner": A, "used": True, "unacked": 0}])
     assert progress.check_pair(ctx, liar, "pair-ac") is None
     assert progress.open_holds(ctx) == []
+
+
+def test_a_partner_that_forgot_deliveries_is_found_and_this_station_keeps_serving(
+    station,
+) -> None:
+    """The partner (the slaves' station of keys this station owns) showed 5 keys served,
+    then, restored from a backup, shows 3: it could serve those 2 keys again."""
+    ctx = station.ctx
+    _segment(station, S1, A, bytes(256), used=64)
+    point = [{"segment_id": S1, "owner": A, "used": 64, "unacked": 0}]
+    assert progress.check_pair(ctx, Partner(point, fetched_keys=5, seen_fetched=0), "pair-ac") == []
+    found = progress.check_pair(ctx, Partner(point, fetched_keys=3, seen_fetched=0), "pair-ac")
+    assert found == [Finding(Behind.PARTNER, Reason.DELIVERIES_LOST, 2, 0)]
+    progress.refuse_if_held(ctx, A1, "sae-c1")  # this station keeps serving
+    assert [h.reason for h in progress.open_holds(ctx)] == ["deliveries_lost"]
+    # The partner's operator released it (its count now starts at what we saw): closed.
+    assert progress.check_pair(ctx, Partner(point, fetched_keys=5, seen_fetched=0), "pair-ac") == []
+    assert progress.open_holds(ctx) == []
+
+
+def test_a_station_that_forgot_deliveries_holds_itself_until_released(station) -> None:
+    """The partner saw this station serve 4 keys of its ownership; this station's
+    database shows none (restored): it holds the pair, and the release raises its count
+    so that the next comparison is in step and keys still waiting here are destroyed."""
+    ctx = station.ctx
+    _segment(station, S1, C, bytes(256), used=64)
+    point = [{"segment_id": S1, "owner": C, "used": 64, "unacked": 0}]
+    partner = Partner(point, fetched_keys=0, seen_fetched=4)
+    assert progress.check_pair(ctx, partner, "pair-ac") == [
+        Finding(Behind.SELF, Reason.DELIVERIES_LOST, 4, 0)
+    ]
+    with pytest.raises(progress.PairHeld):
+        progress.refuse_if_held(ctx, A1, "sae-c1")
+    done = progress_release.release(ctx, partner, "pair-ac", actor="ops-ada", reason="restore")
+    assert done["reasons"] == ["deliveries_lost"]
+    with ctx.db.read() as s:
+        assert progress.fetched_keys(s, "pair-ac", C) == 4
+    assert progress.check_pair(ctx, partner, "pair-ac") == []
+    progress.refuse_if_held(ctx, A1, "sae-c1")  # served again

@@ -306,3 +306,50 @@ def test_restored_owner_is_held_and_serves_no_byte_twice(network, pki, tmp_path)
 def test_restored_slave_station_is_held_and_serves_no_key_twice(network, pki, tmp_path) -> None:
     nodes, urls = network
     _restore_scenario(nodes, urls, pki, tmp_path, "station-b")
+
+
+@pytest.mark.parametrize(
+    "db_factory", ["sqlite", pytest.param("postgresql", marks=pytest.mark.slow)], indirect=True
+)
+def test_a_slave_station_that_lost_only_deliveries_serves_no_key_twice(
+    network, pki, tmp_path
+) -> None:
+    """Station B's backup holds keys still waiting for their slave; the slave then
+    fetches them; B is restored. No consumption point moved after the backup, so only
+    the count of served keys that station A saw shows the loss: B holds the pair and
+    the slave cannot fetch those keys a second time."""
+    nodes, urls = network
+    master, slave = "sae-a1", "sae-b1"
+    with KeyClient(nodes["station-a"].url, ident(pki, master), attempts=1) as kme:
+        got = kme.get_keys(slave, 4, 256)
+    _wait("allocations delivered", lambda: _outbox_drained(nodes, pki, "station-a"))
+    backend = Backend(urls["station-b"], tmp_path)
+    backend.copy(nodes["station-b"], pki)  # the keys wait at B in the backup
+    with KeyClient(nodes["station-b"].url, ident(pki, slave), attempts=1) as kme:
+        fetched = _wait(
+            "the slave's keys", lambda: _try(lambda: kme.get_keys_with_ids(master, got.key_ids))
+        )
+    assert [k.digest() for k in fetched] == [k.digest() for k in got]
+    time.sleep(2.0)  # A's restore check (every 0.5 s) sees B's count of served keys
+    nodes["station-b"].stop()
+    backend.restore()
+    nodes["station-b"].start(pki)
+    with (
+        KeyClient(nodes["station-b"].url, ident(pki, slave), attempts=1) as kme,
+        pytest.raises(ApiError) as err,
+    ):
+        kme.get_keys_with_ids(master, got.key_ids)
+    assert err.value.status == 503 and HELD_MESSAGE in err.value.message
+    held = _metric(nodes["station-b"].url, pki, "keystrata_pair_held")
+    assert any(dict(k)["reason"] == "deliveries_lost" for k in held), held
+    # Released: the keys that were waiting are destroyed, never served again.
+    with _client(nodes["station-b"].url, pki, "ops-ada") as ops:
+        r = ops.post("/api/v1/pairs/pair-ab/hold/release", json={"reason": "restored backup"})
+    assert r.status_code == 200, r.text
+    assert r.json()["keys_destroyed"] >= 4
+    with (
+        KeyClient(nodes["station-b"].url, ident(pki, slave), attempts=1) as kme,
+        pytest.raises(ApiError) as err,
+    ):
+        kme.get_keys_with_ids(master, got.key_ids)
+    assert err.value.status == 401

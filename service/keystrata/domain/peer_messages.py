@@ -312,6 +312,50 @@ class BufferReport(_Strict):
             raise _invalid("buffer report", exc) from None
 
 
+class ProgressPoint(_Strict):
+    """One segment's consumption point at the answering station (no key material)."""
+
+    segment_id: Uuid
+    owner: NodeId
+    used: Count
+    unacked: Count
+
+    @model_validator(mode="after")
+    def _consistent(self) -> ProgressPoint:
+        if self.unacked > self.used:
+            raise ValueError("unacked cannot exceed used")
+        return self
+
+
+class ProgressReport(_Strict):
+    """A station's consumption points of one pair, one page, for the restore check of
+    the pair's other station (``GET /api/v1/peer/pairs/{pair}/progress``).
+
+    The first page also carries ``fetched_keys``: keys of the caller's ownership this
+    station has served to at least one slave (a count that only grows), and
+    ``seen_fetched``: the highest ``fetched_keys`` the caller has shown this station.
+    """
+
+    v: Literal[1] = 1
+    pair_id: NodeId
+    station: NodeId
+    points: Annotated[list[ProgressPoint], Field(max_length=1000)]
+    next_after: Uuid | None = None
+    fetched_keys: Count | None = None
+    seen_fetched: Count | None = None
+
+    def to_json(self) -> dict[str, Any]:
+        return self.model_dump(mode="json")
+
+    @staticmethod
+    def from_json(raw: Any) -> ProgressReport:
+        """Parse an answer. Raises InvalidInput."""
+        try:
+            return ProgressReport.model_validate(raw)
+        except ValidationError as exc:
+            raise _invalid("progress report", exc) from None
+
+
 KINDS: dict[str, type[PeerMessage]] = {
     cls.kind: cls
     for cls in (

@@ -38,6 +38,8 @@ class Behind(StrEnum):
 class Reason(StrEnum):
     OWNER_BEHIND = "owner_behind"
     NON_OWNER_BEHIND = "non_owner_behind"
+    #: Keys served to slaves were forgotten: fewer served than the partner has seen.
+    DELIVERIES_LOST = "deliveries_lost"
 
 
 @dataclass(frozen=True)
@@ -118,3 +120,24 @@ def compare(
         Finding(behind, reason, t.segments, t.bytes_behind)
         for (behind, reason), t in sorted(tally.items())
     ]
+
+
+def deliveries(
+    own_now: int, seen_by_partner: int | None, partner_now: int | None, partner_seen: int
+) -> list[Finding]:
+    """The delivery rule. A station's count of served keys (of the partner's ownership)
+    only grows, and each station keeps the highest count its partner has shown it.
+
+    * ``own_now`` (read after the partner answered) below ``seen_by_partner`` (what the
+      partner saw of us earlier): this station forgot deliveries and may serve those
+      keys again;
+    * ``partner_now`` below ``partner_seen`` (our mark of the partner): the partner did.
+
+    The findings count keys in ``segments`` (``bytes_behind`` is 0).
+    """
+    out = []
+    if seen_by_partner is not None and own_now < seen_by_partner:
+        out.append(Finding(Behind.SELF, Reason.DELIVERIES_LOST, seen_by_partner - own_now, 0))
+    if partner_now is not None and partner_now < partner_seen:
+        out.append(Finding(Behind.PARTNER, Reason.DELIVERIES_LOST, partner_seen - partner_now, 0))
+    return out

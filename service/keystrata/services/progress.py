@@ -15,21 +15,30 @@ from __future__ import annotations
 
 import json
 import logging
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import Any, Protocol
 
-from sqlalchemy import select, text
+from sqlalchemy import func, select, text
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
+from keystrata.domain import peer_messages as pm
 from keystrata.domain.ledger import Event
-from keystrata.domain.progress import Behind, Finding, Point, Reason, compare
+from keystrata.domain.progress import Behind, Finding, Point, Reason, compare, deliveries
 from keystrata.errors import Forbidden, InvalidInput, Unavailable
 from keystrata.services import ledger
 from keystrata.services.context import NodeContext
 from keystrata.services.principals import Caller
-from keystrata.storage.models import OutboxMessage, Pair, PairHold, PairSegment, Principal
+from keystrata.storage.models import (
+    KeyAlloc,
+    OutboxMessage,
+    Pair,
+    PairHold,
+    PairSegment,
+    PartnerMark,
+    Principal,
+)
 
 log = logging.getLogger("keystrata.progress")
 
@@ -176,15 +185,39 @@ def report(ctx: NodeContext, caller_node: str, pair_id: str, after: str | None) 
         if found is None or found[1] != caller_node:
             raise Forbidden("only the pair's other station may read its progress")
         points = _points(s, ctx, pair_id, caller_node, after, PAGE)
-    return {
-        "pair_id": pair_id,
-        "station": ctx.node_id,
-        "points": [
-            {"segment_id": p.segment_id, "owner": p.owner, "used": p.used, "unacked": p.unacked}
+        first = after is None
+        fetched = fetched_keys(s, pair_id, caller_node) if first else None
+        seen = _mark(s, pair_id, caller_node).partner_fetched if first else None
+    return pm.ProgressReport(
+        pair_id=pair_id,
+        station=ctx.node_id,
+        points=[
+            pm.ProgressPoint(segment_id=p.segment_id, owner=p.owner, used=p.used, unacked=p.unacked)
             for p in points
         ],
-        "next_after": points[-1].segment_id if len(points) == PAGE else None,
-    }
+        next_after=points[-1].segment_id if len(points) == PAGE else None,
+        fetched_keys=fetched,
+        seen_fetched=seen,
+    ).to_json()
+
+
+def fetched_keys(s: Session, pair_id: str, owner: str) -> int:
+    """Keys of ``owner``'s ownership in ``pair_id`` this station has served to at least
+    one slave, plus the floor an operator's release set (a count that only grows)."""
+    served = s.execute(
+        select(func.count()).where(
+            KeyAlloc.pair_id == pair_id, KeyAlloc.owner == owner, KeyAlloc.fetched_by != "[]"
+        )
+    ).scalar_one()
+    return int(served) + _mark(s, pair_id, owner).own_floor
+
+
+def _mark(s: Session, pair_id: str, partner: str) -> PartnerMark:
+    """The partner's mark (unsaved zeros when there is none yet)."""
+    row = s.get(PartnerMark, (pair_id, partner))
+    if row is None:
+        return PartnerMark(pair_id=pair_id, partner=partner, partner_fetched=0, own_floor=0)
+    return row
 
 
 def _all_points(ctx: NodeContext, pair_id: str, partner: str) -> dict[str, Point]:
@@ -201,27 +234,30 @@ def _all_points(ctx: NodeContext, pair_id: str, partner: str) -> dict[str, Point
     return out
 
 
-def _parse_page(raw: Mapping[str, Any], pair_id: str, partner: str) -> list[Point]:
-    if raw.get("pair_id") != pair_id or raw.get("station") != partner:
+@dataclass(frozen=True)
+class PartnerProgress:
+    """The partner's points, and what its first page says of served keys."""
+
+    points: dict[str, Point]
+    fetched_keys: int | None
+    seen_fetched: int | None
+
+
+def _parse_page(raw: Any, pair_id: str, partner: str) -> pm.ProgressReport:
+    page = pm.ProgressReport.from_json(raw)
+    if page.pair_id != pair_id or page.station != partner:
         raise InvalidInput("progress answer names another pair or station")
-    points = raw.get("points")
-    if not isinstance(points, list) or len(points) > PAGE:
-        raise InvalidInput("progress answer: points missing or too many")
-    out = []
-    for p in points:
-        used, unacked = p.get("used"), p.get("unacked")
-        if not (type(used) is int and type(unacked) is int and 0 <= unacked <= used):
-            raise InvalidInput("progress answer: used and unacked must be counts")
-        out.append(Point(str(p["segment_id"]), str(p["owner"]), used, unacked))
-    return out
+    return page
 
 
-def partner_points(
+def partner_progress(
     ctx: NodeContext, source: ProgressSource, pair_id: str, partner: str
-) -> dict[str, Point] | None:
-    """Every page of the partner's points, or None when it cannot be asked now."""
+) -> PartnerProgress | None:
+    """Every page of the partner's answer, or None when it cannot be asked now (or
+    answers something malformed)."""
     timeout = ctx.settings.restore_check.peer_timeout_seconds
     out: dict[str, Point] = {}
+    first: pm.ProgressReport | None = None
     after: str | None = None
     for _ in range(MAX_PAGES):
         raw = source.pair_progress(partner, pair_id, after, timeout)
@@ -229,15 +265,26 @@ def partner_points(
             return None
         try:
             page = _parse_page(raw, pair_id, partner)
-        except (InvalidInput, KeyError, TypeError, ValueError, AttributeError):
-            log.warning("restore check: malformed progress answer from %s", partner)
+        except InvalidInput as exc:
+            log.warning("restore check: malformed progress answer from %s: %s", partner, exc)
             return None
-        out.update((p.segment_id, p) for p in page)
-        nxt = raw.get("next_after")
-        if not isinstance(nxt, str) or not page:
+        first = first or page
+        out.update(
+            (p.segment_id, Point(p.segment_id, p.owner, p.used, p.unacked)) for p in page.points
+        )
+        if page.next_after is None or not page.points:
             break
-        after = nxt
-    return out
+        after = page.next_after
+    assert first is not None
+    return PartnerProgress(out, first.fetched_keys, first.seen_fetched)
+
+
+def partner_points(
+    ctx: NodeContext, source: ProgressSource, pair_id: str, partner: str
+) -> dict[str, Point] | None:
+    """Every page of the partner's points, or None when it cannot be asked now."""
+    got = partner_progress(ctx, source, pair_id, partner)
+    return None if got is None else got.points
 
 
 # ---------------------------------------------------------------- comparing
@@ -252,12 +299,17 @@ def check_pair(ctx: NodeContext, source: ProgressSource, pair_id: str) -> list[F
         return None
     partner = found[1]
     before = _all_points(ctx, pair_id, partner)
-    theirs = partner_points(ctx, source, pair_id, partner)
+    theirs = partner_progress(ctx, source, pair_id, partner)
     if theirs is None:
         return None
     after = _all_points(ctx, pair_id, partner)
-    findings = compare(ctx.node_id, before, theirs, after)
-    _record(ctx, pair_id, partner, findings)
+    with ctx.db.read() as s:
+        own_now = fetched_keys(s, pair_id, partner)
+        mark = _mark(s, pair_id, partner).partner_fetched
+    findings = compare(ctx.node_id, before, theirs.points, after) + deliveries(
+        own_now, theirs.seen_fetched, theirs.fetched_keys, mark
+    )
+    _record(ctx, pair_id, partner, findings, partner_fetched=theirs.fetched_keys)
     return findings
 
 
@@ -285,11 +337,20 @@ def check_all(ctx: NodeContext, source: ProgressSource) -> int:
     return done
 
 
-def _record(ctx: NodeContext, pair_id: str, partner: str, findings: list[Finding]) -> None:
+def _record(
+    ctx: NodeContext,
+    pair_id: str,
+    partner: str,
+    findings: list[Finding],
+    *,
+    partner_fetched: int | None = None,
+) -> None:
     now = ctx.clock.now()
     seen = {(f.behind.value, f.reason.value) for f in findings}
     try:
         with ctx.db.write() as s:
+            if partner_fetched is not None:
+                _raise_mark(s, pair_id, partner, partner_fetched, now)
             open_rows = {
                 (r.behind, r.reason): r
                 for r in s.execute(
@@ -347,6 +408,19 @@ def _record(ctx: NodeContext, pair_id: str, partner: str, findings: list[Finding
         pass  # another worker recorded the same finding at the same moment
 
 
+def _raise_mark(s: Session, pair_id: str, partner: str, fetched: int, now: Any) -> None:
+    """Keep the highest count of served keys the partner has shown (never lower it)."""
+    row = s.get(PartnerMark, (pair_id, partner), with_for_update=True)
+    if row is None:
+        s.add(
+            PartnerMark(
+                pair_id=pair_id, partner=partner, partner_fetched=fetched, own_floor=0, seen_at=now
+            )
+        )
+    elif fetched > row.partner_fetched:
+        row.partner_fetched, row.seen_at = fetched, now
+
+
 def _fields(pair_id: str, partner: str, f: Finding) -> dict[str, Any]:
     return {
         "pair": pair_id,
@@ -366,6 +440,7 @@ __all__ = [
     "check_all",
     "check_pair",
     "open_holds",
+    "partner_progress",
     "refuse_if_held",
     "report",
 ]

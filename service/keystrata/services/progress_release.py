@@ -10,6 +10,8 @@ current points in hand:
   partner knows was applied here, and every key of the pair still waiting here for
   slaves is destroyed (state ``expired``): after the loss this station cannot tell
   which of them were already fetched.
+* ``deliveries_lost``: the same keys are destroyed, and this station's count of served
+  keys is raised to what the partner saw (``partner_mark.own_floor``).
 
 The hold rows are closed with the operator and the reason, and one ledger entry records
 the release with counts only.
@@ -26,8 +28,8 @@ from keystrata.domain.progress import Behind, Reason
 from keystrata.errors import Conflict, InvalidInput, Unavailable
 from keystrata.services import ledger
 from keystrata.services.context import NodeContext
-from keystrata.services.progress import ProgressSource, partner_points
-from keystrata.storage.models import KeyAlloc, PairHold, PairSegment
+from keystrata.services.progress import ProgressSource, fetched_keys, partner_progress
+from keystrata.storage.models import KeyAlloc, PairHold, PairSegment, PartnerMark
 from keystrata.storage.sealed import segment_context
 
 MAX_REASON = 200
@@ -61,9 +63,10 @@ def release(
     if not holds:
         raise Conflict("this pair is not held at this station")
     partner = holds[0].partner
-    theirs = partner_points(ctx, source, pair_id, partner)
-    if theirs is None:
+    progress = partner_progress(ctx, source, pair_id, partner)
+    if progress is None:
         raise Unavailable("the partner station cannot be asked for its progress; try again")
+    theirs = progress.points
     reasons = {h.reason for h in holds}
     now = ctx.clock.now()
     advanced = destroyed = keys = 0
@@ -82,7 +85,21 @@ def release(
             if target > row.used:
                 destroyed += _advance(ctx, row, min(target, row.length))
                 advanced += 1
-        if Reason.NON_OWNER_BEHIND.value in reasons:
+        lost = {Reason.NON_OWNER_BEHIND.value, Reason.DELIVERIES_LOST.value}
+        if Reason.DELIVERIES_LOST.value in reasons:
+            # What the partner saw us serve becomes our count's floor, so the next
+            # comparison is in step (the forgotten deliveries cannot be counted again).
+            own = fetched_keys(s, pair_id, partner)
+            if progress.seen_fetched is not None and own < progress.seen_fetched:
+                mark = s.get(PartnerMark, (pair_id, partner), with_for_update=True)
+                if mark is None:
+                    mark = PartnerMark(
+                        pair_id=pair_id, partner=partner, partner_fetched=0, own_floor=0
+                    )
+                    s.add(mark)
+                mark.own_floor += progress.seen_fetched - own
+                mark.seen_at = now
+        if reasons & lost:
             waiting = s.execute(
                 select(KeyAlloc)
                 .where(

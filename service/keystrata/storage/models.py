@@ -425,7 +425,9 @@ class PairHold(Base):
     __tablename__ = "pair_hold"
     __table_args__ = (
         CheckConstraint("behind IN ('self', 'partner')", name="behind"),
-        CheckConstraint("reason IN ('owner_behind', 'non_owner_behind')", name="reason"),
+        CheckConstraint(
+            "reason IN ('owner_behind', 'non_owner_behind', 'deliveries_lost')", name="reason"
+        ),
         Index(
             "uq_pair_hold_open",
             "pair_id",
@@ -445,7 +447,11 @@ class PairHold(Base):
         String(8), comment="self: this station lost commits; partner: the other one did"
     )
     reason: Mapped[str] = mapped_column(
-        String(32), comment="owner_behind: the segments' owner; non_owner_behind: the other"
+        String(32),
+        comment=(
+            "owner_behind: the segments' owner; non_owner_behind: the other; "
+            "deliveries_lost: keys served to slaves were forgotten"
+        ),
     )
     segments: Mapped[int] = mapped_column(Integer, comment="segments found behind")
     bytes_behind: Mapped[int] = mapped_column(BigInteger, comment="sum of the differences")
@@ -453,3 +459,24 @@ class PairHold(Base):
     released_at: Mapped[datetime | None]
     released_by: Mapped[str | None] = mapped_column(String(ID_LEN))
     release_reason: Mapped[str | None] = mapped_column(String(255))
+
+
+class PartnerMark(Base):
+    """What a partner station has shown of its key deliveries (restore check): the
+    highest number of keys of this station's ownership it has reported served to a
+    slave. A partner that later reports fewer forgot deliveries (restored backup) and
+    could serve those keys again. ``own_floor`` is this station's own: added to the
+    count it reports, set when an operator releases a ``deliveries_lost`` hold here."""
+
+    __tablename__ = "partner_mark"
+    pair_id: Mapped[str] = mapped_column(ForeignKey("pair.pair_id"), primary_key=True)
+    partner: Mapped[str] = mapped_column(
+        String(ID_LEN), primary_key=True, comment="the other station"
+    )
+    partner_fetched: Mapped[int] = mapped_column(
+        BigInteger, comment="the highest count of served keys the partner has reported"
+    )
+    own_floor: Mapped[int] = mapped_column(
+        BigInteger, comment="added to this station's own count after a release of deliveries_lost"
+    )
+    seen_at: Mapped[datetime]

@@ -1,4 +1,5 @@
-"""Pair holds: a station found behind its partner (restore detection) stops serving.
+"""Pair holds: a station found behind its partner (restore detection) stops serving;
+partner marks: what each partner has shown it served, so a lost delivery shows.
 
 Revision ID: 0008
 Revises: 0007
@@ -33,7 +34,10 @@ def upgrade() -> None:
             "reason",
             sa.String(length=32),
             nullable=False,
-            comment="owner_behind: the segments' owner; non_owner_behind: the other",
+            comment=(
+                "owner_behind: the segments' owner; non_owner_behind: the other; "
+                "deliveries_lost: keys served to slaves were forgotten"
+            ),
         ),
         sa.Column("segments", sa.Integer(), nullable=False, comment="segments found behind"),
         sa.Column(
@@ -45,7 +49,8 @@ def upgrade() -> None:
         sa.Column("release_reason", sa.String(length=255), nullable=True),
         sa.CheckConstraint("behind IN ('self', 'partner')", name=op.f("ck_pair_hold_behind")),
         sa.CheckConstraint(
-            "reason IN ('owner_behind', 'non_owner_behind')", name=op.f("ck_pair_hold_reason")
+            "reason IN ('owner_behind', 'non_owner_behind', 'deliveries_lost')",
+            name=op.f("ck_pair_hold_reason"),
         ),
         sa.ForeignKeyConstraint(
             ["pair_id"], ["pair.pair_id"], name=op.f("fk_pair_hold_pair_id_pair")
@@ -62,6 +67,31 @@ def upgrade() -> None:
     )
 
 
+    op.create_table(
+        "partner_mark",
+        sa.Column("pair_id", sa.String(length=64), nullable=False),
+        sa.Column("partner", sa.String(length=64), nullable=False, comment="the other station"),
+        sa.Column(
+            "partner_fetched",
+            sa.BigInteger(),
+            nullable=False,
+            comment="the highest count of served keys the partner has reported",
+        ),
+        sa.Column(
+            "own_floor",
+            sa.BigInteger(),
+            nullable=False,
+            comment="added to this station's own count after a release of deliveries_lost",
+        ),
+        sa.Column("seen_at", sa.DateTime(timezone=True), nullable=False),
+        sa.ForeignKeyConstraint(
+            ["pair_id"], ["pair.pair_id"], name=op.f("fk_partner_mark_pair_id_pair")
+        ),
+        sa.PrimaryKeyConstraint("pair_id", "partner", name=op.f("pk_partner_mark")),
+    )
+
+
 def downgrade() -> None:
+    op.drop_table("partner_mark")
     op.drop_index("uq_pair_hold_open", table_name="pair_hold")
     op.drop_table("pair_hold")
