@@ -19,7 +19,7 @@ from __future__ import annotations
 import base64
 import binascii
 from datetime import datetime
-from typing import Annotated, Any, ClassVar, Literal
+from typing import Annotated, Any, ClassVar, Literal, Self
 
 import rfc8785
 from pydantic import (
@@ -287,7 +287,24 @@ class KeyExpired(PeerMessage):
     key_ids: Annotated[list[Uuid], Field(min_length=1, max_length=MAX_KEYS)]
 
 
-class BufferReport(_Strict):
+class _Answer(_Strict):
+    """An answer a node reads from a peer's route (not sent through the outbox)."""
+
+    what: ClassVar[str] = "answer"
+
+    def to_json(self) -> dict[str, Any]:
+        return self.model_dump(mode="json")
+
+    @classmethod
+    def from_json(cls, raw: Any) -> Self:
+        """Parse an answer. Raises InvalidInput naming the first bad member."""
+        try:
+            return cls.model_validate(raw)
+        except ValidationError as exc:
+            raise _invalid(cls.what, exc) from None
+
+
+class BufferReport(_Answer):
     """A station's key buffer for one pair (bits), as its relay polls it."""
 
     v: Literal[1] = 1
@@ -300,16 +317,7 @@ class BufferReport(_Strict):
     window_seconds: Annotated[int, Field(strict=True, ge=1, le=86_400)]
     reported_at: Time
 
-    def to_json(self) -> dict[str, Any]:
-        return self.model_dump(mode="json")
-
-    @staticmethod
-    def from_json(raw: Any) -> BufferReport:
-        """Parse a report. Raises InvalidInput."""
-        try:
-            return BufferReport.model_validate(raw)
-        except ValidationError as exc:
-            raise _invalid("buffer report", exc) from None
+    what: ClassVar[str] = "buffer report"
 
 
 class ProgressPoint(_Strict):
@@ -327,7 +335,7 @@ class ProgressPoint(_Strict):
         return self
 
 
-class ProgressReport(_Strict):
+class ProgressReport(_Answer):
     """A station's consumption points of one pair, one page, for the restore check of
     the pair's other station (``GET /api/v1/peer/pairs/{pair}/progress``).
 
@@ -344,16 +352,7 @@ class ProgressReport(_Strict):
     fetched_keys: Count | None = None
     seen_fetched: Count | None = None
 
-    def to_json(self) -> dict[str, Any]:
-        return self.model_dump(mode="json")
-
-    @staticmethod
-    def from_json(raw: Any) -> ProgressReport:
-        """Parse an answer. Raises InvalidInput."""
-        try:
-            return ProgressReport.model_validate(raw)
-        except ValidationError as exc:
-            raise _invalid("progress report", exc) from None
+    what: ClassVar[str] = "progress report"
 
 
 KINDS: dict[str, type[PeerMessage]] = {
