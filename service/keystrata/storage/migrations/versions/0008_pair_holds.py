@@ -66,7 +66,6 @@ def upgrade() -> None:
         postgresql_where=sa.text("released_at IS NULL"),
     )
 
-
     op.create_table(
         "partner_mark",
         sa.Column("pair_id", sa.String(length=64), nullable=False),
