@@ -55,6 +55,24 @@ class PairHeld(Unavailable):
     )
 
 
+class NotYetCompared(Unavailable):
+    default_message = (
+        "this station has not yet compared its state for the pair with its partner "
+        "since it started; try again"
+    )
+
+
+#: ``ctx.lanes`` key: partner stations this process has not compared a pair with since
+#: it started (restore check). Their pairs serve nothing here until compared.
+UNVERIFIED = "progress.unverified"
+
+
+def unverified(ctx: NodeContext) -> set[str]:
+    """This process's partners not yet compared since start (a shared, mutable set)."""
+    found: set[str] = ctx.lanes.setdefault(UNVERIFIED, set())
+    return found
+
+
 class ProgressSource(Protocol):
     """The port to a partner station's consumption points (the peer client)."""
 
@@ -83,7 +101,12 @@ def refuse_if_held(ctx: NodeContext, caller: Caller, other_sae_id: str) -> None:
     """
     if caller.role.value != "sae" or caller.station_id != ctx.node_id:
         return
+    pending = unverified(ctx)
     with ctx.db.read() as s:
+        if pending:
+            other = s.get(Principal, other_sae_id)
+            if other is not None and other.station_id in pending:
+                raise NotYetCompared()
         partner = select(Principal.station_id).where(Principal.principal_id == other_sae_id)
         held = s.execute(
             select(PairHold.id)
@@ -102,6 +125,12 @@ def refuse_pair_if_held(ctx: NodeContext, pair_id: str) -> None:
     """Raise :class:`PairHeld` when ``pair_id`` is held because this station is behind."""
     if pair_id in {h.pair_id for h in open_holds(ctx) if h.behind == Behind.SELF.value}:
         raise PairHeld()
+    pending = unverified(ctx)
+    if pending:
+        with ctx.db.read() as s:
+            found = _pair_and_partner(s, ctx, pair_id)
+        if found is not None and found[1] in pending:
+            raise NotYetCompared()
 
 
 def open_holds(ctx: NodeContext) -> list[OpenHold]:
@@ -313,8 +342,11 @@ def check_pair(ctx: NodeContext, source: ProgressSource, pair_id: str) -> list[F
     return findings
 
 
-def check_all(ctx: NodeContext, source: ProgressSource) -> int:
-    """Compare every active pair of this station; return how many could be compared."""
+def check_all(
+    ctx: NodeContext, source: ProgressSource, *, only: set[str] | None = None
+) -> set[str]:
+    """Compare every active pair of this station (with a partner in ``only``, if given);
+    return the partners of the pairs that could not be compared now."""
     with ctx.db.read() as s:
         pairs = (
             s.execute(
@@ -328,13 +360,16 @@ def check_all(ctx: NodeContext, source: ProgressSource) -> int:
             .scalars()
             .all()
         )
-    done = 0
+    missed: set[str] = set()
     for pair_id in pairs:
-        if check_pair(ctx, source, pair_id) is not None:
-            done += 1
-        else:
+        with ctx.db.read() as s:
+            found = _pair_and_partner(s, ctx, pair_id)
+        if found is None or (only is not None and found[1] not in only):
+            continue
+        if check_pair(ctx, source, pair_id) is None:
+            missed.add(found[1])
             log.info("restore check: %s not compared (partner unreachable)", pair_id)
-    return done
+    return missed
 
 
 def _record(

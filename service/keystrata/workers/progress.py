@@ -5,6 +5,7 @@ serves: a hold found then is in place before the first request) and then every
 from __future__ import annotations
 
 import logging
+import time
 from datetime import timedelta
 
 from keystrata.services import leases, progress
@@ -16,17 +17,54 @@ LEASE = "restore-check"
 
 
 def at_start(ctx: NodeContext, source: progress.ProgressSource) -> None:
-    """Compare every pair once; a partner that cannot be asked now is compared later."""
+    """Compare every pair once. The partners of pairs that could not be compared now stay
+    unverified in this process: their pairs serve nothing here (503, try again) until a
+    later round compares them, so a restored station cannot serve before it knows."""
+    pending = progress.unverified(ctx)
     try:
-        progress.check_all(ctx, source)
+        missed = progress.check_all(ctx, source)
     except Exception:  # a start must not fail on a partner's bad moment
         log.exception("restore check at start failed; the periodic check retries")
+        missed = _partners(ctx)
+    pending.clear()
+    pending.update(missed)
+    if missed:
+        log.warning("restore check: not compared yet with %s; their pairs wait", sorted(missed))
+
+
+def _partners(ctx: NodeContext) -> set[str]:
+    from keystrata.storage.models import Pair
+
+    with ctx.db.read() as s:
+        pairs = s.query(Pair).filter(Pair.retired_at.is_(None)).all()
+        return {
+            p.station_b if p.station_a == ctx.node_id else p.station_a
+            for p in pairs
+            if ctx.node_id in (p.station_a, p.station_b)
+        }
 
 
 def check_once(ctx: NodeContext, source: progress.ProgressSource, holder: str) -> bool:
-    """One periodic round if this process holds the lease; False (nothing to hurry)."""
+    """Compare again the pairs of partners not compared since start (every worker, each
+    round), and every pair once per ``[restore_check] interval_seconds`` if this process
+    holds the lease. Returns False (nothing to hurry)."""
+    pending = progress.unverified(ctx)
+    if pending:
+        still = progress.check_all(ctx, source, only=set(pending))
+        pending.intersection_update(still)
     interval = ctx.settings.restore_check.interval_seconds
+    now = time.monotonic()
+    due = ctx.lanes.get(_DUE, 0.0)
+    if now < due:
+        return False
     ttl = timedelta(seconds=max(30.0, 3 * interval))
     if leases.acquire(ctx.db, LEASE, holder, now=ctx.clock.now(), ttl=ttl):
         progress.check_all(ctx, source)
+        ctx.lanes[_DUE] = now + interval
     return False
+
+
+#: ``ctx.lanes`` key: when this process's next full round is due (monotonic seconds).
+_DUE = "progress.next_round"
+#: How often a worker looks again at partners it has not compared yet.
+RETRY_SECONDS = 1.0

@@ -51,7 +51,7 @@ class Background:
                 (
                     "restore-check",
                     lambda: progress.check_once(self.ctx, self.peers, self.holder),
-                    self.ctx.settings.restore_check.interval_seconds,
+                    min(self.ctx.settings.restore_check.interval_seconds, progress.RETRY_SECONDS),
                 )
             )
         for name, step, idle in loops:
