@@ -282,3 +282,29 @@ def test_a_station_that_forgot_deliveries_holds_itself_until_released(station) -
         assert progress.fetched_keys(s, "pair-ac", C) == 4
     assert progress.check_pair(ctx, partner, "pair-ac") == []
     progress.refuse_if_held(ctx, A1, "sae-c1")  # served again
+
+
+def test_a_worker_that_cannot_ask_its_partner_at_start_serves_the_pair_nothing(station) -> None:
+    """At start the partner does not answer: the pair stays closed in this process (503,
+    try again) until a later round compares it; then it serves again."""
+    from keystrata.workers import progress as loop
+
+    class Silent:
+        def pair_progress(self, *args: Any, **kwargs: Any) -> None:
+            return None
+
+    ctx = station.ctx
+    _segment(station, S1, A, bytes(256), used=64)
+    loop.at_start(ctx, Silent())
+    with pytest.raises(progress.NotYetCompared) as early:
+        progress.refuse_if_held(ctx, A1, "sae-c1")
+    assert early.value.status == 503 and "try again" in early.value.message
+    with pytest.raises(progress.NotYetCompared):
+        progress.refuse_pair_if_held(ctx, "pair-ac")
+    loop.check_once(ctx, Silent(), "worker-1")  # still silent: still closed
+    with pytest.raises(progress.NotYetCompared):
+        progress.refuse_if_held(ctx, A1, "sae-c1")
+    in_step = Partner([{"segment_id": S1, "owner": A, "used": 64, "unacked": 0}])
+    loop.check_once(ctx, in_step, "worker-1")
+    progress.refuse_if_held(ctx, A1, "sae-c1")
+    progress.refuse_pair_if_held(ctx, "pair-ac")
