@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import base64
 import binascii
+import json
 from datetime import datetime
 from typing import Annotated, Any, ClassVar, Literal, Self
 
@@ -169,8 +170,6 @@ class SegmentHeader(_Strict):
     @staticmethod
     def decode(raw: bytes) -> SegmentHeader:
         """Parse header bytes as sent. Raises InvalidInput."""
-        import json
-
         try:
             value = json.loads(raw)
         except ValueError:
