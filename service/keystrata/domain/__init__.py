@@ -1,1 +1,0 @@
-"""Domain logic: plain Python, no web framework, no ORM."""
