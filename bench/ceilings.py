@@ -22,7 +22,7 @@ import uvicorn
 from fastapi import FastAPI
 
 from keystrata.api.tls import ClientCertHttpToolsProtocol
-from keystrata.domain.etsi import KeyContainer, KeyIds, KeyRequest
+from keystrata.delivery.schemas import KeyContainer, KeyIds, KeyRequest
 
 
 def _container(count: int, size_bits: int) -> dict[str, Any]:

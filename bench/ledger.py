@@ -25,10 +25,9 @@ from sqlalchemy import update
 
 from bench import common, profiling
 from bench.common import Figure, Workspace, percentile
-from keystrata.domain import merkle
-from keystrata.domain.frontier import Frontier
-from keystrata.domain.ledger import Event, encode_entry, timestamp
-from keystrata.services import ledger
+from keystrata.ledger import chain, merkle
+from keystrata.ledger.entries import Event, encode_entry, timestamp
+from keystrata.ledger.frontier import Frontier
 from keystrata.storage import migrate
 from keystrata.storage.db import Database
 from keystrata.storage.models import LedgerEntry, LedgerHead
@@ -152,7 +151,7 @@ def proof_times(db: Database, samples: int, seed: int = 6) -> tuple[list[float],
     random indexes. A few proofs are checked against the tree head first."""
     rng = random.Random(seed)  # noqa: S311 - reproducible sample of indexes, not a key
     with db.read() as s:
-        tree = ledger.StoredTree(s)
+        tree = chain.StoredTree(s)
         size, root = tree.head()
         for index in (0, size // 2, size - 1, rng.randrange(size)):
             entry = s.get(LedgerEntry, index)
@@ -165,11 +164,11 @@ def proof_times(db: Database, samples: int, seed: int = 6) -> tuple[list[float],
 
     def inclusion(index: int) -> None:
         with db.read() as s:
-            ledger.StoredTree(s).inclusion_proof(index, size)
+            chain.StoredTree(s).inclusion_proof(index, size)
 
     def consistency(old: int) -> None:
         with db.read() as s:
-            ledger.StoredTree(s).consistency_proof(old, size)
+            chain.StoredTree(s).consistency_proof(old, size)
 
     inc = _timed((rng.randrange(size) for _ in range(samples)), inclusion)
     con = _timed((rng.randrange(1, size) for _ in range(samples)), consistency)
@@ -183,7 +182,7 @@ def appends_per_second(db: Database, seconds: float) -> float:
     end = start + seconds
     while time.perf_counter() < end:
         with db.write() as s:
-            ledger.append(
+            chain.append(
                 s,
                 node_id=NODE,
                 at=datetime.now(UTC),

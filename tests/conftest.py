@@ -27,10 +27,10 @@ import pytest
 from anyio.from_thread import BlockingPortal, start_blocking_portal
 
 from keystrata.config import Settings, load_settings
+from keystrata.context import NodeContext
 from keystrata.crypto.kek import write_new_kek
 from keystrata.crypto.pki import PkiDir
-from keystrata.services.context import NodeContext
-from keystrata.services.node import initialise, load_keyring, open_node
+from keystrata.node.lifecycle import initialise, load_keyring, open_node
 from keystrata.storage import migrate
 from keystrata.storage.db import Database, make_engine
 
@@ -400,8 +400,8 @@ def make_node(tmp_path: Path, pki: PkiFiles) -> Iterator[NodeFactory]:
 def seed_registry(ctx: NodeContext) -> None:
     """Provision a small network on one node: the relay, three stations, links to two of
     them, and one principal per test client certificate."""
-    from keystrata.domain.registry import Kind, LinkSpec, NodeSpec, PrincipalSpec
-    from keystrata.services import registry
+    from keystrata.registry import provisioning
+    from keystrata.registry.specs import Kind, LinkSpec, NodeSpec, PrincipalSpec
 
     nodes = [
         ("relay-1", "relay"),
@@ -411,7 +411,7 @@ def seed_registry(ctx: NodeContext) -> None:
     ]
     for node_id, role in nodes:
         if node_id != ctx.node_id:
-            registry.create(
+            provisioning.create(
                 ctx,
                 Kind.NODES,
                 NodeSpec.model_validate(
@@ -420,7 +420,7 @@ def seed_registry(ctx: NodeContext) -> None:
                 actor="test",
             )
     for link, station in (("link-a", "station-a"), ("link-b", "station-b")):
-        registry.create(
+        provisioning.create(
             ctx,
             Kind.LINKS,
             LinkSpec(link_id=link, relay_id="relay-1", station_id=station),
@@ -471,11 +471,11 @@ def seed_registry(ctx: NodeContext) -> None:
         }
     )
     for body in principals:
-        registry.create(ctx, Kind.PRINCIPALS, PrincipalSpec.model_validate(body), actor="test")
+        provisioning.create(ctx, Kind.PRINCIPALS, PrincipalSpec.model_validate(body), actor="test")
     # One pair, so that every route has something real to answer about.
-    from keystrata.domain.registry import PairSpec
+    from keystrata.registry.specs import PairSpec
 
-    registry.create(
+    provisioning.create(
         ctx,
         Kind.PAIRS,
         PairSpec(pair_id="pair-ac", relay_id="relay-1", stations=["station-a", "station-c"]),

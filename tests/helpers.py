@@ -6,7 +6,7 @@ from typing import Any
 
 from sqlalchemy import select
 
-from keystrata.services.context import NodeContext
+from keystrata.context import NodeContext
 from keystrata.storage.models import Base
 
 

@@ -16,8 +16,13 @@ from typing import Any
 from sqlalchemy import select
 
 from conftest import Node, NodeFactory, cert_pin
-from keystrata.domain.blocks import BlockIn
-from keystrata.domain.registry import (
+from keystrata.errors import KeystrataError
+from keystrata.links import ingest
+from keystrata.links.blocks import BlockIn
+from keystrata.node import dispatch
+from keystrata.peering import outbox
+from keystrata.registry import provisioning
+from keystrata.registry.specs import (
     Kind,
     LinkSpec,
     NodeSpec,
@@ -25,9 +30,8 @@ from keystrata.domain.registry import (
     PairSpec,
     PrincipalSpec,
 )
-from keystrata.errors import KeystrataError
-from keystrata.services import ingest, messages, outbox, registry, relay
-from keystrata.services.buffers import record_report, station_report
+from keystrata.relay import operation
+from keystrata.relay.buffers import record_report, station_report
 from keystrata.storage.models import PairSegment
 from keystrata.storage.sealed import segment_context
 
@@ -88,7 +92,7 @@ class RelayNet:
         message unless the reply is "lost"."""
         target = self.nodes[message.destination]
         try:
-            status = messages.handle(target.ctx, sender, dict(message.body)).status
+            status = dispatch.handle(target.ctx, sender, dict(message.body)).status
         except KeystrataError as exc:
             return str(exc.status)
         if not lose_reply:
@@ -136,7 +140,7 @@ def provision(node: Node, policy: dict[str, Any] | None = None) -> None:
     ctx = node.ctx
     for node_id, role in (("relay-1", "relay"), ("station-a", "station"), ("station-b", "station")):
         if node_id != ctx.node_id:
-            registry.create(
+            provisioning.create(
                 ctx,
                 Kind.NODES,
                 NodeSpec.model_validate({"node_id": node_id, "role": role}),
@@ -144,13 +148,13 @@ def provision(node: Node, policy: dict[str, Any] | None = None) -> None:
             )
     for station, link in LINKS.items():
         if ctx.node_id in ("relay-1", station):
-            registry.create(
+            provisioning.create(
                 ctx,
                 Kind.LINKS,
                 LinkSpec(link_id=link, relay_id="relay-1", station_id=station),
                 actor="test",
             )
-    registry.create(
+    provisioning.create(
         ctx,
         Kind.PAIRS,
         PairSpec(
@@ -163,7 +167,7 @@ def provision(node: Node, policy: dict[str, Any] | None = None) -> None:
     )
     for peer in ("relay-1", "station-a", "station-b"):
         if peer != ctx.node_id:
-            registry.create(
+            provisioning.create(
                 ctx,
                 Kind.PRINCIPALS,
                 PrincipalSpec.model_validate(
@@ -205,20 +209,20 @@ def add_third_station(net: RelayNet, c: Node, *, priority: int) -> None:
             ("station-c", "station"),
         ):
             if node_id != ctx.node_id and not _has(ctx, Kind.NODES, node_id):
-                registry.create(
+                provisioning.create(
                     ctx,
                     Kind.NODES,
                     NodeSpec.model_validate({"node_id": node_id, "role": role}),
                     actor="test",
                 )
         if ctx.node_id in ("relay-1", "station-c"):
-            registry.create(
+            provisioning.create(
                 ctx,
                 Kind.LINKS,
                 LinkSpec(link_id="link-c", relay_id="relay-1", station_id="station-c"),
                 actor="test",
             )
-        registry.create(
+        provisioning.create(
             ctx,
             Kind.PAIRS,
             PairSpec(
@@ -242,7 +246,7 @@ def add_third_station(net: RelayNet, c: Node, *, priority: int) -> None:
 
 def _has(ctx: Any, kind: Kind, key: str) -> bool:
     try:
-        registry.get(ctx, kind, key)
+        provisioning.get(ctx, kind, key)
         return True
     except KeystrataError:
         return False
@@ -261,7 +265,7 @@ def provision_saes(net: RelayNet) -> None:
     test operator and auditor."""
     for node in (net.a, net.b):
         for pid, role in (("ops-ada", "operator"), ("aud-ben", "auditor")):
-            registry.create(
+            provisioning.create(
                 node.ctx,
                 Kind.PRINCIPALS,
                 PrincipalSpec.model_validate(
@@ -275,7 +279,7 @@ def provision_saes(net: RelayNet) -> None:
                 actor="test",
             )
         for sae, station in SAES.items():
-            registry.create(
+            provisioning.create(
                 node.ctx,
                 Kind.PRINCIPALS,
                 PrincipalSpec.model_validate(
@@ -287,13 +291,13 @@ def provision_saes(net: RelayNet) -> None:
 
 def ready_key(net: RelayNet, segments: int = 6, size: int = 4096) -> None:
     """Make ready pair key at both stations: several segments, owners alternating."""
-    from keystrata.domain.relay import choose_owner
+    from keystrata.relay.arithmetic import choose_owner
 
     net.feed("station-a", segments * 2)
     net.feed("station-b", segments * 2)
     owned = {"station-a": 0, "station-b": 0}
     for _ in range(segments):
         owner = choose_owner("station-a", "station-b", 0, 0, owned["station-a"], owned["station-b"])
-        relay.make_segment(net.relay.ctx, PAIR, size, owner=owner)
+        operation.make_segment(net.relay.ctx, PAIR, size, owner=owner)
         owned[owner] += size
     net.drain()

@@ -100,8 +100,8 @@ def test_an_older_sealed_value_put_back_does_not_open(net, api) -> None:
 def test_rows_sealed_in_layout_1_move_to_layout_2_when_the_node_opens(net, api) -> None:
     """A database from before layout 2: rows sealed with the row identity only. The
     node seals them again when it opens, then serves them as before."""
-    from keystrata.services import reseal
-    from keystrata.services.node import open_node
+    from keystrata.node import reseal
+    from keystrata.node.lifecycle import open_node
     from keystrata.storage.sealed import (
         LAYOUT_META,
         key_context,

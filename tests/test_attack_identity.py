@@ -243,7 +243,7 @@ def _relay_settings(folder: Path, pki: PkiFiles, peers: dict[str, str]):
 def test_peer_client_pointed_at_another_nodes_url_refuses_to_send(
     tmp_path: Path, pki: PkiFiles, caplog: pytest.LogCaptureFixture
 ) -> None:
-    from keystrata.workers.peer_client import PeerClient, PeerUnavailable
+    from keystrata.peering.client import PeerClient, PeerUnavailable
 
     # Attacker: station-b (a valid node of the network) answers at the URL the relay has
     # for station-a (a DNS or routing change, or a wrong [[peers]] entry); it would read

@@ -21,9 +21,10 @@ from sqlalchemy import select
 
 import relaynet
 from helpers import ledger_events, snapshot
-from keystrata.domain import peer_messages as pm
 from keystrata.errors import KeystrataError
-from keystrata.services import messages, outbox, relay
+from keystrata.node import dispatch
+from keystrata.peering import messages, outbox
+from keystrata.relay import operation
 from keystrata.storage.models import KeyAlloc, PairSegment
 
 
@@ -41,7 +42,7 @@ def _segment_of_c(net: relaynet.RelayNet) -> str:
     """A ready pair-bc segment owned by station C, at both B and C."""
     net.feed("station-b", 2)
     net.feed("station-c", 2)
-    made = relay.make_segment(net.relay.ctx, "pair-bc", 4096, owner="station-c")
+    made = operation.make_segment(net.relay.ctx, "pair-bc", 4096, owner="station-c")
     net.drain()
     assert net.segments("station-b")[made.segment_id].state == "ready"
     return made.segment_id
@@ -50,7 +51,7 @@ def _segment_of_c(net: relaynet.RelayNet) -> str:
 def _send(net: relaynet.RelayNet, sender: str, to: str, body: dict[str, Any]) -> int:
     """Deliver a hand-made message as ``sender``; the status the receiver answered."""
     try:
-        messages.handle(net.nodes[to].ctx, sender, body)
+        dispatch.handle(net.nodes[to].ctx, sender, body)
     except KeystrataError as exc:
         return exc.status
     return 200
@@ -58,15 +59,15 @@ def _send(net: relaynet.RelayNet, sender: str, to: str, body: dict[str, Any]) ->
 
 def _allocation(segment: str, *, master: str, slaves: list[str], ttl: timedelta) -> dict[str, Any]:
     now = datetime.now(UTC)
-    return pm.KeyAllocated(
+    return messages.KeyAllocated(
         pair_id="pair-bc",
         owner="station-c",
         keys=[
-            pm.AllocatedKey(
+            messages.AllocatedKey(
                 key_ID=str(uuid.uuid4()),
                 master=master,
                 slaves=slaves,
-                ranges=[pm.SegmentRange(segment=segment, offset=0, length=32)],
+                ranges=[messages.SegmentRange(segment=segment, offset=0, length=32)],
                 size_bits=256,
                 allocated_at=now,
                 expires_at=now + ttl,
@@ -124,7 +125,7 @@ def test_a_neighbour_cannot_discard_another_pairs_segment(net):
     victim = ready[0]
     assert net.segments("station-b")[victim].state == "ready"
     before = snapshot(net.b.ctx)["pair_segment"]
-    body = pm.SegmentDiscarded(
+    body = messages.SegmentDiscarded(
         segment_id=victim, pair_id="pair-bc", reason="check_mismatch", sender_side="notice"
     ).to_body()
     assert _send(net, "station-c", "station-b", body) in (403, 404)
@@ -134,7 +135,7 @@ def test_a_neighbour_cannot_discard_another_pairs_segment(net):
 
 def test_a_forged_tombstone_does_not_kill_a_later_segment(net, monkeypatch):
     guessed = uuid.uuid4()
-    body = pm.SegmentDiscarded(
+    body = messages.SegmentDiscarded(
         segment_id=str(guessed), pair_id="pair-bc", reason="bad_tag", sender_side="notice"
     ).to_body()
     _send(net, "station-c", "station-b", body)
@@ -142,8 +143,8 @@ def test_a_forged_tombstone_does_not_kill_a_later_segment(net, monkeypatch):
     net.feed("station-a", 2)
     net.feed("station-b", 2)
     with monkeypatch.context() as patch:
-        patch.setattr(relay.uuid, "uuid4", lambda: guessed)
-        relay.make_segment(net.relay.ctx, relaynet.PAIR, 4096)
+        patch.setattr(operation.uuid, "uuid4", lambda: guessed)
+        operation.make_segment(net.relay.ctx, relaynet.PAIR, 4096)
     net.drain()
     assert net.segments("station-a")[str(guessed)].state == "ready"
     assert net.segments("station-b")[str(guessed)].state == "ready"
@@ -162,7 +163,7 @@ def test_relay_certificate_holder_cannot_make_both_stations_owners(net):
     the same bytes as master key."""
     net.feed("station-a", 2)
     net.feed("station-b", 2)
-    made = relay.make_segment(
+    made = operation.make_segment(
         net.relay.ctx,
         relaynet.PAIR,
         4096,
@@ -199,7 +200,7 @@ def test_settled_reason_from_a_station_is_bounded(net):
     before = snapshot(net.relay.ctx)["ledger_entry"]
     body = {
         "kind": "segment.settled",
-        "v": pm.VERSION,
+        "v": messages.VERSION,
         "segment_id": op.segment_id,
         "outcome": "discarded",
         "reason": "x" * 10_000,
@@ -215,7 +216,7 @@ def test_unknown_kind_or_version_is_a_clear_400(net):
         {"kind": "segment.check"},
     ):
         with pytest.raises(KeystrataError) as exc:
-            messages.handle(net.a.ctx, "station-b", body)
+            dispatch.handle(net.a.ctx, "station-b", body)
         assert exc.value.status == 400
         assert "kind" in exc.value.message or "v" in exc.value.message
 
@@ -240,16 +241,16 @@ def test_a_relay_that_tells_the_stations_different_stories_makes_no_segment(net)
 
     net.feed("station-a", 2)
     net.feed("station-b", 2)
-    made = relay.make_segment(
+    made = operation.make_segment(
         net.relay.ctx, relaynet.PAIR, 4096, owner="station-b", cipher_station="station-b"
     )
     notice, _ = _notice_and_cipher(net)
     header = json.loads(base64.b64decode(notice.body["header"]))
     header["owner"] = "station-a"
-    forged_header = pm.SegmentHeader.model_validate(header).encode()
+    forged_header = messages.SegmentHeader.model_validate(header).encode()
     ma = _link_bytes(net.a, header["notice_mac_ranges"])
     tag = Poly1305.generate_tag(ma, len(forged_header).to_bytes(4, "big") + forged_header)
-    forged = pm.RelayNotice(segment_id=made.segment_id, header=forged_header, tag=tag)
+    forged = messages.RelayNotice(segment_id=made.segment_id, header=forged_header, tag=tag)
     assert _send(net, "relay-1", "station-a", forged.to_body()) == 200
     assert net.segments("station-a")[made.segment_id].owner == "station-a"
     outbox.delivered(net.relay.ctx.db, [notice.id])
@@ -266,8 +267,8 @@ def test_one_station_reporting_an_empty_buffer_does_not_drain_its_partners_link(
     spends no link key on it."""
     from dataclasses import replace
 
-    from keystrata.services.buffers import record_report, station_report
-    from keystrata.workers.scheduler import schedule_once
+    from keystrata.relay.buffers import record_report, station_report
+    from keystrata.relay.scheduler import schedule_once
 
     policy = {"buffer_min_bits": 0, "buffer_target_bits": 65_536, "buffer_max_bits": 10**6}
     net = relaynet.build(make_node, db_factory, policy=policy)
@@ -290,13 +291,13 @@ def test_a_programming_error_in_a_handler_is_not_a_400(net, api, monkeypatch):
     def broken(ctx, sender, msg):
         raise KeyError("a bug")
 
-    monkeypatch.setitem(messages.HANDLERS[Role.STATION], pm.RelayNotice, broken)
+    monkeypatch.setitem(dispatch.HANDLERS[Role.STATION], messages.RelayNotice, broken)
     net.feed("station-a", 2)
     net.feed("station-b", 2)
-    relay.make_segment(net.relay.ctx, relaynet.PAIR, 2048, cipher_station="station-b")
+    operation.make_segment(net.relay.ctx, relaynet.PAIR, 2048, cipher_station="station-b")
     notice, _ = _notice_and_cipher(net)
     with pytest.raises(KeyError):
-        messages.handle(net.a.ctx, "relay-1", notice.body)
+        dispatch.handle(net.a.ctx, "relay-1", notice.body)
     # Through the route: the ASGI test transport re-raises what the app answered 500 to.
     with pytest.raises(KeyError):
         api(net.a)("relay-1").post("/api/v1/peer/messages", json=notice.body)

@@ -12,15 +12,15 @@ from sqlalchemy import select
 
 import relaynet
 from helpers import snapshot
-from keystrata.domain.registry import Kind, PairChange
-from keystrata.services import registry
+from keystrata.registry import provisioning
+from keystrata.registry.specs import Kind, PairChange
 from keystrata.storage.models import LedgerEntry
 
 
 def _restrict(net: relaynet.RelayNet, policy: dict[str, object]) -> None:
     """The operator names who may use pair-ab, at both stations."""
     for node in (net.a, net.b):
-        registry.change(
+        provisioning.change(
             node.ctx, Kind.PAIRS, relaynet.PAIR, PairChange(policy=policy), actor="ops-ada"
         )
 
@@ -75,7 +75,7 @@ def test_the_slaves_station_refuses_an_allocation_for_a_slave_not_in_the_pair(ne
     r = api(net.a)("sae-a1").post("/api/v1/keys/sae-b2/enc_keys", json={"number": 1})
     assert r.status_code == 200
     key_id = r.json()["keys"][0]["key_ID"]
-    registry.change(
+    provisioning.change(
         net.b.ctx,
         Kind.PAIRS,
         relaynet.PAIR,

@@ -11,8 +11,7 @@ from datetime import datetime
 import rfc8785
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
-from keystrata.domain import merkle
-from keystrata.services import checkpoints
+from keystrata.ledger import checkpoints, merkle
 from keystrata_client.audit.export import Checkpoint
 from test_ledger_tree import _entries, mth
 

@@ -12,7 +12,7 @@ from typing import Any
 
 from sqlalchemy import insert, select, text, update
 
-from keystrata.services import accounting
+from keystrata.delivery import accounting
 from keystrata.storage import migrate
 from keystrata.storage.db import Database
 from keystrata.storage.models import LedgerEntry, LedgerRef

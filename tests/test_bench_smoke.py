@@ -22,9 +22,8 @@ from bench import ledger as bench_ledger  # noqa: E402 - needs the repository ro
 from bench import report  # noqa: E402
 from bench.common import Figure, Workspace, percentile  # noqa: E402
 
-from keystrata.domain import merkle  # noqa: E402
-from keystrata.domain.ledger import Event, encode_entry  # noqa: E402
-from keystrata.services import ledger  # noqa: E402
+from keystrata.ledger import chain, merkle  # noqa: E402
+from keystrata.ledger.entries import Event, encode_entry  # noqa: E402
 from keystrata.storage.models import LedgerEntry  # noqa: E402
 
 
@@ -51,7 +50,7 @@ def test_bulk_built_ledger_is_the_ledger_appends_would_write(tmp_path: Path) -> 
         bench_ledger.build(db, 1000)
         with db.read() as s:
             entries = [e.entry for e in s.query(LedgerEntry).order_by(LedgerEntry.idx)]
-            size, root = ledger.StoredTree(s).head()
+            size, root = chain.StoredTree(s).head()
     finally:
         db.dispose()
     assert size == len(entries) == 1000

@@ -21,8 +21,9 @@ from sqlalchemy import select
 
 from conftest import Node, PkiFiles, cert_pin
 from keystrata.api.app import route_table
-from keystrata.domain.registry import Kind, PrincipalSpec
-from keystrata.services import outbox, registry
+from keystrata.peering import outbox
+from keystrata.registry import provisioning
+from keystrata.registry.specs import Kind, PrincipalSpec
 from keystrata.storage.models import LedgerEntry
 
 
@@ -113,7 +114,7 @@ BINDINGS: dict[tuple[str, str], list[Case]] = {
 NODE_WIDE = "operator, auditor and monitor act on the whole node: no narrower binding"
 PER_MESSAGE = (
     "bound per message kind, after the typed message is parsed: the sender is checked "
-    "against the pair, segment and registry of each kind (services/messages.py and the "
+    "against the pair, segment and registry of each kind (node/dispatch.py and the "
     "peer attack suite, test_attack_peers.py)"
 )
 UNBOUND: dict[tuple[str, str], str] = {
@@ -166,7 +167,7 @@ def bound_station(station: Node, pki: PkiFiles) -> Node:
         {"principal_id": "sae-c2", "role": "sae", "cert_subject": "sae-b2"}
         | {"station_id": "station-c"},
     ):
-        registry.create(
+        provisioning.create(
             station.ctx, Kind.PRINCIPALS, PrincipalSpec.model_validate(spec), actor="test"
         )
     return station

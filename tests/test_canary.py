@@ -35,11 +35,15 @@ import relaynet
 from conftest import AsgiClient, Node, NodeFactory, PkiFiles, _WithClientCert, cert_pin
 from helpers import snapshot
 from keystrata.api.app import create_app
-from keystrata.domain.blocks import BlockIn
-from keystrata.domain.registry import Kind, PrincipalSpec
-from keystrata.domain.relay import choose_owner
 from keystrata.errors import KeystrataError
-from keystrata.services import ingest, messages, outbox, registry, relay
+from keystrata.links import ingest
+from keystrata.links.blocks import BlockIn
+from keystrata.node import dispatch
+from keystrata.peering import outbox
+from keystrata.registry import provisioning
+from keystrata.registry.specs import Kind, PrincipalSpec
+from keystrata.relay import operation
+from keystrata.relay.arithmetic import choose_owner
 from keystrata.storage.models import LedgerEntry, OutboxMessage, PairSegment
 from keystrata.storage.sealed import segment_context
 
@@ -181,7 +185,7 @@ class Harness:
             for sender, message in self.net.pending():
                 target = self.net.nodes[message.destination]
                 try:
-                    status = messages.handle(target.ctx, sender, dict(message.body)).status
+                    status = dispatch.handle(target.ctx, sender, dict(message.body)).status
                 except KeystrataError as exc:
                     self.raised.append(exc)
                     continue
@@ -207,7 +211,7 @@ def harness(make_node: NodeFactory, db_factory: Any, pki: PkiFiles) -> Iterator[
         ("ops-ada", "operator", {"cert_sha256": cert_pin(pki.dir, "ops-ada")}),
         ("mod-link-a", "qkd-module", {"link_id": "link-a"}),
     ):
-        registry.create(
+        provisioning.create(
             net.relay.ctx,
             Kind.PRINCIPALS,
             PrincipalSpec.model_validate(
@@ -281,7 +285,7 @@ def run_deliveries(h: Harness) -> None:
     owned = {"station-a": 0, "station-b": 0}
     for _ in range(5):
         owner = choose_owner("station-a", "station-b", 0, 0, owned["station-a"], owned["station-b"])
-        relay.make_segment(net.relay.ctx, relaynet.PAIR, 1024, owner=owner)
+        operation.make_segment(net.relay.ctx, relaynet.PAIR, 1024, owner=owner)
         owned[owner] += 1024
     h.capture_outbox()
     # A tampered relay ciphertext, through the peer route: one bit of C flipped.
@@ -555,7 +559,7 @@ def test_refusals_of_every_kind_do_not_repeat_a_key_in_the_request(
     # The canary is a real link key of this node (sealed at rest, as it must be).
     block = BlockIn(str(uuid.uuid4()), LINK_KEY, 0.02, 1e-10, datetime.now(UTC))
     ingest.ingest(ctx, "link-a", [block], actor="test-module", actor_link="link-a")
-    registry.create(
+    provisioning.create(
         ctx,
         Kind.PRINCIPALS,
         PrincipalSpec.model_validate(

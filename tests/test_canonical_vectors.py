@@ -6,7 +6,7 @@ Appendix B number samples, section 3.2.2 primitives example, section 3.2.3 sorti
 example; recalled from memory and checked against an ECMAScript engine, as each file
 says). Each vector drives two checks:
 
-* the service's entry encoding (``keystrata.domain.ledger.encode_entry``) writes the
+* the service's entry encoding (``keystrata.ledger.entries.encode_entry``) writes the
   expected text for the value, and refuses what RFC 8785 refuses (NaN, Infinity);
 * the offline verifier (``keystrata_client.audit``) accepts an entry whose bytes were
   written here by hand with the expected text, and refuses the same value spelled
@@ -33,7 +33,7 @@ import pytest
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 from cryptography.hazmat.primitives.serialization import Encoding, PublicFormat
 
-from keystrata.domain.ledger import Event, encode_entry
+from keystrata.ledger.entries import Event, encode_entry
 from keystrata_client.audit import Report, verify_export
 
 VECTORS = Path(__file__).parent / "vectors" / "rfc8785"

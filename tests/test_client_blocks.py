@@ -1,8 +1,8 @@
 """The client's link key block encodings, checked against the server and the RFCs.
 
 - Binary form: the client's own encoder must round-trip through the server's decoder
-  (``keystrata.domain.blocks.decode_batch``) and put every field at the documented
-  offset (layout in ``service/keystrata/domain/blocks.py``).
+  (``keystrata.links.blocks.decode_batch``) and put every field at the documented
+  offset (layout in ``service/keystrata/links/blocks.py``).
 - JSON form: ``key`` is Base64 with the standard alphabet and padding of RFC 4648
   section 4, checked with ``base64.b64decode(..., validate=True)`` and with the test
   vectors of RFC 4648 section 10.
@@ -28,7 +28,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from keystrata.domain.blocks import BlockIn, decode_batch, encode_record
+from keystrata.links.blocks import BlockIn, decode_batch, encode_record
 from keystrata_client import (
     ApiError,
     AsyncModuleClient,

@@ -27,7 +27,7 @@ from sqlalchemy import select
 from conftest import PkiFiles
 from keystrata.config import load_settings
 from keystrata.demo.verify import check_network
-from keystrata.services.node import open_node
+from keystrata.node.lifecycle import open_node
 from keystrata.storage.db import Database
 from keystrata.storage.models import LinkBlock, PairSegment
 from keystrata.storage.sealed import block_context, segment_context

@@ -14,7 +14,7 @@ import pytest
 
 import relaynet
 from helpers import ledger_events, snapshot
-from keystrata.services import outbox
+from keystrata.peering import outbox
 
 
 @pytest.fixture
@@ -106,13 +106,13 @@ def test_status_reports_what_can_be_served(net, api) -> None:
 def test_keys_never_share_a_byte_under_concurrency(net, api) -> None:
     """32 concurrent masters' requests on one station: no byte of pair key is in two
     keys (checked over every delivered key's segment ranges)."""
-    from keystrata.domain.etsi import KeyRequest
-    from keystrata.domain.registry import PrincipalRole
-    from keystrata.services import delivery
-    from keystrata.services.principals import Caller
+    from keystrata.delivery import enc_keys
+    from keystrata.delivery.schemas import KeyRequest
+    from keystrata.registry.principals import Caller
+    from keystrata.registry.specs import PrincipalRole
 
     caller = Caller(principal_id="sae-a1", role=PrincipalRole.SAE, station_id="station-a")
-    got: list[delivery.DeliveredKey] = []
+    got: list[enc_keys.DeliveredKey] = []
     errors: list[str] = []
     lock = threading.Lock()
     barrier = threading.Barrier(32)
@@ -120,7 +120,7 @@ def test_keys_never_share_a_byte_under_concurrency(net, api) -> None:
     def master() -> None:
         barrier.wait()
         try:
-            keys = delivery.get_keys(net.a.ctx, caller, "sae-b1", KeyRequest(number=2, size=128))
+            keys = enc_keys.get_keys(net.a.ctx, caller, "sae-b1", KeyRequest(number=2, size=128))
         except Exception as exc:  # 503 when the ready key runs out is an allowed answer
             with lock:
                 errors.append(type(exc).__name__)
@@ -255,7 +255,7 @@ def test_quota_and_empty_pool_answer_503(make_node, db_factory, api) -> None:
 def test_uncollected_keys_expire_on_both_sides(net, api) -> None:
     from datetime import timedelta
 
-    from keystrata.services import allocations
+    from keystrata.delivery import slave_copy
 
     r = api(net.a)("sae-a1").post("/api/v1/keys/sae-b1/enc_keys", json={})
     (key_id,) = _keys(r.json())
@@ -271,7 +271,7 @@ def test_uncollected_keys_expire_on_both_sides(net, api) -> None:
     import dataclasses
 
     later_b = dataclasses.replace(net.b.ctx, clock=Later(net.b.ctx.clock))
-    assert allocations.expire(later_b) == 1
+    assert slave_copy.expire(later_b) == 1
     net.drain()
     assert "key.expired" in ledger_events(net.a.ctx)
     r = api(net.b)("sae-b1").get(f"/api/v1/keys/sae-a1/dec_keys?key_ID={key_id}")
@@ -281,8 +281,8 @@ def test_uncollected_keys_expire_on_both_sides(net, api) -> None:
 def test_kek_rotation_reseals_keys_waiting_for_slaves(net, api, tmp_path) -> None:
     from keystrata.config import load_settings
     from keystrata.crypto.kek import read_kek, write_new_kek
-    from keystrata.services import kek
-    from keystrata.services.node import open_node
+    from keystrata.node import kek_rotation
+    from keystrata.node.lifecycle import open_node
 
     r = api(net.a)("sae-a1").post("/api/v1/keys/sae-b1/enc_keys", json={"number": 2})
     master = _keys(r.json())
@@ -290,7 +290,7 @@ def test_kek_rotation_reseals_keys_waiting_for_slaves(net, api, tmp_path) -> Non
     ctx = net.b.ctx
     new_path = tmp_path / "b-new.kek"
     write_new_kek(new_path)
-    kek.rotate(ctx.db, ctx.node_id, read_kek(ctx.settings.kek.file), read_kek(new_path))
+    kek_rotation.rotate(ctx.db, ctx.node_id, read_kek(ctx.settings.kek.file), read_kek(new_path))
     net.b.ctx = open_node(
         load_settings(net.b.config_path, env={"KEYSTRATA_KEK__FILE": str(new_path)}), ctx.db
     )

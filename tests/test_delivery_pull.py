@@ -17,7 +17,8 @@ import pytest
 
 import relaynet
 from helpers import ledger_events
-from keystrata.services import outbox, relay
+from keystrata.peering import outbox
+from keystrata.relay import operation
 
 
 @pytest.fixture
@@ -79,7 +80,7 @@ def test_allocation_in_a_segment_not_ready_here_is_503(net, api) -> None:
     # A new segment owned by A: ready at A, but A's confirmation has not reached B.
     # (More link key on B's side makes B the cipher station and A the deciding one.)
     net.feed("station-b", 4)
-    relay.make_segment(net.relay.ctx, relaynet.PAIR, 4096, owner="station-a")
+    operation.make_segment(net.relay.ctx, relaynet.PAIR, 4096, owner="station-a")
     for _ in range(10):
         for sender, message in net.pending():
             held = message.kind == "segment.confirmed" and message.destination == "station-b"
@@ -126,17 +127,17 @@ def _apply_twice_at_once(net: relaynet.RelayNet, message: dict[str, Any]) -> lis
     outcomes, or the errors."""
     import threading
 
-    from keystrata.domain import peer_messages
-    from keystrata.services import allocations
+    from keystrata.delivery import slave_copy
+    from keystrata.peering import messages
 
-    parsed = peer_messages.parse(message)
-    assert isinstance(parsed, peer_messages.KeyAllocated)
+    parsed = messages.parse(message)
+    assert isinstance(parsed, messages.KeyAllocated)
     start, results = threading.Barrier(2), []
 
     def apply() -> None:
         start.wait()
         try:
-            results.append(allocations.apply_allocated(net.b.ctx, "station-a", parsed).status)
+            results.append(slave_copy.apply_allocated(net.b.ctx, "station-a", parsed).status)
         except Exception as exc:
             results.append(repr(exc))
 

@@ -20,8 +20,8 @@ from sqlalchemy.engine import make_url
 from conftest import Node, NodeFactory, seed_registry
 from keystrata.config import load_settings
 from keystrata.errors import ConfigError
+from keystrata.node.lifecycle import open_node
 from keystrata.observability import readiness
-from keystrata.services.node import open_node
 from keystrata.storage.db import Database, durability_risks
 
 OVERRIDE = "KEYSTRATA_DATABASE__ACCEPT_DATA_LOSS_ON_POWER_FAILURE"

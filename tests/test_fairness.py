@@ -1,4 +1,4 @@
-"""Weighted max-min fair sharing of link key (``keystrata.domain.fairness``).
+"""Weighted max-min fair sharing of link key (``keystrata.relay.fairness``).
 
 Outside references:
 
@@ -24,7 +24,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from keystrata.domain.fairness import PairDemand, allocate, fair_shares, leftover
+from keystrata.relay.fairness import PairDemand, allocate, fair_shares, leftover
 
 PLENTY = 10**6
 

@@ -16,12 +16,12 @@ import pytest
 from sqlalchemy import select
 
 import relaynet
-from keystrata.domain.etsi import KeyRequest
-from keystrata.domain.registry import PrincipalRole
+from keystrata.delivery import enc_keys
+from keystrata.delivery.group_commit import GroupCommit
+from keystrata.delivery.schemas import KeyRequest
 from keystrata.errors import Unauthenticated
-from keystrata.services import delivery
-from keystrata.services.group_commit import GroupCommit
-from keystrata.services.principals import Caller
+from keystrata.registry.principals import Caller
+from keystrata.registry.specs import PrincipalRole
 from keystrata.storage.models import LedgerEntry
 
 A1 = Caller(principal_id="sae-a1", role=PrincipalRole.SAE, station_id="station-a")
@@ -126,15 +126,15 @@ def _entries(ctx: Any, event: str) -> list[dict[str, Any]]:
 
 def test_one_batch_of_get_key_with_mixed_outcomes(net) -> None:
     ctx = net.a.ctx
-    delivery.get_keys(ctx, A1, "sae-b1", KeyRequest(number=1))  # creates the lane
+    enc_keys.get_keys(ctx, A1, "sae-b1", KeyRequest(number=1))  # creates the lane
     lane = _lane(ctx, "get_key")
     # 1 key delivered so far. In one batch: 20 + 15 keys fit the quota (36 <= 40),
     # the next 10 would exceed it, then 4 more fit (40).
     sizes = [20, 15, 10, 4]
-    calls = [lambda n=n: delivery.get_keys(ctx, A1, "sae-b1", KeyRequest(number=n)) for n in sizes]
+    calls = [lambda n=n: enc_keys.get_keys(ctx, A1, "sae-b1", KeyRequest(number=n)) for n in sizes]
     out = _together(lane, calls)
     by_size = dict(zip(sizes, out, strict=True))
-    assert isinstance(by_size[10], delivery.QuotaReached), by_size[10]
+    assert isinstance(by_size[10], enc_keys.QuotaReached), by_size[10]
     delivered = [k for n in (20, 15, 4) for k in by_size[n]]
     assert [len(by_size[n]) for n in (20, 15, 4)] == [20, 15, 4]
     assert len({k.key for k in delivered}) == len(delivered) == 39  # no shared key
@@ -146,24 +146,24 @@ def test_one_batch_of_get_key_with_mixed_outcomes(net) -> None:
     assert set().union(*named) == {k.key_id for k in delivered}
     # The slave's station gets the same keys from one combined message.
     net.drain()
-    got = delivery.get_keys_with_ids(net.b.ctx, B1, "sae-a1", [k.key_id for k in delivered])
+    got = enc_keys.get_keys_with_ids(net.b.ctx, B1, "sae-a1", [k.key_id for k in delivered])
     assert {k.key_id: k.key for k in got} == {k.key_id: k.key for k in delivered}
 
 
 def test_one_batch_of_get_key_with_key_ids_serves_each_key_once(net) -> None:
-    keys = delivery.get_keys(net.a.ctx, A1, "sae-b1", KeyRequest(number=3))
+    keys = enc_keys.get_keys(net.a.ctx, A1, "sae-b1", KeyRequest(number=3))
     net.drain()
     ctx = net.b.ctx
-    first = delivery.get_keys_with_ids(ctx, B1, "sae-a1", [keys[0].key_id])
+    first = enc_keys.get_keys_with_ids(ctx, B1, "sae-a1", [keys[0].key_id])
     assert first[0].key == keys[0].key
     lane = _lane(ctx, "get_key_with_ids")
     ids = [k.key_id for k in keys]
     # The same slave asks for key 2 twice and for keys 1+3 (1 already fetched).
     calls = [
-        lambda: delivery.get_keys_with_ids(ctx, B1, "sae-a1", [ids[1]]),
-        lambda: delivery.get_keys_with_ids(ctx, B1, "sae-a1", [ids[1]]),
-        lambda: delivery.get_keys_with_ids(ctx, B1, "sae-a1", [ids[0], ids[2]]),
-        lambda: delivery.get_keys_with_ids(ctx, B1, "sae-a1", [ids[2]]),
+        lambda: enc_keys.get_keys_with_ids(ctx, B1, "sae-a1", [ids[1]]),
+        lambda: enc_keys.get_keys_with_ids(ctx, B1, "sae-a1", [ids[1]]),
+        lambda: enc_keys.get_keys_with_ids(ctx, B1, "sae-a1", [ids[0], ids[2]]),
+        lambda: enc_keys.get_keys_with_ids(ctx, B1, "sae-a1", [ids[2]]),
     ]
     out = _together(lane, calls)
     served = [x for x in out if isinstance(x, list)]
@@ -178,25 +178,26 @@ def test_one_batch_of_get_key_with_key_ids_serves_each_key_once(net) -> None:
 
 
 def test_a_batch_of_allocation_messages_applies_in_order_in_one_run(net) -> None:
-    from keystrata.services import messages, outbox
+    from keystrata.node import dispatch
+    from keystrata.peering import outbox
 
     for _ in range(3):  # one request at a time: three key.allocated messages
-        delivery.get_keys(net.a.ctx, A1, "sae-b1", KeyRequest(number=2))
+        enc_keys.get_keys(net.a.ctx, A1, "sae-b1", KeyRequest(number=2))
     bodies = outbox.pending_bodies(net.a.ctx.db, destination="station-b", kind="key.allocated")
     assert len(bodies) == 3
     ctx = net.b.ctx
     before = len(_entries(ctx, "key.allocated"))
     # Out of order: the second message names bytes after the first's, not yet here.
-    answers = messages.handle_batch(ctx, "station-a", [bodies[1], bodies[0]])
+    answers = dispatch.handle_batch(ctx, "station-a", [bodies[1], bodies[0]])
     assert [a.status for a in answers] == [409]
     assert len(_entries(ctx, "key.allocated")) == before  # nothing applied
-    answers = messages.handle_batch(ctx, "station-a", bodies)
+    answers = dispatch.handle_batch(ctx, "station-a", bodies)
     assert [(a.status, a.outcome) for a in answers] == [(200, "applied")] * 3
     assert len(_entries(ctx, "key.allocated")) == before + 3  # one entry per message
-    answers = messages.handle_batch(ctx, "station-a", bodies)  # a resend
+    answers = dispatch.handle_batch(ctx, "station-a", bodies)  # a resend
     assert [(a.status, a.outcome) for a in answers] == [(200, "already")] * 3
     # A message from a station that is not the pair's other station stops the run.
-    answers = messages.handle_batch(ctx, "station-c", bodies[:1])
+    answers = dispatch.handle_batch(ctx, "station-c", bodies[:1])
     assert [a.status for a in answers] == [403]
 
 
@@ -207,7 +208,7 @@ def test_two_worker_processes_never_take_the_same_bytes(net) -> None:
     ``OwnedStock.reserve``; SQLite: its single writer)."""
     from itertools import pairwise
 
-    from keystrata.services.node import open_node
+    from keystrata.node.lifecycle import open_node
     from keystrata.storage.db import Database
     from keystrata.storage.models import KeyAlloc
 
@@ -215,7 +216,7 @@ def test_two_worker_processes_never_take_the_same_bytes(net) -> None:
     try:
         contexts = [net.a.ctx, open_node(net.a.settings, second)]
         errors: list[BaseException] = []
-        got: list[delivery.DeliveredKey] = []
+        got: list[enc_keys.DeliveredKey] = []
         lock = threading.Lock()
         barrier = threading.Barrier(12)
 
@@ -224,10 +225,10 @@ def test_two_worker_processes_never_take_the_same_bytes(net) -> None:
             barrier.wait()
             while True:
                 try:
-                    keys = delivery.get_keys(ctx, A1, "sae-b1", KeyRequest(number=1 + i % 3))
-                except delivery.NotEnoughKey:
+                    keys = enc_keys.get_keys(ctx, A1, "sae-b1", KeyRequest(number=1 + i % 3))
+                except enc_keys.NotEnoughKey:
                     return
-                except delivery.QuotaReached:
+                except enc_keys.QuotaReached:
                     return
                 except BaseException as exc:
                     with lock:

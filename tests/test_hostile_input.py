@@ -50,9 +50,9 @@ from conftest import (
 from helpers import snapshot
 from keystrata.api.app import create_app, route_table
 from keystrata.config import load_settings
-from keystrata.domain.registry import Kind, PairSpec, PrincipalRole
-from keystrata.services import registry
-from keystrata.services.node import initialise, load_keyring, open_node
+from keystrata.node.lifecycle import initialise, load_keyring, open_node
+from keystrata.registry import provisioning
+from keystrata.registry.specs import Kind, PairSpec, PrincipalRole
 from keystrata.storage.db import Database
 
 #: The test certificate used for each role (conftest.CLIENTS), in order of preference
@@ -260,7 +260,7 @@ def hostile_node(
     initialise(settings, db, load_keyring(settings))
     node = Node(settings=settings, config_path=config, ctx=open_node(settings, db))
     seed_registry(node.ctx)
-    registry.create(
+    provisioning.create(
         node.ctx,
         Kind.PAIRS,
         PairSpec(pair_id="pair-bc", relay_id="relay-1", stations=["station-b", "station-c"]),
@@ -331,7 +331,7 @@ KEY_ID = "3f0c1e0a-8d5e-4c4f-9a41-5b2d0c1e7a10"
 #: (certificate, path, JSON body) that break a strict type: ``true`` or a string where a
 #: number is required, a number where a string is required, a float for an integer.
 #: JSON has no integer type of its own; "no coercion" is pydantic's strict mode, which
-#: the domain models declare (domain/etsi.py, domain/registry.py). Common practice.
+#: the domain models declare (delivery/schemas.py, registry/specs.py). Common practice.
 WRONG_TYPES: list[tuple[str, str, dict[str, Any]]] = [
     ("sae-a1", "/api/v1/keys/sae-c1/enc_keys", {"number": True}),
     ("sae-a1", "/api/v1/keys/sae-c1/enc_keys", {"number": "1"}),
@@ -466,7 +466,7 @@ def test_nasty_strings_never_break_the_server(station: Node, api: Any) -> None:
 
 # ---------------------------------------------------------------- peer messages
 
-#: Message kinds a station takes (services/messages.py) and the fields their handlers read.
+#: Message kinds a station takes (node/dispatch.py) and the fields their handlers read.
 STATION_KINDS = [
     "relay.notice",
     "relay.ciphertext",

@@ -9,7 +9,7 @@ import uuid
 from datetime import UTC, datetime, timedelta
 
 from helpers import ledger_events, snapshot
-from keystrata.domain.blocks import BlockIn, encode_record
+from keystrata.links.blocks import BlockIn, encode_record
 
 URL = "/api/v1/links/link-a/blocks"
 

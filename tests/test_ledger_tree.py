@@ -10,9 +10,8 @@ import threading
 
 from sqlalchemy import insert, select, text
 
-from keystrata.domain import merkle
-from keystrata.domain.ledger import Event
-from keystrata.services import ledger
+from keystrata.ledger import chain, merkle
+from keystrata.ledger.entries import Event
 from keystrata.storage import migrate
 from keystrata.storage.db import Database
 from keystrata.storage.models import LedgerEntry
@@ -40,7 +39,7 @@ def test_stored_tree_matches_the_entries_and_proves(station) -> None:
     entries = _entries(db)
     assert len(entries) > 10  # the seeded registry wrote entries
     with db.read() as s:
-        tree = ledger.StoredTree(s)
+        tree = chain.StoredTree(s)
         size, root = tree.head()
         assert size == len(entries)
         assert root == mth(entries)
@@ -59,7 +58,7 @@ def test_concurrent_appends_keep_one_tree(db_url) -> None:
     def writer(n: int) -> None:
         for i in range(15):
             with db.write() as s:
-                ledger.append(
+                chain.append(
                     s,
                     node_id="x",
                     at=datetime.now(UTC),
@@ -74,7 +73,7 @@ def test_concurrent_appends_keep_one_tree(db_url) -> None:
         t.join()
     entries = _entries(db)
     with db.read() as s:
-        size, root = ledger.StoredTree(s).head()
+        size, root = chain.StoredTree(s).head()
     assert size == len(entries) == 90
     assert root == mth(entries)
     db.dispose()
@@ -102,14 +101,14 @@ def test_migration_builds_the_tree_for_existing_entries(tmp_path) -> None:
         conn.execute(text("UPDATE ledger_head SET size = 37 WHERE id = 1"))
     migrate.upgrade(db.engine)
     with db.read() as s:
-        size, root = ledger.StoredTree(s).head()
+        size, root = chain.StoredTree(s).head()
     assert (size, root) == (37, mth(raw))
     # Appends after the migration extend the same tree.
     with db.write() as s:
-        ledger.append(
+        chain.append(
             s, node_id="x", at=datetime.now(UTC), event=Event.AUTH_REFUSED, fields={"after": True}
         )
     with db.read() as s:
-        size, root = ledger.StoredTree(s).head()
+        size, root = chain.StoredTree(s).head()
     assert (size, root) == (38, mth(_entries(db)))
     db.dispose()

@@ -42,7 +42,7 @@ from sqlalchemy import select
 from conftest import PkiFiles, _pg_admin, _pg_url
 from keystrata.config import load_settings
 from keystrata.crypto.pki import PkiDir, issue_client_cert
-from keystrata.services.node import load_keyring
+from keystrata.node.lifecycle import load_keyring
 from keystrata.storage.db import Database
 from keystrata.storage.models import LinkBlock
 from keystrata.storage.sealed import block_context

@@ -16,10 +16,11 @@ import pytest
 from sqlalchemy import select
 
 import relaynet
-from keystrata.domain.blocks import BlockIn
-from keystrata.domain.relay import Available
 from keystrata.errors import BlockConflict
-from keystrata.services import ingest, linkbytes, relay
+from keystrata.links import consume, ingest
+from keystrata.links.blocks import BlockIn
+from keystrata.relay import operation
+from keystrata.relay.arithmetic import Available
 from keystrata.storage.models import LedgerEntry, LinkBlock
 
 
@@ -57,12 +58,12 @@ def _feed_uneven(net: relaynet.RelayNet, station: str, sizes: list[int]) -> None
 def test_available_reads_in_pages_and_matches_a_full_scan(net, monkeypatch) -> None:
     """Pages of 3 blocks over 11 uneven blocks, some partly used: every limit, from one
     byte to more than the link holds, gives exactly the oldest blocks covering it."""
-    monkeypatch.setattr(linkbytes, "PAGE_BLOCKS", 3)
+    monkeypatch.setattr(consume, "PAGE_BLOCKS", 3)
     sizes = [100, 4096, 64, 1000, 333, 2048, 50, 777, 4096, 128, 900]
     _feed_uneven(net, "station-a", sizes)
     _feed_uneven(net, "station-b", [sum(sizes) + 64])
     # Use some bytes from the front so that the first blocks are gone or partly used.
-    relay.make_segment(net.relay.ctx, relaynet.PAIR, 4500, cipher_station="station-b")
+    operation.make_segment(net.relay.ctx, relaynet.PAIR, 4500, cipher_station="station-b")
     ctx = net.relay.ctx
     every = _scan(ctx, "link-a")
     assert every[0].used > 0, "the first remaining block is partly used"
@@ -71,14 +72,14 @@ def test_available_reads_in_pages_and_matches_a_full_scan(net, monkeypatch) -> N
     limits += [sum(b.length - b.used for b in every[:k]) for k in range(1, len(every) + 1)]
     with ctx.db.read() as s:
         for limit in limits:
-            assert linkbytes.available(s, "link-a", limit) == _expected(every, limit), limit
+            assert consume.available(s, "link-a", limit) == _expected(every, limit), limit
 
 
 def test_available_stops_at_the_page_that_covers_the_limit(net, monkeypatch) -> None:
     """A segment reads the pages it needs, not the link: count the statements."""
     from sqlalchemy import event
 
-    monkeypatch.setattr(linkbytes, "PAGE_BLOCKS", 4)
+    monkeypatch.setattr(consume, "PAGE_BLOCKS", 4)
     net.feed("station-a", 40, block_bytes=100)
     ctx = net.relay.ctx
     selects: list[str] = []
@@ -91,7 +92,7 @@ def test_available_stops_at_the_page_that_covers_the_limit(net, monkeypatch) -> 
     event.listen(engine, "before_cursor_execute", count)
     try:
         with ctx.db.read() as s:
-            got = linkbytes.available(s, "link-a", 950)
+            got = consume.available(s, "link-a", 950)
     finally:
         event.remove(engine, "before_cursor_execute", count)
     assert len(got) == 10
@@ -101,11 +102,11 @@ def test_available_stops_at_the_page_that_covers_the_limit(net, monkeypatch) -> 
 def test_free_bytes_equal_the_sum_over_every_block(net) -> None:
     _feed_uneven(net, "station-a", [4096, 100, 5000, 64])
     _feed_uneven(net, "station-b", [9000, 333])
-    relay.make_segment(net.relay.ctx, relaynet.PAIR, 4200, cipher_station="station-b")
-    relay.make_segment(net.relay.ctx, relaynet.PAIR, 100, cipher_station="station-a")
+    operation.make_segment(net.relay.ctx, relaynet.PAIR, 4200, cipher_station="station-b")
+    operation.make_segment(net.relay.ctx, relaynet.PAIR, 100, cipher_station="station-a")
     ctx = net.relay.ctx
     with ctx.db.read() as s:
-        free = linkbytes.free_bytes(s, ["link-b", "link-a", "link-a", "no-such-link"])
+        free = consume.free_bytes(s, ["link-b", "link-a", "link-a", "no-such-link"])
     expected = {
         link: sum(b.length - b.used for b in _scan(ctx, link)) for link in ("link-a", "link-b")
     }
@@ -141,10 +142,10 @@ def test_ingest_in_slices_stores_every_block_in_order_in_one_entry(net, monkeypa
     assert entry["block_ids"] == [b.block_id for b in blocks]
     # The stored bytes are the pushed bytes (taken through the relay's own path).
     with ctx.db.write() as s:
-        avail = linkbytes.available(s, "link-a", 2**62)
-        from keystrata.domain.relay import Range
+        avail = consume.available(s, "link-a", 2**62)
+        from keystrata.relay.arithmetic import Range
 
-        key, _ = linkbytes.take(
+        key, _ = consume.take(
             s, ctx.keyring, "link-a", [Range(a.block_id, 0, a.length) for a in avail]
         )
     assert key == b"".join(b.key for b in blocks)

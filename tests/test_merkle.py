@@ -1,4 +1,4 @@
-"""The ledger's Merkle tree (``keystrata.domain.merkle``) against RFC 9162 section 2.1.
+"""The ledger's Merkle tree (``keystrata.ledger.merkle``) against RFC 9162 section 2.1.
 
 Outside references, each named beside its check:
 
@@ -30,7 +30,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from keystrata.domain.merkle import (
+from keystrata.ledger.merkle import (
     EMPTY_ROOT,
     MemoryStore,
     ProofError,

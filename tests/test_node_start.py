@@ -13,10 +13,11 @@ from sqlalchemy import select
 from keystrata.config import load_settings
 from keystrata.crypto.hazmat import Keyring, kek_id, random_bytes
 from keystrata.crypto.kek import read_kek, write_new_kek
-from keystrata.domain.blocks import BlockIn
 from keystrata.errors import StartupRefused
-from keystrata.services import ingest, kek
-from keystrata.services.node import open_node
+from keystrata.links import ingest
+from keystrata.links.blocks import BlockIn
+from keystrata.node import kek_rotation
+from keystrata.node.lifecycle import open_node
 from keystrata.storage.db import Database
 from keystrata.storage.models import LedgerEntry, LinkBlock, NodeMeta
 from keystrata.storage.sealed import block_context
@@ -87,7 +88,7 @@ def test_rotation_reseals_every_row_and_resumes(station, tmp_path: Path) -> None
         raise Stop
 
     with pytest.raises(Stop):
-        kek.rotate(ctx.db, ctx.node_id, old, new, batch=3, progress=stop)
+        kek_rotation.rotate(ctx.db, ctx.node_id, old, new, batch=3, progress=stop)
     with ctx.db.read() as s:
         ids = [Keyring.sealed_kek_id(v) for v in s.execute(select(LinkBlock.sealed)).scalars()]
     assert ids.count(kek_id(new)) == 3 and ids.count(kek_id(old)) == 4
@@ -95,7 +96,7 @@ def test_rotation_reseals_every_row_and_resumes(station, tmp_path: Path) -> None
     with pytest.raises(StartupRefused, match="rotation is unfinished"):
         open_node(ctx.settings, ctx.db)
 
-    report = kek.rotate(ctx.db, ctx.node_id, old, new, batch=3)
+    report = kek_rotation.rotate(ctx.db, ctx.node_id, old, new, batch=3)
     assert (report.resealed_blocks, report.already_done) == (4, 3)
     assert report.resealed_meta == 3
 
@@ -119,7 +120,7 @@ def test_rotation_with_a_wrong_old_kek_changes_nothing(station, tmp_path: Path) 
     _fill(station, 2)
     ctx = station.ctx
     with pytest.raises(StartupRefused):
-        kek.rotate(ctx.db, ctx.node_id, random_bytes(32), random_bytes(32))
+        kek_rotation.rotate(ctx.db, ctx.node_id, random_bytes(32), random_bytes(32))
     with ctx.db.read() as s:
         assert s.get(NodeMeta, "kek_rotation_target") is None
     open_node(ctx.settings, ctx.db)  # still starts with its own KEK

@@ -29,9 +29,11 @@ from conftest import _pg_admin, cert_pin
 from helpers import snapshot
 from keystrata import __version__
 from keystrata.crypto.hazmat import Keyring
-from keystrata.domain.registry import Kind, PrincipalSpec
-from keystrata.services import allocations, checkpoints, registry
-from keystrata.services.node import KEK_CHECK_PLAINTEXT
+from keystrata.delivery import slave_copy
+from keystrata.ledger import checkpoints
+from keystrata.node.lifecycle import KEK_CHECK_PLAINTEXT
+from keystrata.registry import provisioning
+from keystrata.registry.specs import Kind, PrincipalSpec
 from keystrata.storage.models import (
     KeyAlloc,
     LedgerEntry,
@@ -123,7 +125,7 @@ def _json_block(key: bytes) -> dict[str, object]:
 
 
 def _add_operator(node: Any) -> None:
-    registry.create(
+    provisioning.create(
         node.ctx,
         Kind.PRINCIPALS,
         PrincipalSpec.model_validate(
@@ -231,7 +233,7 @@ def test_relay_and_delivery_metrics_match_the_database(net, api) -> None:
     delivered += r.json()["keys"]
     net.drain()
     later = dataclasses.replace(net.b.ctx, clock=_At(datetime.now(UTC) + timedelta(days=1)))
-    assert allocations.expire(later) == 2
+    assert slave_copy.expire(later) == 2
     at_b = scrape(api(net.b)("ops-ada"))
     with net.b.ctx.db.read() as s:
         queued = s.execute(

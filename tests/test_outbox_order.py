@@ -29,9 +29,9 @@ from sqlalchemy import func, select
 import relaynet
 from conftest import PkiFiles
 from helpers import snapshot
-from keystrata.services import outbox
-from keystrata.services import relay as relay_service
-from keystrata.services.messages import MAX_BATCH
+from keystrata.node.dispatch import MAX_BATCH
+from keystrata.peering import outbox
+from keystrata.relay import operation
 from keystrata.storage.db import Database
 from keystrata.storage.models import Lease, OutboxMessage
 from peerstub import PeerStub
@@ -234,7 +234,7 @@ def test_claim_honours_the_byte_cap_and_a_backing_off_head(db_url: str) -> None:
 def test_a_commit_that_enqueues_wakes_the_outbox_loop(
     make_node, db_url: str, pki: PkiFiles
 ) -> None:
-    from keystrata.workers.runner import Background
+    from keystrata.node.loops import Background
 
     stub = PeerStub(pki, "station-b")
     # Polling alone would take a minute; the loop must wake on the commit.
@@ -270,8 +270,8 @@ def test_a_peer_without_the_batch_route_gets_one_message_at_a_time(
     make_node, db_url: str, pki: PkiFiles
 ) -> None:
     from keystrata.observability.metrics import collect
-    from keystrata.workers.outbox import deliver_once
-    from keystrata.workers.peer_client import PeerClient
+    from keystrata.peering.client import PeerClient
+    from keystrata.peering.sender import deliver_once
 
     stub = PeerStub(pki, "station-b", refuse_once={3}, batch_route=False)
     node = make_node("station-a", "station", db_url=db_url, extra=_peers({"station-b": stub}))
@@ -312,7 +312,7 @@ def _to_station_a(net: relaynet.RelayNet) -> list[dict[str, Any]]:
     net.feed("station-a", 4)
     net.feed("station-b", 4)
     for _ in range(2):
-        relay_service.make_segment(net.relay.ctx, relaynet.PAIR, 2048, owner="station-a")
+        operation.make_segment(net.relay.ctx, relaynet.PAIR, 2048, owner="station-a")
     bodies = [m.body for s, m in net.pending() if s == "relay-1" and m.destination == "station-a"]
     assert len(bodies) == 2
     return bodies

@@ -17,12 +17,14 @@ import pytest
 from sqlalchemy import select
 
 from conftest import Node, cert_pin
-from keystrata.domain.ledger import Event
-from keystrata.domain.progress import Behind, Finding, Point, Reason, compare, deliveries
-from keystrata.domain.registry import Kind, PrincipalRole, PrincipalSpec
+from keystrata.delivery import enc_keys
 from keystrata.errors import Conflict
-from keystrata.services import delivery, progress, progress_release, registry
-from keystrata.services.principals import Caller
+from keystrata.ledger.entries import Event
+from keystrata.registry import provisioning
+from keystrata.registry.principals import Caller
+from keystrata.registry.specs import Kind, PrincipalRole, PrincipalSpec
+from keystrata.restore import comparison, release
+from keystrata.restore.rules import Behind, Finding, Point, Reason, compare, deliveries
 from keystrata.storage.models import LedgerEntry, PairHold, PairSegment
 from keystrata.storage.sealed import segment_context
 
@@ -100,7 +102,7 @@ def test_forgotten_deliveries_show_against_what_the_partner_saw() -> None:
 def _add_peers(node: Node) -> None:
     pki_dir = node.ctx.settings.tls.cert.parent
     for station in ("station-b", "station-c"):
-        registry.create(
+        provisioning.create(
             node.ctx,
             Kind.PRINCIPALS,
             PrincipalSpec.model_validate(
@@ -192,20 +194,20 @@ def test_owner_behind_is_held_then_released_without_serving_a_byte_again(station
     key = bytes(range(256))
     _segment(station, S1, A, key, used=32)
     partner = Partner([{"segment_id": S1, "owner": A, "used": 96, "unacked": 0}])
-    assert progress.check_pair(ctx, partner, "pair-ac") == [
+    assert comparison.check_pair(ctx, partner, "pair-ac") == [
         Finding(Behind.SELF, Reason.OWNER_BEHIND, 1, 64)
     ]
-    with pytest.raises(progress.PairHeld) as held:
-        progress.refuse_if_held(ctx, A1, "sae-c1")
+    with pytest.raises(comparison.PairHeld) as held:
+        comparison.refuse_if_held(ctx, A1, "sae-c1")
     assert held.value.status == 503 and "operator must resolve it" in held.value.message
-    with pytest.raises(progress.PairHeld):
-        delivery.get_keys_with_ids(ctx, A1, "sae-c1", [str(uuid.uuid4())])
-    assert [h.reason for h in progress.open_holds(ctx)] == ["owner_behind"]
+    with pytest.raises(comparison.PairHeld):
+        enc_keys.get_keys_with_ids(ctx, A1, "sae-c1", [str(uuid.uuid4())])
+    assert [h.reason for h in comparison.open_holds(ctx)] == ["owner_behind"]
     # A second comparison adds no second finding.
-    progress.check_pair(ctx, partner, "pair-ac")
-    assert len(progress.open_holds(ctx)) == 1
+    comparison.check_pair(ctx, partner, "pair-ac")
+    assert len(comparison.open_holds(ctx)) == 1
 
-    done = progress_release.release(ctx, partner, "pair-ac", actor="ops-ada", reason="restore")
+    done = release.release(ctx, partner, "pair-ac", actor="ops-ada", reason="restore")
     assert (done["segments_advanced"], done["bytes_destroyed"]) == (1, 64)
     with ctx.db.read() as s:
         row = s.get(PairSegment, S1)
@@ -217,32 +219,32 @@ def test_owner_behind_is_held_then_released_without_serving_a_byte_again(station
         assert (hold.released_by, hold.release_reason) == ("ops-ada", "restore")
         events = list(s.execute(select(LedgerEntry.event).order_by(LedgerEntry.idx)).scalars())
     assert events[-2:] == [Event.PAIR_HELD.value, Event.PAIR_RELEASED.value]
-    progress.refuse_if_held(ctx, A1, "sae-c1")  # served again
+    comparison.refuse_if_held(ctx, A1, "sae-c1")  # served again
     with pytest.raises(Conflict):
-        progress_release.release(ctx, partner, "pair-ac", actor="ops-ada", reason="again")
+        release.release(ctx, partner, "pair-ac", actor="ops-ada", reason="again")
 
 
 def test_partner_behind_is_recorded_and_closes_when_it_catches_up(station) -> None:
     ctx = station.ctx
     _segment(station, S1, A, bytes(256), used=128)
     behind = Partner([{"segment_id": S1, "owner": A, "used": 64, "unacked": 0}])
-    assert progress.check_pair(ctx, behind, "pair-ac") == [
+    assert comparison.check_pair(ctx, behind, "pair-ac") == [
         Finding(Behind.PARTNER, Reason.NON_OWNER_BEHIND, 1, 64)
     ]
-    progress.refuse_if_held(ctx, A1, "sae-c1")  # this station keeps serving
+    comparison.refuse_if_held(ctx, A1, "sae-c1")  # this station keeps serving
     caught_up = Partner([{"segment_id": S1, "owner": A, "used": 128, "unacked": 0}])
-    assert progress.check_pair(ctx, caught_up, "pair-ac") == []
-    assert progress.open_holds(ctx) == []
+    assert comparison.check_pair(ctx, caught_up, "pair-ac") == []
+    assert comparison.open_holds(ctx) == []
 
 
 def test_malformed_partner_answer_changes_nothing(station) -> None:
     ctx = station.ctx
     _segment(station, S1, A, bytes(256), used=128)
     liar = Partner([{"segment_id": S1, "owner": A, "used": -5, "unacked": 0}])
-    assert progress.check_pair(ctx, liar, "pair-ac") is None
+    assert comparison.check_pair(ctx, liar, "pair-ac") is None
     liar = Partner([{"segment_id": S1, "owner": A, "used": True, "unacked": 0}])
-    assert progress.check_pair(ctx, liar, "pair-ac") is None
-    assert progress.open_holds(ctx) == []
+    assert comparison.check_pair(ctx, liar, "pair-ac") is None
+    assert comparison.open_holds(ctx) == []
 
 
 def test_a_partner_that_forgot_deliveries_is_found_and_this_station_keeps_serving(
@@ -253,14 +255,18 @@ def test_a_partner_that_forgot_deliveries_is_found_and_this_station_keeps_servin
     ctx = station.ctx
     _segment(station, S1, A, bytes(256), used=64)
     point = [{"segment_id": S1, "owner": A, "used": 64, "unacked": 0}]
-    assert progress.check_pair(ctx, Partner(point, fetched_keys=5, seen_fetched=0), "pair-ac") == []
-    found = progress.check_pair(ctx, Partner(point, fetched_keys=3, seen_fetched=0), "pair-ac")
+    assert (
+        comparison.check_pair(ctx, Partner(point, fetched_keys=5, seen_fetched=0), "pair-ac") == []
+    )
+    found = comparison.check_pair(ctx, Partner(point, fetched_keys=3, seen_fetched=0), "pair-ac")
     assert found == [Finding(Behind.PARTNER, Reason.DELIVERIES_LOST, 2, 0)]
-    progress.refuse_if_held(ctx, A1, "sae-c1")  # this station keeps serving
-    assert [h.reason for h in progress.open_holds(ctx)] == ["deliveries_lost"]
+    comparison.refuse_if_held(ctx, A1, "sae-c1")  # this station keeps serving
+    assert [h.reason for h in comparison.open_holds(ctx)] == ["deliveries_lost"]
     # The partner's operator released it (its count now starts at what we saw): closed.
-    assert progress.check_pair(ctx, Partner(point, fetched_keys=5, seen_fetched=0), "pair-ac") == []
-    assert progress.open_holds(ctx) == []
+    assert (
+        comparison.check_pair(ctx, Partner(point, fetched_keys=5, seen_fetched=0), "pair-ac") == []
+    )
+    assert comparison.open_holds(ctx) == []
 
 
 def test_a_station_that_forgot_deliveries_holds_itself_until_released(station) -> None:
@@ -271,23 +277,23 @@ def test_a_station_that_forgot_deliveries_holds_itself_until_released(station) -
     _segment(station, S1, C, bytes(256), used=64)
     point = [{"segment_id": S1, "owner": C, "used": 64, "unacked": 0}]
     partner = Partner(point, fetched_keys=0, seen_fetched=4)
-    assert progress.check_pair(ctx, partner, "pair-ac") == [
+    assert comparison.check_pair(ctx, partner, "pair-ac") == [
         Finding(Behind.SELF, Reason.DELIVERIES_LOST, 4, 0)
     ]
-    with pytest.raises(progress.PairHeld):
-        progress.refuse_if_held(ctx, A1, "sae-c1")
-    done = progress_release.release(ctx, partner, "pair-ac", actor="ops-ada", reason="restore")
+    with pytest.raises(comparison.PairHeld):
+        comparison.refuse_if_held(ctx, A1, "sae-c1")
+    done = release.release(ctx, partner, "pair-ac", actor="ops-ada", reason="restore")
     assert done["reasons"] == ["deliveries_lost"]
     with ctx.db.read() as s:
-        assert progress.fetched_keys(s, "pair-ac", C) == 4
-    assert progress.check_pair(ctx, partner, "pair-ac") == []
-    progress.refuse_if_held(ctx, A1, "sae-c1")  # served again
+        assert comparison.fetched_keys(s, "pair-ac", C) == 4
+    assert comparison.check_pair(ctx, partner, "pair-ac") == []
+    comparison.refuse_if_held(ctx, A1, "sae-c1")  # served again
 
 
 def test_a_worker_that_cannot_ask_its_partner_at_start_serves_the_pair_nothing(station) -> None:
     """At start the partner does not answer: the pair stays closed in this process (503,
     try again) until a later round compares it; then it serves again."""
-    from keystrata.workers import progress as loop
+    from keystrata.restore import loop
 
     class Silent:
         def pair_progress(self, *args: Any, **kwargs: Any) -> None:
@@ -296,15 +302,15 @@ def test_a_worker_that_cannot_ask_its_partner_at_start_serves_the_pair_nothing(s
     ctx = station.ctx
     _segment(station, S1, A, bytes(256), used=64)
     loop.at_start(ctx, Silent())
-    with pytest.raises(progress.NotYetCompared) as early:
-        progress.refuse_if_held(ctx, A1, "sae-c1")
+    with pytest.raises(comparison.NotYetCompared) as early:
+        comparison.refuse_if_held(ctx, A1, "sae-c1")
     assert early.value.status == 503 and "try again" in early.value.message
-    with pytest.raises(progress.NotYetCompared):
-        progress.refuse_pair_if_held(ctx, "pair-ac")
+    with pytest.raises(comparison.NotYetCompared):
+        comparison.refuse_pair_if_held(ctx, "pair-ac")
     loop.check_once(ctx, Silent(), "worker-1")  # still silent: still closed
-    with pytest.raises(progress.NotYetCompared):
-        progress.refuse_if_held(ctx, A1, "sae-c1")
+    with pytest.raises(comparison.NotYetCompared):
+        comparison.refuse_if_held(ctx, A1, "sae-c1")
     in_step = Partner([{"segment_id": S1, "owner": A, "used": 64, "unacked": 0}])
     loop.check_once(ctx, in_step, "worker-1")
-    progress.refuse_if_held(ctx, A1, "sae-c1")
-    progress.refuse_pair_if_held(ctx, "pair-ac")
+    comparison.refuse_if_held(ctx, A1, "sae-c1")
+    comparison.refuse_pair_if_held(ctx, "pair-ac")

@@ -21,7 +21,7 @@ from sqlalchemy import select
 
 import relaynet
 from conftest import Node
-from keystrata.services import principals
+from keystrata.registry import principals
 from keystrata.storage.models import LedgerEntry
 
 #: A key a confused or hostile client puts into a path: 32 known bytes.
@@ -242,8 +242,8 @@ def test_get_key_with_key_ids_refusals_name_their_reason(net, api) -> None:
     """Every refusal answers the standard's one 401; the ledger tells an auditor a
     replay (already delivered) from a mistake (not allocated to this SAE), an expired
     key and an unknown key ID (attack test: one reason for all of them)."""
-    from keystrata.services import delivery
-    from keystrata.services.principals import Caller
+    from keystrata.delivery import enc_keys
+    from keystrata.registry.principals import Caller
 
     a1 = api(net.a)("sae-a1")
     first, second = _key_ids(a1.post("/api/v1/keys/sae-b1/enc_keys", json={"number": 2}))
@@ -267,8 +267,8 @@ def test_get_key_with_key_ids_refusals_name_their_reason(net, api) -> None:
     caller = Caller(
         principal_id="sae-b1", role=principals.PrincipalRole.SAE, station_id="station-b"
     )
-    with pytest.raises(delivery.Unauthenticated):
-        delivery.get_keys_with_ids(net.b.ctx, caller, "sae-a1", [str(uuid.uuid4())], lambda _: [])
+    with pytest.raises(enc_keys.Unauthenticated):
+        enc_keys.get_keys_with_ids(net.b.ctx, caller, "sae-a1", [str(uuid.uuid4())], lambda _: [])
     assert _last_reason(net.b) == "unknown_key_id"
     # The first key that fails decides: here the second one, expired.
     later = dataclasses.replace(
@@ -276,7 +276,7 @@ def test_get_key_with_key_ids_refusals_name_their_reason(net, api) -> None:
         clock=SteppedClock(net.b.ctx.clock.now() + timedelta(days=400)),
         lanes={},
     )
-    with pytest.raises(delivery.Unauthenticated):
-        delivery.get_keys_with_ids(later, caller, "sae-a1", [second], None)
+    with pytest.raises(enc_keys.Unauthenticated):
+        enc_keys.get_keys_with_ids(later, caller, "sae-a1", [second], None)
     assert _last_reason(net.b) == "expired"
     assert dec(b1, "sae-a1", second) == 200  # nothing was changed by the refusals

@@ -14,7 +14,7 @@ from sqlalchemy import select
 import relaynet
 from helpers import ledger_events
 from keystrata.crypto.hazmat import xor_bytes
-from keystrata.services import relay
+from keystrata.relay import operation
 from keystrata.storage.models import LinkBlock, OutboxMessage, RelayOp
 
 
@@ -26,7 +26,7 @@ def net(make_node, db_factory) -> relaynet.RelayNet:
 def test_segment_reaches_both_stations_identical(net) -> None:
     net.feed("station-a", 4)
     net.feed("station-b", 4)
-    made = relay.make_segment(net.relay.ctx, relaynet.PAIR, 10_000)
+    made = operation.make_segment(net.relay.ctx, relaynet.PAIR, 10_000)
     net.drain()
     a, b = net.segments("station-a"), net.segments("station-b")
     assert a[made.segment_id].state == b[made.segment_id].state == "ready"
@@ -45,7 +45,7 @@ def test_xor_recovery_matches_an_independent_computation(net) -> None:
     """KA = C xor KB, recomputed here with a per-byte loop (independent of xor_bytes)."""
     net.feed("station-a", 2)
     net.feed("station-b", 2)
-    made = relay.make_segment(net.relay.ctx, relaynet.PAIR, 3000, cipher_station="station-b")
+    made = operation.make_segment(net.relay.ctx, relaynet.PAIR, 3000, cipher_station="station-b")
     msgs = {m.kind: m for _, m in net.pending()}
     body = msgs["relay.ciphertext"].body
     header = json.loads(base64.b64decode(body["header"]))
@@ -97,7 +97,7 @@ def test_both_tags_recomputed_from_the_documented_layout(net) -> None:
 
     net.feed("station-a", 2)
     net.feed("station-b", 2)
-    relay.make_segment(net.relay.ctx, relaynet.PAIR, 3000, cipher_station="station-b")
+    operation.make_segment(net.relay.ctx, relaynet.PAIR, 3000, cipher_station="station-b")
     msgs = {m.kind: m.body for _, m in net.pending()}
     notice, cipher = msgs["relay.notice"], msgs["relay.ciphertext"]
     header = base64.b64decode(notice["header"], validate=True)  # RFC 4648 section 4
@@ -120,7 +120,7 @@ def test_both_tags_recomputed_from_the_documented_layout(net) -> None:
 def test_relay_destroys_link_key_and_keeps_no_pair_key(net) -> None:
     net.feed("station-a", 1, block_bytes=5000)
     net.feed("station-b", 1, block_bytes=5000)
-    relay.make_segment(net.relay.ctx, relaynet.PAIR, 4000, cipher_station="station-b")
+    operation.make_segment(net.relay.ctx, relaynet.PAIR, 4000, cipher_station="station-b")
     with net.relay.ctx.db.read() as s:
         rows = {r.link_id: r for r in s.execute(select(LinkBlock)).scalars()}
         tables = set(s.execute(select(OutboxMessage.kind)).scalars())
@@ -144,8 +144,8 @@ def test_relay_destroys_link_key_and_keeps_no_pair_key(net) -> None:
 def test_tampered_ciphertext_is_refused_and_discarded_on_both_sides(net) -> None:
     net.feed("station-a", 3)
     net.feed("station-b", 3)
-    good = relay.make_segment(net.relay.ctx, relaynet.PAIR, 2000, cipher_station="station-b")
-    bad = relay.make_segment(net.relay.ctx, relaynet.PAIR, 2000, cipher_station="station-b")
+    good = operation.make_segment(net.relay.ctx, relaynet.PAIR, 2000, cipher_station="station-b")
+    bad = operation.make_segment(net.relay.ctx, relaynet.PAIR, 2000, cipher_station="station-b")
     # Flip one bit of the second segment's ciphertext in the relay's outbox.
     with net.relay.ctx.db.write() as s:
         row = s.execute(
@@ -172,7 +172,7 @@ def test_tampered_ciphertext_is_refused_and_discarded_on_both_sides(net) -> None
     with net.relay.ctx.db.read() as s:
         assert s.get(RelayOp, bad.segment_id).state == "discarded"
     # Later segments still flow: the link bytes stayed in step.
-    later = relay.make_segment(net.relay.ctx, relaynet.PAIR, 2000)
+    later = operation.make_segment(net.relay.ctx, relaynet.PAIR, 2000)
     net.drain()
     assert net.segments("station-a")[later.segment_id].state == "ready"
 
@@ -180,8 +180,8 @@ def test_tampered_ciphertext_is_refused_and_discarded_on_both_sides(net) -> None
 def test_messages_out_of_order_wait_and_resends_are_harmless(net) -> None:
     net.feed("station-a", 4)
     net.feed("station-b", 4)
-    first = relay.make_segment(net.relay.ctx, relaynet.PAIR, 3000, cipher_station="station-b")
-    second = relay.make_segment(net.relay.ctx, relaynet.PAIR, 3000, cipher_station="station-b")
+    first = operation.make_segment(net.relay.ctx, relaynet.PAIR, 3000, cipher_station="station-b")
+    second = operation.make_segment(net.relay.ctx, relaynet.PAIR, 3000, cipher_station="station-b")
     msgs = net.pending()
     later = [(snd, m) for snd, m in msgs if m.segment_id == second.segment_id]
     # The second segment's messages first: their link bytes follow the first's.
@@ -198,11 +198,11 @@ def test_messages_out_of_order_wait_and_resends_are_harmless(net) -> None:
 def test_unconfirmed_segment_expires_on_both_sides(net) -> None:
     from datetime import UTC, datetime, timedelta
 
-    from keystrata.services import segments
+    from keystrata.relay import segments
 
     net.feed("station-a", 2)
     net.feed("station-b", 2)
-    made = relay.make_segment(net.relay.ctx, relaynet.PAIR, 2000, cipher_station="station-b")
+    made = operation.make_segment(net.relay.ctx, relaynet.PAIR, 2000, cipher_station="station-b")
     # Only the notice reaches A; the ciphertext to B is held back.
     for snd, m in net.pending():
         if m.kind == "relay.notice":
@@ -218,15 +218,15 @@ def test_unconfirmed_segment_expires_on_both_sides(net) -> None:
 def test_messages_from_strangers_are_refused(net) -> None:
     net.feed("station-a", 2)
     net.feed("station-b", 2)
-    relay.make_segment(net.relay.ctx, relaynet.PAIR, 2000, cipher_station="station-b")
+    operation.make_segment(net.relay.ctx, relaynet.PAIR, 2000, cipher_station="station-b")
     for _, m in net.pending():
         # station-b pretending to be the relay
         from keystrata.errors import Forbidden
-        from keystrata.services import messages
+        from keystrata.node import dispatch
 
         if m.destination == "station-a":
             with pytest.raises(Forbidden):
-                messages.handle(net.a.ctx, "station-b", dict(m.body))
+                dispatch.handle(net.a.ctx, "station-b", dict(m.body))
 
 
 def test_epsilon_is_composed_and_capped(make_node, db_factory) -> None:
@@ -235,28 +235,30 @@ def test_epsilon_is_composed_and_capped(make_node, db_factory) -> None:
     net.feed("station-b", 2, block_bytes=1000, epsilon=2e-10)
     # 1500 bytes and a 32-byte MAC key from each link: two blocks of link-a (2e-10) and
     # two of link-b (4e-10): 6e-10 > 5e-10, refused; nothing is consumed.
-    with pytest.raises(relay.EpsilonTooLarge):
-        relay.make_segment(net.relay.ctx, relaynet.PAIR, 1500, cipher_station="station-b")
+    with pytest.raises(operation.EpsilonTooLarge):
+        operation.make_segment(net.relay.ctx, relaynet.PAIR, 1500, cipher_station="station-b")
     # 500 bytes: one block on each link: 1e-10 + 2e-10 = 3e-10 (union bound).
-    made = relay.make_segment(net.relay.ctx, relaynet.PAIR, 500, cipher_station="station-b")
+    made = operation.make_segment(net.relay.ctx, relaynet.PAIR, 500, cipher_station="station-b")
     assert made.epsilon == pytest.approx(3e-10)
 
 
 def test_kek_rotation_reseals_pair_key_segments(net, tmp_path) -> None:
     from keystrata.config import load_settings
     from keystrata.crypto.kek import read_kek, write_new_kek
-    from keystrata.services import kek
-    from keystrata.services.node import open_node
+    from keystrata.node import kek_rotation
+    from keystrata.node.lifecycle import open_node
 
     net.feed("station-a", 2)
     net.feed("station-b", 2)
-    made = relay.make_segment(net.relay.ctx, relaynet.PAIR, 3000)
+    made = operation.make_segment(net.relay.ctx, relaynet.PAIR, 3000)
     net.drain()
     before = net.key_digest("station-a", made.segment_id)
     ctx = net.a.ctx
     new_path = tmp_path / "a-new.kek"
     write_new_kek(new_path)
-    report = kek.rotate(ctx.db, ctx.node_id, read_kek(ctx.settings.kek.file), read_kek(new_path))
+    report = kek_rotation.rotate(
+        ctx.db, ctx.node_id, read_kek(ctx.settings.kek.file), read_kek(new_path)
+    )
     assert report.resealed_segments == 1
     net.a.ctx = open_node(
         load_settings(net.a.config_path, env={"KEYSTRATA_KEK__FILE": str(new_path)}), ctx.db

@@ -30,8 +30,9 @@ from conftest import Node, write_config
 from keystrata.config import load_settings
 from keystrata.demo.verify import check_network
 from keystrata.errors import KeystrataError
-from keystrata.services import ledger, relay, segments
-from keystrata.services.node import initialise, load_keyring, open_node
+from keystrata.ledger import chain
+from keystrata.node.lifecycle import initialise, load_keyring, open_node
+from keystrata.relay import operation, segments
 from keystrata.storage.db import Database
 from keystrata.storage.models import LinkBlock
 
@@ -67,7 +68,7 @@ class Crash(Exception):
 def faults(monkeypatch: pytest.MonkeyPatch) -> Iterator[list[int]]:
     """Arm with ``armed[0] = k``: the k-th ledger append from now raises."""
     armed = [-1]
-    real = ledger.append
+    real = chain.append
 
     def append(*args: Any, **kw: Any) -> int:
         if armed[0] == 0:
@@ -77,7 +78,7 @@ def faults(monkeypatch: pytest.MonkeyPatch) -> Iterator[list[int]]:
             armed[0] -= 1
         return real(*args, **kw)
 
-    monkeypatch.setattr(ledger, "append", append)
+    monkeypatch.setattr(chain, "append", append)
     yield armed
 
 
@@ -171,7 +172,7 @@ def _apply(net: relaynet.RelayNet, step: tuple[Any, ...], armed: list[int]) -> N
     if kind == "feed":
         net.feed(step[1], step[2], block_bytes=step[3], retries=3)
     elif kind == "relay":
-        relay.make_segment(net.relay.ctx, relaynet.PAIR, step[1], cipher_station=step[2])
+        operation.make_segment(net.relay.ctx, relaynet.PAIR, step[1], cipher_station=step[2])
     elif kind == "deliver":
         pending = net.pending()
         if pending:

@@ -7,8 +7,8 @@ import pytest
 from fastapi.routing import APIRoute
 
 from keystrata.api.app import route_table
-from keystrata.domain.registry import PrincipalRole
 from keystrata.errors import Forbidden
+from keystrata.registry.specs import PrincipalRole
 
 #: Test certificate of each role (see conftest.CLIENTS).
 CERT_OF_ROLE = {

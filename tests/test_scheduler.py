@@ -13,10 +13,9 @@ import pytest
 from sqlalchemy import select
 
 import relaynet
-from keystrata.domain import relay as method
-from keystrata.services import leases
+from keystrata.relay import arithmetic, scheduler
+from keystrata.storage import leases
 from keystrata.storage.models import LedgerEntry
-from keystrata.workers import scheduler
 
 
 def test_lease_has_one_holder_at_a_time(db_url) -> None:
@@ -76,11 +75,11 @@ def test_owners_alternate_while_there_is_no_demand(make_node, db_factory) -> Non
     owners = [m.owner for m in made]
     # Equal demand (none measured): owned key is split evenly, segment by segment.
     assert abs(owners.count("station-a") - owners.count("station-b")) <= 1
-    assert method.choose_owner("station-a", "station-b", 3.0, 1.0, 0, 0) == "station-a"
+    assert arithmetic.choose_owner("station-a", "station-b", 3.0, 1.0, 0, 0) == "station-a"
     # With demand 3:1, station-a's share is 75 %: above it (80 %) the next segment goes to
     # station-b, below it (70 %) to station-a.
-    assert method.choose_owner("station-a", "station-b", 3.0, 1.0, 800, 200) == "station-b"
-    assert method.choose_owner("station-a", "station-b", 3.0, 1.0, 700, 300) == "station-a"
+    assert arithmetic.choose_owner("station-a", "station-b", 3.0, 1.0, 800, 200) == "station-b"
+    assert arithmetic.choose_owner("station-a", "station-b", 3.0, 1.0, 700, 300) == "station-a"
 
 
 def test_scarce_link_key_is_shared_by_priority(make_node, db_factory) -> None:

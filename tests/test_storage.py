@@ -10,9 +10,9 @@ import pytest
 from sqlalchemy import select, text, update
 
 from keystrata.crypto.hazmat import random_bytes
-from keystrata.domain.blocks import BlockIn
 from keystrata.errors import SealBroken
-from keystrata.services import ingest
+from keystrata.links import ingest
+from keystrata.links.blocks import BlockIn
 from keystrata.storage import migrate
 from keystrata.storage.db import Database
 from keystrata.storage.models import LinkBlock

@@ -116,7 +116,7 @@ class DatabaseSection(_Section):
 
 class RestoreCheckSection(_Section):
     """A station compares its pairs' consumption points with each partner's (restore
-    detection, services/progress.py): at start and every ``interval_seconds``."""
+    detection, restore/comparison.py): at start and every ``interval_seconds``."""
 
     interval_seconds: Annotated[float, Field(gt=0, le=86_400)] = 30.0
     #: Longest wait for a partner's answer (at start the node waits this long per pair).

@@ -18,7 +18,7 @@ class NodeContext:
     keyring: Keyring = field(repr=False)
     fingerprint_key: bytes = field(repr=False)
     clock: Clock = field(default_factory=SystemClock)
-    #: Per-process state of services that batch requests (see services/group_commit.py),
+    #: Per-process state of services that batch requests (see delivery/group_commit.py),
     #: created on first use and keyed by the service's name.
     lanes: dict[str, Any] = field(default_factory=dict, repr=False, compare=False)
 

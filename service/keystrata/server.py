@@ -18,7 +18,7 @@ from keystrata.crypto import tls
 from keystrata.crypto.pki import load_certificate
 from keystrata.crypto.revocation import read_crl
 from keystrata.errors import ConfigError, InvalidInput
-from keystrata.services.node import open_node
+from keystrata.node.lifecycle import open_node
 from keystrata.storage.db import Database
 
 log = logging.getLogger("keystrata.server")

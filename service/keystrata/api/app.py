@@ -27,16 +27,16 @@ from keystrata.api.routes import (
     peer,
     registry,
 )
+from keystrata.context import NodeContext
 from keystrata.errors import KeystrataError
+from keystrata.node.loops import Background
 from keystrata.observability.http import RequestMetrics, RequestTimer, install_access_log_filter
-from keystrata.services import principals
-from keystrata.services.context import NodeContext
-from keystrata.workers.peer_client import PeerClient
-from keystrata.workers.runner import Background
+from keystrata.peering.client import PeerClient
+from keystrata.registry import principals
 
 #: Bodies of routes other than ingest are small JSON documents.
 DEFAULT_BODY_LIMIT = 1024 * 1024
-#: Longest wait between two flushes of counted refusals (services/principals.py).
+#: Longest wait between two flushes of counted refusals (registry/principals.py).
 REFUSAL_FLUSH_SECONDS = 10.0
 
 log = logging.getLogger("keystrata.api")

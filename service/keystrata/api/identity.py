@@ -20,13 +20,13 @@ from cryptography.hazmat.primitives import hashes
 from cryptography.x509.oid import NameOID
 from fastapi import Request
 
+from keystrata.context import NodeContext
 from keystrata.crypto.pki import carries_node_marker
 from keystrata.crypto.revocation import CrlWatch
-from keystrata.domain.registry import PrincipalRole
 from keystrata.errors import Forbidden, InvalidInput, Unauthenticated
-from keystrata.services import principals
-from keystrata.services.context import NodeContext
-from keystrata.services.principals import Caller
+from keystrata.registry import principals
+from keystrata.registry.principals import Caller
+from keystrata.registry.specs import PrincipalRole
 
 
 @lru_cache(maxsize=4096)

@@ -11,11 +11,11 @@ from keystrata.cli.common import config_option, console, handled, settings_from
 from keystrata.config import Settings
 from keystrata.crypto.kek import read_kek, write_new_kek
 from keystrata.crypto.pki import fingerprint_sha256, subject_common_name
-from keystrata.domain.registry import Kind, PrincipalChange, PrincipalRole, PrincipalSpec
 from keystrata.errors import AlreadyExists, InvalidInput
-from keystrata.services import kek as kek_service
-from keystrata.services import registry
-from keystrata.services.node import initialise, load_keyring, open_node
+from keystrata.node import kek_rotation
+from keystrata.node.lifecycle import initialise, load_keyring, open_node
+from keystrata.registry import provisioning
+from keystrata.registry.specs import Kind, PrincipalChange, PrincipalRole, PrincipalSpec
 from keystrata.storage import migrate
 from keystrata.storage.db import Database
 
@@ -68,7 +68,7 @@ def node_init(
         if operator_subject:
             ctx = open_node(settings, db)
             try:
-                registry.create(
+                provisioning.create(
                     ctx,
                     Kind.PRINCIPALS,
                     PrincipalSpec(
@@ -134,9 +134,9 @@ def node_pin(config_path: Path, principal_id: str, cert: Path | None, sha256: st
         database = _db(settings)
         try:
             ctx = open_node(settings, database)
-            row = registry.get(ctx, Kind.PRINCIPALS, principal_id)
+            row = provisioning.get(ctx, Kind.PRINCIPALS, principal_id)
             pin = _pin(str(row["cert_subject"]), cert, sha256, ("--cert", "--sha256"))
-            registry.change(
+            provisioning.change(
                 ctx,
                 Kind.PRINCIPALS,
                 principal_id,
@@ -218,7 +218,7 @@ def kek_rotate(config_path: Path, new_kek: Path, batch: int) -> None:
     """
     with handled():
         settings = settings_from(config_path)
-        report = kek_service.rotate(
+        report = kek_rotation.rotate(
             _db(settings),
             settings.node.id,
             read_kek(settings.kek.file),

@@ -10,8 +10,8 @@ from typing import Any
 
 from sqlalchemy import select
 
-from keystrata.domain.ledger import Event
-from keystrata.services.context import NodeContext
+from keystrata.context import NodeContext
+from keystrata.ledger.entries import Event
 from keystrata.storage.models import KeyAlloc, LedgerEntry
 
 

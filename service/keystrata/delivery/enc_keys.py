@@ -5,7 +5,7 @@ at the slave's station, expiry.
   keys from ready segments that A owns, destroy those bytes at A (the key is handed to
   a1 and A has no further use for it), record the allocation, and queue a
   ``key.allocated`` message to B in the same transaction.
-* B applies the message (:mod:`keystrata.services.allocations`): it carves the same
+* B applies the message (:mod:`keystrata.delivery.slave_copy`): it carves the same
   ranges from its copy of the segments and keeps each key sealed until every slave has
   fetched it or its time-to-live ends.
 * Get key with key IDs (dec_keys) at B, by b1 naming master a1: only keys that A
@@ -31,9 +31,11 @@ from typing import Any
 from sqlalchemy import func, insert, select
 from sqlalchemy.orm import Session
 
-from keystrata.domain import peer_messages as pm
-from keystrata.domain.etsi import KeyRequest
-from keystrata.domain.ledger import Event
+from keystrata.context import NodeContext
+from keystrata.delivery.group_commit import GroupCommit
+from keystrata.delivery.schemas import KeyRequest
+from keystrata.delivery.slave_copy import apply_allocated_in, segments_of
+from keystrata.delivery.stock import OwnedStock, Range, key_bytes
 from keystrata.errors import (
     BadRequest,
     Forbidden,
@@ -42,13 +44,13 @@ from keystrata.errors import (
     Unauthenticated,
     Unavailable,
 )
-from keystrata.services import ledger, messages, outbox, progress
-from keystrata.services.allocations import apply_allocated_in, segments_of
-from keystrata.services.context import NodeContext
-from keystrata.services.group_commit import GroupCommit
-from keystrata.services.linkbytes import NotYet
-from keystrata.services.owned_stock import OwnedStock, Range, key_bytes
-from keystrata.services.principals import Caller
+from keystrata.ledger import chain
+from keystrata.ledger.entries import Event
+from keystrata.links.consume import NotYet
+from keystrata.node import dispatch
+from keystrata.peering import messages, outbox
+from keystrata.registry.principals import Caller
+from keystrata.restore import comparison
 from keystrata.storage.models import KeyAlloc, Pair, PairSegment, Principal
 from keystrata.storage.sealed import key_context
 
@@ -57,7 +59,7 @@ log = logging.getLogger("keystrata.delivery")
 #: Keys one Get key may ask for, and additional slaves one key may have.
 MAX_KEY_PER_REQUEST = 1024
 MAX_SAE_ID_COUNT = 8
-#: Requests one group commit serves at most (see services/group_commit.py).
+#: Requests one group commit serves at most (see delivery/group_commit.py).
 LANE_BATCH = 64
 #: Key IDs per ``IN (...)`` (SQLite allows 32,766 parameters per statement).
 _IN_CHUNK = 500
@@ -99,7 +101,7 @@ class Route:
 def _refuse(ctx: NodeContext, caller: Caller, reason: str, **fields: Any) -> Unauthenticated:
     """Record a refusal and return the one 401 for every reason."""
     with ctx.db.write() as s:
-        ledger.append(s, node_id=ctx.node_id, **_refusal(s, ctx, caller, reason, fields))
+        chain.append(s, node_id=ctx.node_id, **_refusal(s, ctx, caller, reason, fields))
     return Unauthenticated()
 
 
@@ -238,7 +240,7 @@ def get_keys(
     """Get key: allocate ``number`` keys of ``size`` bits for (caller -> slaves).
 
     The allocation runs in a group commit with the Get key requests that arrive at the
-    same time (:mod:`keystrata.services.group_commit`); each still gets its own keys,
+    same time (:mod:`keystrata.delivery.group_commit`); each still gets its own keys,
     ledger entry and answer.
 
     Raises:
@@ -246,7 +248,7 @@ def get_keys(
         BadRequest: malformed request values (400).
         QuotaReached / NotEnoughKey: 503 with a clear message.
     """
-    progress.refuse_if_held(ctx, caller, slave_sae_id)  # restore check: 503 while held
+    comparison.refuse_if_held(ctx, caller, slave_sae_id)  # restore check: 503 while held
     if len(request.additional_slave_SAE_IDs or ()) > MAX_SAE_ID_COUNT:
         raise BadRequest(f"at most {MAX_SAE_ID_COUNT} additional_slave_SAE_IDs (max_SAE_ID_count)")
     route = route_for_master(ctx, caller, slave_sae_id, request.additional_slave_SAE_IDs or ())
@@ -356,11 +358,11 @@ def _allocate(ctx: NodeContext, asks: Sequence[_Ask]) -> list[list[DeliveredKey]
             outbox.send(
                 s,
                 destination=asks[planned[0][0]].route.partner,
-                message=pm.KeyAllocated(pair_id=pair_id, owner=ctx.node_id, keys=records),
+                message=messages.KeyAllocated(pair_id=pair_id, owner=ctx.node_id, keys=records),
                 segment_id=None,
                 now=now,
             )
-        ledger.append_many(s, node_id=ctx.node_id, entries=entries)
+        chain.append_many(s, node_id=ctx.node_id, entries=entries)
     return results
 
 
@@ -384,14 +386,15 @@ def _used_today(
 
 def _record(
     ask: _Ask, key_id: str, ranges: list[Range], now: datetime, expires: datetime
-) -> pm.AllocatedKey:
+) -> messages.AllocatedKey:
     """A key as the ``key.allocated`` message tells the slave's station about it."""
-    return pm.AllocatedKey(
+    return messages.AllocatedKey(
         key_ID=key_id,
         master=ask.caller.principal_id,
         slaves=ask.route.slaves,
         ranges=[
-            pm.SegmentRange(segment=r.segment, offset=r.offset, length=r.length) for r in ranges
+            messages.SegmentRange(segment=r.segment, offset=r.offset, length=r.length)
+            for r in ranges
         ],
         size_bits=ask.size,
         allocated_at=now,
@@ -400,7 +403,7 @@ def _record(
 
 
 def _owned_row(
-    pair_id: str, owner: str, record: pm.AllocatedKey, now: datetime, expires: datetime
+    pair_id: str, owner: str, record: messages.AllocatedKey, now: datetime, expires: datetime
 ) -> dict[str, Any]:
     """The owner's ``key_alloc`` row of a key handed to its master at once."""
     return {
@@ -436,7 +439,7 @@ def get_keys_with_ids(
         AllocationNotHere: a key ID is unknown here while the master's station could not
             be asked, or named key this station cannot take yet (503, try again).
     """
-    progress.refuse_if_held(ctx, caller, master_sae_id)  # restore check: 503 while held
+    comparison.refuse_if_held(ctx, caller, master_sae_id)  # restore check: 503 while held
     ids = [str(uuid.UUID(k)) for k in key_ids]
     if len(set(ids)) != len(ids):
         raise BadRequest("the same key_ID is asked for more than once")
@@ -497,14 +500,14 @@ def _pull_and_apply(ctx: NodeContext, owner: str, missing: set[str], pull: Pull)
         return True
     # All in one transaction (one commit however many messages), each message in a
     # savepoint of its own: one that cannot apply leaves the others applied.
-    refused: list[tuple[pm.KeyAllocated, Forbidden]] = []
+    refused: list[tuple[messages.KeyAllocated, Forbidden]] = []
     with ctx.db.write() as s:
         for body in bodies:
             try:
-                msg = pm.parse(body)
+                msg = messages.parse(body)
             except InvalidInput:
                 continue  # a malformed message holds no key of this request; others may
-            if not isinstance(msg, pm.KeyAllocated):
+            if not isinstance(msg, messages.KeyAllocated):
                 continue
             try:
                 with s.begin_nested():
@@ -521,7 +524,7 @@ def _pull_and_apply(ctx: NodeContext, owner: str, missing: set[str], pull: Pull)
             if not missing:
                 break
     for refused_msg, error in refused:
-        messages.record_refusal(ctx, owner, refused_msg, error)
+        dispatch.record_refusal(ctx, owner, refused_msg, error)
     return False
 
 
@@ -594,7 +597,7 @@ def _serve(ctx: NodeContext, fetches: Sequence[_Fetch]) -> list[list[DeliveredKe
                     },
                 )
             )
-        ledger.append_many(s, node_id=ctx.node_id, entries=entries)
+        chain.append_many(s, node_id=ctx.node_id, entries=entries)
     return results
 
 

@@ -9,7 +9,7 @@ two stations of a pair).
 * Expiry: keys no slave fetched in time are destroyed here and the owner is told
   (``key.expired``), which records them as expired on its side.
 
-Get key and Get key with key IDs themselves are in :mod:`keystrata.services.delivery`.
+Get key and Get key with key IDs themselves are in :mod:`keystrata.delivery.enc_keys`.
 """
 
 from __future__ import annotations
@@ -21,13 +21,13 @@ from datetime import datetime, timedelta
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from keystrata.domain import peer_messages as pm
-from keystrata.domain.ledger import Event
+from keystrata.context import NodeContext
 from keystrata.errors import Forbidden, InvalidInput, KeystrataError
-from keystrata.services import ledger, outbox
-from keystrata.services.context import NodeContext
-from keystrata.services.linkbytes import NotYet
-from keystrata.services.segments import Outcome
+from keystrata.ledger import chain
+from keystrata.ledger.entries import Event
+from keystrata.links.consume import NotYet
+from keystrata.peering import messages, outbox
+from keystrata.relay.segments import Outcome
 from keystrata.storage.models import KeyAlloc, Pair, PairSegment, Principal
 from keystrata.storage.sealed import key_context, segment_context
 
@@ -36,14 +36,14 @@ from keystrata.storage.sealed import key_context, segment_context
 CLOCK_SKEW = timedelta(seconds=300)
 
 
-def apply_allocated(ctx: NodeContext, sender: str, msg: pm.KeyAllocated) -> Outcome:
+def apply_allocated(ctx: NodeContext, sender: str, msg: messages.KeyAllocated) -> Outcome:
     """Slave's station: take the named segment bytes as keys waiting for their slaves."""
     with ctx.db.write() as s:
         return apply_allocated_in(ctx, s, sender, msg)
 
 
 def apply_allocated_run(
-    ctx: NodeContext, sender: str, msgs: Sequence[pm.KeyAllocated]
+    ctx: NodeContext, sender: str, msgs: Sequence[messages.KeyAllocated]
 ) -> tuple[list[Outcome], KeystrataError | None]:
     """Apply consecutive ``key.allocated`` messages in order in one transaction (one
     commit), each in a savepoint as if it came alone; stop at the first that does not
@@ -76,7 +76,7 @@ def _sae_at(s: Session, sae_id: str, station: str) -> bool:
 
 
 def check_binding(
-    s: Session, ctx: NodeContext, sender: str, msg: pm.KeyAllocated, now: datetime
+    s: Session, ctx: NodeContext, sender: str, msg: messages.KeyAllocated, now: datetime
 ) -> Pair:
     """What an allocation claims, against this station's registry: the sender is this
     station's partner in an active pair and the owner it names; each key's master is an
@@ -125,7 +125,9 @@ def check_binding(
     return pair
 
 
-def apply_allocated_in(ctx: NodeContext, s: Session, sender: str, msg: pm.KeyAllocated) -> Outcome:
+def apply_allocated_in(
+    ctx: NodeContext, s: Session, sender: str, msg: messages.KeyAllocated
+) -> Outcome:
     """:func:`apply_allocated` in the caller's transaction."""
     now = ctx.clock.now()
     pair = check_binding(s, ctx, sender, msg, now)
@@ -141,7 +143,7 @@ def apply_allocated_in(ctx: NodeContext, s: Session, sender: str, msg: pm.KeyAll
         .with_for_update()
     ).all()
     applied: list[str] = []
-    taken: list[pm.AllocatedKey] = []
+    taken: list[messages.AllocatedKey] = []
     for rec in msg.keys:
         key_id = rec.key_ID
         if s.get(KeyAlloc, key_id) is not None:
@@ -169,7 +171,7 @@ def apply_allocated_in(ctx: NodeContext, s: Session, sender: str, msg: pm.KeyAll
         applied.append(key_id)
         taken.append(rec)
     if applied:
-        ledger.append(
+        chain.append(
             s,
             node_id=ctx.node_id,
             at=now,
@@ -188,13 +190,13 @@ def apply_allocated_in(ctx: NodeContext, s: Session, sender: str, msg: pm.KeyAll
     return Outcome(applied[0] if applied else "", "applied" if applied else "already")
 
 
-def segments_of(records: Sequence[pm.AllocatedKey]) -> list[str]:
+def segments_of(records: Sequence[messages.AllocatedKey]) -> list[str]:
     """The segments (one per relay operation) that keys were cut from, in order."""
     return list(dict.fromkeys(r.segment for rec in records for r in rec.ranges))
 
 
 def _carve_named(
-    ctx: NodeContext, s: Session, pair_id: str, owner: str, ranges: Sequence[pm.SegmentRange]
+    ctx: NodeContext, s: Session, pair_id: str, owner: str, ranges: Sequence[messages.SegmentRange]
 ) -> bytes:
     out = b""
     for r in ranges:
@@ -238,17 +240,17 @@ def expire(ctx: NodeContext) -> int:
             by_owner.setdefault((row.owner, row.pair_id), []).append(row)
         for (owner, pair_id), expired in by_owner.items():
             key_ids = [r.key_id for r in expired]
-            for start in range(0, len(key_ids), pm.MAX_KEYS):
+            for start in range(0, len(key_ids), messages.MAX_KEYS):
                 outbox.send(
                     s,
                     destination=owner,
-                    message=pm.KeyExpired(
-                        pair_id=pair_id, key_ids=key_ids[start : start + pm.MAX_KEYS]
+                    message=messages.KeyExpired(
+                        pair_id=pair_id, key_ids=key_ids[start : start + messages.MAX_KEYS]
                     ),
                     segment_id=None,
                     now=now,
                 )
-            ledger.append(
+            chain.append(
                 s,
                 node_id=ctx.node_id,
                 at=now,
@@ -263,7 +265,7 @@ def expire(ctx: NodeContext) -> int:
         return len(rows)
 
 
-def apply_expired(ctx: NodeContext, sender: str, msg: pm.KeyExpired) -> Outcome:
+def apply_expired(ctx: NodeContext, sender: str, msg: messages.KeyExpired) -> Outcome:
     """Owner: record that keys it allocated expired uncollected at the slave's station.
 
     Only keys of the named pair that this station allocated, reported by its partner in
@@ -294,7 +296,7 @@ def apply_expired(ctx: NodeContext, sender: str, msg: pm.KeyExpired) -> Outcome:
         for row in rows:
             row.state, row.settled_at = "expired", now
         if changed:
-            ledger.append(
+            chain.append(
                 s,
                 node_id=ctx.node_id,
                 at=now,

@@ -19,7 +19,7 @@ from pathlib import Path
 from sqlalchemy import select
 
 from keystrata.config import load_settings
-from keystrata.services.node import open_node
+from keystrata.node.lifecycle import open_node
 from keystrata.storage.db import Database
 from keystrata.storage.models import LinkBlock, PairSegment, RelayOp
 from keystrata.storage.sealed import segment_context

@@ -13,7 +13,7 @@ from keystrata.config import load_settings
 from keystrata.crypto.kek import write_new_kek
 from keystrata.crypto.pki import PkiDir, fingerprint_sha256
 from keystrata.demo import scenario
-from keystrata.services.node import initialise, load_keyring
+from keystrata.node.lifecycle import initialise, load_keyring
 from keystrata.storage.db import Database
 
 #: Demo nodes sign a ledger checkpoint every second when there is something new.
@@ -106,16 +106,16 @@ checkpoint_seconds = {CHECKPOINT_SECONDS}
 
 def init_databases(nodes: list[DemoNode]) -> None:
     """Migrate each node's database, create its secrets, and add the first operator."""
-    from keystrata.domain.registry import Kind, PrincipalRole, PrincipalSpec
-    from keystrata.services import registry
-    from keystrata.services.node import open_node
+    from keystrata.node.lifecycle import open_node
+    from keystrata.registry import provisioning
+    from keystrata.registry.specs import Kind, PrincipalRole, PrincipalSpec
 
     for node in nodes:
         settings = load_settings(node.config, env={})
         db = Database.from_url(settings.database.url)
         try:
             initialise(settings, db, load_keyring(settings))
-            registry.create(
+            provisioning.create(
                 open_node(settings, db),
                 Kind.PRINCIPALS,
                 PrincipalSpec(

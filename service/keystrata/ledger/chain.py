@@ -10,10 +10,10 @@ from typing import Any
 from sqlalchemy import exc, insert, select, update
 from sqlalchemy.orm import Session
 
-from keystrata.domain import merkle
-from keystrata.domain.frontier import Frontier
-from keystrata.domain.ledger import Event, encode_entry, references
 from keystrata.errors import Unavailable
+from keystrata.ledger import merkle
+from keystrata.ledger.entries import Event, encode_entry, references
+from keystrata.ledger.frontier import Frontier
 from keystrata.storage.models import LedgerEntry, LedgerHead, LedgerNode, LedgerRef
 
 

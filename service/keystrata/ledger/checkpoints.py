@@ -21,10 +21,10 @@ from typing import Any
 
 from sqlalchemy import select
 
+from keystrata.context import NodeContext
 from keystrata.crypto.hazmat import public_key_of, sign
-from keystrata.domain.ledger import timestamp
-from keystrata.services.context import NodeContext
-from keystrata.services.ledger import StoredTree
+from keystrata.ledger.chain import StoredTree
+from keystrata.ledger.entries import timestamp
 from keystrata.storage.models import LedgerCheckpoint, NodeMeta
 from keystrata.storage.sealed import meta_context
 

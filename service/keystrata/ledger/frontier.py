@@ -1,13 +1,13 @@
 """The right edge of the ledger's Merkle tree, kept beside its size so that an append
 needs no reads: the perfect subtrees that decompose ``[0, size)`` (one per set bit of
-``size``, largest first; see :mod:`keystrata.domain.merkle`, step 3). They are the only
+``size``, largest first; see :mod:`keystrata.ledger.merkle`, step 3). They are the only
 left siblings a new leaf can need, and they give the tree head directly."""
 
 from __future__ import annotations
 
 from collections.abc import Iterable
 
-from keystrata.domain.merkle import HASH_SIZE
+from keystrata.ledger.merkle import HASH_SIZE
 
 
 def positions(size: int) -> list[tuple[int, int]]:
@@ -22,7 +22,7 @@ def positions(size: int) -> list[tuple[int, int]]:
 
 
 class Frontier:
-    """A read-only :class:`~keystrata.domain.merkle.SubtreeStore` over the right edge."""
+    """A read-only :class:`~keystrata.ledger.merkle.SubtreeStore` over the right edge."""
 
     def __init__(self, size: int, blob: bytes | None) -> None:
         places = positions(size)

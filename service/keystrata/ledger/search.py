@@ -11,8 +11,8 @@ from typing import Any
 
 from sqlalchemy import Select, select
 
-from keystrata.domain.ledger import Event, Ref
-from keystrata.services.context import NodeContext
+from keystrata.context import NodeContext
+from keystrata.ledger.entries import Event, Ref
 from keystrata.storage.models import LedgerEntry, LedgerRef
 
 MAX_PAGE = 1000

@@ -21,8 +21,8 @@ from sqlalchemy import bindparam, func, select, update
 from sqlalchemy.orm import Session
 
 from keystrata.crypto.hazmat import Keyring
-from keystrata.domain.relay import Available, Range
 from keystrata.errors import KeystrataError
+from keystrata.relay.arithmetic import Available, Range
 from keystrata.storage.models import LinkBlock
 from keystrata.storage.sealed import block_context
 

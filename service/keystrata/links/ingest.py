@@ -14,13 +14,13 @@ from typing import Any
 from sqlalchemy import insert, select
 from sqlalchemy.orm import Session
 
+from keystrata.context import NodeContext
 from keystrata.crypto.hazmat import constant_time_equal, keyed_fingerprint
-from keystrata.domain.blocks import BlockIn, validate_block
-from keystrata.domain.ledger import Event
 from keystrata.errors import BlockConflict, Forbidden, InvalidInput, NotFound
-from keystrata.services import ledger
-from keystrata.services.context import NodeContext
-from keystrata.services.pools import ends_here
+from keystrata.ledger import chain
+from keystrata.ledger.entries import Event
+from keystrata.links.blocks import BlockIn, validate_block
+from keystrata.links.pools import ends_here
 from keystrata.storage.models import LinkBlock, QkdLink
 from keystrata.storage.sealed import block_context
 
@@ -76,7 +76,7 @@ def ingest(
             return _store(ctx, s, link_id, blocks, prints, actor=actor)
     except BlockConflict as exc:
         with ctx.db.write() as s:
-            ledger.append(
+            chain.append(
                 s,
                 node_id=ctx.node_id,
                 at=now,
@@ -168,7 +168,7 @@ def _store(
         fields["block_ids"] = new_ids
     else:
         fields |= {"first_block_id": new_ids[0], "last_block_id": new_ids[-1]}
-    ledger.append(s, node_id=ctx.node_id, at=now, event=Event.LINK_KEY_INGESTED, fields=fields)
+    chain.append(s, node_id=ctx.node_id, at=now, event=Event.LINK_KEY_INGESTED, fields=fields)
     return IngestResult(
         link_id=link_id, accepted=len(fresh_blocks), duplicates=duplicates, accepted_bits=bits
     )

@@ -7,8 +7,8 @@ from datetime import UTC, datetime, timedelta
 
 from sqlalchemy import case, func, select
 
+from keystrata.context import NodeContext
 from keystrata.errors import NotFound
-from keystrata.services.context import NodeContext
 from keystrata.storage.models import LinkBlock, QkdLink
 
 

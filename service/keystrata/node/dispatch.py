@@ -1,6 +1,6 @@
 """Dispatch of node-to-node messages to their handlers, by node role and message kind.
 
-Every body is parsed once into its typed model (:mod:`keystrata.domain.peer_messages`):
+Every body is parsed once into its typed model (:mod:`keystrata.peering.messages`):
 an unknown kind or version, or a malformed member, is a 400 before anything is read
 from the database. Handlers then check what the message claims against this node's own
 registry and rows; a claim that is not the sender's to make is refused (403), changes
@@ -17,15 +17,17 @@ from dataclasses import dataclass
 from typing import Any
 
 from keystrata.config import Role
-from keystrata.domain import peer_messages as pm
-from keystrata.domain.ledger import Event
+from keystrata.context import NodeContext
+from keystrata.delivery import slave_copy
 from keystrata.errors import Forbidden, InvalidInput, KeystrataError
-from keystrata.services import allocations, ledger, relay, segments
-from keystrata.services.context import NodeContext
-from keystrata.services.segments import Outcome
+from keystrata.ledger import chain
+from keystrata.ledger.entries import Event
+from keystrata.peering import messages
+from keystrata.relay import operation, segments
+from keystrata.relay.segments import Outcome
 from keystrata.storage.models import Pair
 
-#: Messages per batch request at most (the sender sends fewer; see workers/outbox.py).
+#: Messages per batch request at most (the sender sends fewer; see peering/sender.py).
 MAX_BATCH = 256
 
 log = logging.getLogger("keystrata.peers")
@@ -33,36 +35,36 @@ log = logging.getLogger("keystrata.peers")
 Handler = Callable[[NodeContext, str, Any], Outcome]
 
 
-def _settle(ctx: NodeContext, sender: str, msg: pm.SegmentSettled) -> Outcome:
-    if relay.notice_station_of(ctx, msg.segment_id) != sender:
+def _settle(ctx: NodeContext, sender: str, msg: messages.SegmentSettled) -> Outcome:
+    if operation.notice_station_of(ctx, msg.segment_id) != sender:
         raise Forbidden("only the segment's notice station settles it")
-    changed = relay.settle(ctx, msg.segment_id, msg.outcome, msg.reason)
+    changed = operation.settle(ctx, msg.segment_id, msg.outcome, msg.reason)
     return Outcome(msg.segment_id, "applied" if changed else "already")
 
 
-HANDLERS: dict[Role, dict[type[pm.PeerMessage], Handler]] = {
+HANDLERS: dict[Role, dict[type[messages.PeerMessage], Handler]] = {
     Role.STATION: {
-        pm.RelayNotice: segments.apply_notice,
-        pm.RelayCiphertext: segments.apply_ciphertext,
-        pm.SegmentCheck: segments.apply_check,
-        pm.SegmentConfirmed: segments.apply_confirmed,
-        pm.SegmentDiscarded: segments.apply_discarded,
-        pm.KeyAllocated: allocations.apply_allocated,
-        pm.KeyExpired: allocations.apply_expired,
+        messages.RelayNotice: segments.apply_notice,
+        messages.RelayCiphertext: segments.apply_ciphertext,
+        messages.SegmentCheck: segments.apply_check,
+        messages.SegmentConfirmed: segments.apply_confirmed,
+        messages.SegmentDiscarded: segments.apply_discarded,
+        messages.KeyAllocated: slave_copy.apply_allocated,
+        messages.KeyExpired: slave_copy.apply_expired,
     },
-    Role.RELAY: {pm.SegmentSettled: _settle},
+    Role.RELAY: {messages.SegmentSettled: _settle},
 }
 
 
-def read(ctx: NodeContext, body: Any) -> pm.PeerMessage:
+def read(ctx: NodeContext, body: Any) -> messages.PeerMessage:
     """Parse a body into a message this node takes. Raises InvalidInput (400)."""
-    msg = pm.parse(body)
+    msg = messages.parse(body)
     if type(msg) not in HANDLERS[ctx.role]:
         raise InvalidInput(f"kind: a {ctx.role.value} does not take {msg.kind} messages")
     return msg
 
 
-def apply(ctx: NodeContext, sender: str, msg: pm.PeerMessage) -> Outcome:
+def apply(ctx: NodeContext, sender: str, msg: messages.PeerMessage) -> Outcome:
     """Apply one parsed message from peer node ``sender``; a refusal is recorded.
 
     Raises:
@@ -81,7 +83,9 @@ def handle(ctx: NodeContext, sender: str, body: Any) -> Outcome:
     return apply(ctx, sender, read(ctx, body))
 
 
-def record_refusal(ctx: NodeContext, sender: str, msg: pm.PeerMessage, exc: Forbidden) -> None:
+def record_refusal(
+    ctx: NodeContext, sender: str, msg: messages.PeerMessage, exc: Forbidden
+) -> None:
     """Write ``peer.message_refused`` in its own transaction (the refused change rolled
     back). The pair is named only when it is registered here; the reason is the code of
     the check that failed, never a value from the message."""
@@ -90,7 +94,7 @@ def record_refusal(ctx: NodeContext, sender: str, msg: pm.PeerMessage, exc: Forb
     with ctx.db.write() as s:
         if pair_id is not None and s.get(Pair, pair_id) is None:
             pair_id = None
-        ledger.append(
+        chain.append(
             s,
             node_id=ctx.node_id,
             at=ctx.clock.now(),
@@ -126,7 +130,7 @@ def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[Answe
         InvalidInput: ``bodies`` holds something that is not a message this node takes
             (checked for every message before any is applied, so nothing changes).
     """
-    msgs: list[pm.PeerMessage] = []
+    msgs: list[messages.PeerMessage] = []
     for i, body in enumerate(bodies):
         try:
             msgs.append(read(ctx, body))
@@ -139,7 +143,7 @@ def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[Answe
         if run:
             # Key allocations come in long runs under load: one transaction for a run.
             try:
-                outcomes, error = allocations.apply_allocated_run(ctx, sender, run)
+                outcomes, error = slave_copy.apply_allocated_run(ctx, sender, run)
             except KeystrataError as exc:
                 outcomes, error = [], exc
             answers += [Answer(200, o.segment_id, o.status) for o in outcomes]
@@ -160,11 +164,11 @@ def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[Answe
     return answers
 
 
-def _allocations_from(msgs: list[pm.PeerMessage], start: int) -> list[pm.KeyAllocated]:
+def _allocations_from(msgs: list[messages.PeerMessage], start: int) -> list[messages.KeyAllocated]:
     """The run of ``key.allocated`` messages at ``start``."""
-    run: list[pm.KeyAllocated] = []
+    run: list[messages.KeyAllocated] = []
     for msg in msgs[start:]:
-        if not isinstance(msg, pm.KeyAllocated):
+        if not isinstance(msg, messages.KeyAllocated):
             break
         run.append(msg)
     return run

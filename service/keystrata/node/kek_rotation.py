@@ -17,10 +17,10 @@ from sqlalchemy import select
 
 from keystrata.clock import Clock, SystemClock
 from keystrata.crypto.hazmat import Keyring, kek_id
-from keystrata.domain.ledger import Event
 from keystrata.errors import StartupRefused
-from keystrata.services import ledger
-from keystrata.services.node import ROTATION_MARK, check_kek
+from keystrata.ledger import chain
+from keystrata.ledger.entries import Event
+from keystrata.node.lifecycle import ROTATION_MARK, check_kek
 from keystrata.storage.db import Database
 from keystrata.storage.models import KeyAlloc, LinkBlock, NodeMeta, PairSegment
 from keystrata.storage.sealed import (
@@ -65,7 +65,7 @@ def rotate(
         if mark is None:
             check_kek(s, Keyring(old))
             s.add(NodeMeta(name=ROTATION_MARK, value=target))
-            ledger.append(
+            chain.append(
                 s,
                 node_id=node_id,
                 at=clock.now(),
@@ -121,7 +121,7 @@ def rotate(
         mark = s.get(NodeMeta, ROTATION_MARK)
         if mark is not None:
             s.delete(mark)
-        ledger.append(
+        chain.append(
             s,
             node_id=node_id,
             at=clock.now(),

@@ -10,12 +10,13 @@ from sqlalchemy.orm import Session
 from keystrata import __version__
 from keystrata.clock import Clock, SystemClock
 from keystrata.config import Settings
+from keystrata.context import NodeContext
 from keystrata.crypto.hazmat import Keyring, generate_signing_key, random_bytes
 from keystrata.crypto.kek import read_kek
-from keystrata.domain.ledger import Event
 from keystrata.errors import ConfigError, SealBroken, StartupRefused
-from keystrata.services import ledger, reseal
-from keystrata.services.context import NodeContext
+from keystrata.ledger import chain
+from keystrata.ledger.entries import Event
+from keystrata.node import reseal
 from keystrata.storage import migrate, sealed
 from keystrata.storage.db import Database, DurabilityRisk, durability_risks
 from keystrata.storage.models import NodeMeta, RegistryNode
@@ -103,7 +104,7 @@ def initialise(
                 updated_at=now,
             )
         )
-        ledger.append(
+        chain.append(
             s,
             node_id=settings.node.id,
             at=now,

@@ -13,11 +13,14 @@ from datetime import timedelta
 from sqlalchemy.exc import IntegrityError
 
 from keystrata.config import Role
-from keystrata.services import allocations, checkpoints, leases, segments
-from keystrata.services import outbox as outbox_service
-from keystrata.services.context import NodeContext
-from keystrata.workers import outbox, progress, scheduler
-from keystrata.workers.peer_client import PeerClient
+from keystrata.context import NodeContext
+from keystrata.delivery import slave_copy
+from keystrata.ledger import checkpoints
+from keystrata.peering import outbox, sender
+from keystrata.peering.client import PeerClient
+from keystrata.relay import scheduler, segments
+from keystrata.restore import loop
+from keystrata.storage import leases
 
 log = logging.getLogger("keystrata.workers")
 
@@ -37,7 +40,7 @@ class Background:
         self.peers = PeerClient(ctx.settings)
 
     def start(self) -> None:
-        self._unwake = outbox_service.wake_on_commit(self.ctx.db, self.wake)
+        self._unwake = outbox.wake_on_commit(self.ctx.db, self.wake)
         loops: list[tuple[str, Callable[[], object], float]] = [
             ("outbox", self._outbox, self.ctx.settings.outbox.idle_seconds),
             ("checkpoints", self._checkpoint, 1.0),
@@ -46,12 +49,12 @@ class Background:
             loops.append(("scheduler", self._schedule, self.ctx.settings.relay.cycle_seconds))
         else:
             loops.append(("expiry", self._expire, 5.0))
-            progress.at_start(self.ctx, self.peers)
+            loop.at_start(self.ctx, self.peers)
             loops.append(
                 (
                     "restore-check",
-                    lambda: progress.check_once(self.ctx, self.peers, self.holder),
-                    min(self.ctx.settings.restore_check.interval_seconds, progress.RETRY_SECONDS),
+                    lambda: loop.check_once(self.ctx, self.peers, self.holder),
+                    min(self.ctx.settings.restore_check.interval_seconds, loop.RETRY_SECONDS),
                 )
             )
         for name, step, idle in loops:
@@ -88,7 +91,7 @@ class Background:
                 self.stop_event.wait(self.ctx.settings.outbox.linger_seconds)
 
     def _outbox(self) -> bool:
-        return outbox.deliver_once(self.ctx, self.peers, self.holder) > 0
+        return sender.deliver_once(self.ctx, self.peers, self.holder) > 0
 
     def _schedule(self) -> bool:
         cfg = self.ctx.settings.relay
@@ -112,5 +115,5 @@ class Background:
     def _expire(self) -> bool:
         timeout = timedelta(seconds=self.ctx.settings.segments.confirm_timeout_seconds)
         segments.expire_pending(self.ctx, self.ctx.clock.now() - timeout)
-        allocations.expire(self.ctx)
+        slave_copy.expire(self.ctx)
         return False

@@ -19,8 +19,12 @@ from sqlalchemy import func, select
 
 from keystrata import __version__
 from keystrata.config import Role
-from keystrata.services import accounting, buffers, checkpoints, pools, progress
-from keystrata.services.context import NodeContext
+from keystrata.context import NodeContext
+from keystrata.delivery import accounting
+from keystrata.ledger import checkpoints
+from keystrata.links import pools
+from keystrata.relay import buffers
+from keystrata.restore import comparison
 from keystrata.storage.db import durability_risks
 from keystrata.storage.models import LedgerHead, OutboxMessage, RelayOp
 
@@ -74,7 +78,7 @@ def _safety(ctx: NodeContext) -> list[Metric]:
         "pair serves no key here until an operator releases it) or partner.",
         labels=["pair", "behind", "reason"],
     )
-    for hold in progress.open_holds(ctx):
+    for hold in comparison.open_holds(ctx):
         held.add_metric([hold.pair_id, hold.behind, hold.reason], 1)
     return [override, unsafe, held]
 

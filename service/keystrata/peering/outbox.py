@@ -7,7 +7,7 @@ its current consumption point, so a later message overtaking an earlier one is r
 (409, "not yet") and would only cost a round trip and a backoff. Hence:
 
 * one sender per destination at a time, across every worker process: the lease
-  ``outbox:<destination>`` (:mod:`keystrata.services.leases`), taken in the same
+  ``outbox:<destination>`` (:mod:`keystrata.storage.leases`), taken in the same
   transaction that claims the destination's messages and given up when their answers
   are recorded;
 * the oldest message of a destination (its *head*) decides when the destination is
@@ -15,7 +15,7 @@ its current consumption point, so a later message overtaking an earlier one is r
   waits too (it would be refused the same way). A head that is refused for good keeps
   its destination blocked, visibly: ``attempts`` and ``last_error`` on its row, the
   age of the oldest message per destination in the metrics, and a warning in the log
-  (``workers/outbox.py``). Nothing is skipped or dropped: the two sides of a segment
+  (``peering/sender.py``). Nothing is skipped or dropped: the two sides of a segment
   must not drift apart.
 
 A commit that enqueued a message wakes the outbox loop of its own process at once
@@ -35,8 +35,8 @@ from typing import Any
 from sqlalchemy import Engine, delete, event, func, or_, select, update
 from sqlalchemy.orm import Session
 
-from keystrata.domain.peer_messages import PeerMessage
-from keystrata.services import leases
+from keystrata.peering.messages import PeerMessage
+from keystrata.storage import leases
 from keystrata.storage.db import Database
 from keystrata.storage.models import OutboxMessage
 

@@ -9,10 +9,10 @@ import socket
 import threading
 from datetime import timedelta
 
-from keystrata.services import outbox
-from keystrata.services.context import NodeContext
-from keystrata.services.messages import MAX_BATCH
-from keystrata.workers.peer_client import PeerClient, PeerUnavailable
+from keystrata.context import NodeContext
+from keystrata.node.dispatch import MAX_BATCH
+from keystrata.peering import outbox
+from keystrata.peering.client import PeerClient, PeerUnavailable
 
 log = logging.getLogger("keystrata.outbox")
 

@@ -21,11 +21,11 @@ from typing import Any
 
 from sqlalchemy import select
 
+from keystrata.context import NodeContext
 from keystrata.crypto.hazmat import constant_time_equal, keyed_fingerprint
-from keystrata.domain.ledger import Event, timestamp
-from keystrata.domain.registry import PINNED_ROLES, PrincipalRole
-from keystrata.services import ledger
-from keystrata.services.context import NodeContext
+from keystrata.ledger import chain
+from keystrata.ledger.entries import Event, timestamp
+from keystrata.registry.specs import PINNED_ROLES, PrincipalRole
 from keystrata.storage.models import Principal
 
 log = logging.getLogger("keystrata.identity")
@@ -217,7 +217,7 @@ def _write(
             entry["count"] = count
             entry["since"] = timestamp(since)
             entries.append((at, Event.AUTH_REFUSED, entry))
-        ledger.append_many(s, node_id=ctx.node_id, entries=entries)
+        chain.append_many(s, node_id=ctx.node_id, entries=entries)
 
 
 def _registered(s: Any, subject: str | None) -> tuple[str | None, bool]:

@@ -12,8 +12,11 @@ from pydantic import ValidationError
 from sqlalchemy import or_, select
 from sqlalchemy.orm import Session
 
-from keystrata.domain.ledger import Event
-from keystrata.domain.registry import (
+from keystrata.context import NodeContext
+from keystrata.errors import AlreadyExists, Conflict, InvalidInput, NotFound
+from keystrata.ledger import chain
+from keystrata.ledger.entries import Event
+from keystrata.registry.specs import (
     Kind,
     LinkChange,
     LinkSpec,
@@ -28,9 +31,6 @@ from keystrata.domain.registry import (
     PrincipalSpec,
     check_pin_kept,
 )
-from keystrata.errors import AlreadyExists, Conflict, InvalidInput, NotFound
-from keystrata.services import ledger
-from keystrata.services.context import NodeContext
 from keystrata.storage.models import Base, Pair, Principal, QkdLink, RegistryNode
 
 _MODEL: dict[Kind, type[Base]] = {
@@ -199,7 +199,7 @@ def create(ctx: NodeContext, kind: Kind, spec: Spec, *, actor: str) -> dict[str,
         s.add(row)
         s.flush()
         out = to_dict(kind, row)
-        ledger.append(
+        chain.append(
             s,
             node_id=ctx.node_id,
             at=now,
@@ -283,7 +283,7 @@ def change(ctx: NodeContext, kind: Kind, key: str, change: Change, *, actor: str
         row.updated_at = now
         s.flush()
         out = to_dict(kind, row)
-        ledger.append(
+        chain.append(
             s,
             node_id=ctx.node_id,
             at=now,
@@ -353,7 +353,7 @@ def retire(ctx: NodeContext, kind: Kind, key: str, *, actor: str) -> dict[str, A
         row.updated_at = now
         s.flush()
         out = to_dict(kind, row)
-        ledger.append(
+        chain.append(
             s,
             node_id=ctx.node_id,
             at=now,

@@ -7,7 +7,7 @@ For a pair (A, B) and a segment of n bytes the relay takes
 * KB: the next n bytes of link R-B, and M: the next 32 bytes of link R-B,
 
 and writes one *header* naming the segment, the pair, both stations, the owner, the
-length, the epsilon and every link byte used (:class:`keystrata.domain.peer_messages.
+length, the epsilon and every link byte used (:class:`keystrata.peering.messages.
 SegmentHeader`, RFC 8785 canonical JSON). It sends A a *notice*: the header with
 tagA = Poly1305(MA, len(header) || header), and B the header, the ciphertext
 C = KA xor KB and tag = Poly1305(M, len(header) || header || C) (RFC 8439 section 2.5;

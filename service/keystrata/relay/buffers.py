@@ -11,9 +11,9 @@ from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session
 
-from keystrata.domain import relay as method
+from keystrata.context import NodeContext
 from keystrata.errors import Forbidden, NotFound
-from keystrata.services.context import NodeContext
+from keystrata.relay import arithmetic
 from keystrata.storage.models import Pair, PairBuffer, PairSegment, RelayOp
 
 
@@ -186,7 +186,7 @@ def relay_view(ctx: NodeContext, *, now: datetime | None = None) -> list[PairVie
                     r.delivered_bits / max(r.window_seconds, 1) for r in reports.values()
                 )
             ready = min(int(side["ready_bits"] or 0) for side in sides)
-            target = method.buffer_target(
+            target = arithmetic.buffer_target(
                 consumption_bps=consumption,
                 horizon_s=cfg.horizon_seconds,
                 minimum=pair.buffer_min_bits,

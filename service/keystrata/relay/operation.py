@@ -1,5 +1,5 @@
 """The relay operation: turn link key shared with two stations into a segment of pair key
-those stations share (see :mod:`keystrata.domain.relay` for the method).
+those stations share (see :mod:`keystrata.relay.arithmetic` for the method).
 
 One transaction takes KA, KB and the one-time MAC key M, destroys them, records the
 operation (no key bytes), and queues the notice to A and the ciphertext to B in the
@@ -16,13 +16,14 @@ from dataclasses import dataclass
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
+from keystrata.context import NodeContext
 from keystrata.crypto.hazmat import one_time_mac, xor_bytes
-from keystrata.domain import peer_messages as pm
-from keystrata.domain import relay as method
-from keystrata.domain.ledger import Event
 from keystrata.errors import Conflict, NotFound
-from keystrata.services import ledger, linkbytes, outbox
-from keystrata.services.context import NodeContext
+from keystrata.ledger import chain
+from keystrata.ledger.entries import Event
+from keystrata.links import consume
+from keystrata.peering import messages, outbox
+from keystrata.relay import arithmetic
 from keystrata.storage.models import Pair, QkdLink, RelayOp
 
 
@@ -88,8 +89,8 @@ def make_segment(
             raise NotFound(f"no active pair {pair_id!r} through this relay")
         stations = (pair.station_a, pair.station_b)
         links = {st: link_of(s, ctx.node_id, st) for st in stations}
-        need = n + method.MAC_KEY_BYTES
-        avail = {st: linkbytes.available(s, links[st], need) for st in stations}
+        need = n + arithmetic.MAC_KEY_BYTES
+        avail = {st: consume.available(s, links[st], need) for st in stations}
         if cipher_station is None:
             # The ciphertext goes to the side with more key on its link (common practice
             # for spreading wear; both sides pay n + 32 bytes).
@@ -97,17 +98,17 @@ def make_segment(
             cipher_station = max(stations, key=lambda st: (free[st], st))
         notice_station = stations[1] if cipher_station == stations[0] else stations[0]
         try:
-            ranges_a, ranges_ma = method.split_after(
-                method.take_ranges(avail[notice_station], need), n
+            ranges_a, ranges_ma = arithmetic.split_after(
+                arithmetic.take_ranges(avail[notice_station], need), n
             )
-            ranges_b, ranges_m = method.split_after(
-                method.take_ranges(avail[cipher_station], need), n
+            ranges_b, ranges_m = arithmetic.split_after(
+                arithmetic.take_ranges(avail[cipher_station], need), n
             )
         except ValueError as exc:
             raise LinkKeyShort(str(exc)) from exc
-        key_am, eps_a = linkbytes.take(s, ctx.keyring, links[notice_station], ranges_a + ranges_ma)
-        key_bm, eps_b = linkbytes.take(s, ctx.keyring, links[cipher_station], ranges_b + ranges_m)
-        epsilon = method.compose_epsilon(eps_a + eps_b)
+        key_am, eps_a = consume.take(s, ctx.keyring, links[notice_station], ranges_a + ranges_ma)
+        key_bm, eps_b = consume.take(s, ctx.keyring, links[cipher_station], ranges_b + ranges_m)
+        epsilon = arithmetic.compose_epsilon(eps_a + eps_b)
         if pair.max_epsilon is not None and epsilon > pair.max_epsilon:
             raise EpsilonTooLarge(
                 f"segment epsilon {epsilon:.3g} exceeds the pair's maximum {pair.max_epsilon:.3g}"
@@ -116,8 +117,8 @@ def make_segment(
         if owner not in stations:
             raise NotFound(f"{owner!r} is not a station of pair {pair_id}")
         now = ctx.clock.now()
-        header = pm.SegmentHeader(
-            v=pm.HEADER_VERSION,
+        header = messages.SegmentHeader(
+            v=messages.HEADER_VERSION,
             segment=segment_id,
             pair=pair_id,
             relay=ctx.node_id,
@@ -135,8 +136,8 @@ def make_segment(
             cipher_mac_ranges=_wire(ranges_m),
         ).encode()
         ciphertext = xor_bytes(key_am[:n], key_bm[:n])
-        tag_a = one_time_mac(key_am[n:], method.mac_input(header))
-        tag = one_time_mac(key_bm[n:], method.mac_input(header, ciphertext))
+        tag_a = one_time_mac(key_am[n:], arithmetic.mac_input(header))
+        tag = one_time_mac(key_bm[n:], arithmetic.mac_input(header, ciphertext))
         del key_am, key_bm  # nothing of KA, KB, MA or M outlives this transaction
         used = {
             links[notice_station]: [r.to_json() for r in ranges_a + ranges_ma],
@@ -160,20 +161,20 @@ def make_segment(
         outbox.send(
             s,
             destination=notice_station,
-            message=pm.RelayNotice(segment_id=segment_id, header=header, tag=tag_a),
+            message=messages.RelayNotice(segment_id=segment_id, header=header, tag=tag_a),
             segment_id=segment_id,
             now=now,
         )
         outbox.send(
             s,
             destination=cipher_station,
-            message=pm.RelayCiphertext(
+            message=messages.RelayCiphertext(
                 segment_id=segment_id, header=header, ciphertext=ciphertext, tag=tag
             ),
             segment_id=segment_id,
             now=now,
         )
-        ledger.append(
+        chain.append(
             s,
             node_id=ctx.node_id,
             at=now,
@@ -193,8 +194,8 @@ def make_segment(
     return SegmentMade(segment_id, pair_id, n, owner, epsilon)
 
 
-def _wire(ranges: list[method.Range]) -> list[pm.LinkRange]:
-    return [pm.LinkRange(block=r.block_id, offset=r.offset, length=r.length) for r in ranges]
+def _wire(ranges: list[arithmetic.Range]) -> list[messages.LinkRange]:
+    return [messages.LinkRange(block=r.block_id, offset=r.offset, length=r.length) for r in ranges]
 
 
 def settle(ctx: NodeContext, segment_id: str, outcome: str, reason: str | None) -> bool:
@@ -213,7 +214,7 @@ def settle(ctx: NodeContext, segment_id: str, outcome: str, reason: str | None) 
         now = ctx.clock.now()
         op.state = outcome
         op.settled_at = now
-        ledger.append(
+        chain.append(
             s,
             node_id=ctx.node_id,
             at=now,

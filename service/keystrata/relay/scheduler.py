@@ -3,7 +3,7 @@ link key among pairs by weighted max-min fairness.
 
 One cycle: ask each station for its buffer report, compute each pair's deficit (target
 minus ready key minus key on its way), share the link key the relay holds by
-:func:`keystrata.domain.fairness.allocate`, and run relay operations for the shares.
+:func:`keystrata.relay.fairness.allocate`, and run relay operations for the shares.
 Only the holder of the ``relay-scheduler`` lease runs cycles, so exactly one scheduler
 acts per relay however many worker processes there are.
 """
@@ -15,15 +15,15 @@ from dataclasses import dataclass
 
 from sqlalchemy import func, select
 
-from keystrata.domain import peer_messages as pm
-from keystrata.domain import relay as method
-from keystrata.domain.fairness import PairDemand, allocate
+from keystrata.context import NodeContext
 from keystrata.errors import Conflict, InvalidInput, NotFound
-from keystrata.services import buffers, linkbytes, relay
-from keystrata.services.buffers import BufferReport
-from keystrata.services.context import NodeContext
+from keystrata.links import consume
+from keystrata.peering import messages
+from keystrata.peering.client import PeerClient
+from keystrata.relay import arithmetic, buffers, operation
+from keystrata.relay.buffers import BufferReport
+from keystrata.relay.fairness import PairDemand, allocate
 from keystrata.storage.models import Pair, RelayOp
-from keystrata.workers.peer_client import PeerClient
 
 log = logging.getLogger("keystrata.scheduler")
 
@@ -35,7 +35,7 @@ MIN_BYTES = 64
 
 @dataclass(frozen=True)
 class CycleReport:
-    made: list[relay.SegmentMade]
+    made: list[operation.SegmentMade]
     skipped: dict[str, str]
 
 
@@ -46,7 +46,7 @@ def _poll_stations(ctx: NodeContext, peers: PeerClient, pairs: list[Pair]) -> No
             if raw is None:
                 continue
             try:
-                wire = pm.BufferReport.from_json(raw)
+                wire = messages.BufferReport.from_json(raw)
             except InvalidInput as exc:
                 log.warning("scheduler: malformed buffer report from %s: %s", station, exc.message)
                 continue
@@ -75,10 +75,10 @@ def schedule_once(
         for pair in pairs:
             for st in (pair.station_a, pair.station_b):
                 try:
-                    links[st] = relay.link_of(s, ctx.node_id, st)
+                    links[st] = operation.link_of(s, ctx.node_id, st)
                 except NotFound:
                     continue
-        free = linkbytes.free_bytes(s, links.values())
+        free = consume.free_bytes(s, links.values())
         in_flight = dict(
             s.execute(
                 select(RelayOp.pair_id, func.count())
@@ -119,14 +119,14 @@ def schedule_once(
         )
     # Keep back the 32-byte MAC keys the segments of this cycle may need.
     reserve = {
-        link: method.MAC_KEY_BYTES
+        link: arithmetic.MAC_KEY_BYTES
         * cfg.max_in_flight_segments
         * sum(1 for d in demands if link in d.links)
         for link in free
     }
     budget = {link: max(0, free[link] - reserve[link]) for link in free}
     shares = allocate(demands, budget)
-    made: list[relay.SegmentMade] = []
+    made: list[operation.SegmentMade] = []
     for demand in sorted(demands, key=lambda d: d.pair_id):
         left = shares.get(demand.pair_id, 0)
         count = in_flight.get(demand.pair_id, 0)
@@ -143,11 +143,13 @@ def schedule_once(
                 # unless this small piece is all the pair still needs.
                 break
             # Recent demand per side comes with key delivery; until then it is equal.
-            owner = method.choose_owner(
+            owner = arithmetic.choose_owner(
                 a["station"], b["station"], 0.0, 0.0, owned[a["station"]], owned[b["station"]]
             )
             try:
-                made.append(relay.make_segment(ctx, demand.pair_id, n, owner=owner, actor=actor))
+                made.append(
+                    operation.make_segment(ctx, demand.pair_id, n, owner=owner, actor=actor)
+                )
             except Conflict as exc:  # link key short, or epsilon above the pair's limit
                 skipped[demand.pair_id] = exc.message
                 break

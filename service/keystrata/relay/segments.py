@@ -20,15 +20,16 @@ from typing import Literal
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
+from keystrata.context import NodeContext
 from keystrata.crypto.hazmat import constant_time_equal, verify_one_time_mac, xor_bytes
-from keystrata.domain import peer_messages as pm
-from keystrata.domain import relay as method
-from keystrata.domain.ledger import Event
-from keystrata.domain.relay import Range
 from keystrata.errors import CryptoError, Forbidden, InvalidInput, NotFound
-from keystrata.services import ledger, linkbytes, outbox
-from keystrata.services.context import NodeContext
-from keystrata.services.linkbytes import NotYet
+from keystrata.ledger import chain
+from keystrata.ledger.entries import Event
+from keystrata.links import consume
+from keystrata.links.consume import NotYet
+from keystrata.peering import messages, outbox
+from keystrata.relay import arithmetic
+from keystrata.relay.arithmetic import Range
 from keystrata.storage.models import Pair, PairSegment, QkdLink
 from keystrata.storage.sealed import segment_context
 
@@ -67,14 +68,14 @@ def _partner(pair: Pair, me: str) -> str:
     return pair.station_b if pair.station_a == me else pair.station_a
 
 
-def _ranges(wire: list[pm.LinkRange]) -> list[Range]:
+def _ranges(wire: list[messages.LinkRange]) -> list[Range]:
     return [Range(r.block, r.offset, r.length) for r in wire]
 
 
-def identity_of(row: PairSegment, me: str) -> method.SegmentIdentity:
+def identity_of(row: PairSegment, me: str) -> arithmetic.SegmentIdentity:
     """The segment's identity as this station holds it (what check values cover)."""
     notice, cipher = (me, row.partner) if row.side == "notice" else (row.partner, me)
-    return method.SegmentIdentity(
+    return arithmetic.SegmentIdentity(
         segment=row.segment_id,
         pair=row.pair_id,
         notice_station=notice,
@@ -87,10 +88,10 @@ def identity_of(row: PairSegment, me: str) -> method.SegmentIdentity:
 
 def _header_for(
     s: Session, ctx: NodeContext, sender: str, segment_id: str, raw: bytes, side: str
-) -> tuple[Pair, pm.SegmentHeader]:
+) -> tuple[Pair, messages.SegmentHeader]:
     """Parse and check a relay header against this station's registry. Raises
     InvalidInput (malformed) or Forbidden (names what is not the sender's to name)."""
-    header = pm.SegmentHeader.decode(raw)
+    header = messages.SegmentHeader.decode(raw)
     me = header.notice_station if side == "notice" else header.cipher_station
     if header.segment != segment_id or me != ctx.node_id:
         raise InvalidInput("header: names another segment or station")
@@ -108,18 +109,18 @@ def _spend(
     ctx: NodeContext,
     link: str,
     pair: Pair,
-    key_ranges: list[pm.LinkRange],
-    mac_ranges: list[pm.LinkRange],
+    key_ranges: list[messages.LinkRange],
+    mac_ranges: list[messages.LinkRange],
     n: int,
 ) -> tuple[bytes, bytes]:
     """Take (and destroy) the named link bytes: n key bytes and the 32-byte MAC key."""
     _own_link(s, ctx, link, pair.relay_id)
     keys, macs = _ranges(key_ranges), _ranges(mac_ranges)
-    if method.total(keys) != n:
+    if arithmetic.total(keys) != n:
         raise InvalidInput("header: key ranges and bytes disagree")
-    if method.total(macs) != method.MAC_KEY_BYTES:
+    if arithmetic.total(macs) != arithmetic.MAC_KEY_BYTES:
         raise InvalidInput("header: MAC ranges must cover 32 bytes")
-    both, _ = linkbytes.take(s, ctx.keyring, link, keys + macs)
+    both, _ = consume.take(s, ctx.keyring, link, keys + macs)
     return both[:n], both[n:]
 
 
@@ -127,7 +128,7 @@ def _store(
     s: Session,
     ctx: NodeContext,
     *,
-    header: pm.SegmentHeader,
+    header: messages.SegmentHeader,
     pair: Pair,
     side: str,
     key: bytes,
@@ -152,7 +153,7 @@ def _store(
     else:  # the partner's discard reached us first: the link bytes are spent, no key kept
         row.link_applied, row.length, row.used, row.owner = True, len(key), len(key), header.owner
         row.epsilon = header.epsilon
-    ledger.append(
+    chain.append(
         s,
         node_id=ctx.node_id,
         at=now,
@@ -176,7 +177,7 @@ def _bad_tag(
     (the link stays in step with the relay), the segment is discarded on both sides."""
     tell = [_partner(pair, ctx.node_id)] + ([pair.relay_id] if side == "notice" else [])
     _discard(s, ctx, pair=pair, segment_id=segment_id, side=side, reason="bad_tag", tell=tell)
-    ledger.append(
+    chain.append(
         s,
         node_id=ctx.node_id,
         at=ctx.clock.now(),
@@ -186,7 +187,7 @@ def _bad_tag(
     return Outcome(segment_id, "discarded")
 
 
-def apply_notice(ctx: NodeContext, sender: str, msg: pm.RelayNotice) -> Outcome:
+def apply_notice(ctx: NodeContext, sender: str, msg: messages.RelayNotice) -> Outcome:
     """A: check tagA, take the named link bytes as the segment, wait for B's check value."""
     segment_id = msg.segment_id
     with ctx.db.write() as s:
@@ -204,14 +205,14 @@ def apply_notice(ctx: NodeContext, sender: str, msg: pm.RelayNotice) -> Outcome:
             header.length,
         )
         try:
-            verify_one_time_mac(mac_key, method.mac_input(msg.header), msg.tag)
+            verify_one_time_mac(mac_key, arithmetic.mac_input(msg.header), msg.tag)
         except CryptoError:
             return _bad_tag(s, ctx, pair, segment_id, "notice", sender)
         row = _store(s, ctx, header=header, pair=pair, side="notice", key=key)
         return Outcome(segment_id, "discarded" if row.state == "discarded" else "applied")
 
 
-def apply_ciphertext(ctx: NodeContext, sender: str, msg: pm.RelayCiphertext) -> Outcome:
+def apply_ciphertext(ctx: NodeContext, sender: str, msg: messages.RelayCiphertext) -> Outcome:
     """B: take KB and M, check the tag, recover KA, send A a check value.
 
     A bad tag spends the named link bytes all the same (so the link stays in step with
@@ -235,18 +236,18 @@ def apply_ciphertext(ctx: NodeContext, sender: str, msg: pm.RelayCiphertext) -> 
             header.length,
         )
         try:
-            verify_one_time_mac(mac_key, method.mac_input(msg.header, msg.ciphertext), msg.tag)
+            verify_one_time_mac(mac_key, arithmetic.mac_input(msg.header, msg.ciphertext), msg.tag)
         except CryptoError:
             return _bad_tag(s, ctx, pair, segment_id, "cipher", sender)
         key_a = xor_bytes(msg.ciphertext, key_b)
         row = _store(s, ctx, header=header, pair=pair, side="cipher", key=key_a)
         if row.state == "discarded":
             return Outcome(segment_id, "discarded")
-        check = method.check_value(key_a, identity_of(row, ctx.node_id), ctx.node_id)
+        check = arithmetic.check_value(key_a, identity_of(row, ctx.node_id), ctx.node_id)
         outbox.send(
             s,
             destination=row.partner,
-            message=pm.SegmentCheck(segment_id=segment_id, pair_id=pair.pair_id, check=check),
+            message=messages.SegmentCheck(segment_id=segment_id, pair_id=pair.pair_id, check=check),
             segment_id=segment_id,
             now=ctx.clock.now(),
         )
@@ -264,7 +265,7 @@ def _partners_row(row: PairSegment, sender: str, pair_id: str, side: str) -> Non
         raise Forbidden("only the partner station of this segment's pair may send this")
 
 
-def apply_check(ctx: NodeContext, sender: str, msg: pm.SegmentCheck) -> Outcome:
+def apply_check(ctx: NodeContext, sender: str, msg: messages.SegmentCheck) -> Outcome:
     """A: compare B's check value; on a match the segment is ready here, and B and the
     relay are told. On a mismatch it is discarded on both sides."""
     segment_id = msg.segment_id
@@ -278,7 +279,7 @@ def apply_check(ctx: NodeContext, sender: str, msg: pm.SegmentCheck) -> Outcome:
         pair = _pair_for(s, ctx, row.pair_id)
         key = _key_of(ctx, row)
         identity = identity_of(row, ctx.node_id)
-        if not constant_time_equal(msg.check, method.check_value(key, identity, sender)):
+        if not constant_time_equal(msg.check, arithmetic.check_value(key, identity, sender)):
             _discard(
                 s,
                 ctx,
@@ -291,11 +292,11 @@ def apply_check(ctx: NodeContext, sender: str, msg: pm.SegmentCheck) -> Outcome:
             return Outcome(segment_id, "discarded")
         now = ctx.clock.now()
         row.state, row.settled_at = "ready", now
-        confirmation = method.check_value(key, identity, ctx.node_id)
+        confirmation = arithmetic.check_value(key, identity, ctx.node_id)
         outbox.send(
             s,
             destination=row.partner,
-            message=pm.SegmentConfirmed(
+            message=messages.SegmentConfirmed(
                 segment_id=segment_id, pair_id=row.pair_id, check=confirmation
             ),
             segment_id=segment_id,
@@ -304,7 +305,7 @@ def apply_check(ctx: NodeContext, sender: str, msg: pm.SegmentCheck) -> Outcome:
         outbox.send(
             s,
             destination=pair.relay_id,
-            message=pm.SegmentSettled(segment_id=segment_id, outcome="ready"),
+            message=messages.SegmentSettled(segment_id=segment_id, outcome="ready"),
             segment_id=segment_id,
             now=now,
         )
@@ -313,7 +314,7 @@ def apply_check(ctx: NodeContext, sender: str, msg: pm.SegmentCheck) -> Outcome:
 
 
 def _record_ready(s: Session, ctx: NodeContext, row: PairSegment, now: datetime) -> None:
-    ledger.append(
+    chain.append(
         s,
         node_id=ctx.node_id,
         at=now,
@@ -327,7 +328,7 @@ def _record_ready(s: Session, ctx: NodeContext, row: PairSegment, now: datetime)
     )
 
 
-def apply_confirmed(ctx: NodeContext, sender: str, msg: pm.SegmentConfirmed) -> Outcome:
+def apply_confirmed(ctx: NodeContext, sender: str, msg: messages.SegmentConfirmed) -> Outcome:
     """B: A confirmed the segment; check A's value and turn the segment ready here."""
     segment_id = msg.segment_id
     with ctx.db.write() as s:
@@ -341,7 +342,7 @@ def apply_confirmed(ctx: NodeContext, sender: str, msg: pm.SegmentConfirmed) -> 
         key = _key_of(ctx, row)
         now = ctx.clock.now()
         identity = identity_of(row, ctx.node_id)
-        if not constant_time_equal(msg.check, method.check_value(key, identity, sender)):
+        if not constant_time_equal(msg.check, arithmetic.check_value(key, identity, sender)):
             _discard(
                 s,
                 ctx,
@@ -357,7 +358,7 @@ def apply_confirmed(ctx: NodeContext, sender: str, msg: pm.SegmentConfirmed) -> 
         return Outcome(segment_id, "applied")
 
 
-def apply_discarded(ctx: NodeContext, sender: str, msg: pm.SegmentDiscarded) -> Outcome:
+def apply_discarded(ctx: NodeContext, sender: str, msg: messages.SegmentDiscarded) -> Outcome:
     """Either station: the partner discarded the segment; do the same (idempotent).
 
     Only the partner of that segment, about that segment's pair: a neighbour in another
@@ -398,7 +399,7 @@ def _discard(
     pair: Pair,
     segment_id: str,
     side: Side,
-    reason: pm.Reason,
+    reason: messages.Reason,
     tell: list[str],
     notify_partner: bool = True,
 ) -> None:
@@ -433,7 +434,7 @@ def _discard(
             outbox.send(
                 s,
                 destination=dest,
-                message=pm.SegmentSettled(
+                message=messages.SegmentSettled(
                     segment_id=segment_id, outcome="discarded", reason=reason
                 ),
                 segment_id=segment_id,
@@ -443,13 +444,13 @@ def _discard(
             outbox.send(
                 s,
                 destination=dest,
-                message=pm.SegmentDiscarded(
+                message=messages.SegmentDiscarded(
                     segment_id=segment_id, pair_id=pair.pair_id, reason=reason, sender_side=side
                 ),
                 segment_id=segment_id,
                 now=now,
             )
-    ledger.append(
+    chain.append(
         s,
         node_id=ctx.node_id,
         at=now,

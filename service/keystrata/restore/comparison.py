@@ -1,5 +1,5 @@
 """Restore detection at a station: compare each pair's consumption points with the
-partner's (rules in :mod:`keystrata.domain.progress`), hold the pair when this station
+partner's (rules in :mod:`keystrata.restore.rules`), hold the pair when this station
 is behind, and let an operator release the hold without serving any byte again.
 
 * A finding about this station itself (``behind = self``) holds the pair: Get key and
@@ -23,13 +23,13 @@ from sqlalchemy import func, select, text
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from keystrata.domain import peer_messages as pm
-from keystrata.domain.ledger import Event
-from keystrata.domain.progress import Behind, Finding, Point, Reason, compare, deliveries
+from keystrata.context import NodeContext
 from keystrata.errors import Forbidden, InvalidInput, Unavailable
-from keystrata.services import ledger
-from keystrata.services.context import NodeContext
-from keystrata.services.principals import Caller
+from keystrata.ledger import chain
+from keystrata.ledger.entries import Event
+from keystrata.peering import messages
+from keystrata.registry.principals import Caller
+from keystrata.restore.rules import Behind, Finding, Point, Reason, compare, deliveries
 from keystrata.storage.models import (
     KeyAlloc,
     OutboxMessage,
@@ -217,11 +217,13 @@ def report(ctx: NodeContext, caller_node: str, pair_id: str, after: str | None) 
         first = after is None
         fetched = fetched_keys(s, pair_id, caller_node) if first else None
         seen = _mark(s, pair_id, caller_node).partner_fetched if first else None
-    return pm.ProgressReport(
+    return messages.ProgressReport(
         pair_id=pair_id,
         station=ctx.node_id,
         points=[
-            pm.ProgressPoint(segment_id=p.segment_id, owner=p.owner, used=p.used, unacked=p.unacked)
+            messages.ProgressPoint(
+                segment_id=p.segment_id, owner=p.owner, used=p.used, unacked=p.unacked
+            )
             for p in points
         ],
         next_after=points[-1].segment_id if len(points) == PAGE else None,
@@ -272,8 +274,8 @@ class PartnerProgress:
     seen_fetched: int | None
 
 
-def _parse_page(raw: Any, pair_id: str, partner: str) -> pm.ProgressReport:
-    page = pm.ProgressReport.from_json(raw)
+def _parse_page(raw: Any, pair_id: str, partner: str) -> messages.ProgressReport:
+    page = messages.ProgressReport.from_json(raw)
     if page.pair_id != pair_id or page.station != partner:
         raise InvalidInput("progress answer names another pair or station")
     return page
@@ -286,7 +288,7 @@ def partner_progress(
     answers something malformed)."""
     timeout = ctx.settings.restore_check.peer_timeout_seconds
     out: dict[str, Point] = {}
-    first: pm.ProgressReport | None = None
+    first: messages.ProgressReport | None = None
     after: str | None = None
     for _ in range(MAX_PAGES):
         raw = source.pair_progress(partner, pair_id, after, timeout)
@@ -438,7 +440,7 @@ def _record(
                             },
                         )
                     )
-            ledger.append_many(s, node_id=ctx.node_id, entries=entries)
+            chain.append_many(s, node_id=ctx.node_id, entries=entries)
     except IntegrityError:
         pass  # another worker recorded the same finding at the same moment
 

@@ -8,21 +8,22 @@ import logging
 import time
 from datetime import timedelta
 
-from keystrata.services import leases, progress
-from keystrata.services.context import NodeContext
+from keystrata.context import NodeContext
+from keystrata.restore import comparison
+from keystrata.storage import leases
 
 log = logging.getLogger("keystrata.workers")
 
 LEASE = "restore-check"
 
 
-def at_start(ctx: NodeContext, source: progress.ProgressSource) -> None:
+def at_start(ctx: NodeContext, source: comparison.ProgressSource) -> None:
     """Compare every pair once. The partners of pairs that could not be compared now stay
     unverified in this process: their pairs serve nothing here (503, try again) until a
     later round compares them, so a restored station cannot serve before it knows."""
-    pending = progress.unverified(ctx)
+    pending = comparison.unverified(ctx)
     try:
-        missed = progress.check_all(ctx, source)
+        missed = comparison.check_all(ctx, source)
     except Exception:  # a start must not fail on a partner's bad moment
         log.exception("restore check at start failed; the periodic check retries")
         missed = _partners(ctx)
@@ -44,13 +45,13 @@ def _partners(ctx: NodeContext) -> set[str]:
         }
 
 
-def check_once(ctx: NodeContext, source: progress.ProgressSource, holder: str) -> bool:
+def check_once(ctx: NodeContext, source: comparison.ProgressSource, holder: str) -> bool:
     """Compare again the pairs of partners not compared since start (every worker, each
     round), and every pair once per ``[restore_check] interval_seconds`` if this process
     holds the lease. Returns False (nothing to hurry)."""
-    pending = progress.unverified(ctx)
+    pending = comparison.unverified(ctx)
     if pending:
-        still = progress.check_all(ctx, source, only=set(pending))
+        still = comparison.check_all(ctx, source, only=set(pending))
         pending.intersection_update(still)
     interval = ctx.settings.restore_check.interval_seconds
     now = time.monotonic()
@@ -59,7 +60,7 @@ def check_once(ctx: NodeContext, source: progress.ProgressSource, holder: str) -
         return False
     ttl = timedelta(seconds=max(30.0, 3 * interval))
     if leases.acquire(ctx.db, LEASE, holder, now=ctx.clock.now(), ttl=ttl):
-        progress.check_all(ctx, source)
+        comparison.check_all(ctx, source)
         ctx.lanes[_DUE] = now + interval
     return False
 

@@ -1,4 +1,4 @@
-"""An operator's release of a pair held by the restore check (services/progress.py).
+"""An operator's release of a pair held by the restore check (restore/comparison.py).
 
 Releasing must not serve any byte again, so in one transaction, with the partner's
 current points in hand:
@@ -23,12 +23,12 @@ from typing import Any
 
 from sqlalchemy import select
 
-from keystrata.domain.ledger import Event
-from keystrata.domain.progress import Behind, Reason
+from keystrata.context import NodeContext
 from keystrata.errors import Conflict, InvalidInput, Unavailable
-from keystrata.services import ledger
-from keystrata.services.context import NodeContext
-from keystrata.services.progress import ProgressSource, fetched_keys, partner_progress
+from keystrata.ledger import chain
+from keystrata.ledger.entries import Event
+from keystrata.restore.comparison import ProgressSource, fetched_keys, partner_progress
+from keystrata.restore.rules import Behind, Reason
 from keystrata.storage.models import KeyAlloc, PairHold, PairSegment, PartnerMark
 from keystrata.storage.sealed import segment_context
 
@@ -133,7 +133,7 @@ def release(
             "bytes_destroyed": destroyed,
             "keys_destroyed": keys,
         }
-        ledger.append(s, node_id=ctx.node_id, at=now, event=Event.PAIR_RELEASED, fields=fields)
+        chain.append(s, node_id=ctx.node_id, at=now, event=Event.PAIR_RELEASED, fields=fields)
     return {k: v for k, v in fields.items() if k != "note"}
 
 

@@ -416,7 +416,7 @@ class KeyAlloc(Base):
 
 
 class PairHold(Base):
-    """A finding of the restore check (services/progress.py): one station of a pair is
+    """A finding of the restore check (restore/comparison.py): one station of a pair is
     behind the other (lost commits: a restored backup, power loss with unsafe
     durability). While a finding about this station itself is open, the pair serves no
     key here; an operator closes it (release), findings about the partner close when

@@ -10,8 +10,8 @@ size. Someone who can write the database but does not hold the KEK cannot re-poi
 segment to another owner or a waiting key to another slave: the value no longer opens.
 The consumption offset (``used``) is part of a segment's context, so an older sealed
 value only opens together with its older offset; a row rolled back that way is behind
-its partner's, which restore detection reports (``services/progress.py``). Layout 1
-(before migration 0010) bound the row identity only; :mod:`keystrata.services.reseal`
+its partner's, which restore detection reports (``restore/comparison.py``). Layout 1
+(before migration 0010) bound the row identity only; :mod:`keystrata.node.reseal`
 moves rows to layout 2.
 """
 

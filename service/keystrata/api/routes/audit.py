@@ -12,13 +12,14 @@ from sqlalchemy import select
 
 from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
-from keystrata.domain.ledger import Event, Ref
-from keystrata.domain.registry import PrincipalRole
+from keystrata.context import NodeContext
+from keystrata.delivery import accounting
 from keystrata.errors import InvalidInput, NotFound
 from keystrata.ids import ID_PATTERN
-from keystrata.services import accounting, checkpoints, ledger_search
-from keystrata.services.context import NodeContext
-from keystrata.services.ledger import StoredTree
+from keystrata.ledger import checkpoints, search
+from keystrata.ledger.chain import StoredTree
+from keystrata.ledger.entries import Event, Ref
+from keystrata.registry.specs import PrincipalRole
 from keystrata.storage.models import LedgerEntry
 
 router = APIRouter(prefix="/api/v1/audit", tags=["audit"])
@@ -90,7 +91,7 @@ def list_entries(
             .where(LedgerEntry.idx >= start, LedgerEntry.idx < stop)
             .order_by(LedgerEntry.idx)
         ).all()
-    return {"entries": [ledger_search.exported(int(i), bytes(e)) for i, e in rows]}
+    return {"entries": [search.exported(int(i), bytes(e)) for i, e in rows]}
 
 
 def _moment(name: str, value: str | None) -> datetime | None:
@@ -136,20 +137,20 @@ def search_entries(
     segment: KeyId = None,
     key_id: KeyId = None,
     after: Index | None = None,
-    limit: Annotated[int, Query(ge=1, le=ledger_search.MAX_PAGE)] = 100,
+    limit: Annotated[int, Query(ge=1, le=search.MAX_PAGE)] = 100,
 ) -> dict[str, Any]:
     """Entries recorded in ``[since, until)``, of any of the ``event`` names, naming the
     given pair, SAE, node, segment and key ID (all filters must hold), oldest first.
     Page on with ``after`` = the ``next_after`` of the previous answer."""
     named = {Ref.PAIR: pair, Ref.SAE: sae, Ref.NODE: node, Ref.SEGMENT: segment}
     named[Ref.KEY] = key_id.lower() if key_id else None
-    filters = ledger_search.Filters(
+    filters = search.Filters(
         since=_moment("since", since),
         until=_moment("until", until),
         events=_events(event),
         refs=[(k, v) for k, v in named.items() if v is not None],
     )
-    page, cursor = ledger_search.search(_ctx(request), filters, after=after, limit=limit)
+    page, cursor = search.search(_ctx(request), filters, after=after, limit=limit)
     return {"entries": page, "next_after": cursor}
 
 

@@ -12,8 +12,8 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Depends, Request
 
 from keystrata.api.identity import admit
-from keystrata.domain.registry import PrincipalRole
-from keystrata.services.principals import Caller
+from keystrata.registry.principals import Caller
+from keystrata.registry.specs import PrincipalRole
 
 router = APIRouter(tags=["documentation"])
 

@@ -16,14 +16,14 @@ from starlette.concurrency import run_in_threadpool
 
 from keystrata.api.identity import admit
 from keystrata.config import Role
-from keystrata.domain.etsi import ErrorBody, KeyContainer, KeyIds, KeyRequest, Status
-from keystrata.domain.registry import PrincipalRole
+from keystrata.context import NodeContext
+from keystrata.delivery import enc_keys
+from keystrata.delivery.enc_keys import DeliveredKey
+from keystrata.delivery.schemas import ErrorBody, KeyContainer, KeyIds, KeyRequest, Status
 from keystrata.errors import NotFound
-from keystrata.services import delivery
-from keystrata.services.context import NodeContext
-from keystrata.services.delivery import DeliveredKey
-from keystrata.services.principals import Caller
-from keystrata.workers.peer_client import PeerClient
+from keystrata.peering.client import PeerClient
+from keystrata.registry.principals import Caller
+from keystrata.registry.specs import PrincipalRole
 
 router = APIRouter(prefix="/api/v1/keys", tags=["key delivery (ETSI GS QKD 014)"])
 
@@ -51,7 +51,7 @@ def _container(keys: list[DeliveredKey]) -> dict[str, Any]:
     return {"keys": [{"key_ID": k.key_id, "key": base64.b64encode(k.key).decode()} for k in keys]}
 
 
-def _pull(request: Request) -> delivery.Pull:
+def _pull(request: Request) -> enc_keys.Pull:
     def pull(owner: str) -> list[dict[str, Any]] | None:
         peers: PeerClient = request.app.state.peers
         return peers.pending_allocations(owner)
@@ -67,7 +67,7 @@ def _pull(request: Request) -> delivery.Pull:
     operation_id="get_status",
 )
 def get_status(slave_SAE_ID: str, request: Request, caller: Sae) -> dict[str, Any]:
-    return delivery.status(_station(request), caller, slave_SAE_ID)
+    return enc_keys.status(_station(request), caller, slave_SAE_ID)
 
 
 @router.post(
@@ -84,7 +84,7 @@ async def get_key(
     caller: Sae,
 ) -> dict[str, Any]:
     ctx = _station(request)
-    keys = await run_in_threadpool(delivery.get_keys, ctx, caller, slave_SAE_ID, body)
+    keys = await run_in_threadpool(enc_keys.get_keys, ctx, caller, slave_SAE_ID, body)
     return _container(keys)
 
 
@@ -104,7 +104,7 @@ async def get_key_simple(
 ) -> dict[str, Any]:
     ctx = _station(request)
     body = KeyRequest(number=number, size=size)
-    keys = await run_in_threadpool(delivery.get_keys, ctx, caller, slave_SAE_ID, body)
+    keys = await run_in_threadpool(enc_keys.get_keys, ctx, caller, slave_SAE_ID, body)
     return _container(keys)
 
 
@@ -124,7 +124,7 @@ async def get_key_with_ids(
     ctx = _station(request)
     ids = [entry.key_ID for entry in body.key_IDs]
     keys = await run_in_threadpool(
-        delivery.get_keys_with_ids, ctx, caller, master_SAE_ID, ids, _pull(request)
+        enc_keys.get_keys_with_ids, ctx, caller, master_SAE_ID, ids, _pull(request)
     )
     return _container(keys)
 
@@ -144,6 +144,6 @@ async def get_key_with_id_simple(
 ) -> dict[str, Any]:
     ctx = _station(request)
     keys = await run_in_threadpool(
-        delivery.get_keys_with_ids, ctx, caller, master_SAE_ID, [key_ID], _pull(request)
+        enc_keys.get_keys_with_ids, ctx, caller, master_SAE_ID, [key_ID], _pull(request)
     )
     return _container(keys)

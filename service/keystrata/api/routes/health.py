@@ -15,12 +15,12 @@ from prometheus_client.exposition import choose_encoder
 
 from keystrata.api.errors import ErrorObject, error_responses
 from keystrata.api.identity import admit
-from keystrata.domain.registry import PrincipalRole
+from keystrata.context import NodeContext
 from keystrata.errors import Unavailable
 from keystrata.observability import metrics, readiness
 from keystrata.observability.http import RequestMetrics
-from keystrata.services.context import NodeContext
-from keystrata.services.principals import Caller
+from keystrata.registry.principals import Caller
+from keystrata.registry.specs import PrincipalRole
 
 router = APIRouter(prefix="/api/v1", tags=["observability"])
 

@@ -1,4 +1,4 @@
-"""Pairs held by the restore check (services/progress.py): list them, release one."""
+"""Pairs held by the restore check (restore/comparison.py): list them, release one."""
 
 from __future__ import annotations
 
@@ -12,12 +12,12 @@ from starlette.concurrency import run_in_threadpool
 from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
 from keystrata.config import Role
-from keystrata.domain.registry import PrincipalRole
+from keystrata.context import NodeContext
 from keystrata.errors import NotFound
-from keystrata.services import progress, progress_release
-from keystrata.services.context import NodeContext
-from keystrata.services.principals import Caller
-from keystrata.workers.peer_client import PeerClient
+from keystrata.peering.client import PeerClient
+from keystrata.registry.principals import Caller
+from keystrata.registry.specs import PrincipalRole
+from keystrata.restore import comparison, release
 
 router = APIRouter(prefix="/api/v1", tags=["pairs"])
 
@@ -29,7 +29,7 @@ class Release(BaseModel):
     """Why the operator releases the hold (recorded in the ledger and the hold row)."""
 
     model_config = ConfigDict(extra="forbid", strict=True)
-    reason: str = Field(min_length=1, max_length=progress_release.MAX_REASON)
+    reason: str = Field(min_length=1, max_length=release.MAX_REASON)
 
 
 @router.get(
@@ -42,7 +42,7 @@ def list_holds(request: Request, _: Reader) -> dict[str, Any]:
     """Each open finding: pair, partner, ``behind`` (``self``: this station lost commits
     and the pair is held here; ``partner``: the partner did), reason, segments, bytes."""
     ctx: NodeContext = request.app.state.ctx
-    return {"holds": [asdict(h) for h in progress.open_holds(ctx)]}
+    return {"holds": [asdict(h) for h in comparison.open_holds(ctx)]}
 
 
 @router.post(
@@ -65,7 +65,7 @@ async def release_hold(
     def run() -> dict[str, Any]:
         peers = PeerClient(ctx.settings)
         try:
-            return progress_release.release(
+            return release.release(
                 ctx, peers, pair_id, actor=caller.principal_id, reason=body.reason
             )
         finally:

@@ -14,12 +14,12 @@ from starlette.concurrency import run_in_threadpool
 
 from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
-from keystrata.domain.blocks import BlockIn, decode_batch
-from keystrata.domain.registry import PrincipalRole
+from keystrata.context import NodeContext
 from keystrata.errors import InvalidInput, UnsupportedMediaType
-from keystrata.services import ingest, pools
-from keystrata.services.context import NodeContext
-from keystrata.services.principals import Caller
+from keystrata.links import ingest, pools
+from keystrata.links.blocks import BlockIn, decode_batch
+from keystrata.registry.principals import Caller
+from keystrata.registry.specs import PrincipalRole
 
 router = APIRouter(prefix="/api/v1/links", tags=["link key"])
 

@@ -9,9 +9,9 @@ from fastapi import APIRouter, Depends, Request
 from keystrata import __version__
 from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
-from keystrata.domain.registry import PrincipalRole
-from keystrata.services.context import NodeContext
-from keystrata.services.principals import Caller
+from keystrata.context import NodeContext
+from keystrata.registry.principals import Caller
+from keystrata.registry.specs import PrincipalRole
 
 router = APIRouter(prefix="/api/v1", tags=["node"])
 

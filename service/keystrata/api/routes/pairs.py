@@ -10,10 +10,11 @@ from fastapi import APIRouter, Depends, Request
 from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
 from keystrata.config import Role
-from keystrata.domain.registry import PrincipalRole
-from keystrata.services import accounting, buffers
-from keystrata.services.context import NodeContext
-from keystrata.services.principals import Caller
+from keystrata.context import NodeContext
+from keystrata.delivery import accounting
+from keystrata.registry.principals import Caller
+from keystrata.registry.specs import PrincipalRole
+from keystrata.relay import buffers
 
 router = APIRouter(prefix="/api/v1", tags=["pairs"])
 

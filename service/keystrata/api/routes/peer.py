@@ -24,11 +24,14 @@ from starlette.concurrency import run_in_threadpool
 from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
 from keystrata.config import Role
-from keystrata.domain.registry import PrincipalRole
+from keystrata.context import NodeContext
 from keystrata.errors import InvalidInput, NotFound
-from keystrata.services import buffers, messages, outbox, progress
-from keystrata.services.context import NodeContext
-from keystrata.services.principals import Caller
+from keystrata.node import dispatch
+from keystrata.peering import outbox
+from keystrata.registry.principals import Caller
+from keystrata.registry.specs import PrincipalRole
+from keystrata.relay import buffers
+from keystrata.restore import comparison
 
 router = APIRouter(prefix="/api/v1/peer", tags=["peer"])
 
@@ -41,7 +44,7 @@ class MessageBatch(BaseModel):
     """Messages from one peer, applied in this order."""
 
     model_config = ConfigDict(extra="forbid", strict=True)
-    messages: list[dict[str, Any]] = Field(min_length=1, max_length=messages.MAX_BATCH)
+    messages: list[dict[str, Any]] = Field(min_length=1, max_length=dispatch.MAX_BATCH)
 
 
 class MessageResult(BaseModel):
@@ -79,7 +82,7 @@ async def peer_message(request: Request, caller: Peer) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx
     body = await _json_body(request)
     assert caller.node_id is not None  # peers are bound to a node (registry rule)
-    outcome = await run_in_threadpool(messages.handle, ctx, caller.node_id, body)
+    outcome = await run_in_threadpool(dispatch.handle, ctx, caller.node_id, body)
     return {"segment_id": outcome.segment_id, "status": outcome.status}
 
 
@@ -114,7 +117,7 @@ async def peer_message_batch(request: Request, caller: Peer) -> BatchResults:
         errors = exc.errors(include_input=False, include_url=False)
         raise RequestValidationError([{**e, "loc": ("body", *e["loc"])} for e in errors]) from None
     answers = await run_in_threadpool(
-        messages.handle_batch, ctx, caller.node_id, list(batch.messages)
+        dispatch.handle_batch, ctx, caller.node_id, list(batch.messages)
     )
     for a in answers:
         if a.status >= 500:
@@ -140,7 +143,7 @@ def pair_buffer(pair_id: str, request: Request, caller: Peer) -> dict[str, Any]:
     if ctx.role is not Role.STATION:
         raise NotFound("only stations keep pair buffers")
     assert caller.node_id is not None  # peers are bound to a node (registry rule)
-    progress.refuse_pair_if_held(ctx, pair_id)  # a held pair tells the relay nothing new
+    comparison.refuse_pair_if_held(ctx, pair_id)  # a held pair tells the relay nothing new
     return buffers.report_for_relay(ctx, pair_id, caller.node_id).to_json()
 
 
@@ -171,11 +174,11 @@ def pair_progress(
 ) -> dict[str, Any]:
     """For the pair's other station only (else 403): ``points`` (segment_id, owner,
     used, unacked) ordered by segment ID, at most 1000; ``next_after`` pages on. No key
-    material. The restore check of services/progress.py compares them."""
+    material. The restore check of restore/comparison.py compares them."""
     ctx: NodeContext = request.app.state.ctx
     if ctx.role is not Role.STATION:
         raise NotFound("only stations keep pair segments")
     if after is not None and len(after) > 36:
         raise InvalidInput("after: a segment ID", details=[{"field": "after"}])
     assert caller.node_id is not None  # peers are bound to a node (registry rule)
-    return progress.report(ctx, caller.node_id, pair_id, after)
+    return comparison.report(ctx, caller.node_id, pair_id, after)

@@ -9,7 +9,10 @@ from fastapi import APIRouter, Depends, Query, Request, status
 
 from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
-from keystrata.domain.registry import (
+from keystrata.context import NodeContext
+from keystrata.registry import provisioning
+from keystrata.registry.principals import Caller
+from keystrata.registry.specs import (
     Kind,
     LinkChange,
     LinkSpec,
@@ -21,9 +24,6 @@ from keystrata.domain.registry import (
     PrincipalRole,
     PrincipalSpec,
 )
-from keystrata.services import registry
-from keystrata.services.context import NodeContext
-from keystrata.services.principals import Caller
 
 router = APIRouter(prefix="/api/v1/registry", tags=["registry"])
 
@@ -42,17 +42,17 @@ def _routes(kind: Kind, key: str, spec: type[Any], change: type[Any]) -> None:
     # signatures, so they are built here rather than written out four times.
 
     def create_entry(request: Request, caller: Operator, body: spec) -> dict[str, Any]:  # type: ignore[valid-type]
-        return registry.create(_ctx(request), kind, body, actor=caller.principal_id)
+        return provisioning.create(_ctx(request), kind, body, actor=caller.principal_id)
 
     def list_entries(
         request: Request, _: Reader, include_retired: IncludeRetired = False
     ) -> dict[str, Any]:
         return {
-            "items": registry.list_entries(_ctx(request), kind, include_retired=include_retired)
+            "items": provisioning.list_entries(_ctx(request), kind, include_retired=include_retired)
         }
 
     def get_entry(request: Request, _: Reader, entry_id: str) -> dict[str, Any]:
-        return registry.get(_ctx(request), kind, entry_id)
+        return provisioning.get(_ctx(request), kind, entry_id)
 
     def change_entry(
         request: Request,
@@ -60,10 +60,10 @@ def _routes(kind: Kind, key: str, spec: type[Any], change: type[Any]) -> None:
         entry_id: str,
         body: change,  # type: ignore[valid-type]
     ) -> dict[str, Any]:
-        return registry.change(_ctx(request), kind, entry_id, body, actor=caller.principal_id)
+        return provisioning.change(_ctx(request), kind, entry_id, body, actor=caller.principal_id)
 
     def retire_entry(request: Request, caller: Operator, entry_id: str) -> dict[str, Any]:
-        return registry.retire(_ctx(request), kind, entry_id, actor=caller.principal_id)
+        return provisioning.retire(_ctx(request), kind, entry_id, actor=caller.principal_id)
 
     base = f"/{kind.value}"
     item = base + "/{entry_id}"

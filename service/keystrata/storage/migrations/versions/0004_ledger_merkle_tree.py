@@ -13,8 +13,8 @@ from collections.abc import Sequence
 import sqlalchemy as sa
 from alembic import op
 
-from keystrata.domain import merkle
-from keystrata.domain.frontier import Frontier, positions
+from keystrata.ledger import merkle
+from keystrata.ledger.frontier import Frontier, positions
 
 revision: str = "0004"
 down_revision: str | None = "0003"

@@ -16,7 +16,7 @@ from collections.abc import Sequence
 import sqlalchemy as sa
 from alembic import op
 
-from keystrata.domain.ledger import references
+from keystrata.ledger.entries import references
 
 revision: str = "0006"
 down_revision: str | None = "0005"
