@@ -34,7 +34,7 @@ test-fast: $(STAMP)
 ## make test runs a short series of each, one per backend (relaying on SQLite, key
 ## delivery on PostgreSQL); the other halves are marked slow and run here
 faults: $(STAMP)
-	KEYSTRATA_KILLS=$${KEYSTRATA_KILLS:-30} $(BIN)/python -m pytest tests/test_crash.py tests/test_crash_delivery.py tests/test_faults.py $(ARGS)
+	KEYSTRATA_KILLS=$${KEYSTRATA_KILLS:-30} $(BIN)/python -m pytest tests/e2e/test_crash.py tests/e2e/test_crash_delivery.py tests/e2e/test_faults.py $(ARGS)
 
 ## make bench: every figure beside its ceiling, measured in the same run (8-12
 ## minutes; not part of make test); writes bench/results.json and docs/benchmarks.md.

@@ -4,5 +4,5 @@ workers each on PostgreSQL, and many concurrent SAE clients taking keys at stati
 (Get key) and fetching them at station B (Get key with key IDs).
 
 Run with ``python -m loadtest`` (``--help`` for options) or ``make load``. It is a
-script, not a test: ``tests/test_loadtest_quick.py`` runs its ``--quick`` mode.
+script, not a test: ``tests/e2e/test_loadtest_quick.py`` runs its ``--quick`` mode.
 """

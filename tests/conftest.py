@@ -11,6 +11,7 @@ import itertools
 import os
 import queue
 import shutil
+import sys
 import threading
 import time
 import uuid
@@ -38,6 +39,20 @@ PG_URL = os.environ.get(
     "KEYSTRATA_TEST_PG_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/postgres"
 )
 _counter = itertools.count()
+
+#: The tiers of the suite are its folders; each test carries its folder's marker, and the
+#: processes tier also ``e2e`` (real server processes over mutual TLS on loopback).
+TIERS = ("unit", "storage", "api", "e2e")
+# Until the helpers some test modules import from each other live in shared modules.
+sys.path[:0] = [str(Path(__file__).parent / tier) for tier in TIERS]
+
+
+def pytest_collection_modifyitems(items: list[pytest.Item]) -> None:
+    root = Path(__file__).parent
+    for item in items:
+        tier = item.path.relative_to(root).parts[0]
+        if tier in TIERS:
+            item.add_marker(tier)
 
 
 # ---------------------------------------------------------------- PKI

@@ -236,7 +236,6 @@ def test_a_relay_that_tells_the_stations_different_stories_makes_no_segment(net)
     the ciphertext to B names B; the check values cover the owner, so confirmation fails
     and both sides discard."""
     from cryptography.hazmat.primitives.poly1305 import Poly1305
-
     from test_relay import _link_bytes
 
     net.feed("station-a", 2)

@@ -10,10 +10,10 @@ from datetime import datetime
 
 import rfc8785
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
+from test_ledger_tree import _entries, mth
 
 from keystrata.ledger import checkpoints, merkle
 from keystrata_client.audit.export import Checkpoint
-from test_ledger_tree import _entries, mth
 
 
 def test_checkpoint_is_signed_and_proofs_verify(station, api) -> None:

@@ -11,12 +11,12 @@ from datetime import UTC, datetime
 from typing import Any
 
 from sqlalchemy import insert, select, text, update
+from test_delivery import _keys, net  # noqa: F401  (fixture)
 
 from keystrata.delivery import accounting
 from keystrata.storage import migrate
 from keystrata.storage.db import Database
 from keystrata.storage.models import LedgerEntry, LedgerRef
-from test_delivery import _keys, net  # noqa: F401  (fixture)
 
 
 def _deliver(net, api) -> str:  # noqa: F811

@@ -23,6 +23,7 @@ from prometheus_client.openmetrics.parser import (
 )
 from prometheus_client.parser import text_string_to_metric_families
 from sqlalchemy import func, select, update
+from test_delivery import _break_ledger  # a trigger that refuses ledger inserts
 
 import relaynet
 from conftest import _pg_admin, cert_pin
@@ -44,7 +45,6 @@ from keystrata.storage.models import (
     RelayOp,
 )
 from keystrata.storage.sealed import meta_context
-from test_delivery import _break_ledger  # a trigger that refuses ledger inserts
 
 METRICS, LIVE, READY = "/api/v1/metrics", "/api/v1/health/live", "/api/v1/health/ready"
 

@@ -23,8 +23,6 @@ from keystrata_client import ApiError, OperatorClient, TlsIdentity
 from keystrata_client.audit import AuditClient
 from processes import NodeProcess, prepare_node, run_cli
 
-pytestmark = pytest.mark.e2e
-
 CHECK = [str(Path(sys.executable).parent / "keystrata-ledger-check")]  # the console script
 
 

@@ -37,8 +37,6 @@ from processes import NETWORK as NODES
 from processes import NETWORK_LINKS as LINKS
 from processes import NodeProcess, start_network, stop_all
 
-pytestmark = pytest.mark.e2e
-
 KILLS = int(os.environ.get("KEYSTRATA_KILLS", "6"))
 RELAY_SETTINGS = """
 [relay]

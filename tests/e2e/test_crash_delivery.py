@@ -32,15 +32,13 @@ from typing import Any
 import httpx
 import pytest
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
+from test_crash import RELAY_SETTINGS, _feed, _settled, ident
+from test_ledger_tree import mth
 
 from conftest import PkiFiles
 from keystrata_client import ApiError, KeystrataClientError, OperatorClient, TransportError
 from keystrata_client.keys import KeyClient, UncertainDeliveryError
 from processes import NETWORK, NodeProcess, start_network, stop_all
-from test_crash import RELAY_SETTINGS, _feed, _settled, ident
-from test_ledger_tree import mth
-
-pytestmark = pytest.mark.e2e
 
 KILLS = int(os.environ.get("KEYSTRATA_KILLS", "4"))
 TIMEOUT = 10.0  # the SAE clients' HTTP timeout, seconds

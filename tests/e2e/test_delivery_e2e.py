@@ -32,8 +32,6 @@ from keystrata_client import ApiError, OperatorClient, TlsIdentity
 from keystrata_client.keys import KeyClient
 from processes import NETWORK, NodeProcess, start_network, stop_all
 
-pytestmark = pytest.mark.e2e
-
 RELAY = "\n[relay]\nsegment_bytes = 4096\nmin_segment_bytes = 512\ncycle_seconds = 0.1\n"
 HELD = "[server]\nbackground_work = false\n"
 ENCRYPTORS = Path(sys.executable).parent / "keystrata-encryptors"

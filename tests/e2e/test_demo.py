@@ -12,8 +12,6 @@ from pathlib import Path
 
 import pytest
 
-pytestmark = pytest.mark.e2e
-
 
 def _wait_for_manifest(workdir: Path, proc: subprocess.Popen[str], timeout: float) -> dict:
     deadline = time.monotonic() + timeout

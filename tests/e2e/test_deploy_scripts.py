@@ -23,10 +23,6 @@ import psycopg
 import pytest
 import scramp  # type: ignore[import-untyped]
 from sqlalchemy.engine import make_url
-
-from conftest import PG_URL
-from keystrata.crypto.pki import PkiDir
-from processes import KEYSTRATA, free_port, run_cli
 from test_deploy_files import (
     COMPOSE,
     DEPLOY,
@@ -37,6 +33,10 @@ from test_deploy_files import (
     node_settings,
     run_line,
 )
+
+from conftest import PG_URL
+from keystrata.crypto.pki import PkiDir
+from processes import KEYSTRATA, free_port, run_cli
 
 #: The health check's role: health, readiness and metrics only.
 MONITOR_ROLE = "monitor"

@@ -25,8 +25,6 @@ from keystrata_client import (
 )
 from processes import NodeProcess, prepare_node
 
-pytestmark = pytest.mark.e2e
-
 
 def identity(pki: PkiFiles, name: str) -> TlsIdentity:
     return TlsIdentity(ca=pki.ca, cert=pki.cert(name), key=pki.key(name))

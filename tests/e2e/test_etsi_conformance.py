@@ -25,8 +25,6 @@ import pytest
 
 from conftest import PkiFiles
 
-pytestmark = pytest.mark.e2e
-
 # Clause 6.1 (from memory): the Status object's members and their JSON types.
 STATUS_MEMBERS = {
     "source_KME_ID": str,
@@ -94,8 +92,9 @@ class Station:
 @pytest.fixture(scope="module")
 def network(tmp_path_factory, pki) -> Iterator[dict[str, str]]:
     """A relay and two stations (SQLite), with ready pair key; returns node URLs."""
-    from processes import NETWORK, start_network, stop_all
     from test_crash import _feed
+
+    from processes import NETWORK, start_network, stop_all
 
     base = tmp_path_factory.mktemp("etsi")
     extra = "\n[relay]\nsegment_bytes = 4096\nmin_segment_bytes = 512\ncycle_seconds = 0.1\n"

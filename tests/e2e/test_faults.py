@@ -23,12 +23,6 @@ from pathlib import Path
 
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
-
-import pgcluster
-from conftest import PkiFiles
-from keystrata_client import ApiError, OperatorClient
-from keystrata_client.keys import KeyClient
-from processes import NETWORK, NodeProcess, start_network, stop_all
 from test_crash import _both_ends_consumed_alike, _feed, _relay_holds_no_pair_key, _settled
 from test_crash_delivery import (
     PAIRS,
@@ -43,6 +37,12 @@ from test_crash_delivery import (
     _stocked,
     ident,
 )
+
+import pgcluster
+from conftest import PkiFiles
+from keystrata_client import ApiError, OperatorClient
+from keystrata_client.keys import KeyClient
+from processes import NETWORK, NodeProcess, start_network, stop_all
 
 pytestmark = [
     pytest.mark.e2e,

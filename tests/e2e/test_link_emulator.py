@@ -50,8 +50,6 @@ from keystrata_client import AsyncModuleClient, OperatorClient, TlsIdentity
 from keystrata_client.emulators import LinkEmulator, LinkSpec, LinkStats, ModelParams
 from processes import NodeProcess, prepare_node
 
-pytestmark = pytest.mark.e2e
-
 #: The link each test pushes on, and the client certificate of its QKD module.
 MODULES = {"link-a": "mod-link-a", "link-b": "mod-link-b", "link-c": "mod-link-c"}
 BLOCK_BYTES = 1024

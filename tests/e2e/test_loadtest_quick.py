@@ -13,9 +13,7 @@ import pytest
 
 from conftest import PG_URL
 
-pytestmark = pytest.mark.e2e
-
-ROOT = Path(__file__).resolve().parent.parent
+ROOT = Path(__file__).resolve().parents[2]
 
 
 def test_quick_load_run(pg_template: str | None, tmp_path: Path) -> None:

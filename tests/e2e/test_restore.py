@@ -32,14 +32,12 @@ import psycopg
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
 from sqlalchemy.engine import make_url
+from test_crash import _feed, _settled, ident
 
 from conftest import PkiFiles
 from keystrata_client import ApiError, OperatorClient
 from keystrata_client.keys import KeyClient
 from processes import NETWORK, NodeProcess, start_network, stop_all
-from test_crash import _feed, _settled, ident
-
-pytestmark = pytest.mark.e2e
 
 SETTINGS = """
 [relay]

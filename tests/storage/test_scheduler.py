@@ -116,8 +116,9 @@ def test_scarce_link_key_is_shared_by_priority(make_node, db_factory) -> None:
 def test_two_workers_on_postgresql_one_scheduler_acts(tmp_path: Path, pki, pg_factory) -> None:
     db_factory = pg_factory
     url = db_factory()
-    from processes import start_network, stop_all
     from test_crash import _feed
+
+    from processes import start_network, stop_all
 
     extra = "\n[relay]\nsegment_bytes = 2048\nmin_segment_bytes = 512\ncycle_seconds = 0.1\n"
     network = start_network(

@@ -36,7 +36,7 @@ from cryptography.hazmat.primitives.serialization import Encoding, PublicFormat
 from keystrata.ledger.entries import Event, encode_entry
 from keystrata_client.audit import Report, verify_export
 
-VECTORS = Path(__file__).parent / "vectors" / "rfc8785"
+VECTORS = Path(__file__).parents[1] / "vectors" / "rfc8785"
 NUMBERS = json.loads((VECTORS / "numbers.json").read_text(encoding="utf-8"))
 PRIMITIVES = json.loads((VECTORS / "primitives.json").read_text(encoding="utf-8"))
 SORTING = json.loads((VECTORS / "sorting.json").read_text(encoding="utf-8"))

@@ -9,7 +9,7 @@ import pytest
 from keystrata.config import Role, load_settings
 from keystrata_client.emulators import load_config
 
-EXAMPLES = Path(__file__).resolve().parent.parent / "deploy" / "examples"
+EXAMPLES = Path(__file__).resolve().parents[2] / "deploy" / "examples"
 
 
 @pytest.mark.parametrize(

@@ -33,7 +33,7 @@ from keystrata.cli.main import cli
 from keystrata.config import Role, ServerSection, Settings, load_settings
 from keystrata_client.emulators.links import main as links_cli
 
-DEPLOY = Path(__file__).resolve().parent.parent / "deploy"
+DEPLOY = Path(__file__).resolve().parents[2] / "deploy"
 NODES = {
     "relay-vela": Role.RELAY,
     "karsvik": Role.STATION,

@@ -29,7 +29,7 @@ from keystrata.crypto import hazmat
 from keystrata.crypto.hazmat import Keyring
 from keystrata.errors import CryptoError, SealBroken
 
-VECTORS = Path(__file__).parent / "vectors"
+VECTORS = Path(__file__).parents[1] / "vectors"
 KEK = bytes(range(32))
 OTHER_KEK = bytes(range(32, 64))
 

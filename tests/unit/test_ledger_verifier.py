@@ -70,7 +70,7 @@ EVENTS = (
     "key.allocated",
     "key.delivered",
 )
-VECTORS = Path(__file__).parent / "vectors"
+VECTORS = Path(__file__).parents[1] / "vectors"
 
 
 def b64(raw: bytes) -> str:
