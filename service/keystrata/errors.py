@@ -17,10 +17,21 @@ the same. Foreign exceptions are wrapped with ``raise ... from exc``.
     ├── NotFound (404)
     ├── Conflict (409)
     │   ├── AlreadyExists
-    │   └── BlockConflict       a link key block ID re-sent with different bytes
+    │   ├── BlockConflict       a link key block ID re-sent with different bytes
+    │   ├── OutOfOrder          a peer message came before one it depends on; sent again
+    │   ├── LinkKeyReused       a peer message names link key already used here
+    │   ├── LinkKeyShort        not enough link key for a segment
+    │   └── EpsilonTooLarge     a segment would exceed its pair's security parameter
     ├── PayloadTooLarge (413)
     ├── UnsupportedMediaType (415)
     └── Unavailable (503)       the database or a peer cannot be reached right now
+        ├── PeerUnavailable     a peer did not answer (connection, TLS, identity, timeout)
+        ├── NotEnoughKey        not enough ready key for a Get key request
+        ├── QuotaReached        the pair's (or the SAE's) daily quota is used up
+        ├── AllocationNotHere   a key ID's allocation has not reached this station yet
+        ├── StoredKeyBroken     stored pair key failed its integrity check
+        ├── PairHeld            the restore check holds the pair
+        └── NotYetCompared      the restore check has not compared the pair since start
 """
 
 from __future__ import annotations
@@ -106,6 +117,27 @@ class BlockConflict(Conflict):
     default_message = "a block with this ID was already received with different key bytes"
 
 
+class OutOfOrder(Conflict):
+    """What a peer message names has not arrived or been reached here yet: an earlier
+    message is still on its way. The sender's outbox backs off and sends it again."""
+
+    default_message = "not yet: what this message names is not available here yet"
+
+
+class LinkKeyReused(Conflict):
+    """A range names link bytes this node has already used."""
+
+    default_message = "refused: the message names link key that was already used"
+
+
+class LinkKeyShort(Conflict):
+    default_message = "not enough link key for this segment"
+
+
+class EpsilonTooLarge(Conflict):
+    default_message = "the segment's security parameter would exceed the pair's maximum"
+
+
 class PayloadTooLarge(KeystrataError):
     status = 413
     default_message = "request body too large"
@@ -119,3 +151,44 @@ class UnsupportedMediaType(KeystrataError):
 class Unavailable(KeystrataError):
     status = 503
     default_message = "service temporarily unavailable"
+
+
+class PeerUnavailable(Unavailable):
+    """The peer did not answer (connection, TLS, a wrong identity, or timeout)."""
+
+    default_message = "a peer node cannot be reached right now"
+
+
+class NotEnoughKey(Unavailable):
+    default_message = "not enough key is ready for this request; try again later"
+
+
+class QuotaReached(Unavailable):
+    default_message = "the pair's daily key quota is used up"
+
+
+class AllocationNotHere(Unavailable):
+    default_message = "a requested key has not reached this station yet; try again"
+
+
+class StoredKeyBroken(Unavailable):
+    """A segment's sealed key does not open in its row: its owner, pair or offset was
+    changed outside keystrata. Nothing is handed out; an operator must look."""
+
+    default_message = (
+        "stored pair key failed its integrity check; nothing was handed out "
+        "(an operator must look at this station's database)"
+    )
+
+
+class PairHeld(Unavailable):
+    default_message = (
+        "this station's state for the pair is behind its partner's; an operator must resolve it"
+    )
+
+
+class NotYetCompared(Unavailable):
+    default_message = (
+        "this station has not yet compared its state for the pair with its partner "
+        "since it started; try again"
+    )

@@ -34,6 +34,7 @@ import pytest
 from conftest import PkiFiles, write_config
 from helpers import ledger_events, snapshot
 from keystrata.crypto.pki import PkiDir, fingerprint_sha256
+from keystrata.errors import PeerUnavailable
 from peerstub import PeerStub
 from processes import NodeProcess, prepare_node, run_cli
 
@@ -243,7 +244,7 @@ def _relay_settings(folder: Path, pki: PkiFiles, peers: dict[str, str]):
 def test_peer_client_pointed_at_another_nodes_url_refuses_to_send(
     tmp_path: Path, pki: PkiFiles, caplog: pytest.LogCaptureFixture
 ) -> None:
-    from keystrata.peering.client import PeerClient, PeerUnavailable
+    from keystrata.peering.client import PeerClient
 
     # Attacker: station-b (a valid node of the network) answers at the URL the relay has
     # for station-a (a DNS or routing change, or a wrong [[peers]] entry); it would read

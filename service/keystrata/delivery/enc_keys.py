@@ -37,16 +37,18 @@ from keystrata.delivery.schemas import KeyRequest
 from keystrata.delivery.slave_copy import apply_allocated_in, segments_of
 from keystrata.delivery.stock import OwnedStock, Range, key_bytes
 from keystrata.errors import (
+    AllocationNotHere,
     BadRequest,
     Forbidden,
     InvalidInput,
+    NotEnoughKey,
+    OutOfOrder,
+    QuotaReached,
     SealBroken,
     Unauthenticated,
-    Unavailable,
 )
 from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
-from keystrata.links.consume import NotYet
 from keystrata.node import dispatch
 from keystrata.peering import messages, outbox
 from keystrata.registry.principals import Caller
@@ -75,18 +77,6 @@ Pull = Callable[[str], list[dict[str, Any]] | None]
 class DeliveredKey:
     key_id: str
     key: bytes = field(repr=False)
-
-
-class NotEnoughKey(Unavailable):
-    default_message = "not enough key is ready for this request; try again later"
-
-
-class AllocationNotHere(Unavailable):
-    default_message = "a requested key has not reached this station yet; try again"
-
-
-class QuotaReached(Unavailable):
-    default_message = "the pair's daily key quota is used up"
 
 
 @dataclass(frozen=True)
@@ -512,7 +502,7 @@ def _pull_and_apply(ctx: NodeContext, owner: str, missing: set[str], pull: Pull)
             try:
                 with s.begin_nested():
                     apply_allocated_in(ctx, s, owner, msg)
-            except NotYet:
+            except OutOfOrder:
                 return True
             except Forbidden as refusal:
                 refused.append((msg, refusal))

@@ -22,10 +22,9 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from keystrata.context import NodeContext
-from keystrata.errors import Forbidden, InvalidInput, KeystrataError
+from keystrata.errors import Forbidden, InvalidInput, KeystrataError, OutOfOrder
 from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
-from keystrata.links.consume import NotYet
 from keystrata.peering import messages, outbox
 from keystrata.relay.segments import Outcome
 from keystrata.storage.models import KeyAlloc, Pair, PairSegment, Principal
@@ -204,9 +203,9 @@ def _carve_named(
         if row is not None and (row.pair_id != pair_id or row.owner != owner):
             raise Forbidden("a key range names a segment of another pair or owner")
         if row is None or row.state != "ready":
-            raise NotYet("not yet: the segment of this key is not ready here")
+            raise OutOfOrder("not yet: the segment of this key is not ready here")
         if r.offset > row.used:
-            raise NotYet("not yet: earlier keys of this segment have not arrived")
+            raise OutOfOrder("not yet: earlier keys of this segment have not arrived")
         if r.offset < row.used or r.offset + r.length > row.length:
             raise InvalidInput("a key range names segment bytes already used")
         assert row.sealed is not None

@@ -16,21 +16,11 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from keystrata.crypto.hazmat import Keyring
-from keystrata.errors import SealBroken, Unavailable
+from keystrata.errors import SealBroken, StoredKeyBroken
 from keystrata.storage.models import PairSegment
 from keystrata.storage.sealed import segment_context
 
 log = logging.getLogger("keystrata.delivery")
-
-
-class StoredKeyBroken(Unavailable):
-    """A segment's sealed key does not open in its row: its owner, pair or offset was
-    changed outside keystrata. Nothing is handed out; an operator must look."""
-
-    default_message = (
-        "stored pair key failed its integrity check; nothing was handed out "
-        "(an operator must look at this station's database)"
-    )
 
 
 #: Attempts to lock enough front segments when another worker process takes from the

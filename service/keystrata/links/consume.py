@@ -21,25 +21,10 @@ from sqlalchemy import bindparam, func, select, update
 from sqlalchemy.orm import Session
 
 from keystrata.crypto.hazmat import Keyring
-from keystrata.errors import KeystrataError
+from keystrata.errors import LinkKeyReused, OutOfOrder
 from keystrata.relay.arithmetic import Available, Range
 from keystrata.storage.models import LinkBlock
 from keystrata.storage.sealed import block_context
-
-
-class NotYet(KeystrataError):
-    """The link bytes a message names have not all arrived or been reached here yet."""
-
-    status = 409
-    default_message = "not yet: the link key this message names is not available here yet"
-
-
-class LinkKeyReused(KeystrataError):
-    """A range names link bytes this node has already used."""
-
-    status = 409
-    default_message = "refused: the message names link key that was already used"
-
 
 #: Consumption point and sealed remainder of one block, by its primary key (executed on
 #: the session's connection: a plain executemany, not the ORM's bulk update).
@@ -118,7 +103,7 @@ def take(
     destroy them in the session's transaction.
 
     Raises:
-        NotYet: a block is missing or its consumption has not reached the range yet.
+        OutOfOrder: a block is missing or its consumption has not reached the range yet.
         LinkKeyReused: a range starts before its block's consumption point.
     """
     ids = {r.block_id for r in ranges}
@@ -146,7 +131,7 @@ def take(
     for r in ranges:
         row = rows.get(r.block_id)
         if row is None:
-            raise NotYet(f"not yet: block {r.block_id} of link {link_id} has not arrived")
+            raise OutOfOrder(f"not yet: block {r.block_id} of link {link_id} has not arrived")
         if r.block_id not in opened:
             if row.sealed is None:
                 raise LinkKeyReused()
@@ -157,7 +142,7 @@ def take(
         if r.offset < start:
             raise LinkKeyReused()
         if r.offset > start:
-            raise NotYet(f"not yet: block {r.block_id} is consumed up to byte {start} here")
+            raise OutOfOrder(f"not yet: block {r.block_id} is consumed up to byte {start} here")
         if r.length <= 0 or r.offset + r.length > row.length:
             raise LinkKeyReused("refused: a range lies outside its block")
         parts.append(remainder[: r.length])

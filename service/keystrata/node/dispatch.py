@@ -69,7 +69,7 @@ def apply(ctx: NodeContext, sender: str, msg: messages.PeerMessage) -> Outcome:
 
     Raises:
         Forbidden: the message claims what is not the sender's to claim (recorded).
-        NotYet / LinkKeyReused (409), NotFound (404), InvalidInput (400).
+        OutOfOrder / LinkKeyReused (409), NotFound (404), InvalidInput (400).
     """
     try:
         return HANDLERS[ctx.role][type(msg)](ctx, sender, msg)

@@ -15,12 +15,9 @@ import httpx
 
 from keystrata.config import Settings
 from keystrata.crypto.tls import PeerIdentityError, peer_context
+from keystrata.errors import PeerUnavailable
 
 log = logging.getLogger("keystrata.peer_client")
-
-
-class PeerUnavailable(Exception):
-    """The peer did not answer (connection, TLS or timeout)."""
 
 
 def _identity_error(exc: BaseException) -> PeerIdentityError | None:

@@ -10,9 +10,10 @@ import threading
 from datetime import timedelta
 
 from keystrata.context import NodeContext
+from keystrata.errors import PeerUnavailable
 from keystrata.node.dispatch import MAX_BATCH
 from keystrata.peering import outbox
-from keystrata.peering.client import PeerClient, PeerUnavailable
+from keystrata.peering.client import PeerClient
 
 log = logging.getLogger("keystrata.outbox")
 

@@ -18,7 +18,7 @@ from sqlalchemy.orm import Session
 
 from keystrata.context import NodeContext
 from keystrata.crypto.hazmat import one_time_mac, xor_bytes
-from keystrata.errors import Conflict, NotFound
+from keystrata.errors import EpsilonTooLarge, LinkKeyShort, NotFound
 from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
 from keystrata.links import consume
@@ -34,14 +34,6 @@ class SegmentMade:
     length: int
     owner: str
     epsilon: float
-
-
-class EpsilonTooLarge(Conflict):
-    default_message = "the segment's security parameter would exceed the pair's maximum"
-
-
-class LinkKeyShort(Conflict):
-    default_message = "not enough link key for this segment"
 
 
 def link_of(session: Session, relay_id: str, station: str) -> str:

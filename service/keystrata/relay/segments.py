@@ -22,11 +22,10 @@ from sqlalchemy.orm import Session
 
 from keystrata.context import NodeContext
 from keystrata.crypto.hazmat import constant_time_equal, verify_one_time_mac, xor_bytes
-from keystrata.errors import CryptoError, Forbidden, InvalidInput, NotFound
+from keystrata.errors import CryptoError, Forbidden, InvalidInput, NotFound, OutOfOrder
 from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
 from keystrata.links import consume
-from keystrata.links.consume import NotYet
 from keystrata.peering import messages, outbox
 from keystrata.relay import arithmetic
 from keystrata.relay.arithmetic import Range
@@ -272,7 +271,7 @@ def apply_check(ctx: NodeContext, sender: str, msg: messages.SegmentCheck) -> Ou
     with ctx.db.write() as s:
         row = s.get(PairSegment, segment_id, with_for_update=True)
         if row is None or not row.link_applied:
-            raise NotYet("not yet: the relay's notice for this segment has not arrived")
+            raise OutOfOrder("not yet: the relay's notice for this segment has not arrived")
         _partners_row(row, sender, msg.pair_id, "notice")
         if row.state != "pending":
             return Outcome(segment_id, "already" if row.state == "ready" else "discarded")

@@ -24,7 +24,7 @@ from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from keystrata.context import NodeContext
-from keystrata.errors import Forbidden, InvalidInput, Unavailable
+from keystrata.errors import Forbidden, InvalidInput, NotYetCompared, PairHeld
 from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
 from keystrata.peering import messages
@@ -47,19 +47,6 @@ PAGE = 1000
 #: Pages one comparison reads at most (a pair with more segments is compared in part
 #: and the log says so).
 MAX_PAGES = 1000
-
-
-class PairHeld(Unavailable):
-    default_message = (
-        "this station's state for the pair is behind its partner's; an operator must resolve it"
-    )
-
-
-class NotYetCompared(Unavailable):
-    default_message = (
-        "this station has not yet compared its state for the pair with its partner "
-        "since it started; try again"
-    )
 
 
 #: ``ctx.lanes`` key: partner stations this process has not compared a pair with since
@@ -471,7 +458,6 @@ def _fields(pair_id: str, partner: str, f: Finding) -> dict[str, Any]:
 
 __all__ = [
     "OpenHold",
-    "PairHeld",
     "ProgressSource",
     "Reason",
     "check_all",
