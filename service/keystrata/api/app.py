@@ -92,6 +92,7 @@ def create_app(ctx: NodeContext) -> FastAPI:
     )
     app.state.ctx = ctx
     app.state.peers = PeerClient(ctx.settings)
+    app.state.allocation_source = app.state.peers  # delivery's port to the owning station
     app.state.ca_cert = x509.load_pem_x509_certificate(ctx.settings.tls.ca.read_bytes())
     errors.install(app)
     for router in ROUTERS:
