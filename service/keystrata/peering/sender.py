@@ -4,9 +4,6 @@ retry with backoff until they are acknowledged."""
 from __future__ import annotations
 
 import logging
-import os
-import socket
-import threading
 from datetime import timedelta
 
 from keystrata.context import NodeContext
@@ -14,6 +11,7 @@ from keystrata.errors import PeerUnavailable
 from keystrata.node.dispatch import MAX_BATCH
 from keystrata.peering import outbox
 from keystrata.peering.client import PeerClient
+from keystrata.storage import leases
 
 log = logging.getLogger("keystrata.outbox")
 
@@ -24,11 +22,6 @@ BATCH_BYTES = 1024 * 1024
 #: A head refused this many times in a row is logged as blocking its destination
 #: (then again at every doubling), whatever the status.
 BLOCKED_AFTER = 8
-
-
-def default_holder() -> str:
-    """Who holds a destination's lease while this thread sends to it."""
-    return f"{socket.gethostname()}:{os.getpid()}:{threading.get_ident():x}"
 
 
 def deliver_once(ctx: NodeContext, peers: PeerClient, holder: str | None = None) -> int:
@@ -43,7 +36,7 @@ def deliver_once(ctx: NodeContext, peers: PeerClient, holder: str | None = None)
     cannot drift apart; a stuck message shows its last error in the outbox until an
     operator sees to it.
     """
-    holder = holder or default_holder()
+    holder = holder or leases.new_holder()
     settings = ctx.settings.outbox
     cap = timedelta(seconds=settings.max_backoff_seconds)
     # The lease and the claims must outlast the request (timeout per phase, and margin).

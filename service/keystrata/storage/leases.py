@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import os
+import secrets
+import socket
 from datetime import datetime, timedelta
 
 from sqlalchemy import delete, or_, update
@@ -11,6 +14,12 @@ from sqlalchemy.orm import Session
 
 from keystrata.storage.db import Database
 from keystrata.storage.models import Lease
+
+
+def new_holder() -> str:
+    """A holder name no other loop shares: this host, this process and a random tag.
+    Each background loop set (and each caller without one) takes its own."""
+    return f"{socket.gethostname()}:{os.getpid()}:{secrets.token_hex(4)}"
 
 
 def acquire(db: Database, name: str, holder: str, *, now: datetime, ttl: timedelta) -> bool:
