@@ -19,8 +19,8 @@ import relaynet
 from keystrata.errors import BlockConflict
 from keystrata.links import consume, ingest
 from keystrata.links.blocks import BlockIn
+from keystrata.ranges import Available, Range
 from keystrata.relay import operation
-from keystrata.relay.arithmetic import Available
 from keystrata.storage.models import LedgerEntry, LinkBlock
 
 
@@ -143,10 +143,8 @@ def test_ingest_in_slices_stores_every_block_in_order_in_one_entry(net, monkeypa
     # The stored bytes are the pushed bytes (taken through the relay's own path).
     with ctx.db.write() as s:
         avail = consume.available(s, "link-a", 2**62)
-        from keystrata.relay.arithmetic import Range
-
         key, _ = consume.take(
-            s, ctx.keyring, "link-a", [Range(a.block_id, 0, a.length) for a in avail]
+            s, ctx.keyring, "link-a", [Range(a.buffer_id, 0, a.length) for a in avail]
         )
     assert key == b"".join(b.key for b in blocks)
 

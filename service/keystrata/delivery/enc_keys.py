@@ -35,7 +35,7 @@ from keystrata.context import NodeContext
 from keystrata.delivery.group_commit import GroupCommit
 from keystrata.delivery.schemas import KeyRequest
 from keystrata.delivery.slave_copy import apply_allocated_in, segments_of
-from keystrata.delivery.stock import OwnedStock, Range, key_bytes
+from keystrata.delivery.stock import OwnedStock, key_bytes
 from keystrata.errors import (
     AllocationNotHere,
     BadRequest,
@@ -51,6 +51,7 @@ from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
 from keystrata.node import dispatch
 from keystrata.peering import messages, outbox
+from keystrata.ranges import Range
 from keystrata.registry.principals import Caller
 from keystrata.restore import comparison
 from keystrata.storage.models import KeyAlloc, Pair, PairSegment, Principal
@@ -383,7 +384,7 @@ def _record(
         master=ask.caller.principal_id,
         slaves=ask.route.slaves,
         ranges=[
-            messages.SegmentRange(segment=r.segment, offset=r.offset, length=r.length)
+            messages.SegmentRange(segment=r.buffer_id, offset=r.offset, length=r.length)
             for r in ranges
         ],
         size_bits=ask.size,

@@ -17,6 +17,7 @@ from sqlalchemy.orm import Session
 
 from keystrata.crypto.hazmat import Keyring
 from keystrata.errors import SealBroken, StoredKeyBroken
+from keystrata.ranges import Range
 from keystrata.storage.models import PairSegment
 from keystrata.storage.sealed import segment_context
 
@@ -26,16 +27,6 @@ log = logging.getLogger("keystrata.delivery")
 #: Attempts to lock enough front segments when another worker process takes from the
 #: same front at the same time (PostgreSQL; SQLite has one writer).
 _LOCK_ATTEMPTS = 8
-
-
-@dataclass(frozen=True)
-class Range:
-    segment: str
-    offset: int
-    length: int
-
-    def as_record(self) -> dict[str, object]:
-        return {"segment": self.segment, "offset": self.offset, "length": self.length}
 
 
 @dataclass
@@ -151,6 +142,6 @@ def key_bytes(cut: dict[str, tuple[int, bytes]], ranges: list[Range]) -> bytes:
     """The bytes of ``ranges`` out of what :meth:`OwnedStock.cut` returned."""
     parts = []
     for r in ranges:
-        base, data = cut[r.segment]
+        base, data = cut[r.buffer_id]
         parts.append(data[r.offset - base : r.offset - base + r.length])
     return b"".join(parts)

@@ -22,7 +22,7 @@ from sqlalchemy.orm import Session
 
 from keystrata.crypto.hazmat import Keyring
 from keystrata.errors import LinkKeyReused, OutOfOrder
-from keystrata.relay.arithmetic import Available, Range
+from keystrata.ranges import Available, Range
 from keystrata.storage.models import LinkBlock
 from keystrata.storage.sealed import block_context
 
@@ -106,7 +106,7 @@ def take(
         OutOfOrder: a block is missing or its consumption has not reached the range yet.
         LinkKeyReused: a range starts before its block's consumption point.
     """
-    ids = {r.block_id for r in ranges}
+    ids = {r.buffer_id for r in ranges}
     # Plain column rows and one executemany UPDATE: a segment touches hundreds of
     # blocks, and ORM objects (identity map, change tracking, per-row flush) cost more
     # than the cryptography. Nothing in the callers' sessions holds LinkBlock objects.
@@ -129,24 +129,24 @@ def take(
     epsilons: list[float] = []
     opened: dict[str, tuple[int, bytes]] = {}
     for r in ranges:
-        row = rows.get(r.block_id)
+        row = rows.get(r.buffer_id)
         if row is None:
-            raise OutOfOrder(f"not yet: block {r.block_id} of link {link_id} has not arrived")
-        if r.block_id not in opened:
+            raise OutOfOrder(f"not yet: block {r.buffer_id} of link {link_id} has not arrived")
+        if r.buffer_id not in opened:
             if row.sealed is None:
                 raise LinkKeyReused()
             remainder = keyring.open(row.sealed, block_context(link_id, row.block_id, row.used))
-            opened[r.block_id] = (row.used, remainder)
+            opened[r.buffer_id] = (row.used, remainder)
             epsilons.append(row.epsilon)
-        start, remainder = opened[r.block_id]
+        start, remainder = opened[r.buffer_id]
         if r.offset < start:
             raise LinkKeyReused()
         if r.offset > start:
-            raise OutOfOrder(f"not yet: block {r.block_id} is consumed up to byte {start} here")
+            raise OutOfOrder(f"not yet: block {r.buffer_id} is consumed up to byte {start} here")
         if r.length <= 0 or r.offset + r.length > row.length:
             raise LinkKeyReused("refused: a range lies outside its block")
         parts.append(remainder[: r.length])
-        opened[r.block_id] = (start + r.length, remainder[r.length :])
+        opened[r.buffer_id] = (start + r.length, remainder[r.length :])
     changes = [
         {
             "b_seq": rows[block_id].seq,

@@ -25,86 +25,13 @@ from __future__ import annotations
 
 import hashlib
 import hmac
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable
 from dataclasses import dataclass
-from typing import Any
 
 import rfc8785
 
 MAC_KEY_BYTES = 32
 CHECK_BYTES = 16
-
-
-@dataclass(frozen=True, slots=True)
-class Range:
-    """Bytes [offset, offset + length) of one link key block."""
-
-    block_id: str
-    offset: int
-    length: int
-
-    def to_json(self) -> dict[str, Any]:
-        return {"block": self.block_id, "offset": self.offset, "length": self.length}
-
-    @staticmethod
-    def from_json(raw: Mapping[str, Any]) -> Range:
-        return Range(
-            block_id=str(raw["block"]), offset=int(raw["offset"]), length=int(raw["length"])
-        )
-
-
-@dataclass(frozen=True, slots=True)
-class Available:
-    """What a link block still holds: bytes [used, length)."""
-
-    block_id: str
-    used: int
-    length: int
-    epsilon: float
-
-
-def take_ranges(blocks: Iterable[Available], n: int) -> list[Range]:
-    """Return ranges covering the next ``n`` bytes of ``blocks`` in the given order.
-
-    Raises:
-        ValueError: the blocks hold fewer than ``n`` bytes.
-    """
-    out: list[Range] = []
-    need = n
-    for b in blocks:
-        if need == 0:
-            break
-        free = b.length - b.used
-        if free <= 0:
-            continue
-        take = min(free, need)
-        out.append(Range(b.block_id, b.used, take))
-        need -= take
-    if need:
-        raise ValueError(f"link holds {n - need} of the {n} bytes asked for")
-    return out
-
-
-def split_after(ranges: Sequence[Range], n: int) -> tuple[list[Range], list[Range]]:
-    """Split ranges covering some bytes into the first ``n`` bytes and the rest."""
-    first: list[Range] = []
-    rest: list[Range] = []
-    left = n
-    for r in ranges:
-        if left >= r.length:
-            first.append(r)
-            left -= r.length
-        elif left > 0:
-            first.append(Range(r.block_id, r.offset, left))
-            rest.append(Range(r.block_id, r.offset + left, r.length - left))
-            left = 0
-        else:
-            rest.append(r)
-    return first, rest
-
-
-def total(ranges: Iterable[Range]) -> int:
-    return sum(r.length for r in ranges)
 
 
 def compose_epsilon(epsilons: Iterable[float]) -> float:

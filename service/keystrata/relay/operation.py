@@ -23,6 +23,7 @@ from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
 from keystrata.links import consume
 from keystrata.peering import messages, outbox
+from keystrata.ranges import Range, split_after, take_ranges
 from keystrata.relay import arithmetic
 from keystrata.storage.models import Pair, QkdLink, RelayOp
 
@@ -90,12 +91,8 @@ def make_segment(
             cipher_station = max(stations, key=lambda st: (free[st], st))
         notice_station = stations[1] if cipher_station == stations[0] else stations[0]
         try:
-            ranges_a, ranges_ma = arithmetic.split_after(
-                arithmetic.take_ranges(avail[notice_station], need), n
-            )
-            ranges_b, ranges_m = arithmetic.split_after(
-                arithmetic.take_ranges(avail[cipher_station], need), n
-            )
+            ranges_a, ranges_ma = split_after(take_ranges(avail[notice_station], need), n)
+            ranges_b, ranges_m = split_after(take_ranges(avail[cipher_station], need), n)
         except ValueError as exc:
             raise LinkKeyShort(str(exc)) from exc
         key_am, eps_a = consume.take(s, ctx.keyring, links[notice_station], ranges_a + ranges_ma)
@@ -132,8 +129,8 @@ def make_segment(
         tag = one_time_mac(key_bm[n:], arithmetic.mac_input(header, ciphertext))
         del key_am, key_bm  # nothing of KA, KB, MA or M outlives this transaction
         used = {
-            links[notice_station]: [r.to_json() for r in ranges_a + ranges_ma],
-            links[cipher_station]: [r.to_json() for r in ranges_b + ranges_m],
+            links[notice_station]: [w.model_dump() for w in _wire(ranges_a + ranges_ma)],
+            links[cipher_station]: [w.model_dump() for w in _wire(ranges_b + ranges_m)],
         }
         s.add(
             RelayOp(
@@ -186,8 +183,8 @@ def make_segment(
     return SegmentMade(segment_id, pair_id, n, owner, epsilon)
 
 
-def _wire(ranges: list[arithmetic.Range]) -> list[messages.LinkRange]:
-    return [messages.LinkRange(block=r.block_id, offset=r.offset, length=r.length) for r in ranges]
+def _wire(ranges: list[Range]) -> list[messages.LinkRange]:
+    return [messages.LinkRange(block=r.buffer_id, offset=r.offset, length=r.length) for r in ranges]
 
 
 def settle(ctx: NodeContext, segment_id: str, outcome: str, reason: str | None) -> bool:

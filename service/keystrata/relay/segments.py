@@ -27,8 +27,8 @@ from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
 from keystrata.links import consume
 from keystrata.peering import messages, outbox
+from keystrata.ranges import Range, total
 from keystrata.relay import arithmetic
-from keystrata.relay.arithmetic import Range
 from keystrata.storage.models import Pair, PairSegment, QkdLink
 from keystrata.storage.sealed import segment_context
 
@@ -115,9 +115,9 @@ def _spend(
     """Take (and destroy) the named link bytes: n key bytes and the 32-byte MAC key."""
     _own_link(s, ctx, link, pair.relay_id)
     keys, macs = _ranges(key_ranges), _ranges(mac_ranges)
-    if arithmetic.total(keys) != n:
+    if total(keys) != n:
         raise InvalidInput("header: key ranges and bytes disagree")
-    if arithmetic.total(macs) != arithmetic.MAC_KEY_BYTES:
+    if total(macs) != arithmetic.MAC_KEY_BYTES:
         raise InvalidInput("header: MAC ranges must cover 32 bytes")
     both, _ = consume.take(s, ctx.keyring, link, keys + macs)
     return both[:n], both[n:]
