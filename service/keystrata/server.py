@@ -1,4 +1,10 @@
-"""Run a node: start-up checks, then uvicorn over HTTPS with required client certificates."""
+"""Run a node: start-up checks, the composition root, then uvicorn over HTTPS with
+required client certificates.
+
+The composition root (:func:`compose`) is the one place where a process's parts meet:
+the node's context, one peer client for the process (shared by the background loops and
+by key delivery's port to owning stations), the loops, and the app.
+"""
 
 from __future__ import annotations
 
@@ -14,11 +20,14 @@ from fastapi import FastAPI
 from keystrata.api.app import create_app
 from keystrata.api.tls import ClientCertHttpToolsProtocol
 from keystrata.config import CONFIG_ENV, Settings, load_settings
+from keystrata.context import NodeContext
 from keystrata.crypto import tls
 from keystrata.crypto.pki import load_certificate
 from keystrata.crypto.revocation import read_crl
 from keystrata.errors import ConfigError, InvalidInput
 from keystrata.node.lifecycle import open_node
+from keystrata.node.loops import Background
+from keystrata.peering.client import PeerClient
 from keystrata.storage.db import Database
 
 log = logging.getLogger("keystrata.server")
@@ -35,8 +44,32 @@ def build_app(settings: Settings) -> FastAPI:
         sqlite_synchronous=settings.database.sqlite_synchronous,
         pool_size=settings.database.pool_size,
     )
-    ctx = open_node(settings, db)
-    return create_app(ctx)
+    return compose(open_node(settings, db))
+
+
+class _ProcessWork:
+    """The loops of this process (when the node runs background work), then its peer
+    client closed, in the app's lifespan."""
+
+    def __init__(self, loops: Background | None, peers: PeerClient) -> None:
+        self.loops = loops
+        self.peers = peers
+
+    def start(self) -> None:
+        if self.loops is not None:
+            self.loops.start()
+
+    def stop(self) -> None:
+        if self.loops is not None:
+            self.loops.stop()
+        self.peers.close()
+
+
+def compose(ctx: NodeContext) -> FastAPI:
+    """Wire one process: its peer client, its background loops and its app."""
+    peers = PeerClient(ctx.settings)
+    loops = Background(ctx, peers) if ctx.settings.server.background_work else None
+    return create_app(ctx, allocation_source=peers, background=_ProcessWork(loops, peers))
 
 
 def app_factory() -> FastAPI:

@@ -31,12 +31,13 @@ from typing import Any
 import httpx
 import pytest
 
-from conftest import PkiFiles, write_config
 from helpers import ledger_events, snapshot
 from keystrata.crypto.pki import PkiDir, fingerprint_sha256
 from keystrata.errors import PeerUnavailable
+from keystrata.loopback.configs import write_config
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, prepare_node, run_cli
 from peerstub import PeerStub
-from processes import NodeProcess, prepare_node, run_cli
 
 # ---------------------------------------------------------------- a PKI of the module's own
 
@@ -287,8 +288,8 @@ def test_revoked_certificate_is_refused_by_the_identity_check_too(
 
     from anyio.from_thread import start_blocking_portal
 
-    from keystrata.api.app import create_app
     from keystrata.crypto.revocation import revoke
+    from keystrata.server import compose
 
     copy = PkiDir(tmp_path / "pki")  # the session's CA, in a folder of this test
     shutil.copytree(pki.dir, copy.path)
@@ -297,7 +298,7 @@ def test_revoked_certificate_is_refused_by_the_identity_check_too(
     with_crl = settings.model_copy(
         update={"tls": settings.tls.model_copy(update={"crl": copy.path / "crl.pem"})}
     )
-    app = create_app(dataclasses.replace(station.ctx, settings=with_crl))
+    app = compose(dataclasses.replace(station.ctx, settings=with_crl))
 
     async def call(name: str) -> int:
         from conftest import _WithClientCert

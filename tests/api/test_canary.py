@@ -32,18 +32,19 @@ from anyio.from_thread import start_blocking_portal
 from sqlalchemy import select
 
 import relaynet
-from conftest import AsgiClient, Node, NodeFactory, PkiFiles, _WithClientCert, cert_pin
+from conftest import AsgiClient, Node, NodeFactory, _WithClientCert
 from helpers import snapshot
-from keystrata.api.app import create_app
 from keystrata.errors import KeystrataError
 from keystrata.links import ingest
 from keystrata.links.blocks import BlockIn
+from keystrata.loopback.pki import PkiFiles, cert_pin
 from keystrata.node import dispatch
 from keystrata.peering import outbox
 from keystrata.registry import provisioning
 from keystrata.registry.specs import Kind, PrincipalSpec
 from keystrata.relay import operation
 from keystrata.relay.arithmetic import choose_owner
+from keystrata.server import compose
 from keystrata.storage.models import LedgerEntry, OutboxMessage, PairSegment
 from keystrata.storage.sealed import segment_context
 
@@ -223,7 +224,7 @@ def harness(make_node: NodeFactory, db_factory: Any, pki: PkiFiles) -> Iterator[
     with start_blocking_portal() as portal:
         apps = {}
         for name, node in net.nodes.items():
-            app = create_app(node.ctx)
+            app = compose(node.ctx)
             for key, handler in list(app.exception_handlers.items()):
                 app.exception_handlers[key] = _recording(handler, raised)
             apps[name] = app
@@ -607,7 +608,7 @@ def test_the_access_log_of_a_real_node_shows_route_templates(
     import shutil
     import ssl
 
-    from processes import prepare_node
+    from keystrata.loopback.processes import prepare_node
 
     shutil.copy(sqlite_template, tmp_path / "station-a.db")
     url = f"sqlite:///{tmp_path / 'station-a.db'}"  # the access log is the same on both

@@ -37,22 +37,16 @@ from fastapi.openapi.utils import get_openapi
 from hypothesis import strategies as st
 from starlette.routing import Match
 
-from conftest import (
-    PG_URL,
-    AsgiClient,
-    Node,
-    PkiFiles,
-    _pg_admin,
-    _pg_url,
-    seed_registry,
-    write_config,
-)
+from conftest import PG_URL, AsgiClient, Node, _pg_admin, _pg_url, seed_registry
 from helpers import snapshot
-from keystrata.api.app import create_app, route_table
+from keystrata.api.app import route_table
 from keystrata.config import load_settings
+from keystrata.loopback.configs import write_config
+from keystrata.loopback.pki import PkiFiles
 from keystrata.node.lifecycle import initialise, load_keyring, open_node
 from keystrata.registry import provisioning
 from keystrata.registry.specs import Kind, PairSpec, PrincipalRole
+from keystrata.server import compose
 from keystrata.storage.db import Database
 
 #: The test certificate used for each role (conftest.CLIENTS), in order of preference
@@ -275,7 +269,7 @@ def hostile_node(
 
 @pytest.fixture(scope="module")
 def target(hostile_node: Node, pki: PkiFiles) -> Iterator[AsAdmittedCaller]:
-    yield AsAdmittedCaller(create_app(hostile_node.ctx), pki)
+    yield AsAdmittedCaller(compose(hostile_node.ctx), pki)
     from schemathesis.python import asgi
 
     asgi.shutdown_lifespans()

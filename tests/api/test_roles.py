@@ -149,7 +149,7 @@ def test_proxy_mode_reads_and_checks_a_forwarded_certificate(station, pki) -> No
     import httpx
     from anyio.from_thread import start_blocking_portal
 
-    from keystrata.api.app import create_app
+    from keystrata.server import compose
 
     settings = station.ctx.settings
     proxied = settings.model_copy(
@@ -159,7 +159,7 @@ def test_proxy_mode_reads_and_checks_a_forwarded_certificate(station, pki) -> No
             )
         }
     )
-    app = create_app(dataclasses.replace(station.ctx, settings=proxied))
+    app = compose(dataclasses.replace(station.ctx, settings=proxied))
 
     async def call(pem: str | None) -> int:
         headers = {} if pem is None else {"x-client-cert": quote(pem)}
@@ -175,7 +175,7 @@ def test_proxy_mode_reads_and_checks_a_forwarded_certificate(station, pki) -> No
         assert portal.call(call, None) == 401
         assert portal.call(call, "not a certificate") == 401
     # Without proxy mode the same header is ignored.
-    plain = create_app(station.ctx)
+    plain = compose(station.ctx)
     app = plain
     with start_blocking_portal() as portal:
         assert portal.call(call, pki.pem("ops-ada")) == 401

@@ -23,7 +23,7 @@ from typing import Any
 import httpx
 import pytest
 
-from conftest import PkiFiles
+from keystrata.loopback.pki import PkiFiles
 
 # Clause 6.1 (from memory): the Status object's members and their JSON types.
 STATUS_MEMBERS = {
@@ -94,7 +94,8 @@ def network(tmp_path_factory, pki) -> Iterator[dict[str, str]]:
     """A relay and two stations (SQLite), with ready pair key; returns node URLs."""
     from test_crash import _feed
 
-    from processes import NETWORK, start_network, stop_all
+    from keystrata.loopback.network import NETWORK, start_network
+    from keystrata.loopback.processes import stop_all
 
     base = tmp_path_factory.mktemp("etsi")
     extra = "\n[relay]\nsegment_bytes = 4096\nmin_segment_bytes = 512\ncycle_seconds = 0.1\n"
@@ -222,9 +223,9 @@ def test_error_codes_and_object(network, pki, tool) -> None:
 
 def test_openapi_document_has_the_standards_shapes(station) -> None:
     """The app's OpenAPI document describes the routes with the standard's objects."""
-    from keystrata.api.app import create_app
+    from keystrata.server import compose
 
-    doc = create_app(station.ctx).openapi()
+    doc = compose(station.ctx).openapi()
     paths = doc["paths"]
     assert set(paths["/api/v1/keys/{slave_SAE_ID}/status"]) == {"get"}
     assert set(paths["/api/v1/keys/{slave_SAE_ID}/enc_keys"]) == {"get", "post"}
@@ -250,7 +251,7 @@ def test_openapi_document_has_the_standards_shapes(station) -> None:
 def test_only_the_named_slave_fetches_and_the_cli_works(network, pki) -> None:
     """Over real processes: a third SAE, or the master itself, cannot fetch the slave's
     key; the `keystrata keys` commands drive the same calls (printing digests only)."""
-    from processes import run_cli
+    from keystrata.loopback.processes import run_cli
 
     def env(station: str, sae: str) -> dict[str, str]:
         return {

@@ -27,15 +27,15 @@ import pytest
 from sqlalchemy import func, select
 
 import relaynet
-from conftest import PkiFiles
 from helpers import snapshot
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import prepare_node
 from keystrata.node.dispatch import MAX_BATCH
 from keystrata.peering import outbox
 from keystrata.relay import operation
 from keystrata.storage.db import Database
 from keystrata.storage.models import Lease, OutboxMessage
 from peerstub import PeerStub
-from processes import prepare_node
 
 
 def _enqueue(db: Database, destination: str, seqs: range) -> None:
@@ -235,12 +235,14 @@ def test_a_commit_that_enqueues_wakes_the_outbox_loop(
     make_node, db_url: str, pki: PkiFiles
 ) -> None:
     from keystrata.node.loops import Background
+    from keystrata.peering.client import PeerClient
 
     stub = PeerStub(pki, "station-b")
     # Polling alone would take a minute; the loop must wake on the commit.
     extra = _peers({"station-b": stub}) + "\n[outbox]\nidle_seconds = 60\n"
     node = make_node("station-a", "station", db_url=db_url, extra=extra)
-    background = Background(node.ctx)
+    peers = PeerClient(node.ctx.settings)
+    background = Background(node.ctx, peers)
     background.start()
     try:
         time.sleep(0.5)  # the loop found nothing and waits
@@ -263,6 +265,7 @@ def test_a_commit_that_enqueues_wakes_the_outbox_loop(
         assert stub.record.applied == [0, 1, 2]  # the rolled-back one never went
     finally:
         background.stop()
+        peers.close()
         stub.close()
 
 

@@ -1,4 +1,6 @@
-"""Build the FastAPI application of one node from its context."""
+"""Build the FastAPI application of one node from its context and the parts the
+composition root (:mod:`keystrata.server`) hands in: the delivery port to owning
+stations and the background work to run during the app's lifespan."""
 
 from __future__ import annotations
 
@@ -6,6 +8,7 @@ import asyncio
 import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager, suppress
+from typing import TYPE_CHECKING, Protocol
 
 from cryptography import x509
 from fastapi import APIRouter, FastAPI
@@ -29,10 +32,11 @@ from keystrata.api.routes import (
 )
 from keystrata.context import NodeContext
 from keystrata.errors import KeystrataError
-from keystrata.node.loops import Background
 from keystrata.observability.http import RequestMetrics, RequestTimer, install_access_log_filter
-from keystrata.peering.client import PeerClient
 from keystrata.registry import principals
+
+if TYPE_CHECKING:
+    from keystrata.delivery.ports import AllocationSource
 
 #: Bodies of routes other than ingest are small JSON documents.
 DEFAULT_BODY_LIMIT = 1024 * 1024
@@ -56,17 +60,32 @@ ROUTERS: tuple[APIRouter, ...] = (
 )
 
 
+class BackgroundWork(Protocol):
+    """What runs beside the routes while the app lives (the node's loops)."""
+
+    def start(self) -> None: ...
+    def stop(self) -> None: ...
+
+
 def route_table() -> list[APIRoute]:
     """Every API route of a node, with its path and the roles it admits (for tests/docs)."""
     return [r for router in ROUTERS for r in router.routes if isinstance(r, APIRoute)]
 
 
-def create_app(ctx: NodeContext) -> FastAPI:
-    """Return the node's ASGI app; every route needs an authenticated caller."""
+def create_app(
+    ctx: NodeContext,
+    *,
+    allocation_source: AllocationSource | None = None,
+    background: BackgroundWork | None = None,
+) -> FastAPI:
+    """Return the node's ASGI app; every route needs an authenticated caller.
+
+    ``allocation_source`` is how Get key with key IDs asks an owning station for its
+    pending allocations (None: it cannot, and an unknown key ID is a 503).
+    """
 
     @asynccontextmanager
     async def lifespan(_: FastAPI) -> AsyncIterator[None]:
-        background = Background(ctx) if ctx.settings.server.background_work else None
         if background:
             background.start()
         flusher = asyncio.create_task(_flush_refusals(ctx))
@@ -91,8 +110,8 @@ def create_app(ctx: NodeContext) -> FastAPI:
         redoc_url=None,
     )
     app.state.ctx = ctx
-    app.state.peers = PeerClient(ctx.settings)
-    app.state.allocation_source = app.state.peers  # delivery's port to the owning station
+    app.state.allocation_source = allocation_source
+    app.state.peers = allocation_source  # until routes/etsi.py reads allocation_source
     app.state.ca_cert = x509.load_pem_x509_certificate(ctx.settings.tls.ca.read_bytes())
     errors.install(app)
     for router in ROUTERS:

@@ -1,4 +1,5 @@
-"""The auditor's search over the ledger: by time, event and what entries name."""
+"""The auditor's reads of the ledger: entries by index, and search by time, event and
+what entries name."""
 
 from __future__ import annotations
 
@@ -31,7 +32,7 @@ class Filters:
 def exported(index: int, entry: bytes) -> dict[str, Any]:
     """An entry as the API and exports show it: index, canonical bytes, decoded object.
 
-    Stored bytes that no longer decode (a damaged or altered row) are shown as they are,
+    Stored bytes that do not decode (a damaged or altered row) are shown as they are,
     with ``entry`` null, so a verifier can name them instead of the export failing.
     """
     try:
@@ -39,6 +40,17 @@ def exported(index: int, entry: bytes) -> dict[str, Any]:
     except ValueError:
         decoded = None
     return {"index": index, "entry_b64": base64.b64encode(entry).decode(), "entry": decoded}
+
+
+def entries(ctx: NodeContext, start: int, stop: int) -> list[dict[str, Any]]:
+    """Entries ``start <= index < stop``, oldest first, as :func:`exported` shows them."""
+    with ctx.db.read() as s:
+        rows = s.execute(
+            select(LedgerEntry.idx, LedgerEntry.entry)
+            .where(LedgerEntry.idx >= start, LedgerEntry.idx < stop)
+            .order_by(LedgerEntry.idx)
+        ).all()
+    return [exported(int(i), bytes(e)) for i, e in rows]
 
 
 def _query(filters: Filters, after: int | None) -> Select[int, bytes]:

@@ -1,11 +1,10 @@
-"""Start and stop a node's background loops (threads) with the web app's lifespan."""
+"""A node's background loops (threads), started and stopped with the web app's lifespan
+by the composition root (:mod:`keystrata.server`)."""
 
 from __future__ import annotations
 
 import contextlib
 import logging
-import os
-import socket
 import threading
 from collections.abc import Callable
 from datetime import timedelta
@@ -22,22 +21,22 @@ from keystrata.relay import scheduler, segments
 from keystrata.restore import loop
 from keystrata.storage import leases
 
-log = logging.getLogger("keystrata.workers")
+log = logging.getLogger("keystrata.node")
 
 
 class Background:
     """The loops of one worker process: outbox delivery everywhere, the scheduler on a
     relay (only while this process holds the lease), segment expiry on a station."""
 
-    def __init__(self, ctx: NodeContext) -> None:
+    def __init__(self, ctx: NodeContext, peers: PeerClient) -> None:
         self.ctx = ctx
-        self.holder = f"{socket.gethostname()}:{os.getpid()}:{id(self):x}"
+        self.peers = peers
+        self.holder = leases.new_holder()
         self.stop_event = threading.Event()
         #: Set when this process commits a new outbox message, or to stop.
         self.wake = threading.Event()
         self._unwake: Callable[[], None] | None = None
         self.threads: list[threading.Thread] = []
-        self.peers = PeerClient(ctx.settings)
 
     def start(self) -> None:
         self._unwake = outbox.wake_on_commit(self.ctx.db, self.wake)
@@ -71,7 +70,6 @@ class Background:
         self.wake.set()
         for t in self.threads:
             t.join(timeout=10)
-        self.peers.close()
 
     def _loop(self, name: str, step: Callable[[], object], idle: float) -> None:
         # The outbox loop also wakes when a commit of this process enqueued a message;

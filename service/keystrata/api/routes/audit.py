@@ -8,7 +8,6 @@ from datetime import datetime
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Query, Request
-from sqlalchemy import select
 
 from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
@@ -16,11 +15,9 @@ from keystrata.context import NodeContext
 from keystrata.delivery import accounting
 from keystrata.errors import InvalidInput, NotFound
 from keystrata.ids import ID_PATTERN
-from keystrata.ledger import checkpoints, search
-from keystrata.ledger.chain import StoredTree
+from keystrata.ledger import checkpoints, proofs, search
 from keystrata.ledger.entries import Event, Ref
 from keystrata.registry.specs import PrincipalRole
-from keystrata.storage.models import LedgerEntry
 
 router = APIRouter(prefix="/api/v1/audit", tags=["audit"])
 
@@ -85,13 +82,7 @@ def list_entries(
     """Entries ``start <= index < end`` (at most 1000): index, the canonical bytes in
     Base64 and the decoded entry."""
     stop = start + MAX_ENTRIES if end is None else min(end, start + MAX_ENTRIES)
-    with _ctx(request).db.read() as s:
-        rows = s.execute(
-            select(LedgerEntry.idx, LedgerEntry.entry)
-            .where(LedgerEntry.idx >= start, LedgerEntry.idx < stop)
-            .order_by(LedgerEntry.idx)
-        ).all()
-    return {"entries": [search.exported(int(i), bytes(e)) for i, e in rows]}
+    return {"entries": search.entries(_ctx(request), start, stop)}
 
 
 def _moment(name: str, value: str | None) -> datetime | None:
@@ -154,15 +145,6 @@ def search_entries(
     return {"entries": page, "next_after": cursor}
 
 
-def _tree_size(s: Any, size: int | None) -> int:
-    current, _ = StoredTree(s).head()
-    if size is None:
-        return current
-    if size > current:
-        raise InvalidInput(f"tree_size: the ledger holds {current} entries")
-    return size
-
-
 @router.get(
     "/proofs/inclusion",
     summary="RFC 9162 inclusion proof",
@@ -172,11 +154,7 @@ def _tree_size(s: Any, size: int | None) -> int:
 def inclusion_proof(
     request: Request, _: Auditor, index: Index, tree_size: Index | None = None
 ) -> dict[str, Any]:
-    with _ctx(request).db.read() as s:
-        size = _tree_size(s, tree_size)
-        if index >= size:
-            raise InvalidInput(f"index: must be below tree_size {size}")
-        proof = StoredTree(s).inclusion_proof(index, size)
+    size, proof = proofs.inclusion(_ctx(request), index, tree_size)
     return {
         "index": index,
         "tree_size": size,
@@ -193,11 +171,7 @@ def inclusion_proof(
 def consistency_proof(
     request: Request, _: Auditor, first: Index, second: Index | None = None
 ) -> dict[str, Any]:
-    with _ctx(request).db.read() as s:
-        size = _tree_size(s, second)
-        if not 0 < first <= size:
-            raise InvalidInput(f"first: must be between 1 and {size}")
-        proof = StoredTree(s).consistency_proof(first, size)
+    size, proof = proofs.consistency(_ctx(request), first, second)
     return {"first": first, "second": size, "proof": [base64.b64encode(p).decode() for p in proof]}
 
 
