@@ -34,11 +34,11 @@ from typing import Any
 
 import click
 
-from keystrata_client._keys import AsyncKeyClient
 from keystrata_client._tls import TlsIdentity
 from keystrata_client.emulators.config import ConfigError
 from keystrata_client.emulators.encryptor_config import EncryptorConfig, load_encryptor_config
 from keystrata_client.emulators.encryptors import EncryptorEmulator, PairStats
+from keystrata_client.keys import AsyncKeyClient
 
 __all__ = ["EXIT_MISMATCH", "build_emulator", "main", "table"]
 

@@ -48,8 +48,8 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime
 
 from keystrata_client._errors import ApiError, KeystrataClientError, TransportError
-from keystrata_client._keys import AsyncKeyClient, KeyContainer, UncertainDeliveryError
 from keystrata_client._tls import TlsIdentity
+from keystrata_client.keys import AsyncKeyClient, KeyContainer, UncertainDeliveryError
 
 __all__ = ["EncryptorEmulator", "EncryptorPairSpec", "PairStats"]
 
