@@ -1,8 +1,7 @@
-"""Time and randomness, passed in so that tests can be exact."""
+"""Time, passed in so that tests can be exact."""
 
 from __future__ import annotations
 
-import os
 from datetime import UTC, datetime
 from typing import Protocol
 
@@ -16,14 +15,3 @@ class Clock(Protocol):
 class SystemClock:
     def now(self) -> datetime:
         return datetime.now(UTC)
-
-
-class RandomSource(Protocol):
-    def bytes(self, n: int) -> bytes:
-        """Return ``n`` bytes from a cryptographically secure source."""
-        ...
-
-
-class SystemRandom:
-    def bytes(self, n: int) -> bytes:
-        return os.urandom(n)

@@ -9,7 +9,8 @@ import uuid
 from datetime import UTC, datetime, timedelta
 
 from helpers import ledger_events, snapshot
-from keystrata.links.blocks import BlockIn, encode_record
+from keystrata_client import LinkBlock
+from keystrata_client._blocks import encode_binary
 
 URL = "/api/v1/links/link-a/blocks"
 
@@ -48,8 +49,8 @@ def test_json_blocks_are_stored_and_counted(station, api) -> None:
 def test_binary_blocks_and_harmless_resend(station, api) -> None:
     mod = api(station)("mod-link-a")
     now = datetime.now(UTC)
-    blocks = [BlockIn(str(uuid.uuid4()), os.urandom(4096), 0.03, 1e-9, now) for _ in range(5)]
-    body = b"".join(encode_record(b) for b in blocks)
+    blocks = [LinkBlock(str(uuid.uuid4()), os.urandom(4096), 0.03, 1e-9, now) for _ in range(5)]
+    body = encode_binary(blocks)  # the SDK's encoder, as QKD modules use it
     headers = {"content-type": "application/octet-stream"}
     r = mod.post(URL, content=body, headers=headers)
     assert r.status_code == 200, r.text
@@ -114,7 +115,7 @@ def test_bad_blocks_change_nothing(station, api) -> None:
         assert r.status_code == status, (body, r.text)
         assert "message" in r.json()
     binary = {"content-type": "application/octet-stream"}
-    record = encode_record(BlockIn(str(uuid.uuid4()), b"k" * 64, 0.01, 1e-9, datetime.now(UTC)))
+    record = encode_binary([LinkBlock(str(uuid.uuid4()), b"k" * 64, 0.01, 1e-9, datetime.now(UTC))])
     for body in (
         record[:30],
         record[:-1],

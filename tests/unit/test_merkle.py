@@ -32,7 +32,6 @@ from hypothesis import strategies as st
 
 from keystrata.ledger.merkle import (
     EMPTY_ROOT,
-    MemoryStore,
     ProofError,
     SubtreeStore,
     append,
@@ -46,6 +45,22 @@ from keystrata.ledger.merkle import (
 )
 
 Range = tuple[int, int]
+
+
+class MemoryStore:
+    """A dict-backed :class:`SubtreeStore`."""
+
+    def __init__(self) -> None:
+        self.hashes: dict[tuple[int, int], bytes] = {}
+
+    def get(self, level: int, index: int) -> bytes:
+        """Return ``H(level, index)``; raise ``KeyError`` when it is not stored."""
+        return self.hashes[(level, index)]
+
+    def put(self, rows: Sequence[tuple[int, int, bytes]]) -> None:
+        """Store the ``(level, index, hash)`` rows that :func:`append` returned."""
+        for level, index, digest in rows:
+            self.hashes[(level, index)] = digest
 
 
 # ------------------------------------------------- RFC 9162 definitions, naively

@@ -75,22 +75,6 @@ class SubtreeStore(Protocol):
     def get(self, level: int, index: int) -> bytes: ...
 
 
-class MemoryStore:
-    """A dict-backed :class:`SubtreeStore`, for tests and small tools."""
-
-    def __init__(self) -> None:
-        self.hashes: dict[tuple[int, int], bytes] = {}
-
-    def get(self, level: int, index: int) -> bytes:
-        """Return ``H(level, index)``; raise ``KeyError`` when it is not stored."""
-        return self.hashes[(level, index)]
-
-    def put(self, rows: Sequence[tuple[int, int, bytes]]) -> None:
-        """Store the ``(level, index, hash)`` rows that :func:`append` returned."""
-        for level, index, digest in rows:
-            self.hashes[(level, index)] = digest
-
-
 # ---------------------------------------------------------------- hashing (2.1.1)
 
 

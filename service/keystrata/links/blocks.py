@@ -52,17 +52,6 @@ class BlockIn:
     produced_at: datetime
 
 
-def canonical_uuid(value: str) -> str:
-    """Return the lower-case hyphenated form of a UUID string (RFC 9562 section 4).
-
-    Raises:
-        InvalidInput: not a UUID in its 36-character hyphenated form.
-    """
-    if len(value) != 36:
-        raise ValueError("must be a UUID in 8-4-4-4-12 hexadecimal form")
-    return str(uuid.UUID(value))
-
-
 def validate_block(
     block: BlockIn, *, where: str, max_block_bytes: int, now: datetime
 ) -> list[dict[str, str]]:
@@ -83,20 +72,6 @@ def validate_block(
     elif block.produced_at > now + FUTURE_SKEW:
         bad("produced_at", "lies in the future beyond the allowed clock skew of 5 minutes")
     return problems
-
-
-def encode_record(block: BlockIn) -> bytes:
-    """Encode one block as a version-1 binary record."""
-    micros = (block.produced_at - _EPOCH) // timedelta(microseconds=1)
-    header = _HEADER.pack(
-        RECORD_VERSION,
-        uuid.UUID(block.block_id).bytes,
-        micros,
-        block.qber,
-        block.epsilon,
-        len(block.key),
-    )
-    return header + block.key
 
 
 def decode_batch(data: bytes, *, max_block_bytes: int, max_blocks: int) -> Iterator[BlockIn]:
