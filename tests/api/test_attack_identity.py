@@ -1,4 +1,4 @@
-"""Attacks on identity, written from the attacker's side (issue 11, problem 6).
+"""Attacks on identity, written from the attacker's side.
 
 * a holder of a revoked operator certificate: refused at the TLS handshake, and also
   when the certificate is revoked while the node runs (the node reloads the CRL);
@@ -35,7 +35,7 @@ from helpers import ledger_events, snapshot
 from keystrata.crypto.pki import PkiDir, fingerprint_sha256
 from keystrata.errors import PeerUnavailable
 from keystrata.loopback.configs import write_config
-from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.pki import PkiFiles, make_pki
 from keystrata.loopback.processes import NodeProcess, prepare_node, run_cli
 from peerstub import PeerStub
 
@@ -49,12 +49,10 @@ OPERATORS = ("ops-ada", "ops-eve", "ops-mallory")
 @pytest.fixture(scope="module")
 def own_pki(tmp_path_factory: pytest.TempPathFactory) -> PkiFiles:
     """A PKI of this module only: revoking here never touches the session's PKI."""
-    folder = PkiDir(tmp_path_factory.mktemp("revoking-pki") / "ca")
-    folder.init("Revocation Test CA")
-    folder.issue_node("station-a", ["127.0.0.1", "localhost"])
-    for name in OPERATORS:
-        folder.issue_client(name, "operator")
-    return PkiFiles(dir=folder.path, foreign_dir=folder.path)
+    folder = tmp_path_factory.mktemp("revoking-pki") / "ca"
+    return make_pki(
+        folder, "Revocation Test CA", ["station-a"], dict.fromkeys(OPERATORS, "operator")
+    )
 
 
 def _handshake(url: str, pki: PkiFiles, name: str) -> int | None:

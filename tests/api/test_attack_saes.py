@@ -1,4 +1,4 @@
-"""Attacks by SAEs, from the attacker's side (issue: trust boundaries): an SAE of a
+"""Attacks by SAEs, from the attacker's side: an SAE of a
 station that the pair's registry entry does not name takes key as master, or names a
 slave the pair does not allow, or drains the pair's daily quota so that the other
 encryptors of the pair get nothing. Through the API (ETSI GS QKD 014 routes) with real

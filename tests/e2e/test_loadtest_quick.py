@@ -1,4 +1,4 @@
-"""The load test script (``python -m loadtest``, issue 6) in its ``--quick`` mode: real
+"""The load test script (``python -m loadtest``) in its ``--quick`` mode: real
 processes, two workers per station on PostgreSQL, 8 SAE clients, 150 keys. It keeps the
 script working; the full run (64 clients, 20,000 keys) is ``make load``."""
 

@@ -1,5 +1,5 @@
-"""Attacks by someone who can write a station's database but does not hold its KEK
-(issue: trust boundaries), from the attacker's side: re-point a waiting key to another
+"""Attacks by someone who can write a station's database but does not hold its KEK,
+from the attacker's side: re-point a waiting key to another
 slave, a segment to another owner, or put back an older sealed value. The sealed value
 binds its row's authorisation fields (``storage/sealed.py``), so it no longer opens: no
 key leaves, the SAE gets the standard's 401 (or 503 at the owner), and the attempt is

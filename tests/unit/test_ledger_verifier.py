@@ -45,7 +45,8 @@ from cryptography.exceptions import InvalidSignature
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 from cryptography.hazmat.primitives.serialization import Encoding, PublicFormat
 
-from conftest import PkiFiles
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, prepare_node
 from keystrata_client import KeystrataClientError, OperatorClient, TlsIdentity
 from keystrata_client.audit import AuditClient, Report, verify_export, write_export
 from keystrata_client.audit._tree import (
@@ -58,7 +59,6 @@ from keystrata_client.audit._tree import (
 )
 from keystrata_client.audit.cli import main as cli_main
 from keystrata_client.audit.verify import verify_signature
-from processes import NodeProcess, prepare_node
 
 ORIGIN = "relay-vela"
 EVENTS = (
@@ -274,7 +274,7 @@ def test_v1_entries_verify_and_say_they_have_no_chain(export: Callable[..., Expo
 
 
 def test_v1_then_v2_entries_verify(tmp_path: Path) -> None:
-    # A ledger written by the older version and continued by the newer one: the first v2
+    # A ledger whose entries start in format 1 and go on in format 2: the first format-2
     # entry records the leaf hash of the last v1 entry.
     old = make_entries(4, version=1)
     body = json.loads(make_entries(6)[5])

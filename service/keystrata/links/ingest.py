@@ -135,8 +135,8 @@ def _store(
     fresh_blocks = list(fresh.values())
     bits = 0
     # Sealed in slices, each inserted before the next is sealed (same transaction, so
-    # still all or nothing): a 16 MiB batch no longer holds a sealed copy of every block
-    # and the statement's parameters for all of them at once beside the request body.
+    # still all or nothing), so a 16 MiB batch never holds a sealed copy of every block and
+    # the statement's parameters for all of them at once beside the request body.
     for i in range(0, len(fresh_blocks), INSERT_SLICE_BLOCKS):
         rows: list[dict[str, Any]] = [
             {
