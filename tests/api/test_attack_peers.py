@@ -1,6 +1,7 @@
 """Attacks by nodes on each other, written from the attacker's side. Station C is a
-partner of station B in pair-bc only; it is hostile and knows the bytes of pair-bc. Whoever holds the relay's certificate can send relay
-messages but does not hold the link keys. Each test asserts that the attempt is refused,
+partner of station B in pair-bc only; it is hostile and knows the bytes of pair-bc.
+Whoever holds the relay's certificate can send relay messages but does not hold the
+link keys. Each test asserts that the attempt is refused,
 nothing changed, no key left, and the attempt is recorded.
 
 In-process network of real nodes on real SQLite and PostgreSQL databases
