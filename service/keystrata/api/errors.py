@@ -1,6 +1,6 @@
 """One handler turns every error into the JSON error object ``{"message", "details"}``
-(the shape ETSI GS QKD 014 uses for its error object), without echoing any input value:
-a rejected value might be key material."""
+(ETSI GS QKD 014's error object, :class:`keystrata.delivery.schemas.ErrorBody`, on every
+route), without echoing any input value: a rejected value might be key material."""
 
 from __future__ import annotations
 
@@ -10,20 +10,12 @@ from typing import Any
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
-from pydantic import BaseModel, ConfigDict
 from starlette.exceptions import HTTPException
 
+from keystrata.delivery.schemas import ErrorBody
 from keystrata.errors import KeystrataError
 
 log = logging.getLogger("keystrata.api")
-
-
-class ErrorObject(BaseModel):
-    """The body of every error answer (the shape of ETSI GS QKD 014's Error object)."""
-
-    model_config = ConfigDict(extra="forbid", title="Error")
-    message: str
-    details: list[dict[str, Any]] | None = None
 
 
 #: What each error status means on this API, for the OpenAPI document.
@@ -45,9 +37,9 @@ def error_responses(*statuses: int) -> dict[int | str, dict[str, Any]]:
     (a method the path does not allow, say) has the same body. Naming ``4XX`` also keeps
     FastAPI from documenting a 422 answer that the handler below never gives."""
     out: dict[int | str, dict[str, Any]] = {
-        s: {"model": ErrorObject, "description": _MEANING[s]} for s in sorted(statuses)
+        s: {"model": ErrorBody, "description": _MEANING[s]} for s in sorted(statuses)
     }
-    out["4XX"] = {"model": ErrorObject, "description": "Any other client error"}
+    out["4XX"] = {"model": ErrorBody, "description": "Any other client error"}
     return out
 
 

@@ -13,9 +13,10 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Depends, Request, Response
 from prometheus_client.exposition import choose_encoder
 
-from keystrata.api.errors import ErrorObject, error_responses
+from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
 from keystrata.context import NodeContext
+from keystrata.delivery.schemas import ErrorBody
 from keystrata.errors import Unavailable
 from keystrata.observability import metrics, readiness
 from keystrata.observability.http import RequestMetrics
@@ -72,7 +73,7 @@ def live(_: Live) -> dict[str, str]:
     responses=error_responses(401, 403)
     | {
         503: {
-            "model": ErrorObject,
+            "model": ErrorBody,
             "description": "a check failed; `details` names each failing check",
         }
     },
