@@ -22,7 +22,7 @@ from keystrata.api.tls import ClientCertHttpToolsProtocol
 from keystrata.config import CONFIG_ENV, Settings, load_settings
 from keystrata.context import NodeContext
 from keystrata.crypto import tls
-from keystrata.crypto.pki import load_certificate
+from keystrata.crypto.certificates import load_certificate
 from keystrata.crypto.revocation import read_crl
 from keystrata.errors import ConfigError, InvalidInput
 from keystrata.node.lifecycle import open_node

@@ -123,7 +123,7 @@ def test_retired_principal_is_unknown(station, api) -> None:
 
 
 def test_pinned_fingerprint_must_match(station, api, pki) -> None:
-    from keystrata.crypto.pki import fingerprint_sha256
+    from keystrata.crypto.certificates import fingerprint_sha256
 
     ops = api(station)("ops-ada")
     wrong = "0" * 64

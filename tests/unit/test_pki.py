@@ -27,9 +27,10 @@ from cryptography.hazmat.primitives import hashes, serialization
 from cryptography.hazmat.primitives.asymmetric import ec
 
 from keystrata.cli.pki_cmd import pki as pki_group
-from keystrata.crypto import pki
+from keystrata.crypto import certificates, pki
 from keystrata.crypto.pki import IssuedCert, PkiDir
 from keystrata.errors import AlreadyExists, InvalidInput
+from tlskit import client_context, handshake
 
 OPENSSL = "/usr/bin/openssl"
 NOW = datetime(2026, 12, 1, 12, 0, 0, tzinfo=UTC)
@@ -38,7 +39,7 @@ ECDSA_WITH_SHA256 = "1.2.840.10045.4.3.2"
 # RFC 5280 section 4.2.1.12 (from memory): id-kp-serverAuth, id-kp-clientAuth
 SERVER_AUTH = "1.3.6.1.5.5.7.3.1"
 CLIENT_AUTH = "1.3.6.1.5.5.7.3.2"
-# Ours: 2.25 + the UUID of keystrata.crypto.pki.NODE_MARKER_UUID (checked below).
+# Ours: 2.25 + the UUID of keystrata.crypto.certificates.NODE_MARKER_UUID (checked below).
 NODE_MARKER = "2.25.38127369015564861991866485585501522055"
 
 
@@ -176,7 +177,9 @@ def test_extended_key_usage(ca: IssuedCert, node: IssuedCert, client: IssuedCert
     assert not _ext(node, x509.ExtendedKeyUsage).critical
     # RFC 5280 4.2.1.12: callers authenticate as TLS clients only, never with the marker.
     assert _eku(client) == [CLIENT_AUTH]
-    assert pki.carries_node_marker(_cert(node)) and not pki.carries_node_marker(_cert(client))
+    assert certificates.carries_node_marker(_cert(node)) and not certificates.carries_node_marker(
+        _cert(client)
+    )
     with pytest.raises(x509.ExtensionNotFound):
         _ext(ca, x509.ExtendedKeyUsage)
 
@@ -184,10 +187,10 @@ def test_extended_key_usage(ca: IssuedCert, node: IssuedCert, client: IssuedCert
 def test_node_marker_is_the_uuid_under_the_2_25_arc() -> None:
     # ITU-T X.667 section 6.3 (also RFC 4122 / RFC 9562; from memory): the OID of a UUID
     # is "2.25." followed by its 128 bits read as one unsigned decimal integer.
-    u = uuid.UUID(pki.NODE_MARKER_UUID)
+    u = uuid.UUID(certificates.NODE_MARKER_UUID)
     assert u.version == 4 and u.variant == uuid.RFC_4122  # a random UUID
-    assert pki.NODE_MARKER.dotted_string == f"2.25.{int.from_bytes(u.bytes, 'big')}"
-    assert pki.NODE_MARKER.dotted_string == NODE_MARKER
+    assert certificates.NODE_MARKER.dotted_string == f"2.25.{int.from_bytes(u.bytes, 'big')}"
+    assert certificates.NODE_MARKER.dotted_string == NODE_MARKER
 
 
 def test_subject_alternative_name(node: IssuedCert, client: IssuedCert) -> None:
@@ -262,7 +265,7 @@ def test_every_role_can_be_issued(ca: IssuedCert, role: str) -> None:
     cert = _cert(pki.issue_client_cert(ca, f"caller-{role}", role, now=NOW))
     [unit] = cert.subject.get_attributes_for_oid(x509.NameOID.ORGANIZATIONAL_UNIT_NAME)
     assert unit.value == role
-    assert not pki.carries_node_marker(cert)
+    assert not certificates.carries_node_marker(cert)
 
 
 def test_no_client_certificate_for_peers(ca: IssuedCert) -> None:
@@ -319,20 +322,22 @@ def test_load_ca_round_trip_and_refusals(
 
 def test_subject_common_name_reads_pem_and_der(node: IssuedCert) -> None:
     der = _cert(node).public_bytes(serialization.Encoding.DER)
-    assert pki.subject_common_name(node.cert_pem) == "relay-1"
-    assert pki.subject_common_name(der) == "relay-1"
+    assert certificates.subject_common_name(node.cert_pem) == "relay-1"
+    assert certificates.subject_common_name(der) == "relay-1"
     with pytest.raises(InvalidInput):
-        pki.subject_common_name(node.key_pem)
+        certificates.subject_common_name(node.key_pem)
 
 
 def test_fingerprint_is_sha256_of_der(tmp_path: Path, node: IssuedCert) -> None:
     der = _cert(node).public_bytes(serialization.Encoding.DER)
-    assert pki.fingerprint_sha256(node.cert_pem) == hashlib.sha256(der).hexdigest()
+    assert certificates.fingerprint_sha256(node.cert_pem) == hashlib.sha256(der).hexdigest()
     # Outside cross-check: OpenSSL prints "sha256 Fingerprint=AB:CD:...".
     path = tmp_path / "node.crt"
     path.write_bytes(node.cert_pem)
     out = _openssl("x509", "-in", str(path), "-noout", "-fingerprint", "-sha256").stdout
-    assert out.strip().split("=", 1)[1].replace(":", "").lower() == pki.fingerprint_sha256(der)
+    assert out.strip().split("=", 1)[1].replace(":", "").lower() == certificates.fingerprint_sha256(
+        der
+    )
 
 
 # --- the folder helper --------------------------------------------------------------------
@@ -399,14 +404,14 @@ def test_keys_are_created_0600_and_never_chmodded(
 def test_init_refuses_to_replace_a_ca_unless_forced(tmp_path: Path) -> None:
     folder = PkiDir(tmp_path)
     first = folder.init("Test CA")
-    before = pki.fingerprint_sha256(first.cert.read_bytes())
+    before = certificates.fingerprint_sha256(first.cert.read_bytes())
     with pytest.raises(AlreadyExists):
         folder.init("Test CA")
-    assert pki.fingerprint_sha256(first.cert.read_bytes()) == before
+    assert certificates.fingerprint_sha256(first.cert.read_bytes()) == before
     # A key file loosened by hand is replaced by a new 0600 file, not rewritten in place.
     first.key.chmod(0o644)
     second = folder.init("Test CA", force=True)
-    assert pki.fingerprint_sha256(second.cert.read_bytes()) != before
+    assert certificates.fingerprint_sha256(second.cert.read_bytes()) != before
     assert _mode(second.key) == 0o600
 
 
@@ -487,25 +492,11 @@ def test_openssl_rejects_a_certificate_from_another_ca(pki_files: PkiDir, tmp_pa
     assert "OK" not in result.stdout
 
 
-def _handshake(client: ssl.SSLContext, server: ssl.SSLContext, hostname: str) -> dict[str, str]:
+def _accepted_client_subject(
+    client: ssl.SSLContext, server: ssl.SSLContext, hostname: str
+) -> dict[str, str]:
     """Run a TLS handshake in memory; return the subject of the client the server accepted."""
-    c_in, c_out, s_in, s_out = (ssl.MemoryBIO() for _ in range(4))
-    c = client.wrap_bio(c_in, c_out, server_hostname=hostname)
-    s = server.wrap_bio(s_in, s_out, server_side=True)
-    pending = [c, s]
-    for _ in range(10):
-        for end in list(pending):
-            try:
-                end.do_handshake()
-                pending.remove(end)
-            except ssl.SSLWantReadError:
-                pass
-        s_in.write(c_out.read())
-        c_in.write(s_out.read())
-        if not pending:
-            break
-    assert not pending
-    peer = s.getpeercert()
+    peer = handshake(client, server, hostname).getpeercert()
     assert peer
     # Python's ssl gives the subject as a tuple of RDNs, each a tuple of (name, value).
     return {name: value for rdn in peer["subject"] for name, value in rdn}  # type: ignore[str-unpack]
@@ -518,16 +509,16 @@ def _contexts(
     server.load_cert_chain(folder.path / "relay-1.crt", folder.path / "relay-1.key")
     server.load_verify_locations(folder.ca_cert_path)
     server.verify_mode = ssl.CERT_REQUIRED
-    client = ssl.SSLContext(ssl.PROTOCOL_TLS_CLIENT)
-    client.load_verify_locations(folder.ca_cert_path)
     where = client_dir or folder.path
-    client.load_cert_chain(where / f"{client_stem}.crt", where / f"{client_stem}.key")
+    client = client_context(
+        folder.ca_cert_path, where / f"{client_stem}.crt", where / f"{client_stem}.key"
+    )
     return client, server
 
 
 def test_mutual_tls_handshake_with_issued_certificates(pki_files: PkiDir) -> None:
     client, server = _contexts(pki_files, "sae-a1")
-    assert _handshake(client, server, "localhost") == {
+    assert _accepted_client_subject(client, server, "localhost") == {
         "commonName": "sae-a1",
         "organizationalUnitName": "sae",
     }
@@ -539,7 +530,7 @@ def test_mutual_tls_refuses_a_client_from_another_ca(pki_files: PkiDir, tmp_path
     other.issue_client("stranger", "sae")
     client, server = _contexts(pki_files, "stranger", client_dir=other.path)
     with pytest.raises(ssl.SSLError):
-        _handshake(client, server, "localhost")
+        _accepted_client_subject(client, server, "localhost")
 
 
 # --- the CLI ------------------------------------------------------------------------------
@@ -552,7 +543,7 @@ def test_cli_init_issue_and_show(tmp_path: Path) -> None:
     assert result.exit_code == 0, result.output
     assert f"{folder}/ca.crt" in result.output
     assert f"{folder}/ca.key" in result.output
-    fingerprint = pki.fingerprint_sha256((tmp_path / "pki" / "ca.crt").read_bytes())
+    fingerprint = certificates.fingerprint_sha256((tmp_path / "pki" / "ca.crt").read_bytes())
     assert fingerprint in result.output
 
     args = ["issue-node", "--dir", folder, "--node-id", "relay-1"]
@@ -574,7 +565,7 @@ def test_cli_init_issue_and_show(tmp_path: Path) -> None:
         "IP:127.0.0.1",
         "DNS:localhost",
         "serverAuth, clientAuth",
-        pki.fingerprint_sha256(node_crt.read_bytes()),
+        certificates.fingerprint_sha256(node_crt.read_bytes()),
     ):
         assert text in result.output
 

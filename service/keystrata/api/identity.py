@@ -21,7 +21,7 @@ from cryptography.x509.oid import NameOID
 from fastapi import Request
 
 from keystrata.context import NodeContext
-from keystrata.crypto.pki import carries_node_marker
+from keystrata.crypto.certificates import carries_node_marker
 from keystrata.crypto.revocation import CrlWatch
 from keystrata.errors import Forbidden, InvalidInput, Unauthenticated
 from keystrata.registry import principals

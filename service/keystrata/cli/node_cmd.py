@@ -9,8 +9,8 @@ import click
 
 from keystrata.cli.common import config_option, console, handled, settings_from
 from keystrata.config import Settings
+from keystrata.crypto.certificates import fingerprint_sha256, subject_common_name
 from keystrata.crypto.kek import read_kek, write_new_kek
-from keystrata.crypto.pki import fingerprint_sha256, subject_common_name
 from keystrata.errors import AlreadyExists, InvalidInput
 from keystrata.node import kek_rotation
 from keystrata.node.lifecycle import initialise, load_keyring, open_node

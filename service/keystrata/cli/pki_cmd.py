@@ -20,14 +20,8 @@ from cryptography.hazmat.primitives import hashes
 from cryptography.x509.oid import ExtendedKeyUsageOID
 
 from keystrata.crypto import revocation
-from keystrata.crypto.pki import (
-    CLIENT_ROLES,
-    NODE_MARKER,
-    PkiDir,
-    WrittenFiles,
-    fingerprint_sha256,
-    load_certificate,
-)
+from keystrata.crypto.certificates import NODE_MARKER, fingerprint_sha256, load_certificate
+from keystrata.crypto.pki import CLIENT_ROLES, PkiDir, WrittenFiles
 from keystrata.errors import KeystrataError
 
 DEFAULT_CA_NAME = "Example Network CA"

@@ -11,8 +11,8 @@ section 3.2), X.509 v3 profiles from RFC 5280:
 * node: CN is the node ID, OU ``node``; ``subjectAltName`` (4.2.1.6) with a dNSName per
   host name and an iPAddress per IP literal; ``extKeyUsage`` serverAuth and clientAuth
   (4.2.1.12), because nodes serve their API and also call their peers, and the node
-  marker :data:`NODE_MARKER` (below): only a certificate with it may act as a peer, and
-  a certificate with it may act as nothing else.
+  marker (:data:`keystrata.crypto.certificates.NODE_MARKER`): only a certificate with it
+  may act as a peer, and a certificate with it may act as nothing else.
 * client: CN is the caller's name, OU its role (``sae``, ``operator``, ``auditor``,
   ``qkd-module``, ``monitor``); ``extKeyUsage`` clientAuth only, never the node marker.
   There is no client certificate for role ``peer``: peers present node certificates.
@@ -30,6 +30,7 @@ and deployments keep the CA key offline once the certificates are issued.
 
 This module lives beside :mod:`keystrata.crypto.hazmat` rather than inside it: it is an
 operator tool run before a node starts, and never touches key material of the QKD links.
+Reading and checking certificates is :mod:`keystrata.crypto.certificates`.
 """
 
 from __future__ import annotations
@@ -50,6 +51,7 @@ from cryptography.hazmat.primitives import hashes, serialization
 from cryptography.hazmat.primitives.asymmetric import ec
 from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
 
+from keystrata.crypto.certificates import NODE_MARKER, load_certificate, require_ca_certificate
 from keystrata.errors import AlreadyExists, InvalidInput
 
 ROLES: tuple[str, ...] = ("sae", "operator", "auditor", "peer", "qkd-module", "monitor")
@@ -57,12 +59,6 @@ ROLES: tuple[str, ...] = ("sae", "operator", "auditor", "peer", "qkd-module", "m
 #: with their node certificates, which carry the node marker).
 CLIENT_ROLES: tuple[str, ...] = tuple(r for r in ROLES if r != "peer")
 NODE_OU = "node"
-#: Extended key usage that marks a node certificate. It is an OID of our own, minted
-#: from a random UUID (1caf106d-5d72-4532-a0ba-c813df0c8887) under the 2.25 arc: ITU-T
-#: X.667 section 6.3 (also RFC 4122 / RFC 9562) lets anyone form "2.25." followed by the
-#: UUID read as one unsigned integer, without registering it.
-NODE_MARKER_UUID = "1caf106d-5d72-4532-a0ba-c813df0c8887"
-NODE_MARKER = x509.ObjectIdentifier("2.25.38127369015564861991866485585501522055")
 CLOCK_SKEW = timedelta(minutes=5)
 CA_VALID_DAYS = 3650
 # 825 days is the longest lifetime browsers accepted for TLS server certificates from
@@ -70,9 +66,9 @@ CA_VALID_DAYS = 3650
 LEAF_VALID_DAYS = 825
 # RFC 5280 Appendix A.1: ub-common-name INTEGER ::= 64
 _CN_MAX = 64
-_LABEL = r"[A-Za-z0-9](?:[A-Za-z0-9-]{0,61}[A-Za-z0-9])?"
+_HOST_LABEL = r"[A-Za-z0-9](?:[A-Za-z0-9-]{0,61}[A-Za-z0-9])?"
 # A host name of LDH labels (RFC 1123 section 2.1); wildcards are not issued to nodes.
-_HOSTNAME = re.compile(rf"(?=.{{1,253}}\Z){_LABEL}(?:\.{_LABEL})*\Z")
+_HOSTNAME = re.compile(rf"(?=.{{1,253}}\Z){_HOST_LABEL}(?:\.{_HOST_LABEL})*\Z")
 # File stems in a PKI folder: no path separators, no leading dot, nothing shell-unfriendly.
 _FILE_STEM = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}\Z")
 
@@ -98,8 +94,8 @@ def create_ca(
     Raises InvalidInput for an empty or over-long name, non-positive ``valid_days`` or a
     naive ``now``.
     """
-    name = _name(common_name)
-    validity = _validity(valid_days, now)
+    name = _subject_name(common_name)
+    validity = _validity_window(valid_days, now)
     key = ec.generate_private_key(ec.SECP256R1())
     # pathLen 0: this CA signs end-entity certificates only, never another CA.
     extensions: list[tuple[x509.ExtensionType, bool]] = [
@@ -130,7 +126,7 @@ def issue_node_cert(
     # dict.fromkeys drops repeats (after case folding) while keeping the caller's order.
     san = x509.SubjectAlternativeName(list(dict.fromkeys(_general_name(h) for h in hosts)))
     ekus = [ExtendedKeyUsageOID.SERVER_AUTH, ExtendedKeyUsageOID.CLIENT_AUTH, NODE_MARKER]
-    return _issue_leaf(ca, _name(node_id, NODE_OU), ekus, san, valid_days, now)
+    return _issue_leaf(ca, _subject_name(node_id, NODE_OU), ekus, san, valid_days, now)
 
 
 def issue_client_cert(
@@ -157,7 +153,7 @@ def issue_client_cert(
             details=[{"field": "role", "allowed": list(CLIENT_ROLES)}],
         )
     ekus = [ExtendedKeyUsageOID.CLIENT_AUTH]
-    return _issue_leaf(ca, _name(common_name, role), ekus, None, valid_days, now)
+    return _issue_leaf(ca, _subject_name(common_name, role), ekus, None, valid_days, now)
 
 
 def load_ca(cert_pem: bytes, key_pem: bytes) -> IssuedCert:
@@ -166,11 +162,11 @@ def load_ca(cert_pem: bytes, key_pem: bytes) -> IssuedCert:
     Raises InvalidInput for an unreadable certificate or key, a certificate that is not a
     CA, a key that is not P-256, or a key that does not match the certificate.
     """
-    cert, _ = _parse_ca(cert_pem, key_pem)
+    cert, _ = _checked_ca(cert_pem, key_pem)
     return IssuedCert(cert_pem=cert.public_bytes(serialization.Encoding.PEM), key_pem=key_pem)
 
 
-def _parse_ca(
+def _checked_ca(
     cert_pem: bytes, key_pem: bytes
 ) -> tuple[x509.Certificate, ec.EllipticCurvePrivateKey]:
     cert = load_certificate(cert_pem)
@@ -183,52 +179,8 @@ def _parse_ca(
         raise InvalidInput("the CA key is not an ECDSA P-256 key")
     if key.public_key() != cert.public_key():
         raise InvalidInput("the CA key does not match the CA certificate")
-    try:
-        is_ca = cert.extensions.get_extension_for_class(x509.BasicConstraints).value.ca
-    except x509.ExtensionNotFound:
-        is_ca = False
-    if not is_ca:
-        raise InvalidInput("the certificate is not a CA certificate (basicConstraints cA)")
+    require_ca_certificate(cert)
     return cert, key
-
-
-def load_certificate(data: bytes) -> x509.Certificate:
-    """Return the certificate parsed from PEM or DER. Raises InvalidInput otherwise."""
-    try:
-        if data.lstrip().startswith(b"-----BEGIN"):
-            return x509.load_pem_x509_certificate(data)
-        return x509.load_der_x509_certificate(data)
-    except ValueError as exc:
-        # Say nothing of the content: the caller may have passed a key file by mistake.
-        raise InvalidInput("not a PEM or DER X.509 certificate") from exc
-
-
-def subject_common_name(cert_pem_or_der: bytes) -> str:
-    """Return the subject's common name.
-
-    Raises InvalidInput for a non-certificate or a subject without exactly one CN.
-    """
-    attrs = load_certificate(cert_pem_or_der).subject.get_attributes_for_oid(NameOID.COMMON_NAME)
-    if len(attrs) != 1:
-        raise InvalidInput("the certificate subject must carry exactly one common name")
-    return str(attrs[0].value)
-
-
-def carries_node_marker(cert: x509.Certificate) -> bool:
-    """Return whether ``cert`` carries the node marker in its extended key usage."""
-    try:
-        usages = cert.extensions.get_extension_for_class(x509.ExtendedKeyUsage).value
-    except x509.ExtensionNotFound:
-        return False
-    return NODE_MARKER in usages
-
-
-def fingerprint_sha256(cert_pem: bytes) -> str:
-    """Return the lower-case hex SHA-256 of the certificate's DER encoding.
-
-    Accepts PEM or DER. Raises InvalidInput for anything that is not a certificate.
-    """
-    return load_certificate(cert_pem).fingerprint(hashes.SHA256()).hex()
 
 
 class WrittenFiles(NamedTuple):
@@ -349,12 +301,12 @@ class PkiDir:
         cert_path = self.path / f"{stem}.crt"
         # Key first: a crash in between leaves a key with no certificate, never a
         # certificate whose key is missing.
-        _write_atomic(key_path, issued.key_pem, secret=True)
-        _write_atomic(cert_path, issued.cert_pem, secret=False)
+        write_atomic(key_path, issued.key_pem, secret=True)
+        write_atomic(cert_path, issued.cert_pem, secret=False)
         return WrittenFiles(cert=cert_path, key=key_path)
 
 
-def _write_atomic(path: Path, data: bytes, *, secret: bool) -> None:
+def write_atomic(path: Path, data: bytes, *, secret: bool) -> None:
     """Write ``data`` to a new temporary file beside ``path``, then rename it into place."""
     tmp = path.with_name(f".{path.name}.{secrets.token_hex(8)}.tmp")
     # O_EXCL with a fresh name: a planted file or symlink makes the open fail instead of
@@ -385,8 +337,8 @@ def _issue_leaf(
     valid_days: int,
     now: datetime | None,
 ) -> IssuedCert:
-    validity = _validity(valid_days, now)
-    ca_cert, ca_key = _parse_ca(ca.cert_pem, ca.key_pem)
+    validity = _validity_window(valid_days, now)
+    ca_cert, ca_key = _checked_ca(ca.cert_pem, ca.key_pem)
     if validity[1] > ca_cert.not_valid_after_utc:
         raise InvalidInput("the certificate would outlive its CA; shorten validity or renew the CA")
     ca_ski = ca_cert.extensions.get_extension_for_class(x509.SubjectKeyIdentifier).value
@@ -433,7 +385,7 @@ def _sign(
     return IssuedCert(cert_pem=cert.public_bytes(pem), key_pem=key_pem)
 
 
-def _name(common_name: str, unit: str | None = None) -> x509.Name:
+def _subject_name(common_name: str, unit: str | None = None) -> x509.Name:
     if not common_name or len(common_name) > _CN_MAX or common_name != common_name.strip():
         raise InvalidInput(
             "a common name must be 1-64 characters without leading or trailing spaces"
@@ -444,7 +396,7 @@ def _name(common_name: str, unit: str | None = None) -> x509.Name:
     return x509.Name(attrs)
 
 
-def _validity(valid_days: int, now: datetime | None) -> tuple[datetime, datetime]:
+def _validity_window(valid_days: int, now: datetime | None) -> tuple[datetime, datetime]:
     if valid_days <= 0:
         raise InvalidInput("valid_days must be a positive number of days")
     if now is None:

@@ -32,7 +32,8 @@ from cryptography.exceptions import InvalidSignature
 from cryptography.hazmat.primitives import hashes, serialization
 from cryptography.hazmat.primitives.asymmetric import ec
 
-from keystrata.crypto.pki import PkiDir, _write_atomic, load_certificate
+from keystrata.crypto.certificates import load_certificate
+from keystrata.crypto.pki import PkiDir, write_atomic
 from keystrata.errors import InvalidInput
 
 log = logging.getLogger("keystrata.revocation")
@@ -169,7 +170,7 @@ def _issue(
     for revoked in entries:
         builder = builder.add_revoked_certificate(revoked)
     crl = builder.sign(key, hashes.SHA256())
-    _write_atomic(path, crl.public_bytes(serialization.Encoding.PEM), secret=False)
+    write_atomic(path, crl.public_bytes(serialization.Encoding.PEM), secret=False)
     return CrlWritten(path, number + 1, next_update, len(entries), added)
 
 

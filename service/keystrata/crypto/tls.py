@@ -33,7 +33,7 @@ from cryptography import x509
 from cryptography.x509.oid import NameOID
 
 from keystrata.config import TlsSection
-from keystrata.crypto.pki import carries_node_marker
+from keystrata.crypto.certificates import carries_node_marker
 from keystrata.crypto.revocation import CrlWatch
 
 log = logging.getLogger("keystrata.tls")
