@@ -317,7 +317,7 @@ def _allocate(ctx: NodeContext, asks: Sequence[_Ask]) -> list[list[DeliveredKey]
                 planned.append((i, keys))
             if not planned:
                 continue
-            cut = stock.cut()
+            taken = stock.destroy_taken()
             records = []
             expires = now + timedelta(seconds=pair.key_ttl_seconds)
             for i, keys in planned:
@@ -329,7 +329,7 @@ def _allocate(ctx: NodeContext, asks: Sequence[_Ask]) -> list[list[DeliveredKey]
                 )
                 records += mine
                 results[i] = [
-                    DeliveredKey(key_id, key_bytes(cut, ranges)) for key_id, ranges in keys
+                    DeliveredKey(key_id, key_bytes(taken, ranges)) for key_id, ranges in keys
                 ]
                 entries.append(
                     (

@@ -3,14 +3,14 @@ station).
 
 Ranges are decided first from the segments' counters (``used``, ``length``) alone;
 only the segments a transaction actually takes bytes from are loaded, opened and
-re-sealed, once each, however many keys the transaction cuts from them. The stock of
+re-sealed, once each, however many keys the transaction takes from them. The stock of
 ready key can be large; a Get key costs the same whatever its size.
 """
 
 from __future__ import annotations
 
 import logging
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 from sqlalchemy import select
 from sqlalchemy.orm import Session
@@ -18,8 +18,8 @@ from sqlalchemy.orm import Session
 from keystrata.crypto.hazmat import Keyring
 from keystrata.errors import SealBroken, StoredKeyBroken
 from keystrata.ranges import Range
+from keystrata.storage.front import LOCKED, segment_front, store_segment
 from keystrata.storage.models import PairSegment
-from keystrata.storage.sealed import segment_context
 
 log = logging.getLogger("keystrata.delivery")
 
@@ -117,31 +117,42 @@ class OwnedStock:
             n -= step
         return out
 
-    def cut(self) -> dict[str, tuple[int, bytes]]:
-        """Destroy the taken bytes: re-seal what is left of each touched segment.
-        Returns segment -> (offset of the first taken byte, the taken bytes)."""
+    def destroy_taken(self) -> dict[str, TakenBytes]:
+        """Open each touched segment once, take the bytes :meth:`take` planned and re-seal
+        the rest (:mod:`keystrata.storage.front`). Returns the taken bytes by segment.
+
+        Raises:
+            StoredKeyBroken: a segment does not open in its row (tampered).
+        """
         out = {}
         for f in self.front:
             if not f.taken:
                 continue
             row = self.session.get(PairSegment, f.segment_id)
-            assert row is not None and row.sealed is not None and row.used == f.start
+            assert row is not None and row.used == f.start
+            front = segment_front(self.keyring, row, LOCKED)
             try:
-                rest = self.keyring.open(row.sealed, segment_context(row, f.start))
+                taken = front.take(Range(f.segment_id, f.start, f.taken))
             except SealBroken:
                 log.error("segment %s does not open in its row: tampered", row.segment_id)
                 raise StoredKeyBroken() from None
-            out[f.segment_id] = (f.start, rest[: f.taken])
-            row.used = f.start + f.taken
-            rest = rest[f.taken :]
-            row.sealed = self.keyring.seal(rest, segment_context(row, row.used)) if rest else None
+            store_segment(row, front)
+            out[f.segment_id] = TakenBytes(f.start, taken)
         return out
 
 
-def key_bytes(cut: dict[str, tuple[int, bytes]], ranges: list[Range]) -> bytes:
-    """The bytes of ``ranges`` out of what :meth:`OwnedStock.cut` returned."""
+@dataclass(frozen=True)
+class TakenBytes:
+    """Bytes taken from one segment, which start at its offset ``start``."""
+
+    start: int
+    data: bytes = field(repr=False)
+
+
+def key_bytes(taken: dict[str, TakenBytes], ranges: list[Range]) -> bytes:
+    """The bytes of ``ranges`` out of what :meth:`OwnedStock.destroy_taken` returned."""
     parts = []
     for r in ranges:
-        base, data = cut[r.buffer_id]
-        parts.append(data[r.offset - base : r.offset - base + r.length])
+        part = taken[r.buffer_id]
+        parts.append(part.data[r.offset - part.start : r.offset - part.start + r.length])
     return b"".join(parts)

@@ -9,8 +9,9 @@ must start exactly where its block's consumption stands (``offset == used``):
 * ``offset < used``: those bytes were used already; applying the range would reuse
   link key, so it is refused.
 
-Taking bytes destroys them in the caller's transaction: the block's remaining bytes are
-re-sealed from the new offset (or the sealed value is dropped when nothing is left).
+Taking bytes destroys them in the caller's transaction (:mod:`keystrata.storage.front`):
+the block's remaining bytes are re-sealed from the new offset (or the sealed value is
+dropped when nothing is left).
 """
 
 from __future__ import annotations
@@ -23,8 +24,8 @@ from sqlalchemy.orm import Session
 from keystrata.crypto.hazmat import Keyring
 from keystrata.errors import LinkKeyReused, OutOfOrder
 from keystrata.ranges import Available, Range
+from keystrata.storage.front import Front, Refusals, block_front
 from keystrata.storage.models import LinkBlock
-from keystrata.storage.sealed import block_context
 
 #: Consumption point and sealed remainder of one block, by its primary key (executed on
 #: the session's connection: a plain executemany, not the ORM's bulk update).
@@ -32,6 +33,15 @@ _UPDATE_TAKEN = (
     update(LinkBlock)
     .where(LinkBlock.seq == bindparam("b_seq"))
     .values(used=bindparam("b_used"), sealed=bindparam("b_sealed"))
+)
+
+#: Errors for a range not at the front of its block.
+_REFUSALS = Refusals(
+    ahead=lambda r, used: OutOfOrder(
+        f"not yet: block {r.buffer_id} is consumed up to byte {used} here"
+    ),
+    behind=lambda r, used: LinkKeyReused(),
+    outside=lambda r, used: LinkKeyReused("refused: a range lies outside its block"),
 )
 
 #: Blocks read per query by :func:`available`. A segment of the default size takes
@@ -127,37 +137,28 @@ def take(
     }
     parts: list[bytes] = []
     epsilons: list[float] = []
-    opened: dict[str, tuple[int, bytes]] = {}
+    fronts: dict[str, Front] = {}
     for r in ranges:
         row = rows.get(r.buffer_id)
         if row is None:
             raise OutOfOrder(f"not yet: block {r.buffer_id} of link {link_id} has not arrived")
-        if r.buffer_id not in opened:
+        if r.buffer_id not in fronts:
             if row.sealed is None:
                 raise LinkKeyReused()
-            remainder = keyring.open(row.sealed, block_context(link_id, row.block_id, row.used))
-            opened[r.buffer_id] = (row.used, remainder)
+            fronts[r.buffer_id] = block_front(
+                keyring,
+                link_id,
+                row.block_id,
+                sealed=row.sealed,
+                used=row.used,
+                length=row.length,
+                refusals=_REFUSALS,
+            )
             epsilons.append(row.epsilon)
-        start, remainder = opened[r.buffer_id]
-        if r.offset < start:
-            raise LinkKeyReused()
-        if r.offset > start:
-            raise OutOfOrder(f"not yet: block {r.buffer_id} is consumed up to byte {start} here")
-        if r.length <= 0 or r.offset + r.length > row.length:
-            raise LinkKeyReused("refused: a range lies outside its block")
-        parts.append(remainder[: r.length])
-        opened[r.buffer_id] = (start + r.length, remainder[r.length :])
+        parts.append(fronts[r.buffer_id].take(r))
     changes = [
-        {
-            "b_seq": rows[block_id].seq,
-            "b_used": new_used,
-            "b_sealed": (
-                keyring.seal(remainder, block_context(link_id, block_id, new_used))
-                if remainder
-                else None
-            ),
-        }
-        for block_id, (new_used, remainder) in opened.items()
+        {"b_seq": rows[block_id].seq, "b_used": front.used, "b_sealed": front.sealed_rest()}
+        for block_id, front in fronts.items()
     ]
     session.connection().execute(_UPDATE_TAKEN, changes)
     return b"".join(parts), epsilons
