@@ -1,5 +1,5 @@
 """What every benchmark shares: the figure record, a run's workspace (temporary folder,
-test PKI, PostgreSQL databases it made), percentiles and process memory readings.
+PKI, PostgreSQL databases it made), percentiles and process memory readings.
 
 Everything a run makes lives under one temporary folder and in PostgreSQL databases
 named ``ksbench_<pid>_<n>``; :class:`Workspace` removes both when the run ends, whatever
@@ -9,13 +9,11 @@ happened.
 from __future__ import annotations
 
 import contextlib
-import importlib
 import itertools
 import math
 import os
 import shutil
 import signal
-import sys
 import tempfile
 import time
 from collections.abc import Iterator, Sequence
@@ -24,8 +22,10 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from keystrata.loopback.network import CLIENTS, NETWORK
+from keystrata.loopback.pki import PkiFiles, make_pki
+
 REPO = Path(__file__).resolve().parent.parent
-TESTS = REPO / "tests"
 PG_URL = os.environ.get(
     "KEYSTRATA_TEST_PG_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/postgres"
 )
@@ -33,19 +33,6 @@ PG_URL = os.environ.get(
 #: setting (deploy/examples/relay.toml), so each commit waits for the disk;
 #: ``python -m bench --sqlite-synchronous NORMAL`` shows what that wait costs.
 SQLITE_SYNCHRONOUS = "FULL"
-
-#: Certificates of the bench PKI: client name -> role (node certificates are added
-#: per node ID). The names are those the end-to-end test helpers expect.
-CLIENTS = {
-    "ops-ada": "operator",
-    "mod-link-a": "qkd-module",
-    "mod-link-b": "qkd-module",
-    "sae-a1": "sae",
-    "sae-a2": "sae",
-    "sae-b1": "sae",
-    "sae-b2": "sae",
-}
-NODE_IDS = ("relay-1", "station-a", "station-b")
 
 
 @dataclass(frozen=True)
@@ -97,15 +84,6 @@ def percentile(values: Sequence[float], q: float) -> float:
     return ordered[min(rank, len(ordered)) - 1]
 
 
-def test_helper(name: str) -> Any:
-    """Import an end-to-end helper module of the test suite (``processes``,
-    ``conftest``): the bench starts nodes exactly as the end-to-end tests do. They are
-    test code, outside the typed packages, so they come in untyped."""
-    if str(TESTS) not in sys.path:
-        sys.path.insert(0, str(TESTS))
-    return importlib.import_module(name)
-
-
 def process_tree(pid: int) -> list[int]:
     """``pid`` and all its descendants (read from /proc)."""
     children: dict[int, list[int]] = {}
@@ -141,13 +119,13 @@ def memory_kib(pid: int, field: str) -> int:
 
 
 class Workspace:
-    """A run's temporary folder, its test PKI and the PostgreSQL databases it made."""
+    """A run's temporary folder, its PKI and the PostgreSQL databases it made."""
 
     def __init__(self) -> None:
         self.root = Path(tempfile.mkdtemp(prefix="ksbench-"))
         self._pg: list[str] = []
         self._n = itertools.count()
-        self._pki: Any = None
+        self._pki: PkiFiles | None = None
 
     def folder(self, name: str) -> Path:
         path = self.root / f"{name}-{next(self._n)}"
@@ -155,19 +133,11 @@ class Workspace:
         return path
 
     @property
-    def pki(self) -> Any:
-        """The run's test PKI (a ``conftest.PkiFiles``), made on first use."""
+    def pki(self) -> PkiFiles:
+        """The run's PKI (the loopback network's node and client names), made on first
+        use."""
         if self._pki is None:
-            from keystrata.crypto.pki import PkiDir
-
-            ours = PkiDir(self.root / "pki")
-            ours.init("Bench Network CA")
-            for node in NODE_IDS:
-                ours.issue_node(node, ["127.0.0.1", "localhost"])
-            for name, role in CLIENTS.items():
-                ours.issue_client(name, role)
-            conftest = test_helper("conftest")
-            self._pki = conftest.PkiFiles(dir=ours.path, foreign_dir=ours.path)
+            self._pki = make_pki(self.root / "pki", "Bench Network CA", NETWORK, CLIENTS)
         return self._pki
 
     def sqlite_url(self, name: str) -> str:

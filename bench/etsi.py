@@ -22,8 +22,9 @@ from typing import Any
 import httpx
 
 from bench import loadgen, network, profiling
-from bench.common import REPO, Figure, Workspace, test_helper
+from bench.common import REPO, Figure, Workspace
 from bench.loadgen import LoadResult
+from keystrata.loopback.processes import free_port
 
 CLIENTS = 16
 #: Requests per second the stock of ready key is sized for (runs dry above it).
@@ -45,7 +46,7 @@ class Ceiling:
     """The bare endpoint as its own uvicorn process (python -m bench.ceilings)."""
 
     def __init__(self, ws: Workspace, workers: int) -> None:
-        self.port = test_helper("processes").free_port()
+        self.port = free_port()
         self.url = f"https://127.0.0.1:{self.port}"
         pki = ws.pki
         log = ws.folder("ceiling") / "ceiling.log"
@@ -70,7 +71,7 @@ class Ceiling:
                 stdout=out,
                 stderr=subprocess.STDOUT,
             )
-        tls = network.identity(ws, "sae-a1").ssl_context()
+        tls = ws.pki.identity("sae-a1").ssl_context()
         deadline = time.monotonic() + 30
         while True:
             try:
@@ -178,8 +179,8 @@ def measure(
         owned = network.station_views(ws, nodes)["station-a"]["owned_ready_bits"]
         stock = f"station-a held {int(owned) / 8e6:.2f} MB of owned ready key at the start"
         ceiling = Ceiling(ws, workers)
-        master = network.identity(ws, "sae-a1").ssl_context()
-        slave = network.identity(ws, "sae-b1").ssl_context()
+        master = ws.pki.identity("sae-a1").ssl_context()
+        slave = ws.pki.identity("sae-b1").ssl_context()
 
         def enc() -> tuple[str, bytes]:
             return ENC_PATH, ENC_BODY

@@ -17,8 +17,9 @@ from typing import Any
 from sqlalchemy import insert
 
 from bench import common, loadgen, network, profiling
-from bench.common import Figure, Workspace, test_helper
+from bench.common import Figure, Workspace
 from keystrata.crypto.hazmat import Keyring
+from keystrata.loopback.processes import prepare_node
 from keystrata.storage.db import Database
 from keystrata.storage.models import LinkBlock
 from keystrata.storage.sealed import block_context
@@ -64,7 +65,6 @@ class Blocks:
 
 def _start_node(ws: Workspace) -> Any:
     """A relay node on SQLite with link-a and its QKD module provisioned."""
-    prepare_node = test_helper("processes").prepare_node
     folder = ws.folder("ingest")
     with network.node_settings():
         node = prepare_node(folder, ws.pki, "relay-1", "relay", f"sqlite:///{folder}/relay-1.db")
@@ -129,7 +129,7 @@ def measure(
     node = _start_node(ws)
     try:
         source = Blocks(block_bytes, per_request)
-        tls = network.identity(ws, "mod-link-a").ssl_context()
+        tls = ws.pki.identity("mod-link-a").ssl_context()
 
         def push() -> tuple[str, bytes]:
             return PATH, source.body()

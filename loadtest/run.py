@@ -20,6 +20,8 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, stop_all
 from loadtest import network
 from loadtest.clients import Tally, Worker, percentiles, run_clients
 
@@ -56,13 +58,12 @@ def _saes(count: int) -> tuple[list[str], list[str]]:
 
 def _prepare(
     args: argparse.Namespace, folder: Path, dbs: network.Databases
-) -> tuple[dict[str, network.NodeProcess], network.Pki, dict[str, Any]]:
+) -> tuple[dict[str, NodeProcess], PkiFiles, dict[str, Any]]:
     masters, slaves = _saes(args.saes)
     clients = {network.OPERATOR: "operator", "mod-link-a": "qkd-module", "mod-link-b": "qkd-module"}
     clients |= dict.fromkeys(masters + slaves, "sae")
     pki = network.make_pki(folder / "pki", clients)
     urls = dbs.create(list(network.NODES))
-    nodes = network.start_nodes(folder, pki, urls)
     needed_bits = args.keys * KEY_BITS
     # Both stations keep a copy of every segment; the scheduler shares ownership between
     # them, so about half of the ready key is A's to hand out: aim for 2.5 times the need.
@@ -73,7 +74,7 @@ def _prepare(
         "buffer_max_bits": buffer_bits,
     }
     saes = dict.fromkeys(masters, "station-a") | dict.fromkeys(slaves, "station-b")
-    network.provision(nodes, pki, saes, policy)
+    nodes = network.start(folder, pki, urls, saes, policy)
     started = time.perf_counter()
     fed = network.feed_links(nodes, pki, buffer_bits // 8 + 64 * 1024)
     want = args.keys + args.clients * args.number  # what the clients may ask for at most
@@ -95,7 +96,7 @@ def _prepare(
 
 
 def _workers(
-    args: argparse.Namespace, nodes: dict[str, network.NodeProcess], pki: network.Pki
+    args: argparse.Namespace, nodes: dict[str, NodeProcess], pki: PkiFiles
 ) -> list[Worker]:
     masters, slaves = _saes(args.saes)
     return [
@@ -160,7 +161,7 @@ def main(argv: list[str] | None = None) -> int:
     folder = args.workdir or Path(tempfile.mkdtemp(prefix="keystrata-load-"))
     folder.mkdir(parents=True, exist_ok=True)
     dbs = network.Databases(args.pg_url)
-    nodes: dict[str, network.NodeProcess] = {}
+    nodes: dict[str, NodeProcess] = {}
     began = datetime.now(UTC)
     passed = False
     try:
@@ -195,7 +196,7 @@ def main(argv: list[str] | None = None) -> int:
                 "keys_per_request": args.number,
                 "master_saes": args.saes,
                 "max_seconds": args.max_seconds,
-                "station_workers": 2,
+                "station_workers": network.STATION_WORKERS,
                 "database": "postgresql",
             },
             "fill": fill,
@@ -220,8 +221,7 @@ def main(argv: list[str] | None = None) -> int:
         passed = bool(summary["ok"])
         return 0 if passed else 1
     finally:
-        for node in nodes.values():
-            node.stop()
+        stop_all(nodes.values())
         dbs.drop()
         if args.workdir is None and passed:
             shutil.rmtree(folder, ignore_errors=True)

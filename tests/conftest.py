@@ -29,8 +29,8 @@ from anyio.from_thread import BlockingPortal, start_blocking_portal
 
 from keystrata.config import Settings, load_settings
 from keystrata.context import NodeContext
-from keystrata.crypto.kek import write_new_kek
-from keystrata.crypto.pki import PkiDir
+from keystrata.loopback.configs import write_config
+from keystrata.loopback.pki import PkiFiles, cert_pin, make_pki
 from keystrata.node.lifecycle import initialise, load_keyring, open_node
 from keystrata.storage import migrate
 from keystrata.storage.db import Database, make_engine
@@ -59,22 +59,10 @@ def pytest_collection_modifyitems(items: list[pytest.Item]) -> None:
 
 
 @dataclass(frozen=True)
-class PkiFiles:
-    dir: Path
+class SuitePki(PkiFiles):
+    """The suite's PKI, and a folder of a foreign CA (certificates our CA never issued)."""
+
     foreign_dir: Path
-
-    @property
-    def ca(self) -> Path:
-        return self.dir / "ca.crt"
-
-    def cert(self, name: str) -> Path:
-        return self.dir / f"{name}.crt"
-
-    def key(self, name: str) -> Path:
-        return self.dir / f"{name}.key"
-
-    def pem(self, name: str) -> str:
-        return self.cert(name).read_text()
 
 
 #: Client certificates of the test PKI: name -> role written in the certificate.
@@ -96,30 +84,16 @@ NODES = ("relay-1", "station-a", "station-b", "station-c")
 PEER_ALIASES = {"peer-relay": "relay-1"}
 
 
-def cert_pin(folder: Path, name: str) -> str:
-    """The ``cert_sha256`` pin of certificate ``name`` in a PKI folder (hex SHA-256 of its
-    DER, as RFC 5280 certificates are fingerprinted: common practice)."""
-    from keystrata.crypto.pki import fingerprint_sha256
-
-    return fingerprint_sha256((folder / f"{name}.crt").read_bytes())
-
-
 @pytest.fixture(scope="session")
-def pki(tmp_path_factory: pytest.TempPathFactory) -> PkiFiles:
+def pki(tmp_path_factory: pytest.TempPathFactory) -> SuitePki:
     base = tmp_path_factory.mktemp("pki")
-    ours = PkiDir(base / "ca")
-    ours.init("Test Network CA")
-    for node in NODES:
-        ours.issue_node(node, ["127.0.0.1", "localhost"])
-    for name, role in CLIENTS.items():
-        ours.issue_client(name, role)
+    ours = make_pki(base / "ca", "Test Network CA", NODES, CLIENTS)
     for alias, node in PEER_ALIASES.items():
         for suffix in (".crt", ".key"):
-            shutil.copy(ours.path / f"{node}{suffix}", ours.path / f"{alias}{suffix}")
-    foreign = PkiDir(base / "foreign")
-    foreign.init("Some Other CA")
-    foreign.issue_client("ops-ada", "operator")  # same subject, wrong CA
-    return PkiFiles(dir=ours.path, foreign_dir=foreign.path)
+            shutil.copy(ours.dir / f"{node}{suffix}", ours.dir / f"{alias}{suffix}")
+    # Same subject as our operator, wrong CA.
+    foreign = make_pki(base / "foreign", "Some Other CA", (), {"ops-ada": "operator"})
+    return SuitePki(dir=ours.dir, foreign_dir=foreign.dir)
 
 
 # ---------------------------------------------------------------- databases
@@ -336,51 +310,6 @@ def db_url(db_factory: Callable[[], str]) -> str:
 # ---------------------------------------------------------------- nodes
 
 
-def write_config(
-    folder: Path,
-    *,
-    node_id: str,
-    role: str,
-    db_url: str,
-    pki: PkiFiles,
-    port: int = 8443,
-    extra: str = "",
-    server_extra: str = "",
-) -> Path:
-    """Write a node's TOML file (and a fresh KEK) into ``folder``; return the TOML path."""
-    folder.mkdir(parents=True, exist_ok=True)
-    kek = folder / f"{node_id}.kek"
-    if not kek.exists():
-        write_new_kek(kek)
-    path = folder / f"{node_id}.toml"
-    path.write_text(f"""
-[node]
-id = "{node_id}"
-role = "{role}"
-
-[server]
-host = "127.0.0.1"
-port = {port}
-{server_extra}
-
-[tls]
-ca = "{pki.ca}"
-cert = "{pki.cert(node_id)}"
-key = "{pki.key(node_id)}"
-
-[database]
-url = "{db_url}"
-sqlite_synchronous = "NORMAL"
-# Test nodes trade power-loss durability for speed; the guard would refuse it otherwise.
-accept_data_loss_on_power_failure = true
-
-[kek]
-file = "{kek}"
-{extra}
-""")
-    return path
-
-
 @dataclass
 class Node:
     settings: Settings
@@ -569,13 +498,13 @@ ApiFactory = Callable[[str | None], AsgiClient]
 @pytest.fixture
 def api(pki: PkiFiles) -> Iterator[Callable[[Node], ApiFactory]]:
     """``api(node)(name)`` is a client presenting test certificate ``name`` (None: none)."""
-    from keystrata.api.app import create_app
+    from keystrata.server import compose
 
     clients: list[AsgiClient] = []
     with start_blocking_portal() as portal:
 
         def for_node(node: Node) -> ApiFactory:
-            app = create_app(node.ctx)
+            app = compose(node.ctx)
 
             def as_(name: str | None) -> AsgiClient:
                 pem = None if name is None else pki.pem(name)

@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Any
 
-from conftest import PkiFiles
+from keystrata.loopback.pki import PkiFiles
 
 
 @dataclass

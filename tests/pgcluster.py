@@ -18,7 +18,7 @@ from pathlib import Path
 
 import psycopg
 
-from processes import free_port
+from keystrata.loopback.processes import free_port
 
 
 def _bin(name: str) -> str | None:

@@ -15,10 +15,11 @@ from typing import Any
 
 from sqlalchemy import select
 
-from conftest import Node, NodeFactory, cert_pin
+from conftest import Node, NodeFactory
 from keystrata.errors import KeystrataError
 from keystrata.links import ingest
 from keystrata.links.blocks import BlockIn
+from keystrata.loopback.pki import cert_pin
 from keystrata.node import dispatch
 from keystrata.peering import outbox
 from keystrata.registry import provisioning

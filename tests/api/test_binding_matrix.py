@@ -19,8 +19,9 @@ from typing import Any
 import pytest
 from sqlalchemy import select
 
-from conftest import Node, PkiFiles, cert_pin
+from conftest import Node
 from keystrata.api.app import route_table
+from keystrata.loopback.pki import PkiFiles, cert_pin
 from keystrata.peering import outbox
 from keystrata.registry import provisioning
 from keystrata.registry.specs import Kind, PrincipalSpec

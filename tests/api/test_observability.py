@@ -26,12 +26,13 @@ from sqlalchemy import func, select, update
 from test_delivery import _break_ledger  # a trigger that refuses ledger inserts
 
 import relaynet
-from conftest import _pg_admin, cert_pin
+from conftest import _pg_admin
 from helpers import snapshot
 from keystrata import __version__
 from keystrata.crypto.hazmat import Keyring
 from keystrata.delivery import slave_copy
 from keystrata.ledger import checkpoints
+from keystrata.loopback.pki import cert_pin
 from keystrata.node.lifecycle import KEK_CHECK_PLAINTEXT
 from keystrata.registry import provisioning
 from keystrata.registry.specs import Kind, PrincipalSpec
@@ -501,7 +502,7 @@ def test_two_workers_answer_the_same_database_metrics(tmp_path: Path, pki, pg_fa
 
     import httpx
 
-    from processes import prepare_node
+    from keystrata.loopback.processes import prepare_node
 
     node = prepare_node(tmp_path, pki, "station-a", "station", pg_factory())
     node.config.write_text(

@@ -16,12 +16,12 @@ from pathlib import Path
 import pytest
 from sqlalchemy import delete, insert, select, update
 
-from conftest import PkiFiles
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, prepare_node, run_cli
 from keystrata.storage.db import Database
 from keystrata.storage.models import LedgerEntry
 from keystrata_client import ApiError, OperatorClient, TlsIdentity
 from keystrata_client.audit import AuditClient
-from processes import NodeProcess, prepare_node, run_cli
 
 CHECK = [str(Path(sys.executable).parent / "keystrata-ledger-check")]  # the console script
 

@@ -24,18 +24,19 @@ from pathlib import Path
 import pytest
 from sqlalchemy import select
 
-from conftest import PkiFiles
 from keystrata.config import load_settings
 from keystrata.demo.verify import check_network
+from keystrata.loopback.network import NETWORK as NODES
+from keystrata.loopback.network import NETWORK_LINKS as LINKS
+from keystrata.loopback.network import start_network
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, stop_all
 from keystrata.node.lifecycle import open_node
 from keystrata.storage.db import Database
 from keystrata.storage.models import LinkBlock, PairSegment
 from keystrata.storage.sealed import block_context, segment_context
 from keystrata_client import LinkBlock as Block
 from keystrata_client import ModuleClient, OperatorClient, TlsIdentity
-from processes import NETWORK as NODES
-from processes import NETWORK_LINKS as LINKS
-from processes import NodeProcess, start_network, stop_all
 
 KILLS = int(os.environ.get("KEYSTRATA_KILLS", "6"))
 RELAY_SETTINGS = """

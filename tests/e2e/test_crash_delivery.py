@@ -35,10 +35,11 @@ from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 from test_crash import RELAY_SETTINGS, _feed, _settled, ident
 from test_ledger_tree import mth
 
-from conftest import PkiFiles
+from keystrata.loopback.network import NETWORK, start_network
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, stop_all
 from keystrata_client import ApiError, KeystrataClientError, OperatorClient, TransportError
 from keystrata_client.keys import KeyClient, UncertainDeliveryError
-from processes import NETWORK, NodeProcess, start_network, stop_all
 
 KILLS = int(os.environ.get("KEYSTRATA_KILLS", "4"))
 TIMEOUT = 10.0  # the SAE clients' HTTP timeout, seconds

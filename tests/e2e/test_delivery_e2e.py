@@ -27,10 +27,11 @@ from typing import Any
 import httpx
 import pytest
 
-from conftest import PkiFiles
+from keystrata.loopback.network import NETWORK, start_network
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, stop_all
 from keystrata_client import ApiError, OperatorClient, TlsIdentity
 from keystrata_client.keys import KeyClient
-from processes import NETWORK, NodeProcess, start_network, stop_all
 
 RELAY = "\n[relay]\nsegment_bytes = 4096\nmin_segment_bytes = 512\ncycle_seconds = 0.1\n"
 HELD = "[server]\nbackground_work = false\n"

@@ -36,7 +36,7 @@ from test_deploy_files import (
 
 from conftest import PG_URL
 from keystrata.crypto.pki import PkiDir
-from processes import KEYSTRATA, free_port, run_cli
+from keystrata.loopback.processes import KEYSTRATA, free_port, run_cli
 
 #: The health check's role: health, readiness and metrics only.
 MONITOR_ROLE = "monitor"

@@ -15,7 +15,9 @@ from datetime import UTC, datetime
 import httpx
 import pytest
 
-from conftest import PkiFiles, database_for
+from conftest import database_for
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, prepare_node
 from keystrata_client import (
     ApiError,
     LinkBlock,
@@ -23,7 +25,6 @@ from keystrata_client import (
     OperatorClient,
     TlsIdentity,
 )
-from processes import NodeProcess, prepare_node
 
 
 def identity(pki: PkiFiles, name: str) -> TlsIdentity:
@@ -189,7 +190,7 @@ def test_curl_with_the_operator_certificate(station_process, pki) -> None:
 # tests cover both), and each command is a process of its own: SQLite only.
 @pytest.mark.parametrize("station_process", ["sqlite"], indirect=True)
 def test_operator_cli_against_a_running_node(station_process, pki) -> None:
-    from processes import run_cli
+    from keystrata.loopback.processes import run_cli
 
     env = {
         "KEYSTRATA_URL": station_process.url,

@@ -39,10 +39,11 @@ from test_crash_delivery import (
 )
 
 import pgcluster
-from conftest import PkiFiles
+from keystrata.loopback.network import NETWORK, start_network
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, stop_all
 from keystrata_client import ApiError, OperatorClient
 from keystrata_client.keys import KeyClient
-from processes import NETWORK, NodeProcess, start_network, stop_all
 
 pytestmark = [
     pytest.mark.e2e,

@@ -39,16 +39,17 @@ import httpx
 import pytest
 from sqlalchemy import select
 
-from conftest import PkiFiles, _pg_admin, _pg_url
+from conftest import _pg_admin, _pg_url
 from keystrata.config import load_settings
 from keystrata.crypto.pki import PkiDir, issue_client_cert
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, prepare_node
 from keystrata.node.lifecycle import load_keyring
 from keystrata.storage.db import Database
 from keystrata.storage.models import LinkBlock
 from keystrata.storage.sealed import block_context
 from keystrata_client import AsyncModuleClient, OperatorClient, TlsIdentity
 from keystrata_client.emulators import LinkEmulator, LinkSpec, LinkStats, ModelParams
-from processes import NodeProcess, prepare_node
 
 #: The link each test pushes on, and the client certificate of its QKD module.
 MODULES = {"link-a": "mod-link-a", "link-b": "mod-link-b", "link-c": "mod-link-c"}

@@ -34,10 +34,11 @@ from prometheus_client.parser import text_string_to_metric_families
 from sqlalchemy.engine import make_url
 from test_crash import _feed, _settled, ident
 
-from conftest import PkiFiles
+from keystrata.loopback.network import NETWORK, start_network
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, stop_all
 from keystrata_client import ApiError, OperatorClient
 from keystrata_client.keys import KeyClient
-from processes import NETWORK, NodeProcess, start_network, stop_all
 
 SETTINGS = """
 [relay]

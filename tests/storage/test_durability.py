@@ -116,7 +116,7 @@ def test_metrics_text_carries_the_gauge(unsafe: tuple[Node, Database], api) -> N
 
 def test_serve_refuses_sqlite_normal(tmp_path: Path, make_node: NodeFactory) -> None:
     """The real command: `keystrata serve` exits with the message, before listening."""
-    from processes import run_cli
+    from keystrata.loopback.processes import run_cli
 
     url = f"sqlite:///{tmp_path}/a.db"
     node = make_node("station-a", "station", db_url=url)

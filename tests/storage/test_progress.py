@@ -16,10 +16,11 @@ from typing import Any
 import pytest
 from sqlalchemy import select
 
-from conftest import Node, cert_pin
+from conftest import Node
 from keystrata.delivery import enc_keys
 from keystrata.errors import Conflict
 from keystrata.ledger.entries import Event
+from keystrata.loopback.pki import cert_pin
 from keystrata.registry import provisioning
 from keystrata.registry.principals import Caller
 from keystrata.registry.specs import Kind, PrincipalRole, PrincipalSpec

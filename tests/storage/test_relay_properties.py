@@ -26,11 +26,12 @@ from hypothesis import strategies as st
 from sqlalchemy import select
 
 import relaynet
-from conftest import Node, write_config
+from conftest import Node
 from keystrata.config import load_settings
 from keystrata.demo.verify import check_network
 from keystrata.errors import KeystrataError
 from keystrata.ledger import chain
+from keystrata.loopback.configs import write_config
 from keystrata.node.lifecycle import initialise, load_keyring, open_node
 from keystrata.relay import operation, segments
 from keystrata.storage.db import Database

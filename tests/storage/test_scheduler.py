@@ -118,7 +118,8 @@ def test_two_workers_on_postgresql_one_scheduler_acts(tmp_path: Path, pki, pg_fa
     url = db_factory()
     from test_crash import _feed
 
-    from processes import start_network, stop_all
+    from keystrata.loopback.network import start_network
+    from keystrata.loopback.processes import stop_all
 
     extra = "\n[relay]\nsegment_bytes = 2048\nmin_segment_bytes = 512\ncycle_seconds = 0.1\n"
     network = start_network(

@@ -18,7 +18,8 @@ from urllib.parse import unquote
 import httpx
 import pytest
 
-from conftest import PkiFiles
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, free_port, prepare_node
 from keystrata_client import (
     ApiError,
     KeystrataClientError,
@@ -26,7 +27,6 @@ from keystrata_client import (
     TlsIdentity,
     TransportError,
 )
-from processes import NodeProcess, free_port, prepare_node
 
 Handler = Callable[[httpx.Request], httpx.Response]
 

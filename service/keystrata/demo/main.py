@@ -15,7 +15,6 @@ from rich.live import Live
 
 from keystrata.demo import scenario
 from keystrata.demo.audit import audit, ledgers_table, reconciliation_table
-from keystrata.demo.nodes import NodeProcesses, free_ports
 from keystrata.demo.provision import operator_identity, provision
 from keystrata.demo.verify import check_network
 from keystrata.demo.view import Snapshot, encryptors_table, links_table, pairs_table
@@ -27,6 +26,8 @@ from keystrata.demo.workdir import (
     write_configs,
     write_manifest,
 )
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, free_ports, stop_all
 from keystrata_client import OperatorClient, TlsIdentity
 from keystrata_client.emulators import LinkEmulator, LinkSpec, LinkStats, ModelParams
 from keystrata_client.emulators.encryptors import (
@@ -38,6 +39,8 @@ from keystrata_client.emulators.encryptors import (
 # Wide enough for the pool table when the output goes to a file or a pipe.
 console = Console(width=None if sys.stdout.isatty() else 140)
 
+#: Seconds each node gets to answer after it was started.
+START_TIMEOUT = 30.0
 #: Emulated sky: one day every two minutes, starting at dusk.
 TIME_SCALE = 720.0
 SKY_START = datetime(2026, 6, 21, 17, 0, tzinfo=UTC)
@@ -83,10 +86,10 @@ def _link_specs(workdir: Path, nodes: list[DemoNode]) -> list[LinkSpec]:
 
 
 def _read_nodes(
-    nodes: list[DemoNode], identity: TlsIdentity, procs: NodeProcesses, elapsed: float
+    nodes: list[DemoNode], identity: TlsIdentity, procs: list[NodeProcess], elapsed: float
 ) -> Snapshot:
     """Pool levels and pair buffers, as an operator reads them from each node."""
-    snap = Snapshot(pools={}, elapsed=elapsed, dead=procs.dead())
+    snap = Snapshot(pools={}, elapsed=elapsed, dead=[p.node_id for p in procs if not p.running])
     for node in nodes:
         try:
             with OperatorClient(node.url, identity, timeout=3.0) as client:
@@ -115,7 +118,7 @@ def _view(
 async def _watch(
     emulator: LinkEmulator,
     encryptors: EncryptorEmulator,
-    procs: NodeProcesses,
+    procs: list[NodeProcess],
     nodes: list[DemoNode],
     identity: TlsIdentity,
     duration: float | None,
@@ -185,7 +188,7 @@ def _encryptor_specs(workdir: Path, nodes: list[DemoNode]) -> list[EncryptorPair
 
 
 async def _run(
-    workdir: Path, nodes: list[DemoNode], procs: NodeProcesses, duration: float | None
+    workdir: Path, nodes: list[DemoNode], procs: list[NodeProcess], duration: float | None
 ) -> tuple[Snapshot, dict[str, LinkStats], dict[str, PairStats]]:
     identity = operator_identity(workdir)
     emulator = LinkEmulator(
@@ -258,19 +261,25 @@ def demo(duration: float | None, workdir: Path) -> None:
     except ValueError as exc:
         raise click.ClickException(str(exc)) from None
     nodes = _nodes(workdir)
-    procs = NodeProcesses(nodes, workdir / "logs")
+    procs = [
+        NodeProcess(
+            n.node_id, n.config, n.port, workdir / "logs" / f"{n.node_id}.log", START_TIMEOUT
+        )
+        for n in nodes
+    ]
     with console.status("creating the network CA and certificates") as status:
-        build_pki(workdir, nodes)
+        pki = build_pki(workdir, nodes)
         status.update("writing node configs and key-encryption keys")
         write_configs(workdir, nodes)
         status.update("initialising node databases")
         init_databases(nodes)
         manifest = write_manifest(workdir, nodes)
         status.update("starting nodes")
-        procs.start()
+        for proc in procs:
+            proc.launch()
     try:
         with console.status("waiting for the nodes to answer"):
-            procs.wait_ready(operator_identity(workdir))
+            _wait_ready(procs, pki)
         with console.status("provisioning links, pairs and principals"):
             sent = provision(workdir, nodes)
         _intro(workdir, nodes, manifest, sent)
@@ -278,7 +287,7 @@ def demo(duration: float | None, workdir: Path) -> None:
         with console.status("exporting, verifying and reconciling every ledger as an auditor"):
             audited = audit(workdir, nodes)
     finally:
-        procs.stop()
+        stop_all(procs)
     console.print(_view(snap, stats, enc, "final levels (emulator drained)"))
     console.print(ledgers_table(audited))
     console.print(reconciliation_table(audited))
@@ -307,6 +316,16 @@ def demo(duration: float | None, workdir: Path) -> None:
         f"{len(enc)} encryptor pairs, all matching; {len(audited.reports)} ledgers verify "
         f"offline (exports in {workdir / 'audit'}) and every pair reconciles."
     )
+
+
+def _wait_ready(procs: list[NodeProcess], pki: PkiFiles) -> None:
+    """Wait until every node answers the operator.
+
+    Raises:
+        RuntimeError: a node exited or did not answer in time (its log says why).
+    """
+    for proc in procs:
+        proc.start(pki, client=scenario.OPERATOR)
 
 
 def _intro(workdir: Path, nodes: list[DemoNode], manifest: Path, sent: int) -> None:

@@ -6,9 +6,9 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-from keystrata.crypto.pki import fingerprint_sha256
 from keystrata.demo import scenario
 from keystrata.demo.workdir import DemoNode
+from keystrata.loopback.pki import cert_pin
 from keystrata_client import ApiError, OperatorClient, TlsIdentity
 
 
@@ -112,7 +112,7 @@ def _facts_for(node_id: str, pki: Path) -> list[tuple[str, dict[str, Any]]]:
                 "role": "peer",
                 "cert_subject": p,
                 # Peers are pinned to their node certificates.
-                "cert_sha256": fingerprint_sha256((pki / f"{p}.crt").read_bytes()),
+                "cert_sha256": cert_pin(pki, p),
                 "node_id": p,
             },
         )

@@ -11,8 +11,9 @@ from typing import Any
 
 from keystrata.config import load_settings
 from keystrata.crypto.kek import write_new_kek
-from keystrata.crypto.pki import PkiDir, fingerprint_sha256
 from keystrata.demo import scenario
+from keystrata.loopback.configs import node_toml, peers_section
+from keystrata.loopback.pki import PkiFiles, cert_pin, make_pki
 from keystrata.node.lifecycle import initialise, load_keyring
 from keystrata.storage.db import Database
 
@@ -49,18 +50,14 @@ def prepare_folder(workdir: Path) -> None:
     workdir.mkdir(parents=True, exist_ok=True)
 
 
-def build_pki(workdir: Path, nodes: list[DemoNode]) -> PkiDir:
-    pki = PkiDir(workdir / "pki")
-    pki.init(scenario.CA_NAME)
-    for node in nodes:
-        pki.issue_node(node.node_id, ["127.0.0.1", "localhost"])
-    pki.issue_client(scenario.OPERATOR, "operator")
-    pki.issue_client(scenario.AUDITOR, "auditor")
+def build_pki(workdir: Path, nodes: list[DemoNode]) -> PkiFiles:
+    """Make the demo's CA, a certificate per node, and one per person, QKD module and SAE
+    of the scenario, in ``workdir/pki``."""
+    clients = {scenario.OPERATOR: "operator", scenario.AUDITOR: "auditor"}
     for st in scenario.STATIONS:
-        pki.issue_client(st.module, "qkd-module")
-        for sae in st.saes:
-            pki.issue_client(sae, "sae")
-    return pki
+        clients[st.module] = "qkd-module"
+        clients |= dict.fromkeys(st.saes, "sae")
+    return make_pki(workdir / "pki", scenario.CA_NAME, [n.node_id for n in nodes], clients)
 
 
 def _peers(node_id: str, nodes: list[DemoNode]) -> list[DemoNode]:
@@ -71,37 +68,26 @@ def _peers(node_id: str, nodes: list[DemoNode]) -> list[DemoNode]:
 
 
 def write_configs(workdir: Path, nodes: list[DemoNode]) -> None:
+    """Write each node's ``node.toml`` and KEK; paths in it are relative to its folder."""
     for node in nodes:
         folder = node.config.parent
         folder.mkdir(parents=True, exist_ok=True)
         write_new_kek(folder / "kek.b64")
-        peers = "".join(
-            f'\n[[peers]]\nid = "{p.node_id}"\nurl = "{p.url}"\n'
-            for p in _peers(node.node_id, nodes)
+        peers = peers_section({p.node_id: p.url for p in _peers(node.node_id, nodes)})
+        node.config.write_text(
+            node_toml(
+                header=f"# {scenario.ORGANISATION}: node {node.node_id} (demo)",
+                node_id=node.node_id,
+                role=node.role,
+                port=node.port,
+                ca="../pki/ca.crt",
+                cert=f"../pki/{node.node_id}.crt",
+                key=f"../pki/{node.node_id}.key",
+                db_url=f"sqlite:///{node.node_id}.db",
+                kek="kek.b64",
+                extra=f"\n[ledger]\ncheckpoint_seconds = {CHECKPOINT_SECONDS}\n{peers}",
+            )
         )
-        node.config.write_text(f"""# {scenario.ORGANISATION}: node {node.node_id} (demo)
-[node]
-id = "{node.node_id}"
-role = "{node.role}"
-
-[server]
-host = "127.0.0.1"
-port = {node.port}
-
-[tls]
-ca = "../pki/ca.crt"
-cert = "../pki/{node.node_id}.crt"
-key = "../pki/{node.node_id}.key"
-
-[database]
-url = "sqlite:///{node.node_id}.db"
-
-[kek]
-file = "kek.b64"
-
-[ledger]
-checkpoint_seconds = {CHECKPOINT_SECONDS}
-{peers}""")
 
 
 def init_databases(nodes: list[DemoNode]) -> None:
@@ -122,9 +108,7 @@ def init_databases(nodes: list[DemoNode]) -> None:
                     principal_id=scenario.OPERATOR,
                     role=PrincipalRole.OPERATOR,
                     cert_subject=scenario.OPERATOR,
-                    cert_sha256=fingerprint_sha256(
-                        (settings.tls.cert.parent / f"{scenario.OPERATOR}.crt").read_bytes()
-                    ),
+                    cert_sha256=cert_pin(settings.tls.cert.parent, scenario.OPERATOR),
                     description="Ida Varga, network operator",
                 ),
                 actor="local-admin",

@@ -1,4 +1,5 @@
-"""Real node processes for end-to-end tests: `keystrata serve` on loopback ports."""
+"""Node processes on loopback: `keystrata serve` on free 127.0.0.1 ports, started, waited
+for until they answer, stopped (SIGTERM, or SIGKILL as the crash tests do)."""
 
 from __future__ import annotations
 
@@ -9,28 +10,50 @@ import ssl
 import subprocess
 import sys
 import time
-from concurrent.futures import ThreadPoolExecutor
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
 
 import httpx
 
-from conftest import PkiFiles, cert_pin, write_config
+from keystrata.loopback.configs import FAST_SQLITE, write_config
+from keystrata.loopback.pki import PkiFiles
 
+#: The command line of this interpreter's keystrata CLI.
 KEYSTRATA = [sys.executable, "-m", "keystrata"]
+#: The client certificate that asks a starting node whether it answers.
+OPERATOR = "ops-ada"
 
 
 def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
+    """A TCP port free on 127.0.0.1 right now."""
+    return free_ports(1)[0]
+
+
+def free_ports(n: int) -> list[int]:
+    """``n`` distinct TCP ports free on 127.0.0.1 right now."""
+    sockets = []
+    try:
+        for _ in range(n):
+            s = socket.socket()
+            s.bind(("127.0.0.1", 0))
+            sockets.append(s)
+        return [int(s.getsockname()[1]) for s in sockets]
+    finally:
+        for s in sockets:
+            s.close()
 
 
 def run_cli(
     *args: str, check: bool = True, env: dict[str, str] | None = None, timeout: float = 60
 ) -> subprocess.CompletedProcess[str]:
-    result = subprocess.run(
+    """Run ``keystrata *args``; return what it printed and its exit status.
+
+    Raises:
+        RuntimeError: ``check`` and the command failed.
+    """
+    # The project's own CLI, started from this interpreter with fixed arguments.
+    result = subprocess.run(  # noqa: S603
         [*KEYSTRATA, *args],
         capture_output=True,
         text=True,
@@ -38,67 +61,92 @@ def run_cli(
         env={**os.environ, **(env or {})},
     )
     if check and result.returncode != 0:
-        raise AssertionError(
-            f"keystrata {' '.join(args)} failed:\n{result.stdout}\n{result.stderr}"
-        )
+        raise RuntimeError(f"keystrata {' '.join(args)} failed:\n{result.stdout}\n{result.stderr}")
     return result
 
 
 @dataclass
 class NodeProcess:
+    """One node's `keystrata serve` process, its configuration, port and log file."""
+
     node_id: str
     config: Path
     port: int
     log: Path
+    #: Seconds :meth:`start` waits for the node to answer.
+    start_timeout: float = 20.0
     proc: subprocess.Popen[bytes] | None = field(default=None, repr=False)
 
     @property
     def url(self) -> str:
         return f"https://127.0.0.1:{self.port}"
 
+    @property
+    def running(self) -> bool:
+        return self.proc is not None and self.proc.poll() is None
+
     def launch(self) -> NodeProcess:
         """Start the process without waiting for it to answer."""
+        self.log.parent.mkdir(parents=True, exist_ok=True)
         with open(self.log, "ab") as log:
-            self.proc = subprocess.Popen(
+            # The project's own server, started from this interpreter with fixed arguments.
+            self.proc = subprocess.Popen(  # noqa: S603
                 [*KEYSTRATA, "serve", "--config", str(self.config)],
                 stdout=log,
                 stderr=subprocess.STDOUT,
             )
         return self
 
-    def start(self, pki: PkiFiles, timeout: float = 20) -> NodeProcess:
-        """Start the process (unless launched already) and wait until it answers."""
+    def start(
+        self, pki: PkiFiles, timeout: float | None = None, *, client: str = OPERATOR
+    ) -> NodeProcess:
+        """Start the process (unless launched already) and wait until it answers a
+        request from ``client`` (any answer: the TLS handshake and HTTP work).
+
+        Raises:
+            RuntimeError: the process exited, or did not answer within ``timeout``
+                seconds (default :attr:`start_timeout`; it is then killed).
+        """
         if self.proc is None:
             self.launch()
         assert self.proc is not None
         ctx = ssl.create_default_context(cafile=str(pki.ca))
-        ctx.load_cert_chain(str(pki.cert("ops-ada")), str(pki.key("ops-ada")))
-        deadline = time.monotonic() + timeout
+        ctx.load_cert_chain(str(pki.cert(client)), str(pki.key(client)))
+        wait = self.start_timeout if timeout is None else timeout
+        deadline = time.monotonic() + wait
         while time.monotonic() < deadline:
             if self.proc.poll() is not None:
                 self.proc = None
-                raise AssertionError(f"{self.node_id} exited:\n{self.log.read_text()}")
+                raise RuntimeError(f"{self.node_id} exited:\n{self.log.read_text()}")
             try:
                 httpx.get(self.url + "/api/v1/node", verify=ctx, timeout=1)
                 return self
-            except httpx.HTTPError:
+            except (httpx.HTTPError, ssl.SSLError):
                 time.sleep(0.1)
-        self.stop(signal.SIGKILL)
-        raise AssertionError(f"{self.node_id} did not answer:\n{self.log.read_text()}")
+        self.kill()
+        raise RuntimeError(
+            f"{self.node_id} did not answer in {wait:.0f} s:\n{self.log.read_text()}"
+        )
 
     def send(self, sig: int = signal.SIGTERM) -> None:
+        """Send ``sig`` to the running process, without waiting."""
         if self.proc is not None and self.proc.poll() is None:
             self.proc.send_signal(sig)
 
-    def stop(self, sig: int = signal.SIGTERM) -> None:
+    def stop(self, sig: int = signal.SIGTERM, grace: float = 10) -> None:
+        """Send ``sig`` and wait for the process to end (SIGKILL after ``grace`` s)."""
         if self.proc is not None and self.proc.poll() is None:
             self.proc.send_signal(sig)
             try:
-                self.proc.wait(10)
+                self.proc.wait(grace)
             except subprocess.TimeoutExpired:
                 self.proc.kill()
                 self.proc.wait(10)
         self.proc = None
+
+    def kill(self) -> None:
+        """SIGKILL the process and wait for it: a crash, as far as the node can tell."""
+        self.stop(signal.SIGKILL)
 
 
 def prepare_node(
@@ -107,14 +155,27 @@ def prepare_node(
     node_id: str,
     role: str,
     db_url: str,
-    operator: str = "ops-ada",
+    operator: str = OPERATOR,
     *,
     port: int | None = None,
     extra: str = "",
+    server_extra: str = "",
+    database_extra: str = FAST_SQLITE,
 ) -> NodeProcess:
+    """Write the node's configuration into ``folder`` and initialise its database with
+    ``keystrata node init`` (first operator: certificate ``operator``); return the node,
+    not started."""
     port = port or free_port()
     config = write_config(
-        folder, node_id=node_id, role=role, db_url=db_url, pki=pki, port=port, extra=extra
+        folder,
+        node_id=node_id,
+        role=role,
+        db_url=db_url,
+        pki=pki,
+        port=port,
+        extra=extra,
+        server_extra=server_extra,
+        database_extra=database_extra,
     )
     run_cli(
         "node",
@@ -127,134 +188,29 @@ def prepare_node(
         operator,
         "--operator-cert",
         str(pki.cert(operator)),
+        timeout=120,
     )
     return NodeProcess(node_id=node_id, config=config, port=port, log=folder / f"{node_id}.log")
 
 
-def start_all(nodes: list[NodeProcess], pki: PkiFiles) -> None:
+def start_all(nodes: Iterable[NodeProcess], pki: PkiFiles, *, client: str = OPERATOR) -> None:
     """Start several nodes at once and wait until each answers; if one does not, stop
     them all (no node outlives a failed start)."""
+    nodes = list(nodes)
     try:
         for node in nodes:
             node.launch()
         for node in nodes:
-            node.start(pki)
+            node.start(pki, client=client)
     except BaseException:
         stop_all(nodes)
         raise
 
 
-def stop_all(nodes: list[NodeProcess]) -> None:
+def stop_all(nodes: Iterable[NodeProcess]) -> None:
     """Stop several nodes at once (SIGTERM to all, then wait for each)."""
+    nodes = list(nodes)
     for node in nodes:
         node.send(signal.SIGTERM)
     for node in nodes:
         node.stop()
-
-
-#: The relay network of the end-to-end tests: a relay and two stations, one link each.
-NETWORK = {"relay-1": "relay", "station-a": "station", "station-b": "station"}
-NETWORK_LINKS = {"station-a": "link-a", "station-b": "link-b"}
-SAES = {"sae-a1": "station-a", "sae-a2": "station-a", "sae-b1": "station-b", "sae-b2": "station-b"}
-
-
-def start_network(
-    folder: Path,
-    pki: PkiFiles,
-    db_urls: dict[str, str],
-    *,
-    extra: str = "",
-    policy: dict[str, Any] | None = None,
-    saes: bool = False,
-    relay_workers: int = 1,
-) -> dict[str, NodeProcess]:
-    """Start relay-1, station-a and station-b as processes, each knowing the others as
-    peers, and provision them through the operator API: nodes, peers, links, QKD
-    modules, pair-ab (with ``policy``) and, if asked, the test SAEs at the stations."""
-    from keystrata_client import OperatorClient, TlsIdentity
-
-    ports = {n: free_port() for n in NETWORK}
-
-    def prepare(node_id: str, role: str) -> NodeProcess:
-        peers = "".join(
-            f'\n[[peers]]\nid = "{p}"\nurl = "https://127.0.0.1:{port}"\n'
-            for p, port in ports.items()
-            if p != node_id
-        )
-        return prepare_node(
-            folder / node_id,
-            pki,
-            node_id,
-            role,
-            db_urls[node_id],
-            port=ports[node_id],
-            extra=extra + peers,
-        )
-
-    # `keystrata node init` is a process of its own per node: run the three at once.
-    with ThreadPoolExecutor(len(NETWORK)) as pool:
-        jobs = {n: pool.submit(prepare, n, role) for n, role in NETWORK.items()}
-        nodes = {n: job.result() for n, job in jobs.items()}
-    if relay_workers > 1:
-        relay = nodes["relay-1"].config
-        relay.write_text(
-            relay.read_text().replace("[server]\n", f"[server]\nworkers = {relay_workers}\n", 1)
-        )
-    # Nodes that started must not outlive a failed start-up or provisioning.
-    try:
-        start_all(list(nodes.values()), pki)
-        operator = TlsIdentity(ca=pki.ca, cert=pki.cert("ops-ada"), key=pki.key("ops-ada"))
-        for node in nodes.values():
-            with OperatorClient(node.url, operator) as ops:
-                for other, role in NETWORK.items():
-                    if other == node.node_id:
-                        continue
-                    ops.create("nodes", {"node_id": other, "role": role})
-                    ops.create(
-                        "principals",
-                        {
-                            "principal_id": f"peer-{other}",
-                            "role": "peer",
-                            "cert_subject": other,
-                            "cert_sha256": cert_pin(pki.dir, other),
-                            "node_id": other,
-                        },
-                    )
-                for station, link in NETWORK_LINKS.items():
-                    if node.node_id in ("relay-1", station):
-                        ops.create(
-                            "links", {"link_id": link, "relay_id": "relay-1", "station_id": station}
-                        )
-                        ops.create(
-                            "principals",
-                            {
-                                "principal_id": f"mod-{link}",
-                                "role": "qkd-module",
-                                "cert_subject": f"mod-{link}",
-                                "link_id": link,
-                            },
-                        )
-                ops.create(
-                    "pairs",
-                    {
-                        "pair_id": "pair-ab",
-                        "relay_id": "relay-1",
-                        "stations": ["station-a", "station-b"],
-                        "policy": policy or {},
-                    },
-                )
-                if saes and node.node_id != "relay-1":
-                    for sae, station in SAES.items():
-                        ops.create(
-                            "principals",
-                            {
-                                "principal_id": sae,
-                                "role": "sae",
-                                "cert_subject": sae,
-                                "station_id": station,
-                            },
-                        )
-    except BaseException:
-        stop_all(list(nodes.values()))
-        raise
-    return nodes
