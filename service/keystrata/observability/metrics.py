@@ -24,7 +24,7 @@ from keystrata.delivery import accounting
 from keystrata.ledger import checkpoints
 from keystrata.links import pools
 from keystrata.relay import buffers
-from keystrata.restore import comparison
+from keystrata.restore import holds
 from keystrata.storage.db import durability_risks
 from keystrata.storage.models import LedgerHead, OutboxMessage, RelayOp
 
@@ -78,7 +78,7 @@ def _safety(ctx: NodeContext) -> list[Metric]:
         "pair serves no key here until an operator releases it) or partner.",
         labels=["pair", "behind", "reason"],
     )
-    for hold in comparison.open_holds(ctx):
+    for hold in holds.open_holds(ctx):
         held.add_metric([hold.pair_id, hold.behind, hold.reason], 1)
     return [override, unsafe, held]
 

@@ -15,7 +15,7 @@
   because the operator chose it and a failing readiness would only make an orchestrator
   restart the node into the same settings (or take every pair out of service). An unsafe
   setting without the override (changed while the node runs) fails the check.
-- ``pairs`` (advisory): pairs held by the restore check (restore/comparison.py) are
+- ``pairs`` (advisory): pairs held by the restore check (restore/holds.py) are
   named; readiness stays 200, since the node still serves its other pairs and a
   restart does not resolve a hold (an operator does).
 
@@ -35,7 +35,7 @@ from sqlalchemy.orm import Session
 from keystrata.context import NodeContext
 from keystrata.errors import KeystrataError
 from keystrata.node.lifecycle import check_kek, describe_risks
-from keystrata.restore import comparison
+from keystrata.restore import holds
 from keystrata.storage.db import durability_risks
 from keystrata.storage.models import LedgerEntry, LedgerHead, NodeMeta
 
@@ -124,7 +124,7 @@ def _durability(ctx: NodeContext) -> str:
 
 
 def _pairs(ctx: NodeContext) -> str:
-    held = comparison.open_holds(ctx)
+    held = holds.open_holds(ctx)
     if not held:
         return OK
     return HELD + ", ".join(f"{h.pair_id} ({h.behind} {h.reason})" for h in held)

@@ -9,7 +9,7 @@ import time
 from datetime import timedelta
 
 from keystrata.context import NodeContext
-from keystrata.restore import comparison
+from keystrata.restore import comparison, holds, points
 from keystrata.storage import leases
 
 log = logging.getLogger("keystrata.workers")
@@ -17,11 +17,11 @@ log = logging.getLogger("keystrata.workers")
 LEASE = "restore-check"
 
 
-def at_start(ctx: NodeContext, source: comparison.ProgressSource) -> None:
+def at_start(ctx: NodeContext, source: points.ProgressSource) -> None:
     """Compare every pair once. The partners of pairs that could not be compared now stay
     unverified in this process: their pairs serve nothing here (503, try again) until a
     later round compares them, so a restored station cannot serve before it knows."""
-    pending = comparison.unverified(ctx)
+    pending = holds.unverified(ctx)
     try:
         missed = comparison.check_all(ctx, source)
     except Exception:  # a start must not fail on a partner's bad moment
@@ -45,11 +45,11 @@ def _partners(ctx: NodeContext) -> set[str]:
         }
 
 
-def check_once(ctx: NodeContext, source: comparison.ProgressSource, holder: str) -> bool:
+def check_once(ctx: NodeContext, source: points.ProgressSource, holder: str) -> bool:
     """Compare again the pairs of partners not compared since start (every worker, each
     round), and every pair once per ``[restore_check] interval_seconds`` if this process
     holds the lease. Returns False (nothing to hurry)."""
-    pending = comparison.unverified(ctx)
+    pending = holds.unverified(ctx)
     if pending:
         still = comparison.check_all(ctx, source, only=set(pending))
         pending.intersection_update(still)

@@ -27,7 +27,7 @@ from keystrata.context import NodeContext
 from keystrata.errors import Conflict, InvalidInput, Unavailable
 from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
-from keystrata.restore.comparison import ProgressSource, fetched_keys, partner_progress
+from keystrata.restore.points import ProgressSource, fetched_keys, partner_progress
 from keystrata.restore.rules import Behind, Reason
 from keystrata.storage.models import KeyAlloc, PairHold, PairSegment, PartnerMark
 from keystrata.storage.sealed import segment_context

@@ -1,4 +1,4 @@
-"""Pairs held by the restore check (restore/comparison.py): list them, release one."""
+"""Pairs held by the restore check (restore/holds.py): list them, release one."""
 
 from __future__ import annotations
 
@@ -17,7 +17,7 @@ from keystrata.errors import NotFound
 from keystrata.peering.client import PeerClient
 from keystrata.registry.principals import Caller
 from keystrata.registry.specs import PrincipalRole
-from keystrata.restore import comparison, release
+from keystrata.restore import holds, release
 
 router = APIRouter(prefix="/api/v1", tags=["pairs"])
 
@@ -42,7 +42,7 @@ def list_holds(request: Request, _: Reader) -> dict[str, Any]:
     """Each open finding: pair, partner, ``behind`` (``self``: this station lost commits
     and the pair is held here; ``partner``: the partner did), reason, segments, bytes."""
     ctx: NodeContext = request.app.state.ctx
-    return {"holds": [asdict(h) for h in comparison.open_holds(ctx)]}
+    return {"holds": [asdict(h) for h in holds.open_holds(ctx)]}
 
 
 @router.post(
