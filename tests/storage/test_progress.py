@@ -18,13 +18,13 @@ from sqlalchemy import select
 
 from conftest import Node
 from keystrata.delivery import enc_keys
-from keystrata.errors import Conflict
+from keystrata.errors import Conflict, NotYetCompared, PairHeld
 from keystrata.ledger.entries import Event
 from keystrata.loopback.pki import cert_pin
 from keystrata.registry import provisioning
 from keystrata.registry.principals import Caller
 from keystrata.registry.specs import Kind, PrincipalRole, PrincipalSpec
-from keystrata.restore import comparison, release
+from keystrata.restore import comparison, holds, points, release
 from keystrata.restore.rules import Behind, Finding, Point, Reason, compare, deliveries
 from keystrata.storage.models import LedgerEntry, PairHold, PairSegment
 from keystrata.storage.sealed import segment_context
@@ -198,15 +198,15 @@ def test_owner_behind_is_held_then_released_without_serving_a_byte_again(station
     assert comparison.check_pair(ctx, partner, "pair-ac") == [
         Finding(Behind.SELF, Reason.OWNER_BEHIND, 1, 64)
     ]
-    with pytest.raises(comparison.PairHeld) as held:
-        comparison.refuse_if_held(ctx, A1, "sae-c1")
+    with pytest.raises(PairHeld) as held:
+        holds.refuse_if_held(ctx, A1, "sae-c1")
     assert held.value.status == 503 and "operator must resolve it" in held.value.message
-    with pytest.raises(comparison.PairHeld):
+    with pytest.raises(PairHeld):
         enc_keys.get_keys_with_ids(ctx, A1, "sae-c1", [str(uuid.uuid4())])
-    assert [h.reason for h in comparison.open_holds(ctx)] == ["owner_behind"]
+    assert [h.reason for h in holds.open_holds(ctx)] == ["owner_behind"]
     # A second comparison adds no second finding.
     comparison.check_pair(ctx, partner, "pair-ac")
-    assert len(comparison.open_holds(ctx)) == 1
+    assert len(holds.open_holds(ctx)) == 1
 
     done = release.release(ctx, partner, "pair-ac", actor="ops-ada", reason="restore")
     assert (done["segments_advanced"], done["bytes_destroyed"]) == (1, 64)
@@ -220,7 +220,7 @@ def test_owner_behind_is_held_then_released_without_serving_a_byte_again(station
         assert (hold.released_by, hold.release_reason) == ("ops-ada", "restore")
         events = list(s.execute(select(LedgerEntry.event).order_by(LedgerEntry.idx)).scalars())
     assert events[-2:] == [Event.PAIR_HELD.value, Event.PAIR_RELEASED.value]
-    comparison.refuse_if_held(ctx, A1, "sae-c1")  # served again
+    holds.refuse_if_held(ctx, A1, "sae-c1")  # served again
     with pytest.raises(Conflict):
         release.release(ctx, partner, "pair-ac", actor="ops-ada", reason="again")
 
@@ -232,10 +232,10 @@ def test_partner_behind_is_recorded_and_closes_when_it_catches_up(station) -> No
     assert comparison.check_pair(ctx, behind, "pair-ac") == [
         Finding(Behind.PARTNER, Reason.NON_OWNER_BEHIND, 1, 64)
     ]
-    comparison.refuse_if_held(ctx, A1, "sae-c1")  # this station keeps serving
+    holds.refuse_if_held(ctx, A1, "sae-c1")  # this station keeps serving
     caught_up = Partner([{"segment_id": S1, "owner": A, "used": 128, "unacked": 0}])
     assert comparison.check_pair(ctx, caught_up, "pair-ac") == []
-    assert comparison.open_holds(ctx) == []
+    assert holds.open_holds(ctx) == []
 
 
 def test_malformed_partner_answer_changes_nothing(station) -> None:
@@ -245,7 +245,7 @@ def test_malformed_partner_answer_changes_nothing(station) -> None:
     assert comparison.check_pair(ctx, liar, "pair-ac") is None
     liar = Partner([{"segment_id": S1, "owner": A, "used": True, "unacked": 0}])
     assert comparison.check_pair(ctx, liar, "pair-ac") is None
-    assert comparison.open_holds(ctx) == []
+    assert holds.open_holds(ctx) == []
 
 
 def test_a_partner_that_forgot_deliveries_is_found_and_this_station_keeps_serving(
@@ -261,13 +261,13 @@ def test_a_partner_that_forgot_deliveries_is_found_and_this_station_keeps_servin
     )
     found = comparison.check_pair(ctx, Partner(point, fetched_keys=3, seen_fetched=0), "pair-ac")
     assert found == [Finding(Behind.PARTNER, Reason.DELIVERIES_LOST, 2, 0)]
-    comparison.refuse_if_held(ctx, A1, "sae-c1")  # this station keeps serving
-    assert [h.reason for h in comparison.open_holds(ctx)] == ["deliveries_lost"]
+    holds.refuse_if_held(ctx, A1, "sae-c1")  # this station keeps serving
+    assert [h.reason for h in holds.open_holds(ctx)] == ["deliveries_lost"]
     # The partner's operator released it (its count now starts at what we saw): closed.
     assert (
         comparison.check_pair(ctx, Partner(point, fetched_keys=5, seen_fetched=0), "pair-ac") == []
     )
-    assert comparison.open_holds(ctx) == []
+    assert holds.open_holds(ctx) == []
 
 
 def test_a_station_that_forgot_deliveries_holds_itself_until_released(station) -> None:
@@ -281,14 +281,14 @@ def test_a_station_that_forgot_deliveries_holds_itself_until_released(station) -
     assert comparison.check_pair(ctx, partner, "pair-ac") == [
         Finding(Behind.SELF, Reason.DELIVERIES_LOST, 4, 0)
     ]
-    with pytest.raises(comparison.PairHeld):
-        comparison.refuse_if_held(ctx, A1, "sae-c1")
+    with pytest.raises(PairHeld):
+        holds.refuse_if_held(ctx, A1, "sae-c1")
     done = release.release(ctx, partner, "pair-ac", actor="ops-ada", reason="restore")
     assert done["reasons"] == ["deliveries_lost"]
     with ctx.db.read() as s:
-        assert comparison.fetched_keys(s, "pair-ac", C) == 4
+        assert points.fetched_keys(s, "pair-ac", C) == 4
     assert comparison.check_pair(ctx, partner, "pair-ac") == []
-    comparison.refuse_if_held(ctx, A1, "sae-c1")  # served again
+    holds.refuse_if_held(ctx, A1, "sae-c1")  # served again
 
 
 def test_a_worker_that_cannot_ask_its_partner_at_start_serves_the_pair_nothing(station) -> None:
@@ -303,15 +303,15 @@ def test_a_worker_that_cannot_ask_its_partner_at_start_serves_the_pair_nothing(s
     ctx = station.ctx
     _segment(station, S1, A, bytes(256), used=64)
     loop.at_start(ctx, Silent())
-    with pytest.raises(comparison.NotYetCompared) as early:
-        comparison.refuse_if_held(ctx, A1, "sae-c1")
+    with pytest.raises(NotYetCompared) as early:
+        holds.refuse_if_held(ctx, A1, "sae-c1")
     assert early.value.status == 503 and "try again" in early.value.message
-    with pytest.raises(comparison.NotYetCompared):
-        comparison.refuse_pair_if_held(ctx, "pair-ac")
+    with pytest.raises(NotYetCompared):
+        holds.refuse_pair_if_held(ctx, "pair-ac")
     loop.check_once(ctx, Silent(), "worker-1")  # still silent: still closed
-    with pytest.raises(comparison.NotYetCompared):
-        comparison.refuse_if_held(ctx, A1, "sae-c1")
+    with pytest.raises(NotYetCompared):
+        holds.refuse_if_held(ctx, A1, "sae-c1")
     in_step = Partner([{"segment_id": S1, "owner": A, "used": 64, "unacked": 0}])
     loop.check_once(ctx, in_step, "worker-1")
-    comparison.refuse_if_held(ctx, A1, "sae-c1")
-    comparison.refuse_pair_if_held(ctx, "pair-ac")
+    holds.refuse_if_held(ctx, A1, "sae-c1")
+    holds.refuse_pair_if_held(ctx, "pair-ac")
