@@ -35,11 +35,9 @@ Reading and checking certificates is :mod:`keystrata.crypto.certificates`.
 
 from __future__ import annotations
 
-import contextlib
 import ipaddress
 import os
 import re
-import secrets
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
@@ -52,6 +50,7 @@ from cryptography.hazmat.primitives.asymmetric import ec
 from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
 
 from keystrata.crypto.certificates import NODE_MARKER, load_certificate, require_ca_certificate
+from keystrata.crypto.files import write_atomic
 from keystrata.errors import AlreadyExists, InvalidInput
 
 ROLES: tuple[str, ...] = ("sae", "operator", "auditor", "peer", "qkd-module", "monitor")
@@ -304,29 +303,6 @@ class PkiDir:
         write_atomic(key_path, issued.key_pem, secret=True)
         write_atomic(cert_path, issued.cert_pem, secret=False)
         return WrittenFiles(cert=cert_path, key=key_path)
-
-
-def write_atomic(path: Path, data: bytes, *, secret: bool) -> None:
-    """Write ``data`` to a new temporary file beside ``path``, then rename it into place."""
-    tmp = path.with_name(f".{path.name}.{secrets.token_hex(8)}.tmp")
-    # O_EXCL with a fresh name: a planted file or symlink makes the open fail instead of
-    # being followed. A key is created with mode 0600 from its first instant, so it is
-    # never readable by others, not even between open and write.
-    flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | os.O_CLOEXEC
-    fd = os.open(tmp, flags, 0o600 if secret else 0o644)
-    try:
-        if not secret:
-            # Certificates are public; set their mode on the empty file so umask does not decide.
-            os.fchmod(fd, 0o644)
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
-        raise
 
 
 def _issue_leaf(

@@ -33,7 +33,8 @@ from cryptography.hazmat.primitives import hashes, serialization
 from cryptography.hazmat.primitives.asymmetric import ec
 
 from keystrata.crypto.certificates import load_certificate
-from keystrata.crypto.pki import PkiDir, write_atomic
+from keystrata.crypto.files import write_atomic
+from keystrata.crypto.pki import PkiDir
 from keystrata.errors import InvalidInput
 
 log = logging.getLogger("keystrata.revocation")
