@@ -1,5 +1,5 @@
 """A peer node stand-in for outbox tests: an HTTPS server on loopback with the test PKI
-(mutual TLS, the certificate of a node), answering the peer message routes the way a
+(mutual TLS, the certificate of a node), answering the peer batch route the way a
 station answers link ranges: only the next message in line is applied; one ahead of it
 is refused "not yet" (409), exactly what a station does when messages overtake each
 other. It records what arrived, so tests can check order, batching and timing.
@@ -41,11 +41,9 @@ class PeerStub:
         node_id: str,
         *,
         refuse_once: set[int] | None = None,
-        batch_route: bool = True,
     ) -> None:
         self.record = Record()
         self.refuse_once = set(refuse_once or ())
-        self.batch_route = batch_route
         self._lock = threading.Lock()
         stub = self
 
@@ -60,12 +58,8 @@ class PeerStub:
                 body = json.loads(self.rfile.read(length))
                 cert = self.connection.getpeercert()  # type: ignore[attr-defined]
                 subject = dict(x[0] for x in cert["subject"])["commonName"]
-                if self.path == "/api/v1/peer/messages/batch" and stub.batch_route:
+                if self.path == "/api/v1/peer/messages/batch":
                     status, answer = 200, {"results": stub._apply(body["messages"], subject)}
-                elif self.path == "/api/v1/peer/messages":
-                    (result,) = stub._apply([body], subject)
-                    status = result["status"]
-                    answer = result if status == 200 else {"message": result["message"]}
                 else:
                     status, answer = 404, {"message": "no such route"}
                 data = json.dumps(answer).encode()

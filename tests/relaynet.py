@@ -88,17 +88,17 @@ class RelayNet:
         return out
 
     def deliver(self, sender: str, message: outbox.Pending, *, lose_reply: bool = False) -> str:
-        """Carry one message to its destination; return the outcome status, or the
-        error's status code when the receiver refused. On success the sender forgets the
-        message unless the reply is "lost"."""
+        """Carry one message to its destination; return the outcome (applied, already,
+        discarded), or the error's status code when the receiver refused. On success the
+        sender forgets the message unless the reply is "lost"."""
         target = self.nodes[message.destination]
         try:
-            status = dispatch.handle(target.ctx, sender, dict(message.body)).status
+            result = dispatch.handle(target.ctx, sender, dict(message.body))
         except KeystrataError as exc:
             return str(exc.status)
         if not lose_reply:
             outbox.delivered(self.nodes[sender].ctx.db, [message.id])
-        return status
+        return str(result.outcome)
 
     def drain(self, max_rounds: int = 50) -> None:
         """Deliver everything until no node has anything left that can be applied."""
@@ -292,7 +292,7 @@ def provision_saes(net: RelayNet) -> None:
 
 def ready_key(net: RelayNet, segments: int = 6, size: int = 4096) -> None:
     """Make ready pair key at both stations: several segments, owners alternating."""
-    from keystrata.relay.arithmetic import choose_owner
+    from keystrata.relay.planning import choose_owner
 
     net.feed("station-a", segments * 2)
     net.feed("station-b", segments * 2)

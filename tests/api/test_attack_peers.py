@@ -299,4 +299,4 @@ def test_a_programming_error_in_a_handler_is_not_a_400(net, api, monkeypatch):
         dispatch.handle(net.a.ctx, "relay-1", notice.body)
     # Through the route: the ASGI test transport re-raises what the app answered 500 to.
     with pytest.raises(KeyError):
-        api(net.a)("relay-1").post("/api/v1/peer/messages", json=notice.body)
+        api(net.a)("relay-1").post("/api/v1/peer/messages/batch", json={"messages": [notice.body]})

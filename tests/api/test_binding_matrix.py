@@ -120,7 +120,6 @@ PER_MESSAGE = (
 )
 UNBOUND: dict[tuple[str, str], str] = {
     ("GET", "/api/v1/node"): "every role reads this node's identity: nothing to bind",
-    ("POST", "/api/v1/peer/messages"): PER_MESSAGE,
     ("POST", "/api/v1/peer/messages/batch"): PER_MESSAGE,
     ("GET", "/api/v1/peer/allocations"): "bound by construction: answers only messages "
     "destined to the caller's node (test_pending_allocations_are_only_the_callers)",

@@ -198,7 +198,7 @@ def test_messages_out_of_order_wait_and_resends_are_harmless(net) -> None:
 def test_unconfirmed_segment_expires_on_both_sides(net) -> None:
     from datetime import UTC, datetime, timedelta
 
-    from keystrata.relay import segments
+    from keystrata.relay import confirmation
 
     net.feed("station-a", 2)
     net.feed("station-b", 2)
@@ -207,7 +207,7 @@ def test_unconfirmed_segment_expires_on_both_sides(net) -> None:
     for snd, m in net.pending():
         if m.kind == "relay.notice":
             net.deliver(snd, m)
-    expired = segments.expire_pending(net.a.ctx, datetime.now(UTC) + timedelta(seconds=1))
+    expired = confirmation.expire_pending(net.a.ctx, datetime.now(UTC) + timedelta(seconds=1))
     assert expired == 1
     net.drain()
     assert net.segments("station-a")[made.segment_id].state == "discarded"

@@ -33,7 +33,7 @@ from keystrata.errors import KeystrataError
 from keystrata.ledger import chain
 from keystrata.loopback.configs import write_config
 from keystrata.node.lifecycle import initialise, load_keyring, open_node
-from keystrata.relay import operation, segments
+from keystrata.relay import confirmation, operation
 from keystrata.storage.db import Database
 from keystrata.storage.models import LinkBlock
 
@@ -138,7 +138,9 @@ def test_random_histories_keep_the_invariants(steps, pki, sqlite_template, monke
         # Let every message through; time out whatever cannot complete; again.
         net.drain()
         for station in STATIONS:
-            segments.expire_pending(net.nodes[station].ctx, datetime.now(UTC) + timedelta(days=1))
+            confirmation.expire_pending(
+                net.nodes[station].ctx, datetime.now(UTC) + timedelta(days=1)
+            )
         net.drain()
         assert _one_sided(net) == []
         a, b = net.segments("station-a"), net.segments("station-b")
@@ -182,4 +184,6 @@ def _apply(net: relaynet.RelayNet, step: tuple[Any, ...], armed: list[int]) -> N
     elif kind == "fault":
         armed[0] = step[1]
     elif kind == "expire":
-        segments.expire_pending(net.nodes[step[1]].ctx, datetime.now(UTC) + timedelta(seconds=1))
+        confirmation.expire_pending(
+            net.nodes[step[1]].ctx, datetime.now(UTC) + timedelta(seconds=1)
+        )

@@ -13,7 +13,7 @@ import pytest
 from sqlalchemy import select
 
 import relaynet
-from keystrata.relay import arithmetic, scheduler
+from keystrata.relay import planning, scheduler
 from keystrata.storage import leases
 from keystrata.storage.models import LedgerEntry
 
@@ -75,11 +75,11 @@ def test_owners_alternate_while_there_is_no_demand(make_node, db_factory) -> Non
     owners = [m.owner for m in made]
     # Equal demand (none measured): owned key is split evenly, segment by segment.
     assert abs(owners.count("station-a") - owners.count("station-b")) <= 1
-    assert arithmetic.choose_owner("station-a", "station-b", 3.0, 1.0, 0, 0) == "station-a"
+    assert planning.choose_owner("station-a", "station-b", 3.0, 1.0, 0, 0) == "station-a"
     # With demand 3:1, station-a's share is 75 %: above it (80 %) the next segment goes to
     # station-b, below it (70 %) to station-a.
-    assert arithmetic.choose_owner("station-a", "station-b", 3.0, 1.0, 800, 200) == "station-b"
-    assert arithmetic.choose_owner("station-a", "station-b", 3.0, 1.0, 700, 300) == "station-a"
+    assert planning.choose_owner("station-a", "station-b", 3.0, 1.0, 800, 200) == "station-b"
+    assert planning.choose_owner("station-a", "station-b", 3.0, 1.0, 700, 300) == "station-a"
 
 
 def test_scarce_link_key_is_shared_by_priority(make_node, db_factory) -> None:

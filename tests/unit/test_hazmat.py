@@ -6,7 +6,8 @@ Sources, named again beside each check:
   shipped in the ``cryptography_vectors`` package (``ciphers/AES/GCM/*.rsp``).
 * Poly1305: RFC 8439 section 2.5.2 and Appendix A.3, in ``vectors/rfc8439_poly1305.json``.
 * Ed25519: RFC 8032 section 7.1, in ``vectors/rfc8032_ed25519.json``.
-* HMAC-SHA-256: Python's ``hmac`` module, itself checked against RFC 4231 section 4.
+* HMAC-SHA-256 (fingerprints, confirmation check values): Python's ``hmac`` module, itself
+  checked against RFC 4231 section 4.
 """
 
 from __future__ import annotations
@@ -362,3 +363,39 @@ def test_random_bytes_length_and_variety() -> None:
     assert len(hazmat.random_bytes(32)) == 32
     assert hazmat.random_bytes(0) == b""
     assert len({hazmat.random_bytes(16) for _ in range(32)}) == 32
+
+
+#: A segment identity as RFC 8785 canonical JSON (relay/arithmetic.SegmentIdentity).
+IDENTITY = (
+    b'{"bytes":4096,"cipher_station":"station-b","epsilon":1e-9,"notice_station":"station-a",'
+    b'"owner":"station-a","pair":"pair-ab","segment":"6f1c1a0e-3f3c-4c84-9d61-1f2b4a4c9e01"}'
+)
+
+
+def test_check_value_is_truncated_hmac_sha256_over_identity_and_station() -> None:
+    # Independent re-computation with Python's hmac (anchored to RFC 4231 above), and the
+    # values pinned so the confirmation format cannot drift between two node versions.
+    key = bytes(range(32))
+    for station, pinned in (
+        ("station-a", "198aec2131baa6008fd6f73b24409241"),
+        ("station-b", "55a2715441ae4b84675887e473763c8d"),
+    ):
+        message = b"keystrata/confirm/v2\x00" + IDENTITY + b"\x00" + station.encode()
+        expected = hmac.new(key, message, hashlib.sha256).digest()[:16]
+        assert hazmat.check_value(key, IDENTITY, station) == expected
+        assert expected.hex() == pinned
+
+
+def test_verify_check_value_raises_on_any_difference() -> None:
+    key = bytes(range(32))
+    value = hazmat.check_value(key, IDENTITY, "station-b")
+    hazmat.verify_check_value(key, IDENTITY, "station-b", value)
+    wrong = [
+        (bytes(32), IDENTITY, "station-b", value),  # another key
+        (key, IDENTITY.replace(b"4096", b"4095"), "station-b", value),  # another identity
+        (key, IDENTITY, "station-a", value),  # the other station's value (a reflection)
+        (key, IDENTITY, "station-b", bytes([value[0] ^ 1]) + value[1:]),  # a flipped bit
+    ]
+    for case in wrong:
+        with pytest.raises(CryptoError):
+            hazmat.verify_check_value(*case)

@@ -10,6 +10,8 @@ It offers a few verbs and nothing else:
 * :func:`sign` / :func:`verify_signature`: Ed25519 (RFC 8032).
 * :func:`keyed_fingerprint`: HMAC-SHA-256 (RFC 2104) to recognise a re-sent block without
   keeping its bytes in the clear.
+* :func:`check_value` / :func:`verify_check_value`: a station's key confirmation value for
+  a pair key segment (truncated HMAC-SHA-256).
 * :func:`xor_bytes`, :func:`constant_time_equal`, :func:`random_bytes`.
 
 Verification raises :class:`~keystrata.errors.CryptoError` subclasses; it never returns
@@ -44,6 +46,7 @@ TAG_BYTES = 16
 SEAL_OVERHEAD = 1 + KEK_ID_BYTES + NONCE_BYTES + TAG_BYTES
 MAC_KEY_BYTES = 32
 MAC_TAG_BYTES = 16
+CHECK_BYTES = 16
 
 
 def random_bytes(n: int) -> bytes:
@@ -167,6 +170,24 @@ def keyed_fingerprint(key: bytes, *parts: bytes) -> bytes:
         mac.update(len(part).to_bytes(8, "big"))
         mac.update(part)
     return mac.digest()
+
+
+def check_value(key: bytes, identity: bytes, station: str) -> bytes:
+    """Return one station's key confirmation value for a segment: HMAC-SHA-256 (RFC 2104)
+    under the segment key, over the segment's whole identity (its canonical bytes,
+    :meth:`keystrata.relay.arithmetic.SegmentIdentity.canonical`) and the station's own
+    ID (so the two stations' values differ and a reflected value proves nothing),
+    truncated to 16 bytes. Two stations that disagree on the identity, or hold different
+    bytes, never match."""
+    message = b"keystrata/confirm/v2\x00" + identity + b"\x00" + station.encode()
+    return hmac.new(key, message, hashlib.sha256).digest()[:CHECK_BYTES]
+
+
+def verify_check_value(key: bytes, identity: bytes, station: str, value: bytes) -> None:
+    """Check ``station``'s confirmation value in constant time. Raises CryptoError when
+    it does not match."""
+    if not hmac.compare_digest(value, check_value(key, identity, station)):
+        raise CryptoError("key confirmation failed")
 
 
 def constant_time_equal(a: bytes, b: bytes) -> bool:

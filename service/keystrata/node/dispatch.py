@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Callable
-from dataclasses import dataclass
 from typing import Any
 
 from keystrata.config import Role
@@ -23,36 +22,25 @@ from keystrata.errors import Forbidden, InvalidInput, KeystrataError
 from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
 from keystrata.peering import messages
-from keystrata.relay import operation, segments
-from keystrata.relay.segments import Outcome
+from keystrata.peering.messages import MessageResult
+from keystrata.relay import confirmation, segments
 from keystrata.storage.models import Pair
-
-#: Messages per batch request at most (the sender sends fewer; see peering/sender.py).
-MAX_BATCH = 256
 
 log = logging.getLogger("keystrata.peers")
 
-Handler = Callable[[NodeContext, str, Any], Outcome]
-
-
-def _settle(ctx: NodeContext, sender: str, msg: messages.SegmentSettled) -> Outcome:
-    if operation.notice_station_of(ctx, msg.segment_id) != sender:
-        raise Forbidden("only the segment's notice station settles it")
-    changed = operation.settle(ctx, msg.segment_id, msg.outcome, msg.reason)
-    return Outcome(msg.segment_id, "applied" if changed else "already")
-
+Handler = Callable[[NodeContext, str, Any], MessageResult]
 
 HANDLERS: dict[Role, dict[type[messages.PeerMessage], Handler]] = {
     Role.STATION: {
         messages.RelayNotice: segments.apply_notice,
         messages.RelayCiphertext: segments.apply_ciphertext,
-        messages.SegmentCheck: segments.apply_check,
-        messages.SegmentConfirmed: segments.apply_confirmed,
-        messages.SegmentDiscarded: segments.apply_discarded,
+        messages.SegmentCheck: confirmation.apply_check,
+        messages.SegmentConfirmed: confirmation.apply_confirmed,
+        messages.SegmentDiscarded: confirmation.apply_discarded,
         messages.KeyAllocated: slave_copy.apply_allocated,
         messages.KeyExpired: slave_copy.apply_expired,
     },
-    Role.RELAY: {messages.SegmentSettled: _settle},
+    Role.RELAY: {messages.SegmentSettled: confirmation.apply_settled},
 }
 
 
@@ -64,7 +52,7 @@ def read(ctx: NodeContext, body: Any) -> messages.PeerMessage:
     return msg
 
 
-def apply(ctx: NodeContext, sender: str, msg: messages.PeerMessage) -> Outcome:
+def apply(ctx: NodeContext, sender: str, msg: messages.PeerMessage) -> MessageResult:
     """Apply one parsed message from peer node ``sender``; a refusal is recorded.
 
     Raises:
@@ -78,7 +66,7 @@ def apply(ctx: NodeContext, sender: str, msg: messages.PeerMessage) -> Outcome:
         raise
 
 
-def handle(ctx: NodeContext, sender: str, body: Any) -> Outcome:
+def handle(ctx: NodeContext, sender: str, body: Any) -> MessageResult:
     """Parse and apply one message from peer node ``sender`` (see :func:`apply`)."""
     return apply(ctx, sender, read(ctx, body))
 
@@ -108,23 +96,12 @@ def record_refusal(
         )
 
 
-@dataclass(frozen=True)
-class Answer:
-    """What became of one message of a batch: ``status`` 200 with the outcome, or the
-    status and message of the error it raised."""
-
-    status: int
-    segment_id: str | None = None
-    outcome: str | None = None
-    message: str | None = None
-
-
-def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[Answer]:
+def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[MessageResult]:
     """Apply messages from ``sender`` in order, each as if it came alone (its own
     transaction; a run of ``key.allocated`` messages shares one, each in a savepoint),
     and stop at the first that is not applied: the sender's later messages
     to this node wait behind it (a later range would be refused "not yet" anyway).
-    Returns one answer per message attempted, the last being the refusal if any.
+    Returns one result per message attempted, the last being the refusal if any.
 
     Raises:
         InvalidInput: ``bodies`` holds something that is not a message this node takes
@@ -136,32 +113,31 @@ def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[Answe
             msgs.append(read(ctx, body))
         except InvalidInput as exc:
             raise InvalidInput(f"messages[{i}]: {exc.message}", details=exc.details) from None
-    answers: list[Answer] = []
+    results: list[MessageResult] = []
     i = 0
     while i < len(msgs):
         run = _allocations_from(msgs, i)
         if run:
             # Key allocations come in long runs under load: one transaction for a run.
             try:
-                outcomes, error = slave_copy.apply_allocated_run(ctx, sender, run)
+                applied, error = slave_copy.apply_allocated_run(ctx, sender, run)
             except KeystrataError as exc:
-                outcomes, error = [], exc
-            answers += [Answer(200, o.segment_id, o.status) for o in outcomes]
+                applied, error = [], exc
+            results += applied
             if error is not None:
                 if isinstance(error, Forbidden):
-                    record_refusal(ctx, sender, run[len(outcomes)], error)
-                answers.append(Answer(status=error.status, message=error.message))
+                    record_refusal(ctx, sender, run[len(applied)], error)
+                results.append(MessageResult.failed(error))
                 break
             i += len(run)
             continue
         try:
-            outcome = apply(ctx, sender, msgs[i])
+            results.append(apply(ctx, sender, msgs[i]))
         except KeystrataError as exc:
-            answers.append(Answer(status=exc.status, message=exc.message))
+            results.append(MessageResult.failed(exc))
             break
-        answers.append(Answer(200, outcome.segment_id, outcome.status))
         i += 1
-    return answers
+    return results
 
 
 def _allocations_from(msgs: list[messages.PeerMessage], start: int) -> list[messages.KeyAllocated]:

@@ -17,7 +17,7 @@ from keystrata.delivery import slave_copy
 from keystrata.ledger import checkpoints
 from keystrata.peering import outbox, sender
 from keystrata.peering.client import PeerClient
-from keystrata.relay import scheduler, segments
+from keystrata.relay import confirmation, scheduler
 from keystrata.restore import loop
 from keystrata.storage import leases
 
@@ -112,6 +112,6 @@ class Background:
 
     def _expire(self) -> bool:
         timeout = timedelta(seconds=self.ctx.settings.segments.confirm_timeout_seconds)
-        segments.expire_pending(self.ctx, self.ctx.clock.now() - timeout)
+        confirmation.expire_pending(self.ctx, self.ctx.clock.now() - timeout)
         slave_copy.expire(self.ctx)
         return False

@@ -12,10 +12,12 @@ import logging
 from typing import Any
 
 import httpx
+from pydantic import ValidationError
 
 from keystrata.config import Settings
 from keystrata.crypto.tls import PeerIdentityError, peer_context
 from keystrata.errors import PeerUnavailable
+from keystrata.peering.messages import MessageResult
 
 log = logging.getLogger("keystrata.peer_client")
 
@@ -69,32 +71,18 @@ class PeerClient:
                 raise PeerUnavailable(f"{node_id}: not the node of that [[peers]] entry") from exc
             raise PeerUnavailable(f"{node_id}: {type(exc).__name__}") from exc
 
-    def post_message(self, node_id: str, body: dict[str, Any]) -> tuple[int, dict[str, Any]]:
-        """POST a message; return (status, answer object)."""
-        r = self._send("POST", node_id, "/api/v1/peer/messages", json=body)
-        try:
-            answer = r.json()
-        except ValueError:
-            answer = {}
-        return r.status_code, answer if isinstance(answer, dict) else {}
-
-    def post_messages(
-        self, node_id: str, bodies: list[dict[str, Any]]
-    ) -> list[tuple[int, dict[str, Any]]]:
-        """POST several messages for one peer in one request, in order; return (status,
-        answer) for each message the peer attempted, in order. The peer stops at the
-        first message it does not apply, so the list may be shorter than ``bodies``.
+    def post_messages(self, node_id: str, bodies: list[dict[str, Any]]) -> list[MessageResult]:
+        """POST several messages for one peer in one request, in order; return the result
+        of each message the peer attempted, in order. The peer stops at the first message
+        it does not apply, so the list may be shorter than ``bodies``.
 
         A refusal of the whole request (400, 401, 403, 413, 503...) counts as the first
-        message's answer. A peer without the batch route (404 or 405: an older version)
-        gets the messages one at a time, stopping at the first that is not applied.
+        message's result; an answer that is not a list of results is a 502 result.
 
         Raises:
             PeerUnavailable: the peer did not answer.
         """
         r = self._send("POST", node_id, "/api/v1/peer/messages/batch", json={"messages": bodies})
-        if r.status_code in (404, 405):
-            return self._one_by_one(node_id, bodies)
         try:
             answer = r.json()
         except ValueError:
@@ -102,38 +90,19 @@ class PeerClient:
         if not isinstance(answer, dict):
             answer = {}
         if r.status_code != 200:
-            return [(r.status_code, answer)]
+            return [MessageResult(status=r.status_code, message=str(answer.get("message", "")))]
         results = answer.get("results")
         if not isinstance(results, list):
-            return [(502, {"message": "batch answer without results"})]
-        out: list[tuple[int, dict[str, Any]]] = []
-        for result in results[: len(bodies)]:
-            if not isinstance(result, dict) or not isinstance(result.get("status"), int):
-                out.append((502, {"message": "malformed result in batch answer"}))
-                break
-            status = int(result["status"])
-            if status == 200:
-                out.append(
-                    (200, {"segment_id": result.get("segment_id"), "status": result.get("outcome")})
-                )
-            else:
-                out.append((status, {"message": str(result.get("message", ""))}))
-                break
-        return out
-
-    def _one_by_one(
-        self, node_id: str, bodies: list[dict[str, Any]]
-    ) -> list[tuple[int, dict[str, Any]]]:
-        out: list[tuple[int, dict[str, Any]]] = []
-        for body in bodies:
+            return [MessageResult(status=502, message="batch answer without results")]
+        out: list[MessageResult] = []
+        for raw in results[: len(bodies)]:
             try:
-                status, answer = self.post_message(node_id, body)
-            except PeerUnavailable:
-                if not out:
-                    raise
-                break  # what was applied stays applied; the rest goes next time
-            out.append((status, answer))
-            if status != 200:
+                result = MessageResult.model_validate(raw)
+            except ValidationError:
+                out.append(MessageResult(status=502, message="malformed result in batch answer"))
+                break
+            out.append(result)
+            if result.status != 200:
                 break
         return out
 

@@ -34,7 +34,7 @@ from pydantic import (
     model_validator,
 )
 
-from keystrata.errors import InvalidInput
+from keystrata.errors import InvalidInput, KeystrataError
 from keystrata.ids import ID_PATTERN
 
 #: The version of every message kind this node writes and reads.
@@ -42,6 +42,8 @@ VERSION = 1
 #: Version of the segment header both one-time MACs cover.
 HEADER_VERSION: Literal[2] = 2
 
+#: Messages one batch request may carry (the sender sends fewer; see peering/sender.py).
+MAX_BATCH = 256
 #: Keys one ``key.allocated`` message may carry (a group commit's worth, see delivery).
 MAX_KEYS = 65_536
 #: Slaves one key may have (the slave plus ``max_SAE_ID_count`` additional ones).
@@ -284,6 +286,34 @@ class KeyExpired(PeerMessage):
     kind: ClassVar[str] = "key.expired"
     pair_id: NodeId
     key_ids: Annotated[list[Uuid], Field(min_length=1, max_length=MAX_KEYS)]
+
+
+#: What a node did with a message it applied: ``already`` for one it had applied before,
+#: ``discarded`` when applying it discarded the segment.
+Outcome = Literal["applied", "already", "discarded"]
+
+
+class MessageResult(_Strict):
+    """What became of one message, as handlers return it and the batch route answers it:
+    ``status`` 200 with the ``segment_id`` and the ``outcome``, or the status and
+    ``message`` of the error it raised. Wire form: this model's JSON, every member
+    present (``null`` when unset)."""
+
+    status: int
+    segment_id: str | None = None
+    outcome: Outcome | None = None
+    message: str | None = None
+
+    @classmethod
+    def handled(cls, segment_id: str, outcome: Outcome) -> MessageResult:
+        """A message applied (200): ``segment_id`` names what it was about ("" for a
+        message of keys)."""
+        return cls(status=200, segment_id=segment_id, outcome=outcome)
+
+    @classmethod
+    def failed(cls, error: KeystrataError) -> MessageResult:
+        """A message not applied: the error's status and its (safe) message."""
+        return cls(status=error.status, message=error.message)
 
 
 class _Answer(_Strict):

@@ -8,9 +8,9 @@ from datetime import timedelta
 
 from keystrata.context import NodeContext
 from keystrata.errors import PeerUnavailable
-from keystrata.node.dispatch import MAX_BATCH
 from keystrata.peering import outbox
 from keystrata.peering.client import PeerClient
+from keystrata.peering.messages import MAX_BATCH
 from keystrata.storage import leases
 
 log = logging.getLogger("keystrata.outbox")
@@ -70,9 +70,9 @@ def _send(
     error: str | None = None
     done = 0
     try:
-        answers = peers.post_messages(destination, [m.body for m in claimed])
+        results = peers.post_messages(destination, [m.body for m in claimed])
     except PeerUnavailable as exc:
-        answers, error = [], str(exc)
+        results, error = [], str(exc)
     except Exception:
         # Give the lease back before the loop reports the failure, so that another
         # worker need not wait for it to expire.
@@ -86,12 +86,12 @@ def _send(
             max_backoff=cap,
         )
         raise
-    for status, answer in answers:
-        if status == 200:
+    for result in results:
+        if result.status == 200:
             done += 1
             continue
-        error = f"{status}: {str(answer.get('message', ''))[:200]}"
-        if status not in (409, 503):
+        error = f"{result.status}: {(result.message or '')[:200]}"
+        if result.status not in (409, 503):
             log.warning("outbox: %s to %s refused (%s)", claimed[done].kind, destination, error)
         break
     if error is None and done == 0:

@@ -14,7 +14,8 @@ C = KA xor KB and tag = Poly1305(M, len(header) || header || C) (RFC 8439 sectio
 ``len`` is 4 bytes, big-endian). A checks tagA and holds KA; B checks the tag and recovers
 KA = C xor KB. Only the holder of both link keys (the relay) can make a header both
 stations accept. A and B then confirm the segment to each other with check values over
-the key and the segment's whole identity before either serves it.
+the key and the segment's whole identity (:class:`SegmentIdentity`, RFC 8785 JSON;
+:func:`keystrata.crypto.hazmat.check_value`) before either serves it.
 
 The security parameter of a segment is the sum of the epsilons of every link block it
 touched (its key bytes and its MAC key). This is the union bound over the composable
@@ -23,15 +24,12 @@ touched (its key bytes and its MAC key). This is the union bound over the compos
 
 from __future__ import annotations
 
-import hashlib
-import hmac
 from collections.abc import Iterable
 from dataclasses import dataclass
 
 import rfc8785
 
 MAC_KEY_BYTES = 32
-CHECK_BYTES = 16
 
 
 def compose_epsilon(epsilons: Iterable[float]) -> float:
@@ -58,6 +56,7 @@ class SegmentIdentity:
     epsilon: float
 
     def canonical(self) -> bytes:
+        """The identity as RFC 8785 canonical JSON: what the check values cover."""
         return rfc8785.dumps(
             {
                 "segment": self.segment,
@@ -69,43 +68,3 @@ class SegmentIdentity:
                 "epsilon": self.epsilon,
             }
         )
-
-
-def check_value(key: bytes, identity: SegmentIdentity, station: str) -> bytes:
-    """Key confirmation value of one station for a segment: HMAC-SHA-256 (RFC 2104) under
-    the segment key, over the segment's whole identity (pair, both stations, segment ID,
-    owner, length, epsilon; RFC 8785 JSON) and the station's own ID (so the two stations'
-    values differ and a reflected value proves nothing), truncated to 16 bytes. Two
-    stations that disagree on any of these, or hold different bytes, never match."""
-    msg = b"keystrata/confirm/v2\x00" + identity.canonical() + b"\x00" + station.encode()
-    return hmac.new(key, msg, hashlib.sha256).digest()[:CHECK_BYTES]
-
-
-def choose_owner(
-    a: str, b: str, demand_a: float, demand_b: float, owned_a: int, owned_b: int
-) -> str:
-    """Owner of a new segment: the side furthest below its share of owned key, where the
-    shares are proportional to recent demand (equal while neither side has demand).
-
-    Ties go to the first station in ID order, so the choice is deterministic.
-    """
-    if demand_a <= 0 and demand_b <= 0:
-        demand_a = demand_b = 1.0
-    total_owned = owned_a + owned_b
-    # Deficit of each side against its proportional share of what is owned so far.
-    share_a = demand_a / (demand_a + demand_b)
-    gap_a = share_a * (total_owned + 1) - owned_a
-    gap_b = (1 - share_a) * (total_owned + 1) - owned_b
-    if gap_a > gap_b or (gap_a == gap_b and a < b):
-        return a
-    return b
-
-
-def buffer_target(
-    *, consumption_bps: float | None, horizon_s: float, minimum: int, default: int, maximum: int
-) -> int:
-    """Ready key (bits) a pair should hold: enough for ``horizon_s`` at its measured
-    consumption, within the policy's bounds; ``default`` while nothing was measured."""
-    if consumption_bps is None:
-        return max(minimum, min(default, maximum))
-    return int(max(minimum, min(consumption_bps * horizon_s, maximum)))

@@ -13,7 +13,8 @@ from sqlalchemy.orm import Session
 
 from keystrata.context import NodeContext
 from keystrata.errors import Forbidden, NotFound
-from keystrata.relay import arithmetic
+from keystrata.relay import planning
+from keystrata.relay.segment_states import RelayOpState, SegmentState
 from keystrata.storage.models import Pair, PairBuffer, PairSegment, RelayOp
 
 
@@ -37,34 +38,29 @@ class BufferReport:
         out["reported_at"] = self.reported_at.isoformat()
         return out
 
-    @staticmethod
-    def from_json(raw: dict[str, Any]) -> BufferReport:
-        return BufferReport(
-            pair_id=str(raw["pair_id"]),
-            station=str(raw["station"]),
-            ready_bits=int(raw["ready_bits"]),
-            owned_ready_bits=int(raw["owned_ready_bits"]),
-            pending_bits=int(raw["pending_bits"]),
-            delivered_bits=int(raw["delivered_bits"]),
-            window_seconds=int(raw["window_seconds"]),
-            reported_at=datetime.fromisoformat(str(raw["reported_at"])),
-        )
-
 
 def _levels(s: Session, pair_id: str, me: str) -> tuple[int, int, int]:
     left = PairSegment.length - PairSegment.used
     ready, owned, pending = s.execute(
         select(
-            func.coalesce(func.sum(case((PairSegment.state == "ready", left), else_=0)), 0),
+            func.coalesce(
+                func.sum(case((PairSegment.state == SegmentState.READY, left), else_=0)), 0
+            ),
             func.coalesce(
                 func.sum(
                     case(
-                        ((PairSegment.state == "ready") & (PairSegment.owner == me), left), else_=0
+                        (
+                            (PairSegment.state == SegmentState.READY) & (PairSegment.owner == me),
+                            left,
+                        ),
+                        else_=0,
                     )
                 ),
                 0,
             ),
-            func.coalesce(func.sum(case((PairSegment.state == "pending", left), else_=0)), 0),
+            func.coalesce(
+                func.sum(case((PairSegment.state == SegmentState.PENDING, left), else_=0)), 0
+            ),
         ).where(PairSegment.pair_id == pair_id)
     ).one()
     return 8 * int(ready), 8 * int(owned), 8 * int(pending)
@@ -100,8 +96,11 @@ def report_for_relay(ctx: NodeContext, pair_id: str, relay_id: str) -> BufferRep
     """
     with ctx.db.read() as s:
         pair = s.get(Pair, pair_id)
-        mine = pair is not None and ctx.node_id in (pair.station_a, pair.station_b)
-        if not mine or pair is None or pair.relay_id != relay_id:
+        if (
+            pair is None
+            or ctx.node_id not in (pair.station_a, pair.station_b)
+            or pair.relay_id != relay_id
+        ):
             raise Forbidden("only the pair's relay reads its buffer report")
     return station_report(ctx, pair_id)
 
@@ -134,6 +133,17 @@ class PairView:
     time_until_empty_s: float | None
 
 
+def pairs_through(s: Session, relay_id: str) -> list[Pair]:
+    """Every active pair through ``relay_id``, by pair ID."""
+    return list(
+        s.execute(
+            select(Pair)
+            .where(Pair.relay_id == relay_id, Pair.retired_at.is_(None))
+            .order_by(Pair.pair_id)
+        ).scalars()
+    )
+
+
 def relay_view(ctx: NodeContext, *, now: datetime | None = None) -> list[PairView]:
     """Every active pair through this relay, as its scheduler sees it."""
     now = now or ctx.clock.now()
@@ -142,16 +152,7 @@ def relay_view(ctx: NodeContext, *, now: datetime | None = None) -> list[PairVie
     since = now - timedelta(seconds=window)
     out: list[PairView] = []
     with ctx.db.read() as s:
-        pairs = (
-            s.execute(
-                select(Pair)
-                .where(Pair.relay_id == ctx.node_id, Pair.retired_at.is_(None))
-                .order_by(Pair.pair_id)
-            )
-            .scalars()
-            .all()
-        )
-        for pair in pairs:
+        for pair in pairs_through(s, ctx.node_id):
             reports = {
                 r.station: r
                 for r in s.execute(
@@ -161,7 +162,10 @@ def relay_view(ctx: NodeContext, *, now: datetime | None = None) -> list[PairVie
             in_flight, made = s.execute(
                 select(
                     func.coalesce(
-                        func.sum(case((RelayOp.state == "sent", RelayOp.length), else_=0)), 0
+                        func.sum(
+                            case((RelayOp.state == RelayOpState.SENT, RelayOp.length), else_=0)
+                        ),
+                        0,
                     ),
                     func.coalesce(
                         func.sum(case((RelayOp.made_at >= since, RelayOp.length), else_=0)), 0
@@ -186,7 +190,7 @@ def relay_view(ctx: NodeContext, *, now: datetime | None = None) -> list[PairVie
                     r.delivered_bits / max(r.window_seconds, 1) for r in reports.values()
                 )
             ready = min(int(side["ready_bits"] or 0) for side in sides)
-            target = arithmetic.buffer_target(
+            target = planning.buffer_target(
                 consumption_bps=consumption,
                 horizon_s=cfg.horizon_seconds,
                 minimum=pair.buffer_min_bits,

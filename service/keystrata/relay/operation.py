@@ -11,9 +11,10 @@ from __future__ import annotations
 
 import json
 import uuid
+from collections.abc import Iterable
 from dataclasses import dataclass
 
-from sqlalchemy import select
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from keystrata.context import NodeContext
@@ -25,6 +26,7 @@ from keystrata.links import consume
 from keystrata.peering import messages, outbox
 from keystrata.ranges import Range, split_after, take_ranges
 from keystrata.relay import arithmetic
+from keystrata.relay.segment_states import RelayOpState, relay_settled
 from keystrata.storage.models import Pair, QkdLink, RelayOp
 
 
@@ -51,6 +53,27 @@ def link_of(session: Session, relay_id: str, station: str) -> str:
     if link is None:
         raise NotFound(f"no active QKD link from {relay_id} to {station}")
     return str(link)
+
+
+def links_to(session: Session, relay_id: str, stations: Iterable[str]) -> dict[str, str]:
+    """The active QKD link of this relay to each of ``stations`` that has one."""
+    links: dict[str, str] = {}
+    for station in stations:
+        try:
+            links[station] = link_of(session, relay_id, station)
+        except NotFound:
+            continue
+    return links
+
+
+def segments_in_flight(session: Session) -> dict[str, int]:
+    """Segments made and not yet settled, per pair (pairs without any are left out)."""
+    rows = session.execute(
+        select(RelayOp.pair_id, func.count())
+        .where(RelayOp.state == RelayOpState.SENT)
+        .group_by(RelayOp.pair_id)
+    ).all()
+    return {str(pair_id): int(count) for pair_id, count in rows}
 
 
 def make_segment(
@@ -142,7 +165,7 @@ def make_segment(
                 length=n,
                 epsilon=epsilon,
                 ranges=json.dumps(used),
-                state="sent",
+                state=RelayOpState.SENT,
                 made_at=now,
                 settled_at=None,
             )
@@ -192,16 +215,15 @@ def settle(ctx: NodeContext, segment_id: str, outcome: str, reason: str | None) 
 
     Returns True when this call changed the record (False: already settled).
     """
-    if outcome not in ("ready", "discarded"):
-        raise ValueError("outcome must be ready or discarded")
     with ctx.db.write() as s:
         op = s.get(RelayOp, segment_id, with_for_update=True)
         if op is None:
             raise NotFound(f"no relay operation {segment_id}")
-        if op.state != "sent":
+        settled = relay_settled(op.state, outcome)
+        if settled is None:
             return False
         now = ctx.clock.now()
-        op.state = outcome
+        op.state = settled
         op.settled_at = now
         chain.append(
             s,

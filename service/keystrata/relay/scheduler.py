@@ -13,17 +13,16 @@ from __future__ import annotations
 import logging
 from dataclasses import dataclass
 
-from sqlalchemy import func, select
-
 from keystrata.context import NodeContext
-from keystrata.errors import Conflict, InvalidInput, NotFound
+from keystrata.errors import Conflict, InvalidInput
 from keystrata.links import consume
 from keystrata.peering import messages
 from keystrata.peering.client import PeerClient
 from keystrata.relay import arithmetic, buffers, operation
 from keystrata.relay.buffers import BufferReport
 from keystrata.relay.fairness import PairDemand, allocate
-from keystrata.storage.models import Pair, RelayOp
+from keystrata.relay.planning import choose_owner
+from keystrata.storage.models import Pair
 
 log = logging.getLogger("keystrata.scheduler")
 
@@ -66,26 +65,11 @@ def schedule_once(
     polling and uses the last reports (tests drive stations by hand)."""
     cfg = ctx.settings.relay
     with ctx.db.read() as s:
-        pairs = list(
-            s.execute(
-                select(Pair).where(Pair.relay_id == ctx.node_id, Pair.retired_at.is_(None))
-            ).scalars()
-        )
-        links = {}
-        for pair in pairs:
-            for st in (pair.station_a, pair.station_b):
-                try:
-                    links[st] = operation.link_of(s, ctx.node_id, st)
-                except NotFound:
-                    continue
+        pairs = buffers.pairs_through(s, ctx.node_id)
+        stations = [st for pair in pairs for st in (pair.station_a, pair.station_b)]
+        links = operation.links_to(s, ctx.node_id, stations)
         free = consume.free_bytes(s, links.values())
-        in_flight = dict(
-            s.execute(
-                select(RelayOp.pair_id, func.count())
-                .where(RelayOp.state == "sent")
-                .group_by(RelayOp.pair_id)
-            ).all()
-        )
+        in_flight = operation.segments_in_flight(s)
     if peers is not None:
         _poll_stations(ctx, peers, pairs)
     views = {v.pair_id: v for v in buffers.relay_view(ctx)}
@@ -143,7 +127,7 @@ def schedule_once(
                 # unless this small piece is all the pair still needs.
                 break
             # Recent demand per side comes with key delivery; until then it is equal.
-            owner = arithmetic.choose_owner(
+            owner = choose_owner(
                 a["station"], b["station"], 0.0, 0.0, owned[a["station"]], owned[b["station"]]
             )
             try:

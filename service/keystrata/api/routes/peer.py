@@ -1,13 +1,12 @@
 """Node-to-node routes (role ``peer``): relay and segment messages, buffer reports.
 
-Answers: 200 with ``{"segment_id", "status"}`` when the message is applied (or was
-already); 409 when it cannot be applied yet (the sender's outbox retries) or would
-reuse link key; 400 for a malformed message.
-
 ``POST /api/v1/peer/messages/batch`` carries several messages of one sender in order
-(the outbox sends this way) and answers 200 with one result per message attempted:
-``{"status": 200, "segment_id", "outcome"}`` or the status and message the single
-route would have answered; it stops at the first message not applied.
+(the outbox sends this way) and answers 200 with one result per message attempted
+(:class:`keystrata.peering.messages.MessageResult`): ``{"status": 200, "segment_id",
+"outcome"}`` when the message is applied (or was already), else the status and message
+of its refusal: 409 when it cannot be applied yet (the sender's outbox retries) or would
+reuse link key, 400 for a malformed message, 403 for a claim that is not the sender's.
+It stops at the first message not applied.
 """
 
 from __future__ import annotations
@@ -28,10 +27,11 @@ from keystrata.context import NodeContext
 from keystrata.errors import InvalidInput, NotFound
 from keystrata.node import dispatch
 from keystrata.peering import outbox
+from keystrata.peering.messages import MAX_BATCH, MessageResult
 from keystrata.registry.principals import Caller
 from keystrata.registry.specs import PrincipalRole
 from keystrata.relay import buffers
-from keystrata.restore import comparison
+from keystrata.restore import holds, points
 
 router = APIRouter(prefix="/api/v1/peer", tags=["peer"])
 
@@ -44,17 +44,7 @@ class MessageBatch(BaseModel):
     """Messages from one peer, applied in this order."""
 
     model_config = ConfigDict(extra="forbid", strict=True)
-    messages: list[dict[str, Any]] = Field(min_length=1, max_length=dispatch.MAX_BATCH)
-
-
-class MessageResult(BaseModel):
-    """What became of one message: 200 with its outcome (``applied``, ``already``,
-    ``discarded``), or the error status and message."""
-
-    status: int
-    segment_id: str | None = None
-    outcome: str | None = None
-    message: str | None = None
+    messages: list[dict[str, Any]] = Field(min_length=1, max_length=MAX_BATCH)
 
 
 class BatchResults(BaseModel):
@@ -70,20 +60,6 @@ async def _json_body(request: Request) -> Any:
         return json.loads(await request.body())
     except ValueError:
         raise InvalidInput("body: not JSON") from None
-
-
-@router.post(
-    "/messages",
-    summary="Deliver a relay or segment message",
-    operation_id="peer_message",
-    responses=error_responses(400, 401, 403, 404, 409, 413, 503),
-)
-async def peer_message(request: Request, caller: Peer) -> dict[str, Any]:
-    ctx: NodeContext = request.app.state.ctx
-    body = await _json_body(request)
-    assert caller.node_id is not None  # peers are bound to a node (registry rule)
-    outcome = await run_in_threadpool(dispatch.handle, ctx, caller.node_id, body)
-    return {"segment_id": outcome.segment_id, "status": outcome.status}
 
 
 #: The batch body as the OpenAPI document describes it: the body is read by the handler
@@ -116,20 +92,13 @@ async def peer_message_batch(request: Request, caller: Peer) -> BatchResults:
     except ValidationError as exc:
         errors = exc.errors(include_input=False, include_url=False)
         raise RequestValidationError([{**e, "loc": ("body", *e["loc"])} for e in errors]) from None
-    answers = await run_in_threadpool(
+    results = await run_in_threadpool(
         dispatch.handle_batch, ctx, caller.node_id, list(batch.messages)
     )
-    for a in answers:
-        if a.status >= 500:
-            log.warning("peer message failed: %s (%d)", a.message, a.status)
-    return BatchResults(
-        results=[
-            MessageResult(
-                status=a.status, segment_id=a.segment_id, outcome=a.outcome, message=a.message
-            )
-            for a in answers
-        ]
-    )
+    for result in results:
+        if result.status >= 500:
+            log.warning("peer message failed: %s (%d)", result.message, result.status)
+    return BatchResults(results=results)
 
 
 @router.get(
@@ -143,7 +112,7 @@ def pair_buffer(pair_id: str, request: Request, caller: Peer) -> dict[str, Any]:
     if ctx.role is not Role.STATION:
         raise NotFound("only stations keep pair buffers")
     assert caller.node_id is not None  # peers are bound to a node (registry rule)
-    comparison.refuse_pair_if_held(ctx, pair_id)  # a held pair tells the relay nothing new
+    holds.refuse_pair_if_held(ctx, pair_id)  # a held pair tells the relay nothing new
     return buffers.report_for_relay(ctx, pair_id, caller.node_id).to_json()
 
 
@@ -154,8 +123,8 @@ def pair_buffer(pair_id: str, request: Request, caller: Peer) -> dict[str, Any]:
     responses=error_responses(401, 403, 503),
 )
 def pending_allocations(request: Request, caller: Peer) -> dict[str, Any]:
-    """A station asked for a key ID it has not heard of pulls them here (issue: the
-    ``key.allocated`` message may still be in this node's outbox)."""
+    """A station asked for a key ID it has not heard of pulls them here: the
+    ``key.allocated`` message may still be in this node's outbox."""
     ctx: NodeContext = request.app.state.ctx
     assert caller.node_id is not None
     return {
@@ -181,4 +150,4 @@ def pair_progress(
     if after is not None and len(after) > 36:
         raise InvalidInput("after: a segment ID", details=[{"field": "after"}])
     assert caller.node_id is not None  # peers are bound to a node (registry rule)
-    return comparison.report(ctx, caller.node_id, pair_id, after)
+    return points.report(ctx, caller.node_id, pair_id, after)
