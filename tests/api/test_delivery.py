@@ -79,7 +79,7 @@ def test_slave_asking_before_the_message_pulls_it_from_the_owner(net, api) -> No
 
     client = api(net.b)("sae-b1")
     app_b = client._client._transport.app.app  # the app behind the test TLS wrapper
-    app_b.state.peers = InProcessPeers()
+    app_b.state.allocation_source = InProcessPeers()
     r = client.post(
         "/api/v1/keys/sae-a1/dec_keys", json={"key_IDs": [{"key_ID": k} for k in master]}
     )

@@ -46,7 +46,8 @@ class Peers:
 def _slave(net: relaynet.RelayNet, api: Any) -> tuple[Any, Peers]:
     client = api(net.b)("sae-b1")
     peers = Peers(net)
-    client._client._transport.app.app.state.peers = peers  # the app behind the TLS wrapper
+    app = client._client._transport.app.app  # the app behind the TLS wrapper
+    app.state.allocation_source = peers
     return client, peers
 
 

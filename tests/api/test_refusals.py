@@ -189,9 +189,10 @@ def test_refusal_windows_are_bounded_in_memory(clocked) -> None:
 # ---------------------------------------------------------------- peer routes
 
 
+@pytest.mark.parametrize("route", ["/api/v1/peer/messages", "/api/v1/peer/messages/batch"])
 @pytest.mark.parametrize(("cert", "status"), [("sae-a1", 403), ("stranger", 401)])
-def test_peer_message_route_reads_no_body_before_the_role_check(
-    station: Node, api, cert: str, status: int
+def test_peer_routes_read_no_body_before_the_role_check(
+    station: Node, api, route: str, cert: str, status: int
 ) -> None:
     """A non-peer sends a large body that is not JSON: it is refused for its role (not
     400 for its body), and the app never took a byte of the body from the connection
@@ -212,9 +213,7 @@ def test_peer_message_route_reads_no_body_before_the_role_check(
 
     wrapper.app = counting
     body = b"{" * (4 * 1024 * 1024)
-    r = client.post(
-        "/api/v1/peer/messages/batch", content=body, headers={"content-type": "application/json"}
-    )
+    r = client.post(route, content=body, headers={"content-type": "application/json"})
     assert r.status_code == status, r.text
     assert sum(taken) == 0, f"{sum(taken)} body bytes read before the role check"
 
@@ -243,8 +242,13 @@ def test_get_key_with_key_ids_refusals_name_their_reason(net, api) -> None:
     """Every refusal answers the standard's one 401; the ledger tells an auditor a
     replay (already delivered) from a mistake (not allocated to this SAE), an expired
     key and an unknown key ID (attack test: one reason for all of them)."""
-    from keystrata.delivery import enc_keys
+    from keystrata.delivery import dec_keys
+    from keystrata.errors import Unauthenticated
     from keystrata.registry.principals import Caller
+
+    class NothingPending:
+        def pending_allocations(self, owner: str) -> list[dict[str, Any]]:
+            return []
 
     a1 = api(net.a)("sae-a1")
     first, second = _key_ids(a1.post("/api/v1/keys/sae-b1/enc_keys", json={"number": 2}))
@@ -268,8 +272,10 @@ def test_get_key_with_key_ids_refusals_name_their_reason(net, api) -> None:
     caller = Caller(
         principal_id="sae-b1", role=principals.PrincipalRole.SAE, station_id="station-b"
     )
-    with pytest.raises(enc_keys.Unauthenticated):
-        enc_keys.get_keys_with_ids(net.b.ctx, caller, "sae-a1", [str(uuid.uuid4())], lambda _: [])
+    with pytest.raises(Unauthenticated):
+        dec_keys.get_keys_with_ids(
+            net.b.ctx, caller, "sae-a1", [str(uuid.uuid4())], NothingPending()
+        )
     assert _last_reason(net.b) == "unknown_key_id"
     # The first key that fails decides: here the second one, expired.
     later = dataclasses.replace(
@@ -277,7 +283,7 @@ def test_get_key_with_key_ids_refusals_name_their_reason(net, api) -> None:
         clock=SteppedClock(net.b.ctx.clock.now() + timedelta(days=400)),
         lanes={},
     )
-    with pytest.raises(enc_keys.Unauthenticated):
-        enc_keys.get_keys_with_ids(later, caller, "sae-a1", [second], None)
+    with pytest.raises(Unauthenticated):
+        dec_keys.get_keys_with_ids(later, caller, "sae-a1", [second], None)
     assert _last_reason(net.b) == "expired"
     assert dec(b1, "sae-a1", second) == 200  # nothing was changed by the refusals

@@ -16,10 +16,10 @@ import pytest
 from sqlalchemy import select
 
 import relaynet
-from keystrata.delivery import enc_keys
+from keystrata.delivery import dec_keys, enc_keys
 from keystrata.delivery.group_commit import GroupCommit
 from keystrata.delivery.schemas import KeyRequest
-from keystrata.errors import Unauthenticated
+from keystrata.errors import NotEnoughKey, QuotaReached, Unauthenticated
 from keystrata.registry.principals import Caller
 from keystrata.registry.specs import PrincipalRole
 from keystrata.storage.models import LedgerEntry
@@ -134,7 +134,7 @@ def test_one_batch_of_get_key_with_mixed_outcomes(net) -> None:
     calls = [lambda n=n: enc_keys.get_keys(ctx, A1, "sae-b1", KeyRequest(number=n)) for n in sizes]
     out = _together(lane, calls)
     by_size = dict(zip(sizes, out, strict=True))
-    assert isinstance(by_size[10], enc_keys.QuotaReached), by_size[10]
+    assert isinstance(by_size[10], QuotaReached), by_size[10]
     delivered = [k for n in (20, 15, 4) for k in by_size[n]]
     assert [len(by_size[n]) for n in (20, 15, 4)] == [20, 15, 4]
     assert len({k.key for k in delivered}) == len(delivered) == 39  # no shared key
@@ -146,7 +146,7 @@ def test_one_batch_of_get_key_with_mixed_outcomes(net) -> None:
     assert set().union(*named) == {k.key_id for k in delivered}
     # The slave's station gets the same keys from one combined message.
     net.drain()
-    got = enc_keys.get_keys_with_ids(net.b.ctx, B1, "sae-a1", [k.key_id for k in delivered])
+    got = dec_keys.get_keys_with_ids(net.b.ctx, B1, "sae-a1", [k.key_id for k in delivered])
     assert {k.key_id: k.key for k in got} == {k.key_id: k.key for k in delivered}
 
 
@@ -154,16 +154,16 @@ def test_one_batch_of_get_key_with_key_ids_serves_each_key_once(net) -> None:
     keys = enc_keys.get_keys(net.a.ctx, A1, "sae-b1", KeyRequest(number=3))
     net.drain()
     ctx = net.b.ctx
-    first = enc_keys.get_keys_with_ids(ctx, B1, "sae-a1", [keys[0].key_id])
+    first = dec_keys.get_keys_with_ids(ctx, B1, "sae-a1", [keys[0].key_id])
     assert first[0].key == keys[0].key
     lane = _lane(ctx, "get_key_with_ids")
     ids = [k.key_id for k in keys]
     # The same slave asks for key 2 twice and for keys 1+3 (1 already fetched).
     calls = [
-        lambda: enc_keys.get_keys_with_ids(ctx, B1, "sae-a1", [ids[1]]),
-        lambda: enc_keys.get_keys_with_ids(ctx, B1, "sae-a1", [ids[1]]),
-        lambda: enc_keys.get_keys_with_ids(ctx, B1, "sae-a1", [ids[0], ids[2]]),
-        lambda: enc_keys.get_keys_with_ids(ctx, B1, "sae-a1", [ids[2]]),
+        lambda: dec_keys.get_keys_with_ids(ctx, B1, "sae-a1", [ids[1]]),
+        lambda: dec_keys.get_keys_with_ids(ctx, B1, "sae-a1", [ids[1]]),
+        lambda: dec_keys.get_keys_with_ids(ctx, B1, "sae-a1", [ids[0], ids[2]]),
+        lambda: dec_keys.get_keys_with_ids(ctx, B1, "sae-a1", [ids[2]]),
     ]
     out = _together(lane, calls)
     served = [x for x in out if isinstance(x, list)]
@@ -226,9 +226,9 @@ def test_two_worker_processes_never_take_the_same_bytes(net) -> None:
             while True:
                 try:
                     keys = enc_keys.get_keys(ctx, A1, "sae-b1", KeyRequest(number=1 + i % 3))
-                except enc_keys.NotEnoughKey:
+                except NotEnoughKey:
                     return
-                except enc_keys.QuotaReached:
+                except QuotaReached:
                     return
                 except BaseException as exc:
                     with lock:

@@ -17,7 +17,7 @@ import pytest
 from sqlalchemy import select
 
 from conftest import Node
-from keystrata.delivery import enc_keys
+from keystrata.delivery import dec_keys
 from keystrata.errors import Conflict, NotYetCompared, PairHeld
 from keystrata.ledger.entries import Event
 from keystrata.loopback.pki import cert_pin
@@ -202,7 +202,7 @@ def test_owner_behind_is_held_then_released_without_serving_a_byte_again(station
         holds.refuse_if_held(ctx, A1, "sae-c1")
     assert held.value.status == 503 and "operator must resolve it" in held.value.message
     with pytest.raises(PairHeld):
-        enc_keys.get_keys_with_ids(ctx, A1, "sae-c1", [str(uuid.uuid4())])
+        dec_keys.get_keys_with_ids(ctx, A1, "sae-c1", [str(uuid.uuid4())])
     assert [h.reason for h in holds.open_holds(ctx)] == ["owner_behind"]
     # A second comparison adds no second finding.
     comparison.check_pair(ctx, partner, "pair-ac")

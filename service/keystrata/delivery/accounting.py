@@ -11,6 +11,7 @@ from typing import Any
 from sqlalchemy import select
 
 from keystrata.context import NodeContext
+from keystrata.delivery.key_states import KeyState
 from keystrata.ledger.entries import Event
 from keystrata.storage.models import KeyAlloc, LedgerEntry
 
@@ -48,7 +49,7 @@ def deliveries(ctx: NodeContext) -> dict[str, Any]:
             if row.owner == ctx.node_id:
                 add(p["to_masters"], row.size_bits)
                 add(saes[row.master_sae]["as_master"], row.size_bits)
-                if row.state == "expired":
+                if row.state == KeyState.EXPIRED:
                     add(p["expired"], row.size_bits)
                     add(saes[row.master_sae]["expired"], row.size_bits)
                 continue
@@ -56,9 +57,9 @@ def deliveries(ctx: NodeContext) -> dict[str, Any]:
             for sae in fetched:
                 add(p["to_slaves"], row.size_bits)
                 add(saes[sae]["as_slave"], row.size_bits)
-            if row.state == "waiting":
+            if row.state == KeyState.WAITING:
                 add(p["waiting"], row.size_bits)
-            elif row.state == "expired":
+            elif row.state == KeyState.EXPIRED:
                 add(p["expired"], row.size_bits)
                 for sae in set(json.loads(row.slaves)) - set(fetched):
                     add(saes[sae]["expired"], row.size_bits)

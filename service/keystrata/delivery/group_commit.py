@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import threading
 from collections.abc import Callable, Sequence
-from typing import Generic, TypeVar
+from typing import Any, Generic, TypeVar
 
 T = TypeVar("T")
 R = TypeVar("R")
@@ -81,3 +81,15 @@ class GroupCommit(Generic[T, R]):
             else:
                 slot.result = result
             slot.done = True
+
+
+def shared(
+    groups: dict[str, Any], name: str, run: BatchFn[T, R], *, max_batch: int = 64
+) -> GroupCommit[T, R]:
+    """The group commit ``name`` of this process (kept in ``groups``, the node context's
+    per-process state), created around ``run`` on first use."""
+    group = groups.get(name)
+    if group is None:
+        group = groups.setdefault(name, GroupCommit(run, max_batch=max_batch))
+    assert isinstance(group, GroupCommit)
+    return group

@@ -9,7 +9,9 @@ two stations of a pair).
 * Expiry: keys no slave fetched in time are destroyed here and the owner is told
   (``key.expired``), which records them as expired on its side.
 
-Get key and Get key with key IDs themselves are in :mod:`keystrata.delivery.enc_keys`.
+Get key and Get key with key IDs themselves are in :mod:`keystrata.delivery.enc_keys`
+and :mod:`keystrata.delivery.dec_keys`; the states of a key in
+:mod:`keystrata.delivery.key_states`.
 """
 
 from __future__ import annotations
@@ -22,20 +24,23 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from keystrata.context import NodeContext
+from keystrata.delivery.key_states import KeyState, at_slave_station, move
 from keystrata.errors import Forbidden, InvalidInput, KeystrataError, OutOfOrder
 from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
 from keystrata.peering import messages, outbox
-from keystrata.peering.messages import MessageResult
+from keystrata.ranges import Range
+from keystrata.relay.segments import Outcome
+from keystrata.storage.front import Front, Refusals, segment_front, store_segment
 from keystrata.storage.models import KeyAlloc, Pair, PairSegment, Principal
-from keystrata.storage.sealed import key_context, segment_context
+from keystrata.storage.sealed import key_context
 
 #: How far another station's clock may be ahead of ours when it dates an allocation
 #: (NTP-synchronised hosts are far closer; common practice).
 CLOCK_SKEW = timedelta(seconds=300)
 
 
-def apply_allocated(ctx: NodeContext, sender: str, msg: messages.KeyAllocated) -> MessageResult:
+def apply_allocated(ctx: NodeContext, sender: str, msg: messages.KeyAllocated) -> Outcome:
     """Slave's station: take the named segment bytes as keys waiting for their slaves."""
     with ctx.db.write() as s:
         return apply_allocated_in(ctx, s, sender, msg)
@@ -43,7 +48,7 @@ def apply_allocated(ctx: NodeContext, sender: str, msg: messages.KeyAllocated) -
 
 def apply_allocated_run(
     ctx: NodeContext, sender: str, msgs: Sequence[messages.KeyAllocated]
-) -> tuple[list[MessageResult], KeystrataError | None]:
+) -> tuple[list[Outcome], KeystrataError | None]:
     """Apply consecutive ``key.allocated`` messages in order in one transaction (one
     commit), each in a savepoint as if it came alone; stop at the first that does not
     apply. Returns the outcomes of those applied and the error that stopped the run.
@@ -51,7 +56,7 @@ def apply_allocated_run(
     A failure of the transaction itself (the database went away) raises: then none of
     them is applied.
     """
-    outcomes: list[MessageResult] = []
+    outcomes: list[Outcome] = []
     error: KeystrataError | None = None
     with ctx.db.write() as s:
         for msg in msgs:
@@ -126,7 +131,7 @@ def check_binding(
 
 def apply_allocated_in(
     ctx: NodeContext, s: Session, sender: str, msg: messages.KeyAllocated
-) -> MessageResult:
+) -> Outcome:
     """:func:`apply_allocated` in the caller's transaction."""
     now = ctx.clock.now()
     pair = check_binding(s, ctx, sender, msg, now)
@@ -147,7 +152,7 @@ def apply_allocated_in(
         key_id = rec.key_ID
         if s.get(KeyAlloc, key_id) is not None:
             continue
-        key = _carve_named(ctx, s, pair_id, sender, rec.ranges)
+        key = _take_named(ctx, s, pair_id, sender, rec.ranges)
         live = rec.expires_at > now
         row = KeyAlloc(
             key_id=key_id,
@@ -158,7 +163,7 @@ def apply_allocated_in(
             fetched_by="[]",
             ranges=json.dumps([r.model_dump() for r in rec.ranges]),
             size_bits=rec.size_bits,
-            state="waiting" if live else "expired",
+            state=at_slave_station(live=live),
             allocated_at=rec.allocated_at,
             expires_at=rec.expires_at,
             settled_at=None if live else now,
@@ -186,7 +191,7 @@ def apply_allocated_in(
                 "side": "slave",
             },
         )
-    return MessageResult.handled(applied[0] if applied else "", "applied" if applied else "already")
+    return Outcome(applied[0] if applied else "", "applied" if applied else "already")
 
 
 def segments_of(records: Sequence[messages.AllocatedKey]) -> list[str]:
@@ -194,30 +199,32 @@ def segments_of(records: Sequence[messages.AllocatedKey]) -> list[str]:
     return list(dict.fromkeys(r.segment for rec in records for r in rec.ranges))
 
 
-def _carve_named(
+#: Errors for a key range not at the front of its segment.
+_REFUSALS = Refusals(
+    ahead=lambda r, used: OutOfOrder("not yet: earlier keys of this segment have not arrived"),
+    behind=lambda r, used: InvalidInput("a key range names segment bytes already used"),
+    outside=lambda r, used: InvalidInput("a key range names segment bytes already used"),
+)
+
+
+def _take_named(
     ctx: NodeContext, s: Session, pair_id: str, owner: str, ranges: Sequence[messages.SegmentRange]
 ) -> bytes:
-    out = b""
+    """The key bytes of ``ranges``, taken from this station's copy of their segments."""
+    parts: list[bytes] = []
+    fronts: dict[str, tuple[PairSegment, Front]] = {}
     for r in ranges:
         row = s.get(PairSegment, r.segment, with_for_update=True)
         if row is not None and (row.pair_id != pair_id or row.owner != owner):
             raise Forbidden("a key range names a segment of another pair or owner")
         if row is None or row.state != "ready":
             raise OutOfOrder("not yet: the segment of this key is not ready here")
-        if r.offset > row.used:
-            raise OutOfOrder("not yet: earlier keys of this segment have not arrived")
-        if r.offset < row.used or r.offset + r.length > row.length:
-            raise InvalidInput("a key range names segment bytes already used")
-        assert row.sealed is not None
-        rest = ctx.keyring.open(row.sealed, segment_context(row, row.used))
-        out += rest[: r.length]
-        _advance(ctx, row, r.length, rest[r.length :])
-    return out
-
-
-def _advance(ctx: NodeContext, row: PairSegment, taken: int, rest: bytes) -> None:
-    row.used += taken
-    row.sealed = ctx.keyring.seal(rest, segment_context(row, row.used)) if rest else None
+        if r.segment not in fronts:
+            fronts[r.segment] = (row, segment_front(ctx.keyring, row, _REFUSALS))
+        parts.append(fronts[r.segment][1].take(Range(r.segment, r.offset, r.length)))
+    for row, front in fronts.values():
+        store_segment(row, front)
+    return b"".join(parts)
 
 
 def expire(ctx: NodeContext) -> int:
@@ -227,7 +234,7 @@ def expire(ctx: NodeContext) -> int:
         rows = (
             s.execute(
                 select(KeyAlloc)
-                .where(KeyAlloc.state == "waiting", KeyAlloc.expires_at <= now)
+                .where(KeyAlloc.state == KeyState.WAITING.value, KeyAlloc.expires_at <= now)
                 .with_for_update()
             )
             .scalars()
@@ -235,7 +242,8 @@ def expire(ctx: NodeContext) -> int:
         )
         by_owner: dict[tuple[str, str], list[KeyAlloc]] = {}
         for row in rows:
-            row.state, row.sealed, row.settled_at = "expired", None, now
+            row.state = move(row.state, KeyState.EXPIRED)
+            row.sealed, row.settled_at = None, now
             by_owner.setdefault((row.owner, row.pair_id), []).append(row)
         for (owner, pair_id), expired in by_owner.items():
             key_ids = [r.key_id for r in expired]
@@ -264,7 +272,7 @@ def expire(ctx: NodeContext) -> int:
         return len(rows)
 
 
-def apply_expired(ctx: NodeContext, sender: str, msg: messages.KeyExpired) -> MessageResult:
+def apply_expired(ctx: NodeContext, sender: str, msg: messages.KeyExpired) -> Outcome:
     """Owner: record that keys it allocated expired uncollected at the slave's station.
 
     Only keys of the named pair that this station allocated, reported by its partner in
@@ -290,10 +298,13 @@ def apply_expired(ctx: NodeContext, sender: str, msg: messages.KeyExpired) -> Me
         )
         if len(rows) != len(set(msg.key_ids)):
             raise Forbidden("a key ID named is not a key this station allocated in the pair")
-        changed = [r.key_id for r in rows if r.state != "expired"]
-        bits = sum(r.size_bits for r in rows if r.state != "expired")
+        newly = [r for r in rows if r.state != KeyState.EXPIRED]
+        changed = [r.key_id for r in newly]
+        bits = sum(r.size_bits for r in newly)
+        for row in newly:
+            row.state = move(row.state, KeyState.EXPIRED)
         for row in rows:
-            row.state, row.settled_at = "expired", now
+            row.settled_at = now
         if changed:
             chain.append(
                 s,
@@ -302,4 +313,4 @@ def apply_expired(ctx: NodeContext, sender: str, msg: messages.KeyExpired) -> Me
                 event=Event.KEY_EXPIRED,
                 fields={"pair": pair.pair_id, "bits": bits, "key_ids": changed, "side": "master"},
             )
-    return MessageResult.handled("", "applied" if changed else "already")
+    return Outcome("", "applied" if changed else "already")

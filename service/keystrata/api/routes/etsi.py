@@ -17,11 +17,11 @@ from starlette.concurrency import run_in_threadpool
 from keystrata.api.identity import admit
 from keystrata.config import Role
 from keystrata.context import NodeContext
-from keystrata.delivery import enc_keys
+from keystrata.delivery import dec_keys, enc_keys, status
 from keystrata.delivery.enc_keys import DeliveredKey
+from keystrata.delivery.ports import AllocationSource
 from keystrata.delivery.schemas import ErrorBody, KeyContainer, KeyIds, KeyRequest, Status
 from keystrata.errors import NotFound
-from keystrata.peering.client import PeerClient
 from keystrata.registry.principals import Caller
 from keystrata.registry.specs import PrincipalRole
 
@@ -51,12 +51,10 @@ def _container(keys: list[DeliveredKey]) -> dict[str, Any]:
     return {"keys": [{"key_ID": k.key_id, "key": base64.b64encode(k.key).decode()} for k in keys]}
 
 
-def _pull(request: Request) -> enc_keys.Pull:
-    def pull(owner: str) -> list[dict[str, Any]] | None:
-        peers: PeerClient = request.app.state.peers
-        return peers.pending_allocations(owner)
-
-    return pull
+def _allocation_source(request: Request) -> AllocationSource | None:
+    """The port to owning stations the composition root gave the app."""
+    source: AllocationSource | None = request.app.state.allocation_source
+    return source
 
 
 @router.get(
@@ -67,7 +65,7 @@ def _pull(request: Request) -> enc_keys.Pull:
     operation_id="get_status",
 )
 def get_status(slave_SAE_ID: str, request: Request, caller: Sae) -> dict[str, Any]:
-    return enc_keys.status(_station(request), caller, slave_SAE_ID)
+    return status.status(_station(request), caller, slave_SAE_ID)
 
 
 @router.post(
@@ -124,7 +122,7 @@ async def get_key_with_ids(
     ctx = _station(request)
     ids = [entry.key_ID for entry in body.key_IDs]
     keys = await run_in_threadpool(
-        enc_keys.get_keys_with_ids, ctx, caller, master_SAE_ID, ids, _pull(request)
+        dec_keys.get_keys_with_ids, ctx, caller, master_SAE_ID, ids, _allocation_source(request)
     )
     return _container(keys)
 
@@ -144,6 +142,11 @@ async def get_key_with_id_simple(
 ) -> dict[str, Any]:
     ctx = _station(request)
     keys = await run_in_threadpool(
-        enc_keys.get_keys_with_ids, ctx, caller, master_SAE_ID, [key_ID], _pull(request)
+        dec_keys.get_keys_with_ids,
+        ctx,
+        caller,
+        master_SAE_ID,
+        [key_ID],
+        _allocation_source(request),
     )
     return _container(keys)
