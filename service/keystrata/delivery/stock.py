@@ -30,7 +30,7 @@ _LOCK_ATTEMPTS = 8
 
 
 @dataclass
-class _Front:
+class _LockedSegment:
     segment_id: str
     start: int  # ``used`` when this transaction locked it
     length: int
@@ -45,7 +45,7 @@ class OwnedStock:
         self.keyring = keyring
         self.pair_id = pair_id
         self.owner = owner
-        self.front: list[_Front] = []
+        self.front: list[_LockedSegment] = []
         self.cursor = 0
 
     def reserve(self, want: int) -> None:
@@ -92,7 +92,7 @@ class OwnedStock:
                 )
             }
             # In front order, as they stand now that they are locked.
-            self.front = [_Front(sid, *locked[sid]) for sid in chosen if sid in locked]
+            self.front = [_LockedSegment(sid, *locked[sid]) for sid in chosen if sid in locked]
             if everything or self.left >= want:
                 return
 

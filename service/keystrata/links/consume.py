@@ -54,7 +54,7 @@ def available(session: Session, link_id: str, limit_bytes: int) -> list[Availabl
 
     Reads the blocks in pages (keyset on ``seq``, the order of the partial index
     ``ix_link_block_available``) so that a relay operation reads the few blocks it will
-    take, not every unused block of the link: the cost of a segment no longer grows with
+    take, not every unused block of the link: the cost of a segment does not grow with
     the pool.
     """
     out: list[Available] = []
