@@ -11,7 +11,8 @@ models only make sure it is well formed.
 Wire form: a JSON object with ``kind`` (the message kind), ``v`` (its version) and the
 members below. Identifiers follow :data:`keystrata.ids.ID_PATTERN`; segment and key IDs
 are UUIDs in the canonical lower-case form (RFC 9562 section 4); byte strings are Base64
-(RFC 4648 section 4); times are RFC 3339 with an offset.
+(RFC 4648 section 4); times are RFC 3339 with an offset. What a node reads from a
+peer's GET routes is in :mod:`keystrata.peering.answers`.
 """
 
 from __future__ import annotations
@@ -20,7 +21,7 @@ import base64
 import binascii
 import json
 from datetime import datetime
-from typing import Annotated, Any, ClassVar, Literal, Self
+from typing import Annotated, Any, ClassVar, Literal
 
 import rfc8785
 from pydantic import (
@@ -108,11 +109,13 @@ B64 = Annotated[
 ]
 
 
-class _Strict(BaseModel):
+class StrictModel(BaseModel):
+    """Base of every model that travels between nodes: no extra members, no coercion."""
+
     model_config = ConfigDict(extra="forbid", strict=True, frozen=True)
 
 
-class LinkRange(_Strict):
+class LinkRange(StrictModel):
     """Bytes [offset, offset + length) of one link key block."""
 
     block: Uuid
@@ -120,7 +123,7 @@ class LinkRange(_Strict):
     length: Positive
 
 
-class SegmentRange(_Strict):
+class SegmentRange(StrictModel):
     """Bytes [offset, offset + length) of one pair key segment."""
 
     segment: Uuid
@@ -131,7 +134,7 @@ class SegmentRange(_Strict):
 Ranges = Annotated[list[LinkRange], Field(min_length=1, max_length=4096)]
 
 
-class SegmentHeader(_Strict):
+class SegmentHeader(StrictModel):
     """What the relay says of a segment; both one-time MACs cover its canonical bytes,
     so the two stations accept a segment only on the same header.
 
@@ -179,11 +182,11 @@ class SegmentHeader(_Strict):
         try:
             header = SegmentHeader.model_validate(value)
         except ValidationError as exc:
-            raise _invalid("header", exc) from None
+            raise invalid_input("header", exc) from None
         return header
 
 
-class PeerMessage(_Strict):
+class PeerMessage(StrictModel):
     """Base of every message kind; ``kind`` names the class, ``v`` its version."""
 
     kind: ClassVar[str]
@@ -248,7 +251,7 @@ class SegmentSettled(PeerMessage):
     reason: Reason | None = None
 
 
-class AllocatedKey(_Strict):
+class AllocatedKey(StrictModel):
     """One key of a ``key.allocated`` message."""
 
     key_ID: Uuid
@@ -293,7 +296,7 @@ class KeyExpired(PeerMessage):
 Outcome = Literal["applied", "already", "discarded"]
 
 
-class MessageResult(_Strict):
+class MessageResult(StrictModel):
     """What became of one message, as handlers return it and the batch route answers it:
     ``status`` 200 with the ``segment_id`` and the ``outcome``, or the status and
     ``message`` of the error it raised. Wire form: this model's JSON, every member
@@ -314,74 +317,6 @@ class MessageResult(_Strict):
     def failed(cls, error: KeystrataError) -> MessageResult:
         """A message not applied: the error's status and its (safe) message."""
         return cls(status=error.status, message=error.message)
-
-
-class _Answer(_Strict):
-    """An answer a node reads from a peer's route (not sent through the outbox)."""
-
-    what: ClassVar[str] = "answer"
-
-    def to_json(self) -> dict[str, Any]:
-        return self.model_dump(mode="json")
-
-    @classmethod
-    def from_json(cls, raw: Any) -> Self:
-        """Parse an answer. Raises InvalidInput naming the first bad member."""
-        try:
-            return cls.model_validate(raw)
-        except ValidationError as exc:
-            raise _invalid(cls.what, exc) from None
-
-
-class BufferReport(_Answer):
-    """A station's key buffer for one pair (bits), as its relay polls it."""
-
-    v: Literal[1] = 1
-    pair_id: NodeId
-    station: NodeId
-    ready_bits: Count
-    owned_ready_bits: Count
-    pending_bits: Count
-    delivered_bits: Count
-    window_seconds: Annotated[int, Field(strict=True, ge=1, le=86_400)]
-    reported_at: Time
-
-    what: ClassVar[str] = "buffer report"
-
-
-class ProgressPoint(_Strict):
-    """One segment's consumption point at the answering station (no key material)."""
-
-    segment_id: Uuid
-    owner: NodeId
-    used: Count
-    unacked: Count
-
-    @model_validator(mode="after")
-    def _consistent(self) -> ProgressPoint:
-        if self.unacked > self.used:
-            raise ValueError("unacked cannot exceed used")
-        return self
-
-
-class ProgressReport(_Answer):
-    """A station's consumption points of one pair, one page, for the restore check of
-    the pair's other station (``GET /api/v1/peer/pairs/{pair}/progress``).
-
-    The first page also carries ``fetched_keys``: keys of the caller's ownership this
-    station has served to at least one slave (a count that only grows), and
-    ``seen_fetched``: the highest ``fetched_keys`` the caller has shown this station.
-    """
-
-    v: Literal[1] = 1
-    pair_id: NodeId
-    station: NodeId
-    points: Annotated[list[ProgressPoint], Field(max_length=1000)]
-    next_after: Uuid | None = None
-    fetched_keys: Count | None = None
-    seen_fetched: Count | None = None
-
-    what: ClassVar[str] = "progress report"
 
 
 KINDS: dict[str, type[PeerMessage]] = {
@@ -422,10 +357,10 @@ def parse(body: Any) -> PeerMessage:
     try:
         return cls.model_validate(fields)
     except ValidationError as exc:
-        raise _invalid(f"message {cls.kind}", exc) from None
+        raise invalid_input(f"message {cls.kind}", exc) from None
 
 
-def _invalid(what: str, exc: ValidationError) -> InvalidInput:
+def invalid_input(what: str, exc: ValidationError) -> InvalidInput:
     """A 400 naming the members that failed, never their values."""
     fields = [".".join(str(p) for p in e["loc"]) for e in exc.errors()[:8]]
     first = fields[0] if fields and fields[0] else "body"

@@ -16,7 +16,7 @@ from dataclasses import dataclass
 from keystrata.context import NodeContext
 from keystrata.errors import Conflict, InvalidInput
 from keystrata.links import consume
-from keystrata.peering import messages
+from keystrata.peering import answers
 from keystrata.peering.client import PeerClient
 from keystrata.relay import arithmetic, buffers, operation
 from keystrata.relay.buffers import BufferReport
@@ -45,7 +45,7 @@ def _poll_stations(ctx: NodeContext, peers: PeerClient, pairs: list[Pair]) -> No
             if raw is None:
                 continue
             try:
-                wire = messages.BufferReport.from_json(raw)
+                wire = answers.BufferReport.from_json(raw)
             except InvalidInput as exc:
                 log.warning("scheduler: malformed buffer report from %s: %s", station, exc.message)
                 continue

@@ -20,7 +20,7 @@ from sqlalchemy.orm import Session
 
 from keystrata.context import NodeContext
 from keystrata.errors import Forbidden, InvalidInput
-from keystrata.peering import messages
+from keystrata.peering import answers
 from keystrata.restore.rules import Point
 from keystrata.storage.models import KeyAlloc, OutboxMessage, Pair, PairSegment, PartnerMark
 
@@ -119,11 +119,11 @@ def report(ctx: NodeContext, caller_node: str, pair_id: str, after: str | None) 
         first = after is None
         fetched = fetched_keys(s, pair_id, caller_node) if first else None
         seen = partner_mark(s, pair_id, caller_node).partner_fetched if first else None
-    return messages.ProgressReport(
+    return answers.ProgressReport(
         pair_id=pair_id,
         station=ctx.node_id,
         points=[
-            messages.ProgressPoint(
+            answers.ProgressPoint(
                 segment_id=p.segment_id, owner=p.owner, used=p.used, unacked=p.unacked
             )
             for p in points
@@ -168,8 +168,8 @@ def own_points(ctx: NodeContext, pair_id: str, partner: str) -> dict[str, Point]
     return out
 
 
-def _checked_page(raw: Any, pair_id: str, partner: str) -> messages.ProgressReport:
-    page = messages.ProgressReport.from_json(raw)
+def _checked_page(raw: Any, pair_id: str, partner: str) -> answers.ProgressReport:
+    page = answers.ProgressReport.from_json(raw)
     if page.pair_id != pair_id or page.station != partner:
         raise InvalidInput("progress answer names another pair or station")
     return page
@@ -182,7 +182,7 @@ def partner_progress(
     answers something malformed)."""
     timeout = ctx.settings.restore_check.peer_timeout_seconds
     out: dict[str, Point] = {}
-    first: messages.ProgressReport | None = None
+    first: answers.ProgressReport | None = None
     after: str | None = None
     for _ in range(MAX_PAGES):
         raw = source.pair_progress(partner, pair_id, after, timeout)
