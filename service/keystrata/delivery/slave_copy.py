@@ -29,8 +29,8 @@ from keystrata.errors import Forbidden, InvalidInput, KeystrataError, OutOfOrder
 from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
 from keystrata.peering import messages, outbox
+from keystrata.peering.messages import MessageResult
 from keystrata.ranges import Range
-from keystrata.relay.segments import Outcome
 from keystrata.storage.front import Front, Refusals, segment_front, store_segment
 from keystrata.storage.models import KeyAlloc, Pair, PairSegment, Principal
 from keystrata.storage.sealed import key_context
@@ -40,7 +40,7 @@ from keystrata.storage.sealed import key_context
 CLOCK_SKEW = timedelta(seconds=300)
 
 
-def apply_allocated(ctx: NodeContext, sender: str, msg: messages.KeyAllocated) -> Outcome:
+def apply_allocated(ctx: NodeContext, sender: str, msg: messages.KeyAllocated) -> MessageResult:
     """Slave's station: take the named segment bytes as keys waiting for their slaves."""
     with ctx.db.write() as s:
         return apply_allocated_in(ctx, s, sender, msg)
@@ -48,7 +48,7 @@ def apply_allocated(ctx: NodeContext, sender: str, msg: messages.KeyAllocated) -
 
 def apply_allocated_run(
     ctx: NodeContext, sender: str, msgs: Sequence[messages.KeyAllocated]
-) -> tuple[list[Outcome], KeystrataError | None]:
+) -> tuple[list[MessageResult], KeystrataError | None]:
     """Apply consecutive ``key.allocated`` messages in order in one transaction (one
     commit), each in a savepoint as if it came alone; stop at the first that does not
     apply. Returns the outcomes of those applied and the error that stopped the run.
@@ -56,7 +56,7 @@ def apply_allocated_run(
     A failure of the transaction itself (the database went away) raises: then none of
     them is applied.
     """
-    outcomes: list[Outcome] = []
+    outcomes: list[MessageResult] = []
     error: KeystrataError | None = None
     with ctx.db.write() as s:
         for msg in msgs:
@@ -131,7 +131,7 @@ def check_binding(
 
 def apply_allocated_in(
     ctx: NodeContext, s: Session, sender: str, msg: messages.KeyAllocated
-) -> Outcome:
+) -> MessageResult:
     """:func:`apply_allocated` in the caller's transaction."""
     now = ctx.clock.now()
     pair = check_binding(s, ctx, sender, msg, now)
@@ -191,7 +191,7 @@ def apply_allocated_in(
                 "side": "slave",
             },
         )
-    return Outcome(applied[0] if applied else "", "applied" if applied else "already")
+    return MessageResult.handled(applied[0] if applied else "", "applied" if applied else "already")
 
 
 def segments_of(records: Sequence[messages.AllocatedKey]) -> list[str]:
@@ -272,7 +272,7 @@ def expire(ctx: NodeContext) -> int:
         return len(rows)
 
 
-def apply_expired(ctx: NodeContext, sender: str, msg: messages.KeyExpired) -> Outcome:
+def apply_expired(ctx: NodeContext, sender: str, msg: messages.KeyExpired) -> MessageResult:
     """Owner: record that keys it allocated expired uncollected at the slave's station.
 
     Only keys of the named pair that this station allocated, reported by its partner in
@@ -313,4 +313,4 @@ def apply_expired(ctx: NodeContext, sender: str, msg: messages.KeyExpired) -> Ou
                 event=Event.KEY_EXPIRED,
                 fields={"pair": pair.pair_id, "bits": bits, "key_ids": changed, "side": "master"},
             )
-    return Outcome("", "applied" if changed else "already")
+    return MessageResult.handled("", "applied" if changed else "already")
