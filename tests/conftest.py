@@ -11,7 +11,6 @@ import itertools
 import os
 import queue
 import shutil
-import sys
 import threading
 import time
 import uuid
@@ -43,8 +42,6 @@ _counter = itertools.count()
 #: The tiers of the suite are its folders; each test carries its folder's marker, and the
 #: processes tier also ``e2e`` (real server processes over mutual TLS on loopback).
 TIERS = ("unit", "storage", "api", "e2e")
-# Until the helpers some test modules import from each other live in shared modules.
-sys.path[:0] = [str(Path(__file__).parent / tier) for tier in TIERS]
 
 
 def pytest_collection_modifyitems(items: list[pytest.Item]) -> None:

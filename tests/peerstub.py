@@ -16,10 +16,14 @@ import ssl
 import threading
 import time
 from dataclasses import dataclass, field
+from datetime import UTC, datetime
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Any
 
+from keystrata.loopback.configs import peers_section
 from keystrata.loopback.pki import PkiFiles
+from keystrata.peering import outbox
+from keystrata.storage.db import Database
 
 
 @dataclass
@@ -114,3 +118,23 @@ class PeerStub:
     def close(self) -> None:
         self.server.shutdown()
         self.server.server_close()
+
+
+def peers_of(stubs: dict[str, PeerStub]) -> str:
+    """``[[peers]]`` tables naming each stub (node ID -> stub) as that peer."""
+    return peers_section({p: s.url for p, s in stubs.items()})
+
+
+def enqueue_seqs(db: Database, destination: str, seqs: range) -> None:
+    """Enqueue ``test.seq`` messages numbered ``seqs`` for ``destination`` (what a stub
+    applies in order)."""
+    with db.write() as s:
+        for q in seqs:
+            outbox.enqueue(
+                s,
+                destination=destination,
+                kind="test.seq",
+                segment_id=None,
+                body={"seq": q},
+                now=datetime.now(UTC),
+            )

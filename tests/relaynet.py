@@ -302,3 +302,12 @@ def ready_key(net: RelayNet, segments: int = 6, size: int = 4096) -> None:
         operation.make_segment(net.relay.ctx, PAIR, size, owner=owner)
         owned[owner] += size
     net.drain()
+
+
+def with_ready_key(make_node: NodeFactory, new_db: Callable[[], str]) -> RelayNet:
+    """The network with the test SAEs at the stations and ready pair key at both (the
+    key delivery tests' network)."""
+    net = build(make_node, new_db)
+    provision_saes(net)
+    ready_key(net)
+    return net

@@ -20,7 +20,7 @@ import pytest
 from sqlalchemy import select
 
 import relaynet
-from helpers import ledger_events, snapshot
+from helpers import ledger_events, link_bytes, snapshot
 from keystrata.errors import KeystrataError
 from keystrata.node import dispatch
 from keystrata.peering import messages, outbox
@@ -236,7 +236,6 @@ def test_a_relay_that_tells_the_stations_different_stories_makes_no_segment(net)
     the ciphertext to B names B; the check values cover the owner, so confirmation fails
     and both sides discard."""
     from cryptography.hazmat.primitives.poly1305 import Poly1305
-    from test_relay import _link_bytes
 
     net.feed("station-a", 2)
     net.feed("station-b", 2)
@@ -247,7 +246,7 @@ def test_a_relay_that_tells_the_stations_different_stories_makes_no_segment(net)
     header = json.loads(base64.b64decode(notice.body["header"]))
     header["owner"] = "station-a"
     forged_header = messages.SegmentHeader.model_validate(header).encode()
-    ma = _link_bytes(net.a, header["notice_mac_ranges"])
+    ma = link_bytes(net.a, header["notice_mac_ranges"])
     tag = Poly1305.generate_tag(ma, len(forged_header).to_bytes(4, "big") + forged_header)
     forged = messages.RelayNotice(segment_id=made.segment_id, header=forged_header, tag=tag)
     assert _send(net, "relay-1", "station-a", forged.to_body()) == 200

@@ -10,8 +10,8 @@ from datetime import datetime
 
 import rfc8785
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
-from test_ledger_tree import _entries, mth
 
+from helpers import ledger_entries, mth
 from keystrata.ledger import checkpoints, merkle
 from keystrata_client.audit.export import Checkpoint
 
@@ -22,7 +22,7 @@ def test_checkpoint_is_signed_and_proofs_verify(station, api) -> None:
     assert first is not None
     aud = api(station)("aud-ben")
     cp = aud.get("/api/v1/audit/checkpoints/latest").json()
-    entries = _entries(ctx.db)
+    entries = ledger_entries(ctx.db)
     assert cp["tree_size"] == len(entries)
     root = base64.b64decode(cp["root_hash"])
     assert root == mth(entries)

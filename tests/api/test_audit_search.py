@@ -10,19 +10,26 @@ import json
 from datetime import UTC, datetime
 from typing import Any
 
+import pytest
 from sqlalchemy import insert, select, text, update
-from test_delivery import _keys, net  # noqa: F401  (fixture)
 
+import relaynet
+from helpers import decoded_keys
 from keystrata.delivery import accounting
 from keystrata.storage import migrate
 from keystrata.storage.db import Database
 from keystrata.storage.models import LedgerEntry, LedgerRef
 
 
-def _deliver(net, api) -> str:  # noqa: F811
+@pytest.fixture
+def net(make_node, db_factory) -> relaynet.RelayNet:
+    return relaynet.with_ready_key(make_node, db_factory)
+
+
+def _deliver(net, api) -> str:
     r = api(net.a)("sae-a1").post("/api/v1/keys/sae-b1/enc_keys", json={"number": 2})
     assert r.status_code == 200, r.text
-    key_ids = list(_keys(r.json()))
+    key_ids = list(decoded_keys(r.json()))
     net.drain()
     r = api(net.b)("sae-b1").get(f"/api/v1/keys/sae-a1/dec_keys?key_ID={key_ids[0]}")
     assert r.status_code == 200, r.text
@@ -33,7 +40,7 @@ def _events(answer: dict[str, Any]) -> list[str]:
     return [e["entry"]["event"] for e in answer["entries"]]
 
 
-def test_search_by_key_sae_pair_and_event(net, api) -> None:  # noqa: F811
+def test_search_by_key_sae_pair_and_event(net, api) -> None:
     key_id = _deliver(net, api)
     at_b = api(net.b)("aud-ben")
     found = at_b.get(f"/api/v1/audit/search?key_id={key_id}").json()
@@ -59,7 +66,7 @@ def test_search_by_key_sae_pair_and_event(net, api) -> None:  # noqa: F811
     assert at_b.get(f"/api/v1/audit/search?key_id={key_id}&sae=sae-b2").json()["entries"] == []
 
 
-def test_search_by_time_and_pages(net, api) -> None:  # noqa: F811
+def test_search_by_time_and_pages(net, api) -> None:
     _deliver(net, api)
     aud = api(net.b)("aud-ben")
     everything = aud.get("/api/v1/audit/entries").json()["entries"]
@@ -84,7 +91,7 @@ def test_search_by_time_and_pages(net, api) -> None:  # noqa: F811
     assert future["entries"] == []
 
 
-def test_bad_search_requests_are_400(net, api) -> None:  # noqa: F811
+def test_bad_search_requests_are_400(net, api) -> None:
     aud = api(net.b)("aud-ben")
     for query in (
         "event=key.stolen",
@@ -105,7 +112,7 @@ def test_bad_search_requests_are_400(net, api) -> None:  # noqa: F811
     assert api(net.b)("sae-b1").get("/api/v1/audit/search").status_code == 403
 
 
-def test_entries_chain_leaf_hashes(net, api) -> None:  # noqa: F811
+def test_entries_chain_leaf_hashes(net, api) -> None:
     _deliver(net, api)
     entries = api(net.b)("aud-ben").get("/api/v1/audit/entries").json()["entries"]
     previous: bytes | None = None
@@ -118,7 +125,7 @@ def test_entries_chain_leaf_hashes(net, api) -> None:  # noqa: F811
         previous = hashlib.sha256(b"\x00" + raw).digest()
 
 
-def test_a_damaged_entry_is_exported_as_stored(net, api) -> None:  # noqa: F811
+def test_a_damaged_entry_is_exported_as_stored(net, api) -> None:
     with net.b.ctx.db.write() as s:
         s.execute(update(LedgerEntry).where(LedgerEntry.idx == 3).values(entry=b'{"v":2,'))
     r = api(net.b)("aud-ben").get("/api/v1/audit/entries?start=3&end=4")
@@ -161,7 +168,7 @@ def test_migration_indexes_older_entries(tmp_path) -> None:
     db.dispose()
 
 
-def test_accounting_per_day(net, api) -> None:  # noqa: F811
+def test_accounting_per_day(net, api) -> None:
     _deliver(net, api)
     r = api(net.b)("sae-b2").get(
         "/api/v1/keys/sae-a1/dec_keys?key_ID=00000000-0000-4000-8000-000000000000"

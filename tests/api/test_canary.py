@@ -13,12 +13,10 @@ test plants secrets in each form and checks that it finds them.
 
 from __future__ import annotations
 
-import ast
 import base64
 import hashlib
 import json
 import logging
-import re
 import traceback
 import uuid
 from collections.abc import Callable, Iterator
@@ -32,6 +30,7 @@ from anyio.from_thread import start_blocking_portal
 from sqlalchemy import select
 
 import relaynet
+from canaries import LINK_KEY, Scanner, pattern, probe
 from conftest import AsgiClient, Node, NodeFactory, _WithClientCert
 from helpers import snapshot
 from keystrata.errors import KeystrataError
@@ -48,77 +47,8 @@ from keystrata.server import compose
 from keystrata.storage.models import LedgerEntry, OutboxMessage, PairSegment
 from keystrata.storage.sealed import segment_context
 
-RAW = 16  # bytes per raw window; a leaked run of RAW + STEP bytes always holds one
-STEP = 8
-TEXT = 32  # characters per hex or Base64 window
 #: The peer message route (one sender's messages in order; the outbox sends this way).
 PEER_BATCH = "/api/v1/peer/messages/batch"
-
-
-# ---------------------------------------------------------------- the scanner
-
-
-@dataclass
-class Scanner:
-    """Windows of every secret in every encoding, and a search over any haystack."""
-
-    raw: set[bytes] = field(default_factory=set)
-    hexa: set[str] = field(default_factory=set)
-    b64: set[str] = field(default_factory=set)
-    count: int = 0
-
-    def add(self, secret: bytes) -> None:
-        assert len(secret) >= RAW + STEP, "secrets shorter than 24 bytes are not scanned"
-        self.count += 1
-        starts = [*range(0, len(secret) - RAW + 1, STEP), len(secret) - RAW]
-        self.raw.update(secret[i : i + RAW] for i in starts)
-        h = secret.hex()
-        self.hexa.update(h[j : j + TEXT] for j in range(0, len(h) - TEXT + 1, 2 * STEP))
-        for shift in range(3):
-            for encode in (base64.b64encode, base64.urlsafe_b64encode):
-                text = encode(secret[shift:]).decode()
-                body = len(text) - 4  # the last group depends on where the leak ends
-                self.b64.update(text[j : j + TEXT] for j in range(0, body - TEXT + 1, 4))
-
-    def find(self, haystack: bytes | str) -> list[str]:
-        """Return how a secret shows in ``haystack`` (empty: it does not)."""
-        if isinstance(haystack, str):
-            text = haystack
-            data = haystack.encode("utf-8", "surrogateescape")
-        else:
-            data = bytes(haystack)
-            text = data.decode("latin-1")
-        found = []
-        if any(data[i : i + RAW] in self.raw for i in range(len(data) - RAW + 1)):
-            found.append("raw bytes")
-        if any(text[i : i + TEXT] in self.b64 for i in range(len(text) - TEXT + 1)):
-            found.append("Base64")
-        lower = text.lower()
-        if any(lower[i : i + TEXT] in self.hexa for i in range(len(lower) - TEXT + 1)):
-            found.append("hex")
-        for literal in _bytes_literals(text):
-            if any(literal[i : i + RAW] in self.raw for i in range(len(literal) - RAW + 1)):
-                found.append("bytes literal")
-        return found
-
-
-_LITERAL = re.compile(r"""b'(?:[^'\\]|\\.)*'|b"(?:[^"\\]|\\.)*\"""")
-
-
-def _bytes_literals(text: str) -> Iterator[bytes]:
-    for match in _LITERAL.finditer(text):
-        try:
-            value = ast.literal_eval(match.group(0))
-        except (ValueError, SyntaxError):
-            continue
-        if isinstance(value, bytes):
-            yield value
-
-
-def pattern(label: str, n: int) -> bytes:
-    """``n`` known bytes: SHA-256(label || counter) blocks, concatenated."""
-    out = b"".join(hashlib.sha256(f"{label}:{i}".encode()).digest() for i in range((n + 31) // 32))
-    return out[:n]
 
 
 def test_the_scanner_finds_planted_secrets_and_nothing_else() -> None:
@@ -523,21 +453,6 @@ def test_key_material_a_client_sends_is_not_echoed(harness: Harness) -> None:
 
 # ---------------------------------------------------------------- refusal paths
 
-#: The link key a hostile or confused client puts into refused requests: in a path
-#: segment (URL-safe Base64, RFC 4648 section 5), the query (standard Base64, section 4,
-#: percent-encoded; and hex) and a header.
-LINK_KEY = pattern("canary:refused link key", 48)
-
-
-def _probe(key: bytes, template: str) -> tuple[str, dict[str, str]]:
-    """A path holding ``key`` in a segment and the query, and headers holding it."""
-    import urllib.parse
-
-    segment = base64.urlsafe_b64encode(key).decode().rstrip("=")
-    query = urllib.parse.urlencode({"key_ID": base64.b64encode(key).decode(), "x": key.hex()})
-    headers = {"x-key": base64.b64encode(key).decode(), "x-key-hex": key.hex()}
-    return template.format(segment) + "?" + query, headers
-
 
 #: (certificate, method, path template) refused for each reason: a subject no principal
 #: has, a role the route does not admit (403, and the ETSI routes' 401), a retired
@@ -583,7 +498,7 @@ def test_refusals_of_every_kind_do_not_repeat_a_key_in_the_request(
     before = len(_ledger(station))
     bodies: list[tuple[str, bytes]] = []
     for why, cert, method, template in REFUSED:
-        path, headers = _probe(LINK_KEY, template)
+        path, headers = probe(LINK_KEY, template)
         body = {"key_IDs": [{"key_ID": str(uuid.uuid4())}]} if method == "POST" else None
         r = api(station)(cert).request(method, path, headers=headers, json=body)
         assert r.status_code in (401, 403), (why, cert, path, r.status_code, r.text)
@@ -603,53 +518,3 @@ def test_refusals_of_every_kind_do_not_repeat_a_key_in_the_request(
     assert node_records, "the node logged nothing"
     leaks += [f"log {r.name}" for r in node_records if scanner.find(r.getMessage())]
     assert not leaks, "key material found:\n" + "\n".join(leaks)
-
-
-@pytest.mark.e2e
-def test_the_access_log_of_a_real_node_shows_route_templates(
-    tmp_path: Any, pki: PkiFiles, sqlite_template: Any
-) -> None:
-    """`keystrata serve` with uvicorn's access log at INFO: refused and accepted requests
-    whose path and query hold a link key. The process's output names each request by
-    its route template and status, and holds no trace of the key (attack test: uvicorn
-    printed every raw path and query)."""
-    import shutil
-    import ssl
-
-    from keystrata.loopback.processes import prepare_node
-
-    shutil.copy(sqlite_template, tmp_path / "station-a.db")
-    url = f"sqlite:///{tmp_path / 'station-a.db'}"  # the access log is the same on both
-    node = prepare_node(tmp_path / "station-a", pki, "station-a", "station", url)
-    node.start(pki)
-    scanner = Scanner()
-    scanner.add(LINK_KEY)
-    answers = []
-    try:
-        for cert, template in [
-            ("stranger", "/api/v1/keys/{}/status"),  # refused: unknown subject
-            ("ops-ada", "/api/v1/registry/nodes/{}"),  # accepted, 404
-            ("ops-ada", "/api/v1/node/../node?{}"),  # accepted, 200 (query only)
-        ]:
-            tls = ssl.create_default_context(cafile=str(pki.ca))
-            tls.load_cert_chain(str(pki.cert(cert)), str(pki.key(cert)))
-            path, headers = _probe(LINK_KEY, template)
-            with httpx.Client(base_url=node.url, verify=tls, timeout=10) as client:
-                answers.append(client.get(path, headers=headers).status_code)
-                if cert == "stranger":  # five more: counted, not written one by one
-                    answers += [client.get(path).status_code for _ in range(5)]
-    finally:
-        node.stop()  # SIGTERM: the app's shutdown writes the counted refusals
-    assert answers[:7] == [401] * 6 + [404], answers
-    import sqlite3
-
-    with sqlite3.connect(tmp_path / "station-a.db") as db:
-        rows = db.execute("SELECT entry FROM ledger_entry WHERE event = 'auth.refused'")
-        refused = [json.loads(bytes(r[0])) for r in rows]
-    status_route = [e for e in refused if e["route"] == "/api/v1/keys/{slave_SAE_ID}/status"]
-    assert len(status_route) == 2 and sum(e["count"] for e in status_route) == 6, refused
-    output = node.log.read_text()
-    assert '"GET /api/v1/keys/{slave_SAE_ID}/status HTTP/1.1" 401' in output, output
-    assert '"GET /api/v1/registry/nodes/{entry_id} HTTP/1.1" 404' in output, output
-    found = scanner.find(output)
-    assert not found, f"key material in the node's output ({found}):\n{output}"

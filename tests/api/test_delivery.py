@@ -4,7 +4,6 @@ keys are one-time; only the named slave may fetch; allocation never shares a byt
 
 from __future__ import annotations
 
-import base64
 import hashlib
 import itertools
 import threading
@@ -13,35 +12,27 @@ from typing import Any
 import pytest
 
 import relaynet
-from helpers import ledger_events, snapshot
+from helpers import break_ledger, decoded_keys, ledger_events, snapshot
 from keystrata.peering import outbox
 
 
 @pytest.fixture
 def net(make_node, db_factory) -> relaynet.RelayNet:
-    net = relaynet.build(make_node, db_factory)
-    relaynet.provision_saes(net)
-    relaynet.ready_key(net)
-    return net
-
-
-def _keys(answer: dict[str, Any]) -> dict[str, bytes]:
-    # RFC 4648 section 4 Base64, strictly decoded.
-    return {k["key_ID"]: base64.b64decode(k["key"], validate=True) for k in answer["keys"]}
+    return relaynet.with_ready_key(make_node, db_factory)
 
 
 def test_master_and_slave_get_identical_keys_once(net, api) -> None:
     a1 = api(net.a)("sae-a1")
     r = a1.post("/api/v1/keys/sae-b1/enc_keys", json={"number": 3, "size": 256})
     assert r.status_code == 200, r.text
-    master = _keys(r.json())
+    master = decoded_keys(r.json())
     assert len(master) == 3 and all(len(k) == 32 for k in master.values())
     net.drain()  # the allocation message reaches station B
     b1 = api(net.b)("sae-b1")
     ids = [{"key_ID": k} for k in master]
     r = b1.post("/api/v1/keys/sae-a1/dec_keys", json={"key_IDs": ids})
     assert r.status_code == 200, r.text
-    assert _keys(r.json()) == master
+    assert decoded_keys(r.json()) == master
     # One-time: the same IDs again fail, the same way as any refusal.
     r = b1.post("/api/v1/keys/sae-a1/dec_keys", json={"key_IDs": ids[:1]})
     assert r.status_code == 401 and r.json() == {"message": "unauthorized"}
@@ -52,7 +43,7 @@ def test_master_and_slave_get_identical_keys_once(net, api) -> None:
 def test_others_cannot_fetch_the_slaves_keys(net, api) -> None:
     r = api(net.a)("sae-a1").get("/api/v1/keys/sae-b1/enc_keys")  # GET form, defaults
     assert r.status_code == 200
-    (key_id,) = _keys(r.json())
+    (key_id,) = decoded_keys(r.json())
     net.drain()
     before = snapshot(net.b.ctx)["key_alloc"]
     for who in ("sae-b2", "sae-a1", "sae-a2"):  # third SAE, the master, a stranger's SAE
@@ -69,7 +60,7 @@ def test_others_cannot_fetch_the_slaves_keys(net, api) -> None:
 
 def test_slave_asking_before_the_message_pulls_it_from_the_owner(net, api) -> None:
     r = api(net.a)("sae-a1").post("/api/v1/keys/sae-b1/enc_keys", json={})
-    master = _keys(r.json())
+    master = decoded_keys(r.json())
 
     class InProcessPeers:
         def pending_allocations(self, owner: str) -> list[dict[str, Any]]:
@@ -84,7 +75,7 @@ def test_slave_asking_before_the_message_pulls_it_from_the_owner(net, api) -> No
         "/api/v1/keys/sae-a1/dec_keys", json={"key_IDs": [{"key_ID": k} for k in master]}
     )
     assert r.status_code == 200, r.text
-    assert _keys(r.json()) == master
+    assert decoded_keys(r.json()) == master
     net.drain()  # the message arrives later: harmless
     assert net.segments("station-b")  # still consistent
 
@@ -258,7 +249,7 @@ def test_uncollected_keys_expire_on_both_sides(net, api) -> None:
     from keystrata.delivery import slave_copy
 
     r = api(net.a)("sae-a1").post("/api/v1/keys/sae-b1/enc_keys", json={})
-    (key_id,) = _keys(r.json())
+    (key_id,) = decoded_keys(r.json())
     net.drain()
 
     class Later:
@@ -285,7 +276,7 @@ def test_kek_rotation_reseals_keys_waiting_for_slaves(net, api, tmp_path) -> Non
     from keystrata.node.lifecycle import open_node
 
     r = api(net.a)("sae-a1").post("/api/v1/keys/sae-b1/enc_keys", json={"number": 2})
-    master = _keys(r.json())
+    master = decoded_keys(r.json())
     net.drain()
     ctx = net.b.ctx
     new_path = tmp_path / "b-new.kek"
@@ -298,12 +289,12 @@ def test_kek_rotation_reseals_keys_waiting_for_slaves(net, api, tmp_path) -> Non
         "/api/v1/keys/sae-a1/dec_keys", json={"key_IDs": [{"key_ID": k} for k in master]}
     )
     assert r.status_code == 200, r.text
-    assert _keys(r.json()) == master
+    assert decoded_keys(r.json()) == master
 
 
 def test_accounting_per_pair_and_sae(net, api) -> None:
     a1, b1 = api(net.a)("sae-a1"), api(net.b)("sae-b1")
-    master = _keys(a1.post("/api/v1/keys/sae-b1/enc_keys", json={"number": 3}).json())
+    master = decoded_keys(a1.post("/api/v1/keys/sae-b1/enc_keys", json={"number": 3}).json())
     net.drain()
     first = next(iter(master))
     assert b1.get(f"/api/v1/keys/sae-a1/dec_keys?key_ID={first}").status_code == 200
@@ -326,13 +317,13 @@ def test_key_multicast_to_additional_slaves(net, api) -> None:
         "/api/v1/keys/sae-b1/enc_keys", json={"number": 1, "additional_slave_SAE_IDs": ["sae-b2"]}
     )
     assert r.status_code == 200, r.text
-    master = _keys(r.json())
+    master = decoded_keys(r.json())
     (key_id,) = master
     net.drain()
     for slave in ("sae-b1", "sae-b2"):
         r = api(net.b)(slave).get(f"/api/v1/keys/sae-a1/dec_keys?key_ID={key_id}")
         assert r.status_code == 200, (slave, r.text)
-        assert _keys(r.json()) == master
+        assert decoded_keys(r.json()) == master
     # Each slave once; after both, the key is destroyed at station B.
     assert (
         api(net.b)("sae-b1").get(f"/api/v1/keys/sae-a1/dec_keys?key_ID={key_id}").status_code == 401
@@ -348,38 +339,10 @@ def test_key_multicast_to_additional_slaves(net, api) -> None:
     assert r.status_code == 401
 
 
-def _break_ledger(node) -> None:
-    """Make every new ledger entry fail to be written, as a full disk or a revoked
-    grant would (a trigger that refuses inserts, on each backend)."""
-    from sqlalchemy import text
-
-    with node.ctx.db.write() as s:
-        if node.ctx.db.backend == "sqlite":
-            s.execute(
-                text(
-                    "CREATE TRIGGER ledger_refuses BEFORE INSERT ON ledger_entry "
-                    "BEGIN SELECT RAISE(ABORT, 'ledger is read-only'); END"
-                )
-            )
-        else:
-            s.execute(
-                text(
-                    "CREATE FUNCTION ledger_refuses() RETURNS trigger AS $$ BEGIN "
-                    "RAISE EXCEPTION 'ledger is read-only'; END $$ LANGUAGE plpgsql"
-                )
-            )
-            s.execute(
-                text(
-                    "CREATE TRIGGER ledger_refuses BEFORE INSERT ON ledger_entry "
-                    "FOR EACH ROW EXECUTE FUNCTION ledger_refuses()"
-                )
-            )
-
-
 def test_when_the_ledger_cannot_be_written_no_key_leaves(net, api) -> None:
     """Fail closed (design invariant 5): Get key answers 503 with the standard's error
     object, hands out nothing, and changes nothing."""
-    _break_ledger(net.a)
+    break_ledger(net.a)
     before = snapshot(net.a.ctx)
     r = api(net.a)("sae-a1").post("/api/v1/keys/sae-b1/enc_keys", json={"number": 2})
     assert r.status_code == 503, r.text

@@ -17,17 +17,14 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from prometheus_client.exposition import CONTENT_TYPE_PLAIN_0_0_4
 from prometheus_client.openmetrics.parser import (
     text_string_to_metric_families as openmetrics_families,
 )
-from prometheus_client.parser import text_string_to_metric_families
 from sqlalchemy import func, select, update
-from test_delivery import _break_ledger  # a trigger that refuses ledger inserts
 
 import relaynet
 from conftest import _pg_admin
-from helpers import snapshot
+from helpers import break_ledger, snapshot
 from keystrata import __version__
 from keystrata.crypto.hazmat import Keyring
 from keystrata.delivery import slave_copy
@@ -46,8 +43,7 @@ from keystrata.storage.models import (
     RelayOp,
 )
 from keystrata.storage.sealed import meta_context
-
-METRICS, LIVE, READY = "/api/v1/metrics", "/api/v1/health/live", "/api/v1/health/ready"
+from scrapes import LIVE, METRICS, READY, scrape
 
 #: Every family a node exposes and its type; counters carry the "_total" suffix on
 #: their samples (Prometheus naming conventions, common practice).
@@ -86,33 +82,6 @@ RELAY_TYPES = {
 
 
 # ---------------------------------------------------------------- helpers
-
-
-class Scrape:
-    """A parsed scrape: families by name, and sample lookup by name and labels."""
-
-    def __init__(self, body: str) -> None:
-        self.text = body
-        self.families = {f.name: f for f in text_string_to_metric_families(body)}
-
-    def samples(self, name: str) -> dict[frozenset[tuple[str, str]], float]:
-        return {
-            frozenset(s.labels.items()): s.value
-            for f in self.families.values()
-            for s in f.samples
-            if s.name == name
-        }
-
-    def value(self, name: str, **labels: str) -> float:
-        return self.samples(name)[frozenset(labels.items())]
-
-
-def scrape(client: Any) -> Scrape:
-    r = client.get(METRICS)
-    assert r.status_code == 200, r.text
-    # Without an Accept header, prometheus_client's negotiation picks text format 0.0.4.
-    assert r.headers["content-type"] == CONTENT_TYPE_PLAIN_0_0_4
-    return Scrape(r.text)
 
 
 def _json_block(key: bytes) -> dict[str, object]:
@@ -384,7 +353,7 @@ def _failing(r: Any) -> dict[str, str]:
 
 def test_not_ready_when_the_ledger_cannot_be_written(station, api) -> None:
     ops = api(station)("ops-ada")
-    _break_ledger(station)
+    break_ledger(station)
     before = snapshot(station.ctx)
     r = ops.get(READY)
     failing = _failing(r)
@@ -488,61 +457,3 @@ def test_who_may_ask(station, api) -> None:
             assert r.status_code == status, (who, path, r.text)
             if status == 401:
                 assert r.json() == {"message": "unauthorized"}
-
-
-# ---------------------------------------------------------------- real processes
-
-
-@pytest.mark.e2e
-def test_two_workers_answer_the_same_database_metrics(tmp_path: Path, pki, pg_factory) -> None:
-    """`keystrata serve` with two uvicorn workers on PostgreSQL, over mutual TLS: every
-    scrape, whichever worker answers it, shows the same database-derived values; the
-    latency histogram is the answering worker's own."""
-    import ssl
-
-    import httpx
-
-    from keystrata.loopback.processes import prepare_node
-
-    node = prepare_node(tmp_path, pki, "station-a", "station", pg_factory())
-    node.config.write_text(
-        node.config.read_text().replace("[server]\n", "[server]\nworkers = 2\n", 1)
-    )
-    node.start(pki)
-    tls = ssl.create_default_context(cafile=str(pki.ca))
-    tls.load_cert_chain(str(pki.cert("ops-ada")), str(pki.key("ops-ada")))
-    try:
-        seen = []
-        for _ in range(12):  # a new connection each time: the kernel picks the worker
-            r = httpx.get(node.url + METRICS, verify=tls, timeout=10)
-            assert r.status_code == 200, r.text
-            assert r.headers["content-type"] == CONTENT_TYPE_PLAIN_0_0_4
-            m = Scrape(r.text)
-            seen.append(
-                {
-                    name: sorted(
-                        (s.name, sorted(s.labels.items()), s.value) for s in family.samples
-                    )
-                    for name, family in m.families.items()
-                    if "http_request" not in name and "checkpoint" not in name
-                }
-            )
-            routes = {
-                s.labels["route"]
-                for s in m.families["keystrata_http_request_duration_seconds"].samples
-            }
-            assert routes <= {"/api/v1/node", METRICS}, routes
-        assert all(s == seen[0] for s in seen)
-        assert seen[0]["keystrata_build_info"][0][1] == sorted(
-            {"version": __version__, "node_id": "station-a", "role": "station"}.items()
-        )
-        r = httpx.get(node.url + READY, verify=tls, timeout=10)
-        assert r.status_code == 200 and r.json()["status"] == "ready"
-    finally:
-        node.stop()
-    pids = {
-        line.split("[")[1].split("]")[0]
-        for line in node.log.read_text().splitlines()
-        if "Started server process" in line
-    }
-    assert len(pids) == 2, "the node did not run two worker processes"

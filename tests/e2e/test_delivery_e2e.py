@@ -19,7 +19,6 @@ import signal
 import ssl
 import subprocess
 import sys
-import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -27,10 +26,11 @@ from typing import Any
 import httpx
 import pytest
 
-from keystrata.loopback.network import NETWORK, start_network
+from e2enet import quiet, stock_and_stop
+from keystrata.loopback.network import NETWORK, feed_links, start_network
 from keystrata.loopback.pki import PkiFiles
 from keystrata.loopback.processes import NodeProcess, stop_all
-from keystrata_client import ApiError, OperatorClient, TlsIdentity
+from keystrata_client import ApiError, OperatorClient
 from keystrata_client.keys import KeyClient
 
 RELAY = "\n[relay]\nsegment_bytes = 4096\nmin_segment_bytes = 512\ncycle_seconds = 0.1\n"
@@ -38,63 +38,17 @@ HELD = "[server]\nbackground_work = false\n"
 ENCRYPTORS = Path(sys.executable).parent / "keystrata-encryptors"
 
 
-def ident(pki: PkiFiles, name: str) -> TlsIdentity:
-    return TlsIdentity(ca=pki.ca, cert=pki.cert(name), key=pki.key(name))
-
-
-def _wait(what: str, check: Any, timeout: float = 60) -> None:
-    deadline = time.monotonic() + timeout
-    while not check():
-        assert time.monotonic() < deadline, f"timed out waiting for {what}"
-        time.sleep(0.1)
-
-
-def _quiet(nodes: dict[str, NodeProcess], pki: PkiFiles) -> bool:
-    """No segment on its way anywhere, and both stations hold the same ready key."""
-    ops = ident(pki, "ops-ada")
-    with OperatorClient(nodes["relay-1"].url, ops) as relay:
-        if any(p["in_flight_bits"] for p in relay.pairs()["pairs"]):
-            return False
-    views = []
-    for station in ("station-a", "station-b"):
-        with OperatorClient(nodes[station].url, ops) as op:
-            (view,) = op.pairs()["pairs"]
-        views.append(view)
-    a, b = views
-    return a["pending_bits"] == b["pending_bits"] == 0 and a["ready_bits"] == b["ready_bits"]
-
-
 @pytest.fixture(scope="module")
 def network(tmp_path_factory, pki) -> Iterator[dict[str, NodeProcess]]:
     """A relay and two stations (SQLite) with ready pair key owned by each station; then
     the relay makes no more segments, so every segment is ready at both stations."""
-    from test_crash import _feed
-
     base = tmp_path_factory.mktemp("delivery")
     nodes = start_network(
         base, pki, {n: f"sqlite:///{base}/{n}.db" for n in NETWORK}, extra=RELAY, saes=True
     )
     try:
-        _feed(nodes, pki, 40)
-
-        def stocked() -> bool:
-            for master, slave, station in (
-                ("sae-a1", "sae-b1", "station-a"),
-                ("sae-b2", "sae-a2", "station-b"),
-            ):
-                with KeyClient(nodes[station].url, ident(pki, master)) as kme:
-                    if kme.status(slave).stored_key_count < 64:
-                        return False
-            return True
-
-        _wait("ready key owned by both stations", stocked)
-        with OperatorClient(nodes["relay-1"].url, ident(pki, "ops-ada")) as ops:
-            ops.change(
-                "pairs",
-                "pair-ab",
-                {"policy": {"buffer_min_bits": 0, "buffer_target_bits": 0, "buffer_max_bits": 0}},
-            )
-        _wait("every segment settled at both stations", lambda: _quiet(nodes, pki))
+        feed_links(nodes, pki, 40)
+        stock_and_stop(nodes, pki, 64, until=quiet)
         yield nodes
     finally:
         stop_all(list(nodes.values()))
@@ -144,7 +98,7 @@ def _pending_at(owner: NodeProcess, pki: PkiFiles) -> set[str]:
 
 def _refused(url: str, pki: PkiFiles, sae: str, master: str, key_ids: tuple[str, ...]) -> str:
     """Ask for the keys as ``sae``; return the 401 message (anything else fails)."""
-    with KeyClient(url, ident(pki, sae)) as kme, pytest.raises(ApiError) as caught:
+    with KeyClient(url, pki.identity(sae)) as kme, pytest.raises(ApiError) as caught:
         kme.get_keys_with_ids(master, key_ids)
     assert caught.value.status == 401, (sae, caught.value)  # clause 5.4 (from memory)
     return caught.value.message
@@ -152,11 +106,11 @@ def _refused(url: str, pki: PkiFiles, sae: str, master: str, key_ids: tuple[str,
 
 def test_dec_keys_before_the_notice_pulls_it_from_the_owner(network, held_outbox, pki) -> None:
     a, b = held_outbox, network["station-b"]
-    with KeyClient(a.url, ident(pki, "sae-a1")) as master:
+    with KeyClient(a.url, pki.identity("sae-a1")) as master:
         sent = master.get_keys("sae-b1", number=3, size=256)
     # The notice has not left A: it is still queued for B.
     assert set(sent.key_ids) <= _pending_at(a, pki)
-    with KeyClient(b.url, ident(pki, "sae-b1")) as slave:
+    with KeyClient(b.url, pki.identity("sae-b1")) as slave:
         got = slave.get_keys_with_ids("sae-a1", sent.key_ids)
     assert {k.key_id: k.key for k in got} == {k.key_id: k.key for k in sent}
     # B served it by pulling: A's outbox still holds the notice.
@@ -174,7 +128,7 @@ def test_dec_keys_before_the_notice_pulls_it_from_the_owner(network, held_outbox
 
 def test_only_the_named_slave_fetches_even_before_the_notice(network, held_outbox, pki) -> None:
     a, b = held_outbox, network["station-b"]
-    with KeyClient(a.url, ident(pki, "sae-a1")) as master:
+    with KeyClient(a.url, pki.identity("sae-a1")) as master:
         sent = master.get_keys("sae-b1", number=2, size=256)
     assert set(sent.key_ids) <= _pending_at(a, pki)
     messages = {
@@ -188,7 +142,7 @@ def test_only_the_named_slave_fetches_even_before_the_notice(network, held_outbo
     }
     assert messages == {"unauthorized"}  # one answer for every reason: no oracle
     # None of that consumed anything: the named slave still gets identical keys.
-    with KeyClient(b.url, ident(pki, "sae-b1")) as slave:
+    with KeyClient(b.url, pki.identity("sae-b1")) as slave:
         got = slave.get_keys_with_ids("sae-a1", sent.key_ids)
     assert [k.digest() for k in got] == [k.digest() for k in sent]
     _refused(b.url, pki, "sae-b1", "sae-a1", sent.key_ids)
@@ -199,11 +153,11 @@ def test_owner_down_before_the_notice_is_503_then_served(network, held_outbox, p
     ask the owner about a key ID it had not heard of; the slave then dropped a key that
     was allocated to it. B must answer 503 (try again) and serve it once A is back."""
     a, b = held_outbox, network["station-b"]
-    with KeyClient(a.url, ident(pki, "sae-a1")) as master:
+    with KeyClient(a.url, pki.identity("sae-a1")) as master:
         sent = master.get_keys("sae-b1", number=2, size=256)
     assert set(sent.key_ids) <= _pending_at(a, pki)
     a.stop(signal.SIGKILL)  # the notice is still in A's outbox, and A is gone
-    with KeyClient(b.url, ident(pki, "sae-b1"), attempts=1) as slave:
+    with KeyClient(b.url, pki.identity("sae-b1"), attempts=1) as slave:
         with pytest.raises(ApiError) as caught:
             slave.get_keys_with_ids("sae-a1", sent.key_ids)
         # ETSI GS QKD 014 clause 5.4: 503 is an error on the server side (from memory).
@@ -218,7 +172,7 @@ def test_owner_down_before_the_notice_is_503_then_served(network, held_outbox, p
 
 def _ledger(node: NodeProcess, pki: PkiFiles) -> list[dict[str, Any]]:
     """Every ledger entry of ``node`` through the auditor API."""
-    with OperatorClient(node.url, ident(pki, "ops-ada")) as ops:
+    with OperatorClient(node.url, pki.identity("ops-ada")) as ops:
         known = {p["principal_id"] for p in ops.list("principals")}
         if "aud-ben" not in known:
             ops.create(

@@ -23,7 +23,9 @@ import psycopg
 import pytest
 import scramp  # type: ignore[import-untyped]
 from sqlalchemy.engine import make_url
-from test_deploy_files import (
+
+from conftest import PG_URL
+from deploykit import (
     COMPOSE,
     DEPLOY,
     SECRETS_DIR,
@@ -33,8 +35,6 @@ from test_deploy_files import (
     node_settings,
     run_line,
 )
-
-from conftest import PG_URL
 from keystrata.crypto.pki import PkiDir
 from keystrata.loopback.processes import KEYSTRATA, free_port, run_cli
 
@@ -189,7 +189,6 @@ def _health(url: str, ca: Path, pki: Path, who: str) -> tuple[int, str]:
     return done.returncode, done.stdout.strip()
 
 
-@pytest.mark.e2e
 def test_health_check_over_mutual_tls(
     tmp_path: Path, lab_secrets: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:

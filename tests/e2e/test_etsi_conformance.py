@@ -92,9 +92,7 @@ class Station:
 @pytest.fixture(scope="module")
 def network(tmp_path_factory, pki) -> Iterator[dict[str, str]]:
     """A relay and two stations (SQLite), with ready pair key; returns node URLs."""
-    from test_crash import _feed
-
-    from keystrata.loopback.network import NETWORK, start_network
+    from keystrata.loopback.network import NETWORK, feed_links, start_network
     from keystrata.loopback.processes import stop_all
 
     base = tmp_path_factory.mktemp("etsi")
@@ -103,7 +101,7 @@ def network(tmp_path_factory, pki) -> Iterator[dict[str, str]]:
         base, pki, {n: f"sqlite:///{base}/{n}.db" for n in NETWORK}, extra=extra, saes=True
     )
     try:
-        _feed(nodes, pki, 40)
+        feed_links(nodes, pki, 40)
         urls = {n: node.url for n, node in nodes.items()}
         a = Station(urls["station-a"], pki, "sae-a1", "httpx")
         deadline = time.monotonic() + 60

@@ -23,30 +23,36 @@ from pathlib import Path
 
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
-from test_crash import _both_ends_consumed_alike, _feed, _relay_holds_no_pair_key, _settled
-from test_crash_delivery import (
+
+import pgcluster
+from e2enet import (
+    STOPPED,
+    UNBOUNDED,
+    add_auditor,
+    both_ends_consumed_alike,
+    relay_holds_no_pair_key,
+    settled,
+    stocked,
+    wait_for,
+)
+from keystrata.loopback.network import NETWORK, feed_links, set_policy, start_network
+from keystrata.loopback.pki import PkiFiles
+from keystrata.loopback.processes import NodeProcess, stop_all
+from keystrata_client import ApiError, OperatorClient
+from keystrata_client.keys import KeyClient
+from rekeying import (
     PAIRS,
     PATIENCE,
     SETTINGS,
     TIMEOUT,
     Seen,
-    _checked_ledger,
-    _ends_agree,
-    _ledgers_account_for_every_key,
-    _rekeying,
-    _stocked,
-    ident,
+    checked_ledger,
+    ends_agree,
+    ledgers_account_for_every_key,
+    rekeying,
 )
 
-import pgcluster
-from keystrata.loopback.network import NETWORK, start_network
-from keystrata.loopback.pki import PkiFiles
-from keystrata.loopback.processes import NodeProcess, stop_all
-from keystrata_client import ApiError, OperatorClient
-from keystrata_client.keys import KeyClient
-
 pytestmark = [
-    pytest.mark.e2e,
     pytest.mark.slow,  # about two minutes: `make faults` runs it
     pytest.mark.skipif(not pgcluster.available(), reason="PostgreSQL binaries not installed"),
 ]
@@ -65,21 +71,16 @@ def _network(tmp_path: Path, pki: PkiFiles, pg: pgcluster.PgCluster) -> dict[str
         pki,
         urls,
         extra=SETTINGS,  # outbox retries back off to 1 s at most
-        policy={"buffer_min_bits": 0, "buffer_target_bits": 2**40, "buffer_max_bits": 2**40},
+        policy=UNBOUNDED,
         saes=True,
     )
-    for node in nodes.values():
-        with OperatorClient(node.url, ident(pki, "ops-ada")) as ops:
-            ops.create(
-                "principals",
-                {"principal_id": "aud-ben", "role": "auditor", "cert_subject": "aud-ben"},
-            )
+    add_auditor(nodes, pki)
     return nodes
 
 
 def _outbox_backlog(node: NodeProcess, pki: PkiFiles) -> float:
     """Messages waiting in the node's outbox, read from its Prometheus metrics."""
-    with OperatorClient(node.url, ident(pki, "ops-ada")) as ops:
+    with OperatorClient(node.url, pki.identity("ops-ada")) as ops:
         text = ops._client.get(node.url + "/api/v1/metrics").text
     for family in text_string_to_metric_families(text):  # the reference parser
         if family.name == "keystrata_outbox_pending_messages":
@@ -100,15 +101,12 @@ def _under_load(
     stop = threading.Event()
     urls = {n: node.url for n, node in nodes.items()}
     workers = [
-        threading.Thread(target=_rekeying, args=(pki, urls, pair, seen, stop), daemon=True)
+        threading.Thread(target=rekeying, args=(pki, urls, pair, seen, stop), daemon=True)
         for pair in PAIRS
     ]
     try:
-        _feed(nodes, pki, 60)
-        deadline = time.monotonic() + 60
-        while not _stocked(nodes, pki):
-            assert time.monotonic() < deadline, "no ready key at the stations"
-            time.sleep(0.3)
+        feed_links(nodes, pki, 60)
+        wait_for("ready key at the stations", lambda: stocked(nodes, pki, 16), every=0.3)
         for w in workers:
             w.start()
         time.sleep(1.5)
@@ -118,27 +116,25 @@ def _under_load(
         for w in workers:
             w.join(PATIENCE + 2 * TIMEOUT)
             assert not w.is_alive(), "an encryptor pair hung"
-        with OperatorClient(nodes["relay-1"].url, ident(pki, "ops-ada")) as ops:
-            ops.change(
-                "pairs",
-                "pair-ab",
-                {"policy": {"buffer_min_bits": 0, "buffer_target_bits": 0, "buffer_max_bits": 0}},
-            )
-        deadline = time.monotonic() + 60
-        while not _settled(nodes, pki) or any(_outbox_backlog(n, pki) for n in nodes.values()):
-            assert time.monotonic() < deadline, "the backlog did not drain"
-            time.sleep(0.5)
-        ledgers = {n: _checked_ledger(node.url, pki) for n, node in nodes.items()}
+        set_policy(nodes, pki, STOPPED)
+        wait_for(
+            "the backlog drained",
+            lambda: (
+                settled(nodes, pki) and not any(_outbox_backlog(n, pki) for n in nodes.values())
+            ),
+            every=0.5,
+        )
+        ledgers = {n: checked_ledger(node.url, pki) for n, node in nodes.items()}
     finally:
         stop.set()
         stop_all(list(nodes.values()))
     assert seen.problems == [], (seen.problems[:10], seen.outcomes)
     assert seen.longest_call < TIMEOUT + 1, seen.longest_call
-    _ends_agree(seen)
-    _ledgers_account_for_every_key(seen, ledgers)
+    ends_agree(seen)
+    ledgers_account_for_every_key(seen, ledgers)
     configs = {n: node.config for n, node in nodes.items()}
-    _both_ends_consumed_alike(configs)
-    _relay_holds_no_pair_key(configs["relay-1"])
+    both_ends_consumed_alike(configs)
+    relay_holds_no_pair_key(configs["relay-1"])
 
 
 def test_database_crash_under_load(tmp_path, pki, private_pg) -> None:
@@ -146,7 +142,7 @@ def test_database_crash_under_load(tmp_path, pki, private_pg) -> None:
 
     def crash_database(nodes: dict[str, NodeProcess]) -> None:
         private_pg.stop("immediate")  # a crash: open transactions are cut off
-        with KeyClient(nodes["station-a"].url, ident(pki, "sae-a1"), timeout=TIMEOUT) as kme:
+        with KeyClient(nodes["station-a"].url, pki.identity("sae-a1"), timeout=TIMEOUT) as kme:
             start = time.monotonic()
             try:
                 kme.status("sae-b1")

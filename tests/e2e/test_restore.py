@@ -32,9 +32,9 @@ import psycopg
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
 from sqlalchemy.engine import make_url
-from test_crash import _feed, _settled, ident
 
-from keystrata.loopback.network import NETWORK, start_network
+from e2enet import stock_and_stop, wait_for
+from keystrata.loopback.network import NETWORK, feed_links, start_network
 from keystrata.loopback.pki import PkiFiles
 from keystrata.loopback.processes import NodeProcess, stop_all
 from keystrata_client import ApiError, OperatorClient
@@ -53,7 +53,6 @@ peer_timeout_seconds = 2.0
 HELD_MESSAGE = "an operator must resolve it"
 #: A worker that could not ask its partner at start serves the pair nothing until it has.
 NOT_COMPARED_MESSAGE = "has not yet compared its state"
-STOPPED = {"buffer_min_bits": 0, "buffer_target_bits": 0, "buffer_max_bits": 0}
 
 
 class Keys:
@@ -78,14 +77,6 @@ def _client(url: str, pki: PkiFiles, name: str) -> httpx.Client:
     return httpx.Client(base_url=url, verify=ctx, timeout=15)
 
 
-def _wait(what: str, check: Callable[[], Any], timeout: float = 60) -> Any:
-    deadline = time.monotonic() + timeout
-    while not (result := check()):
-        assert time.monotonic() < deadline, f"timed out waiting for {what}"
-        time.sleep(0.1)
-    return result
-
-
 def _rekey(nodes: dict[str, NodeProcess], pki: PkiFiles, keys: Keys, n: int, way: str) -> None:
     """``n`` rekeys of two 256-bit keys: the master takes keys at its station, the slave
     fetches them by ID at the other; each key's digest is recorded from both ends."""
@@ -95,14 +86,14 @@ def _rekey(nodes: dict[str, NodeProcess], pki: PkiFiles, keys: Keys, n: int, way
         else ("sae-b2", "station-b", "sae-a2", "station-a")
     )
     with (
-        KeyClient(nodes[m_at].url, ident(pki, master), attempts=1) as kme_m,
-        KeyClient(nodes[s_at].url, ident(pki, slave), attempts=1) as kme_s,
+        KeyClient(nodes[m_at].url, pki.identity(master), attempts=1) as kme_m,
+        KeyClient(nodes[s_at].url, pki.identity(slave), attempts=1) as kme_s,
     ):
         for _ in range(n):
             got = kme_m.get_keys(slave, 2, 256)
             for key in got:
                 keys.add(key.key_id, key.digest())
-            fetched = _wait(
+            fetched = wait_for(
                 "the slave's keys",
                 lambda got=got: _try(lambda: kme_s.get_keys_with_ids(master, got.key_ids)),
                 30,
@@ -195,22 +186,8 @@ def network(tmp_path, pki, db_factory) -> Iterator[tuple[dict[str, NodeProcess],
     urls = {n: db_factory() for n in NETWORK}
     nodes = start_network(tmp_path, pki, urls, extra=SETTINGS, saes=True)
     try:
-        _feed(nodes, pki, 24)
-
-        def stocked() -> bool:
-            for master, slave, station in (
-                ("sae-a1", "sae-b1", "station-a"),
-                ("sae-b2", "sae-a2", "station-b"),
-            ):
-                with KeyClient(nodes[station].url, ident(pki, master)) as kme:
-                    if kme.status(slave).stored_key_count < 40:
-                        return False
-            return True
-
-        _wait("ready key owned by both stations", stocked)
-        with OperatorClient(nodes["relay-1"].url, ident(pki, "ops-ada")) as ops:
-            ops.change("pairs", "pair-ab", {"policy": STOPPED})
-        _wait("every segment settled", lambda: _settled(nodes, pki))
+        feed_links(nodes, pki, 24)
+        stock_and_stop(nodes, pki, 40)
         yield nodes, urls
     finally:
         stop_all(list(nodes.values()))
@@ -228,7 +205,7 @@ def _restore_scenario(
     _rekey(nodes, pki, keys, 4, "a->b")
     _rekey(nodes, pki, keys, 2, "b->a")
     for station in ("station-a", "station-b"):
-        _wait("allocations delivered", lambda s=station: _outbox_drained(nodes, pki, s))
+        wait_for("allocations delivered", lambda s=station: _outbox_drained(nodes, pki, s))
     nodes[victim].stop()
     backend.restore()
     nodes[victim].start(pki)
@@ -236,7 +213,7 @@ def _restore_scenario(
     # The attacker's move: ask the restored station for keys at once.
     for master, slave in (("sae-a1", "sae-b1"), ("sae-b2", "sae-a2")):
         at = "station-a" if master.startswith("sae-a") else "station-b"
-        with KeyClient(nodes[at].url, ident(pki, master), attempts=1) as kme:
+        with KeyClient(nodes[at].url, pki.identity(master), attempts=1) as kme:
             try:
                 for key in kme.get_keys(slave, 2, 256):
                     keys.add(key.key_id, key.digest())
@@ -250,7 +227,7 @@ def _restore_scenario(
     master, slave = ("sae-a1", "sae-b1") if victim == "station-a" else ("sae-b2", "sae-a2")
 
     def held_answer() -> bool:
-        with KeyClient(nodes[victim].url, ident(pki, master), attempts=1) as kme:
+        with KeyClient(nodes[victim].url, pki.identity(master), attempts=1) as kme:
             try:
                 kme.get_keys(slave, 1, 256)
             except ApiError as exc:
@@ -258,14 +235,14 @@ def _restore_scenario(
                 return HELD_MESSAGE in exc.message
         raise AssertionError("the restored station handed out key")
 
-    _wait("the hold's answer", held_answer, 30)
+    wait_for("the hold's answer", held_answer, 30)
     held = _metric(nodes[victim].url, pki, "keystrata_pair_held")
     assert any(dict(k)["behind"] == "self" and dict(k)["pair"] == "pair-ab" for k in held), held
     with _client(nodes[victim].url, pki, "ops-ada") as mon:
         ready = mon.get("/api/v1/health/ready")
     assert ready.status_code == 200 and ready.json()["checks"]["pairs"].startswith("held: ")
     # The partner learns it too (its periodic check), and keeps its own findings open.
-    _wait(
+    wait_for(
         "the partner's alert",
         lambda: any(
             dict(k)["behind"] == "partner"
@@ -283,12 +260,12 @@ def _restore_scenario(
     _rekey(nodes, pki, keys, 2, "b->a")
     keys.assert_no_bytes_twice()
     assert len(keys.by_id) >= 2 * 3 * 6  # three rounds of six rekeys
-    _wait(
+    wait_for(
         "the partner's finding closed",
         lambda: not _metric(nodes[other].url, pki, "keystrata_pair_held"),
         30,
     )
-    with OperatorClient(nodes[victim].url, ident(pki, "ops-ada")) as op:
+    with OperatorClient(nodes[victim].url, pki.identity("ops-ada")) as op:
         pem = Path(pki.cert("aud-ben")).read_text()
         op.create(
             "principals",
@@ -335,13 +312,13 @@ def test_a_slave_station_that_lost_only_deliveries_serves_no_key_twice(
     the slave cannot fetch those keys a second time."""
     nodes, urls = network
     master, slave = "sae-a1", "sae-b1"
-    with KeyClient(nodes["station-a"].url, ident(pki, master), attempts=1) as kme:
+    with KeyClient(nodes["station-a"].url, pki.identity(master), attempts=1) as kme:
         got = kme.get_keys(slave, 4, 256)
-    _wait("allocations delivered", lambda: _outbox_drained(nodes, pki, "station-a"))
+    wait_for("allocations delivered", lambda: _outbox_drained(nodes, pki, "station-a"))
     backend = Backend(urls["station-b"], tmp_path)
     backend.copy(nodes["station-b"], pki)  # the keys wait at B in the backup
-    with KeyClient(nodes["station-b"].url, ident(pki, slave), attempts=1) as kme:
-        fetched = _wait(
+    with KeyClient(nodes["station-b"].url, pki.identity(slave), attempts=1) as kme:
+        fetched = wait_for(
             "the slave's keys", lambda: _try(lambda: kme.get_keys_with_ids(master, got.key_ids))
         )
     assert [k.digest() for k in fetched] == [k.digest() for k in got]
@@ -351,7 +328,7 @@ def test_a_slave_station_that_lost_only_deliveries_serves_no_key_twice(
     nodes["station-b"].start(pki)
 
     def held_answer() -> bool:
-        with KeyClient(nodes["station-b"].url, ident(pki, slave), attempts=1) as kme:
+        with KeyClient(nodes["station-b"].url, pki.identity(slave), attempts=1) as kme:
             try:
                 kme.get_keys_with_ids(master, got.key_ids)
             except ApiError as exc:
@@ -359,7 +336,7 @@ def test_a_slave_station_that_lost_only_deliveries_serves_no_key_twice(
                 return HELD_MESSAGE in exc.message
         raise AssertionError("the restored station served the keys again")
 
-    _wait("the hold's answer", held_answer, 30)
+    wait_for("the hold's answer", held_answer, 30)
     held = _metric(nodes["station-b"].url, pki, "keystrata_pair_held")
     assert any(dict(k)["reason"] == "deliveries_lost" for k in held), held
     # Released: the keys that were waiting are destroyed, never served again.
@@ -368,7 +345,7 @@ def test_a_slave_station_that_lost_only_deliveries_serves_no_key_twice(
     assert r.status_code == 200, r.text
     assert r.json()["keys_destroyed"] >= 4
     with (
-        KeyClient(nodes["station-b"].url, ident(pki, slave), attempts=1) as kme,
+        KeyClient(nodes["station-b"].url, pki.identity(slave), attempts=1) as kme,
         pytest.raises(ApiError) as err,
     ):
         kme.get_keys_with_ids(master, got.key_ids)

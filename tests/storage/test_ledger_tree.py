@@ -1,15 +1,15 @@
 """The ledger's Merkle tree in the database: written in the same transaction as each
 entry, equal to an independent recomputation from the raw entries (RFC 9162 section
-2.1 definitions, written out here), with proofs that verify; and built for entries
+2.1 definitions, written out in tests/helpers.py), with proofs that verify; and built for entries
 written before the tree existed (migration 0004)."""
 
 from __future__ import annotations
 
-import hashlib
 import threading
 
-from sqlalchemy import insert, select, text
+from sqlalchemy import insert, text
 
+from helpers import ledger_entries, mth
 from keystrata.ledger import chain, merkle
 from keystrata.ledger.entries import Event
 from keystrata.storage import migrate
@@ -17,26 +17,9 @@ from keystrata.storage.db import Database
 from keystrata.storage.models import LedgerEntry
 
 
-def mth(entries: list[bytes]) -> bytes:
-    """RFC 9162 section 2.1.1 Merkle Tree Hash, straight from the definition."""
-    if not entries:
-        return hashlib.sha256(b"").digest()
-    if len(entries) == 1:
-        return hashlib.sha256(b"\x00" + entries[0]).digest()
-    k = 1
-    while k * 2 < len(entries):
-        k *= 2
-    return hashlib.sha256(b"\x01" + mth(entries[:k]) + mth(entries[k:])).digest()
-
-
-def _entries(db: Database) -> list[bytes]:
-    with db.read() as s:
-        return list(s.execute(select(LedgerEntry.entry).order_by(LedgerEntry.idx)).scalars())
-
-
 def test_stored_tree_matches_the_entries_and_proves(station) -> None:
     db = station.ctx.db
-    entries = _entries(db)
+    entries = ledger_entries(db)
     assert len(entries) > 10  # the seeded registry wrote entries
     with db.read() as s:
         tree = chain.StoredTree(s)
@@ -71,7 +54,7 @@ def test_concurrent_appends_keep_one_tree(db_url) -> None:
         t.start()
     for t in threads:
         t.join()
-    entries = _entries(db)
+    entries = ledger_entries(db)
     with db.read() as s:
         size, root = chain.StoredTree(s).head()
     assert size == len(entries) == 90
@@ -79,7 +62,7 @@ def test_concurrent_appends_keep_one_tree(db_url) -> None:
     db.dispose()
 
 
-def test_migration_builds_the_tree_for_existing_entries(tmp_path) -> None:
+def test_migration_builds_the_tree_for_existingledger_entries(tmp_path) -> None:
     db = Database.from_url(f"sqlite:///{tmp_path}/old.db")
     migrate.upgrade(db.engine, "0003")
     raw = [f'{{"i":{i}}}'.encode() for i in range(37)]
@@ -110,5 +93,5 @@ def test_migration_builds_the_tree_for_existing_entries(tmp_path) -> None:
         )
     with db.read() as s:
         size, root = chain.StoredTree(s).head()
-    assert (size, root) == (38, mth(_entries(db)))
+    assert (size, root) == (38, mth(ledger_entries(db)))
     db.dispose()

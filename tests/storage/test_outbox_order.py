@@ -1,11 +1,7 @@
 """Outbox delivery: in order per destination, prompt and batched.
 
-* Two worker processes of one node (`keystrata serve` with `[server] workers = 2`, SQLite
-  and PostgreSQL) deliver a backlog and a stream of new messages to two peers over
-  mutual TLS. The peers (``peerstub.py``) apply only the next message in line, as a
-  station applies link ranges; any overtaking shows as a "not yet" refusal. Before this
-  change both workers claimed the same destination's messages at once (`SKIP LOCKED`)
-  and kept sending after a refusal, so most messages were refused at least once.
+* Two worker processes of one node deliver in order: see
+  tests/e2e/test_outbox_order_processes.py.
 * The claim itself: two claimers released together get one destination's messages
   once, in one piece, never both.
 * Wake on commit: with `[outbox] idle_seconds = 60`, a committed message still leaves
@@ -19,36 +15,21 @@ from __future__ import annotations
 
 import threading
 import time
-from collections.abc import Iterator
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
 import pytest
-from sqlalchemy import func, select
+from sqlalchemy import select
 
 import relaynet
 from helpers import snapshot
 from keystrata.loopback.pki import PkiFiles
-from keystrata.loopback.processes import prepare_node
 from keystrata.peering import outbox
 from keystrata.peering.messages import MAX_BATCH
 from keystrata.relay import operation
 from keystrata.storage.db import Database
-from keystrata.storage.models import Lease, OutboxMessage
-from peerstub import PeerStub
-
-
-def _enqueue(db: Database, destination: str, seqs: range) -> None:
-    with db.write() as s:
-        for q in seqs:
-            outbox.enqueue(
-                s,
-                destination=destination,
-                kind="test.seq",
-                segment_id=None,
-                body={"seq": q},
-                now=datetime.now(UTC),
-            )
+from keystrata.storage.models import OutboxMessage
+from peerstub import PeerStub, enqueue_seqs, peers_of
 
 
 def _wait(what: str, check: Any, timeout: float = 60) -> None:
@@ -58,70 +39,11 @@ def _wait(what: str, check: Any, timeout: float = 60) -> None:
         time.sleep(0.05)
 
 
-@pytest.fixture
-def stubs(pki: PkiFiles) -> Iterator[dict[str, PeerStub]]:
-    # Refused once: what arrives before what it depends on (another node's message).
-    made = {
-        "station-b": PeerStub(pki, "station-b", refuse_once={5, 77, 150, 151, 299}),
-        "relay-1": PeerStub(pki, "relay-1", refuse_once={0, 64, 200}),
-    }
-    yield made
-    for stub in made.values():
-        stub.close()
-
-
-def _peers(stubs: dict[str, PeerStub]) -> str:
-    return "".join(f'\n[[peers]]\nid = "{p}"\nurl = "{s.url}"\n' for p, s in stubs.items())
-
-
-@pytest.mark.e2e
-def test_two_worker_processes_deliver_each_destination_in_order(
-    tmp_path, pki: PkiFiles, db_url: str, stubs: dict[str, PeerStub]
-) -> None:
-    n = 300
-    node = prepare_node(tmp_path, pki, "station-a", "station", db_url, extra=_peers(stubs))
-    config = node.config.read_text()
-    node.config.write_text(config.replace("[server]\n", "[server]\nworkers = 2\n", 1))
-    db = Database.from_url(db_url)
-    try:
-        # A backlog both workers find at start, then a stream while they run.
-        for dest in stubs:
-            _enqueue(db, dest, range(0, n // 2))
-        node.start(pki)
-        for start in range(n // 2, n, 10):
-            for dest in stubs:
-                _enqueue(db, dest, range(start, start + 10))
-            time.sleep(0.02)
-        _wait("every message applied", lambda: all(s.count() == n for s in stubs.values()))
-        for dest, stub in stubs.items():
-            r = stub.record
-            assert r.applied == list(range(n)), dest
-            assert r.out_of_order == 0, (dest, r.out_of_order)  # nothing overtook
-            assert r.duplicates == 0, dest
-            assert r.refused == stub.refuse_once, dest  # each refusal was sent again
-            assert r.client_subjects == {"station-a"}  # the node's own certificate
-            assert r.requests <= n // 3, (dest, r.requests)  # several messages per request
-            assert r.batch_requests > 0, dest
-        _wait("outbox empty", lambda: _rows(db) == 0, timeout=10)
-        with db.read() as s:  # every destination lease given back
-            # (the restore check keeps its own lease, `restore-check`, while it runs)
-            outbox_leases = select(func.count()).where(Lease.name.like("outbox#%"))
-            assert s.execute(outbox_leases).scalar_one() == 0
-    finally:
-        node.stop()
-        db.dispose()
-
-
-def _rows(db: Database) -> int:
-    with db.read() as s:
-        return int(s.execute(select(func.count()).select_from(OutboxMessage)).scalar_one())
-
-
 def test_two_claimers_at_once_never_share_a_destination(db_url: str) -> None:
     db = Database.from_url(db_url)
     try:
-        _enqueue(db, "station-b", range(0, 60))
-        _enqueue(db, "relay-1", range(0, 3))
+        enqueue_seqs(db, "station-b", range(0, 60))
+        enqueue_seqs(db, "relay-1", range(0, 3))
         for round_ in range(10):
             start = threading.Barrier(2)
             got: dict[str, list[outbox.Pending]] = {}
@@ -206,7 +128,7 @@ def _make_due(db: Database) -> None:
 def test_claim_honours_the_byte_cap_and_a_backing_off_head(db_url: str) -> None:
     db = Database.from_url(db_url)
     try:
-        _enqueue(db, "station-b", range(0, 5))
+        enqueue_seqs(db, "station-b", range(0, 5))
         now = datetime.now(UTC)
         size = len(b'{"kind":"test.seq","seq":0}')
         run = outbox.claim_next(db, "station-b", holder="w", now=now, limit=64, max_bytes=2 * size)
@@ -239,7 +161,7 @@ def test_a_commit_that_enqueues_wakes_the_outbox_loop(
 
     stub = PeerStub(pki, "station-b")
     # Polling alone would take a minute; the loop must wake on the commit.
-    extra = _peers({"station-b": stub}) + "\n[outbox]\nidle_seconds = 60\n"
+    extra = peers_of({"station-b": stub}) + "\n[outbox]\nidle_seconds = 60\n"
     node = make_node("station-a", "station", db_url=db_url, extra=extra)
     peers = PeerClient(node.ctx.settings)
     background = Background(node.ctx, peers)
@@ -258,7 +180,7 @@ def test_a_commit_that_enqueues_wakes_the_outbox_loop(
             raise RuntimeError("rolled back")
         for seq in range(3):
             committed = time.monotonic()
-            _enqueue(node.ctx.db, "station-b", range(seq, seq + 1))
+            enqueue_seqs(node.ctx.db, "station-b", range(seq, seq + 1))
             _wait("the message at the peer", lambda s=seq: stub.count() == s + 1, timeout=5)
             assert stub.record.applied_at[seq] - committed < 2.0
             time.sleep(0.3)  # idle again
@@ -277,10 +199,10 @@ def test_a_refused_head_backs_off_visibly_and_holds_back_the_rest(
     from keystrata.peering.sender import deliver_once
 
     stub = PeerStub(pki, "station-b", refuse_once={3})
-    node = make_node("station-a", "station", db_url=db_url, extra=_peers({"station-b": stub}))
+    node = make_node("station-a", "station", db_url=db_url, extra=peers_of({"station-b": stub}))
     peers = PeerClient(node.ctx.settings)
     try:
-        _enqueue(node.ctx.db, "station-b", range(0, 6))
+        enqueue_seqs(node.ctx.db, "station-b", range(0, 6))
         assert deliver_once(node.ctx, peers) == 3  # 0, 1, 2; 3 refused, 4 and 5 wait
         assert deliver_once(node.ctx, peers) == 0  # 3 backs off
         # What an operator sees: the head's refusals in the metrics, its error in the row.

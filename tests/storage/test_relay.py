@@ -6,13 +6,12 @@ from __future__ import annotations
 
 import base64
 import json
-from typing import Any
 
 import pytest
 from sqlalchemy import select
 
 import relaynet
-from helpers import ledger_events
+from helpers import ledger_events, link_bytes
 from keystrata.crypto.hazmat import xor_bytes
 from keystrata.relay import operation
 from keystrata.storage.models import LinkBlock, OutboxMessage, RelayOp
@@ -70,22 +69,6 @@ def test_xor_recovery_matches_an_independent_computation(net) -> None:
     assert net.key_digest("station-b", made.segment_id) == hashlib.sha256(expected_ka).hexdigest()
 
 
-def _link_bytes(node: Any, ranges: list[dict[str, int | str]]) -> bytes:
-    """The named link key bytes as a station holds them (read before they are used)."""
-    from keystrata.storage.sealed import block_context
-
-    out = b""
-    with node.ctx.db.read() as s:
-        for r in ranges:
-            row = s.execute(select(LinkBlock).where(LinkBlock.block_id == r["block"])).scalar_one()
-            rest = node.ctx.keyring.open(
-                row.sealed, block_context(row.link_id, row.block_id, row.used)
-            )
-            start = int(r["offset"]) - row.used
-            out += rest[start : start + int(r["length"])]
-    return out
-
-
 def test_both_tags_recomputed_from_the_documented_layout(net) -> None:
     """The relay's two one-time MACs, recomputed here from the layout DEVELOPERS.md
     documents (tag = Poly1305(M, len(header) as 4 bytes big-endian || header || C),
@@ -106,10 +89,10 @@ def test_both_tags_recomputed_from_the_documented_layout(net) -> None:
     assert rfc8785.dumps(fields) == header
     assert fields["v"] == 2 and fields["length"] == 3000
     ciphertext = base64.b64decode(cipher["ciphertext"])
-    ka = _link_bytes(net.a, fields["notice_key_ranges"])
-    ma = _link_bytes(net.a, fields["notice_mac_ranges"])
-    kb = _link_bytes(net.b, fields["cipher_key_ranges"])
-    m = _link_bytes(net.b, fields["cipher_mac_ranges"])
+    ka = link_bytes(net.a, fields["notice_key_ranges"])
+    ma = link_bytes(net.a, fields["notice_mac_ranges"])
+    kb = link_bytes(net.b, fields["cipher_key_ranges"])
+    m = link_bytes(net.b, fields["cipher_mac_ranges"])
     assert len(ma) == len(m) == 32 and len(ka) == len(kb) == 3000
     assert ciphertext == bytes(x ^ y for x, y in zip(ka, kb, strict=True))
     framed = len(header).to_bytes(4, "big") + header

@@ -1,21 +1,14 @@
 """The relay scheduler: leases (exactly one acting scheduler), buffer targets, fair
-sharing and ownership, driven by hand on real databases; and two uvicorn workers on
-PostgreSQL where exactly one scheduler acts."""
+sharing and ownership, driven by hand on real databases (two uvicorn workers on
+PostgreSQL, where exactly one scheduler acts: tests/e2e/test_scheduler_processes.py)."""
 
 from __future__ import annotations
 
-import json
-import time
 from datetime import UTC, datetime, timedelta
-from pathlib import Path
-
-import pytest
-from sqlalchemy import select
 
 import relaynet
 from keystrata.relay import planning, scheduler
 from keystrata.storage import leases
-from keystrata.storage.models import LedgerEntry
 
 
 def test_lease_has_one_holder_at_a_time(db_url) -> None:
@@ -110,67 +103,3 @@ def test_scarce_link_key_is_shared_by_priority(make_node, db_factory) -> None:
     # 16384 bytes less the MAC-key reserve, shared 1:3, rounded down to 4096-byte grains.
     assert by_pair.get("pair-bc", 0) > 2 * by_pair.get(relaynet.PAIR, 0)
     assert sum(by_pair.values()) <= 16384
-
-
-@pytest.mark.e2e
-def test_two_workers_on_postgresql_one_scheduler_acts(tmp_path: Path, pki, pg_factory) -> None:
-    db_factory = pg_factory
-    url = db_factory()
-    from test_crash import _feed
-
-    from keystrata.loopback.network import start_network
-    from keystrata.loopback.processes import stop_all
-
-    extra = "\n[relay]\nsegment_bytes = 2048\nmin_segment_bytes = 512\ncycle_seconds = 0.1\n"
-    network = start_network(
-        tmp_path,
-        pki,
-        {"relay-1": url, "station-a": db_factory(), "station-b": db_factory()},
-        extra=extra,
-        relay_workers=2,
-    )
-    nodes = list(network.values())
-    relay = network["relay-1"]
-    try:
-        _feed({n.node_id: n for n in nodes}, pki, 30)
-        deadline = time.monotonic() + 40
-        actors: set[str] = set()
-        while time.monotonic() < deadline:
-            actors = _segment_actors(url)
-            if len(actors) >= 1 and _count_made(url) >= 10:
-                break
-            time.sleep(0.1)
-        assert _count_made(url) >= 10, "the scheduler made too few segments"
-        assert len(actors) == 1, actors
-        pids = {
-            line.split("[")[1].split("]")[0]
-            for line in relay.log.read_text().splitlines()
-            if "Started server process" in line
-        }
-        assert len(pids) == 2, "the relay did not run two worker processes"
-    finally:
-        stop_all(nodes)
-
-
-def _made(url: str) -> list[dict[str, object]]:
-    from keystrata.storage.db import Database
-
-    db = Database.from_url(url)
-    try:
-        with db.read() as s:
-            return [
-                json.loads(e)
-                for e in s.execute(
-                    select(LedgerEntry.entry).where(LedgerEntry.event == "relay.segment_made")
-                ).scalars()
-            ]
-    finally:
-        db.dispose()
-
-
-def _segment_actors(url: str) -> set[str]:
-    return {str(e["actor"]) for e in _made(url)}
-
-
-def _count_made(url: str) -> int:
-    return len(_made(url))

@@ -11,81 +11,35 @@ unless a line names a source.
 from __future__ import annotations
 
 import configparser
-import importlib.util
 import json
 import os
 import re
 import shlex
 import shutil
-import subprocess
 import sys
 from pathlib import Path
-from types import ModuleType
-from typing import Any
 from urllib.parse import urlsplit
 
 import click
 import pytest
-import yaml  # type: ignore[import-untyped]
 from sqlalchemy.engine import make_url
 
+from deploykit import (
+    COMPOSE,
+    DEPLOY,
+    NODES,
+    SECRETS_DIR,
+    SERVICES,
+    binds,
+    init_roles,
+    make_secrets,
+    node_settings,
+    run_line,
+    secret_paths,
+)
 from keystrata.cli.main import cli
-from keystrata.config import Role, ServerSection, Settings, load_settings
+from keystrata.config import ServerSection, load_settings
 from keystrata_client.emulators.links import main as links_cli
-
-DEPLOY = Path(__file__).resolve().parents[2] / "deploy"
-NODES = {
-    "relay-vela": Role.RELAY,
-    "karsvik": Role.STATION,
-    "tollmere": Role.STATION,
-    "brenhaven": Role.STATION,
-}
-COMPOSE: dict[str, Any] = yaml.safe_load((DEPLOY / "compose.yaml").read_text())
-SERVICES: dict[str, Any] = COMPOSE["services"]
-SECRETS_DIR = "./compose/secrets/"
-
-
-def _module(path: Path) -> ModuleType:
-    spec = importlib.util.spec_from_file_location(path.stem, path)
-    assert spec is not None and spec.loader is not None
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
-
-
-make_secrets = _module(DEPLOY / "compose" / "make_secrets.py")
-
-
-def _binds(service: dict[str, Any]) -> dict[str, dict[str, Any]]:
-    """Container path -> long-syntax volume entry."""
-    return {v["target"]: v for v in service.get("volumes", [])}
-
-
-def _secret_paths(service: dict[str, Any]) -> dict[str, str]:
-    """Container path -> top-level secret name (compose mounts at /run/secrets/<target>)."""
-    return {f"/run/secrets/{s['target']}": s["source"] for s in service.get("secrets", [])}
-
-
-def node_settings(node: str) -> Settings:
-    mount = _binds(SERVICES[node])["/etc/keystrata/node.toml"]
-    assert mount["type"] == "bind" and mount["read_only"] is True
-    assert mount["source"] == f"./compose/{node}.toml"
-    return load_settings(DEPLOY / mount["source"], env={})  # load_settings checks no file
-
-
-def init_roles() -> list[str]:
-    text = (DEPLOY / "compose" / "postgres-init.sh").read_text()
-    found = re.search(r'^KEYSTRATA_NODE_ROLES="([^"]+)"$', text, re.M)
-    assert found
-    return found.group(1).split()
-
-
-def run_line(command: str, env: dict[str, str] | None = None) -> subprocess.CompletedProcess[str]:
-    """Run a command line (split on spaces: the paths here have none)."""
-    return subprocess.run(
-        command.split(), env=env, capture_output=True, text=True, timeout=300, check=False
-    )
-
 
 # ---------------------------------------------------------------- compose.yaml
 
@@ -114,12 +68,12 @@ def test_node_config_matches_its_service(node: str) -> None:
     assert (settings.node.id, settings.node.role) == (node, NODES[node])
     assert svc["ports"] and all(p["target"] == settings.server.port for p in svc["ports"])
     assert all(p["host_ip"] == "127.0.0.1" for p in svc["ports"])
-    mounted = {**_binds(svc), **_secret_paths(svc)}
+    mounted = {**binds(svc), **secret_paths(svc)}
     for path in (settings.tls.ca, settings.tls.cert):
-        assert _binds(svc)[str(path)]["source"].startswith(SECRETS_DIR + "pki/")
+        assert binds(svc)[str(path)]["source"].startswith(SECRETS_DIR + "pki/")
     for path in (settings.tls.key, settings.kek.file):  # private: secrets, not binds
-        assert str(path) in _secret_paths(svc)
-    assert svc["environment"]["PGPASSFILE"] in _secret_paths(svc)
+        assert str(path) in secret_paths(svc)
+    assert svc["environment"]["PGPASSFILE"] in secret_paths(svc)
     # The health check asks this node, on its port, with files that are mounted.
     argv = svc["healthcheck"]["test"]
     assert argv[:3] == ["CMD", "python", "/usr/local/lib/keystrata/healthcheck.py"]
@@ -153,7 +107,7 @@ def test_each_node_has_its_own_database_from_the_init_script() -> None:
         databases.append(url.database)
     assert sorted(databases) == sorted(created)
     assert os.access(DEPLOY / "compose" / "postgres-init.sh", os.X_OK)
-    target = _binds(SERVICES["postgres"])["/docker-entrypoint-initdb.d/10-keystrata.sh"]
+    target = binds(SERVICES["postgres"])["/docker-entrypoint-initdb.d/10-keystrata.sh"]
     assert target["source"] == "./compose/postgres-init.sh"
 
 
@@ -162,8 +116,8 @@ def test_postgres_service() -> None:
     assert str(pg["user"]).split(":")[0] not in ("0", "root") and pg["read_only"] is True
     assert "pg_isready" in pg["healthcheck"]["test"]
     assert "ports" not in pg  # reachable on the compose network only
-    assert pg["environment"]["POSTGRES_PASSWORD_FILE"] in _secret_paths(pg)
-    assert pg["environment"]["KEYSTRATA_ROLES_FILE"] in _secret_paths(pg)
+    assert pg["environment"]["POSTGRES_PASSWORD_FILE"] in secret_paths(pg)
+    assert pg["environment"]["KEYSTRATA_ROLES_FILE"] in secret_paths(pg)
 
 
 def test_volumes_and_secrets_are_declared() -> None:

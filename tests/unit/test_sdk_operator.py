@@ -4,27 +4,23 @@ Pure client-side behaviour (path building, the mapping of answers onto the SDK's
 tree, client ownership) runs on ``httpx.MockTransport``: the thing under test is the
 client, and a mock server lets each test give exactly the answer it needs, including
 ones no keystrata node would give (HTML from a proxy, a JSON list). How the client and
-a real node understand each other is checked once against a ``keystrata serve``
-process over mutual TLS.
+a real node understand each other is checked in
+tests/e2e/test_sdk_operator_processes.py.
 """
 
 from __future__ import annotations
 
-import shutil
 from collections.abc import Callable, Iterator
-from pathlib import Path
 from urllib.parse import unquote
 
 import httpx
 import pytest
 
-from keystrata.loopback.pki import PkiFiles
-from keystrata.loopback.processes import NodeProcess, free_port, prepare_node
+from keystrata.loopback.processes import free_port
 from keystrata_client import (
     ApiError,
     KeystrataClientError,
     OperatorClient,
-    TlsIdentity,
     TransportError,
 )
 
@@ -191,67 +187,3 @@ def test_base_url_must_be_http() -> None:
 
 
 # ---------------------------------------------------------------- against a real node
-
-
-def identity(pki: PkiFiles, name: str) -> TlsIdentity:
-    return TlsIdentity(ca=pki.ca, cert=pki.cert(name), key=pki.key(name))
-
-
-@pytest.fixture
-def station_process(tmp_path: Path, pki: PkiFiles, sqlite_template: Path) -> Iterator[NodeProcess]:
-    db = tmp_path / "station.db"
-    shutil.copy(sqlite_template, db)
-    node = prepare_node(tmp_path, pki, "station-a", "station", f"sqlite:///{db}").start(pki)
-    try:
-        yield node
-    finally:
-        node.stop()
-
-
-@pytest.mark.e2e
-def test_registry_round_trip_and_errors_from_a_real_node(
-    station_process: NodeProcess, pki: PkiFiles
-) -> None:
-    url = station_process.url
-    with OperatorClient(url, identity(pki, "ops-ada")) as ops:
-        assert ops.node_info()["node_id"] == "station-a"
-        relay = ops.create("nodes", {"node_id": "relay-1", "role": "relay"})
-        assert (relay["node_id"], relay["role"], relay["retired_at"]) == ("relay-1", "relay", None)
-        ops.create("links", {"link_id": "link-a", "relay_id": "relay-1", "station_id": "station-a"})
-        ops.create(
-            "principals",
-            {"principal_id": "aud-ben", "role": "auditor", "cert_subject": "aud-ben"},
-        )
-        changed = ops.change("links", "link-a", {"description": "relay-1 to station-a"})
-        assert changed["description"] == "relay-1 to station-a"
-        assert ops.get("links", "link-a") == changed
-        assert [n["node_id"] for n in ops.list("nodes")] == ["relay-1", "station-a"]
-        pools = ops.pools()
-        assert pools["node_id"] == "station-a"
-        assert [(p["link_id"], p["bits_available"]) for p in pools["pools"]] == [("link-a", 0)]
-        assert ops.pool("link-a")["peer_node_id"] == "relay-1"
-
-        with pytest.raises(ApiError) as unknown:
-            ops.get("nodes", "relay-9")
-        assert (unknown.value.status, unknown.value.message) == (404, "nodes: no entry 'relay-9'")
-        with pytest.raises(ApiError) as again:
-            ops.create("nodes", {"node_id": "relay-1", "role": "relay"})
-        assert again.value.status == 409
-        with pytest.raises(ApiError) as invalid:
-            ops.create("nodes", {"node_id": "relay-2", "role": "relay", "colour": "red"})
-        assert invalid.value.status == 400
-        assert any(d.get("field") == "body.colour" for d in invalid.value.details)
-        with pytest.raises(ApiError) as busy:
-            ops.retire("nodes", "relay-1")  # link-a still uses it
-        assert busy.value.status == 409 and "link link-a" in busy.value.message
-
-    with OperatorClient(url, identity(pki, "aud-ben")) as auditor:
-        assert [x["link_id"] for x in auditor.list("links")] == ["link-a"]
-        with pytest.raises(ApiError) as refused:
-            auditor.create("nodes", {"node_id": "relay-2", "role": "relay"})
-        assert refused.value.status == 403
-
-    with OperatorClient(url, identity(pki, "stranger")) as stranger:
-        with pytest.raises(ApiError) as unauthenticated:
-            stranger.pools()
-        assert unauthenticated.value.status == 401
