@@ -19,12 +19,10 @@ from keystrata.config import Role
 from keystrata.context import NodeContext
 from keystrata.delivery import slave_copy
 from keystrata.errors import Forbidden, InvalidInput, KeystrataError
-from keystrata.ledger import chain
-from keystrata.ledger.entries import Event
 from keystrata.peering import messages
 from keystrata.peering.messages import MessageResult
+from keystrata.peering.refusals import record_refusal
 from keystrata.relay import confirmation, segments
-from keystrata.storage.models import Pair
 
 log = logging.getLogger("keystrata.peers")
 
@@ -69,31 +67,6 @@ def apply(ctx: NodeContext, sender: str, msg: messages.PeerMessage) -> MessageRe
 def handle(ctx: NodeContext, sender: str, body: Any) -> MessageResult:
     """Parse and apply one message from peer node ``sender`` (see :func:`apply`)."""
     return apply(ctx, sender, read(ctx, body))
-
-
-def record_refusal(
-    ctx: NodeContext, sender: str, msg: messages.PeerMessage, exc: Forbidden
-) -> None:
-    """Write ``peer.message_refused`` in its own transaction (the refused change rolled
-    back). The pair is named only when it is registered here; the reason is the code of
-    the check that failed, never a value from the message."""
-    pair_id = getattr(msg, "pair_id", None)
-    log.warning("refused %s from %s: %s", msg.kind, sender, exc.message)
-    with ctx.db.write() as s:
-        if pair_id is not None and s.get(Pair, pair_id) is None:
-            pair_id = None
-        chain.append(
-            s,
-            node_id=ctx.node_id,
-            at=ctx.clock.now(),
-            event=Event.PEER_MESSAGE_REFUSED,
-            fields={
-                "sender": sender,
-                "kind": msg.kind,
-                "pair": pair_id,
-                "reason": exc.message[:120],
-            },
-        )
 
 
 def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[MessageResult]:
