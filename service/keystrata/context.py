@@ -18,9 +18,10 @@ class NodeContext:
     keyring: Keyring = field(repr=False)
     fingerprint_key: bytes = field(repr=False)
     clock: Clock = field(default_factory=SystemClock)
-    #: Per-process state of services that batch requests (see delivery/group_commit.py),
-    #: created on first use and keyed by the service's name.
-    lanes: dict[str, Any] = field(default_factory=dict, repr=False, compare=False)
+    #: What one process keeps between requests, keyed by its use case's name and created
+    #: on first use: group commits (delivery/group_commit.py), counted refusals, the
+    #: restore check's partners not yet compared and its next round.
+    process_state: dict[str, Any] = field(default_factory=dict, repr=False, compare=False)
 
     @property
     def node_id(self) -> str:

@@ -48,7 +48,7 @@ class SteppedClock:
 @pytest.fixture
 def clocked(station: Node) -> tuple[Node, SteppedClock]:
     clock = SteppedClock(station.ctx.clock.now())
-    station.ctx = dataclasses.replace(station.ctx, clock=clock, lanes={})
+    station.ctx = dataclasses.replace(station.ctx, clock=clock, process_state={})
     return station, clock
 
 
@@ -167,7 +167,7 @@ def test_refusal_windows_are_bounded_in_memory(clocked) -> None:
     counted (here with 8 windows instead of MAX_WINDOWS, to stay fast)."""
     station, _ = clocked
     digest = principals.RefusalDigest(max_windows=8)
-    station.ctx.lanes["auth.refused"] = digest
+    station.ctx.process_state["auth.refused"] = digest
     before = len(entries(station, "auth.refused"))
     for i in range(58):
         principals.record_refusal(
@@ -282,7 +282,7 @@ def test_get_key_with_key_ids_refusals_name_their_reason(net, api) -> None:
     later = dataclasses.replace(
         net.b.ctx,
         clock=SteppedClock(net.b.ctx.clock.now() + timedelta(days=400)),
-        lanes={},
+        process_state={},
     )
     with pytest.raises(Unauthenticated):
         dec_keys.get_keys_with_ids(later, caller, "sae-a1", [second], None)

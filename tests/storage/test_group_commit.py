@@ -110,7 +110,7 @@ def net(make_node, db_factory) -> relaynet.RelayNet:
 
 
 def _lane(ctx: Any, name: str) -> GroupCommit[Any, Any]:
-    lane = ctx.lanes.get(name)
+    lane = ctx.process_state.get(name)
     if lane is None:  # created on first use: make one request to create it
         raise AssertionError(f"no lane {name}")
     return lane

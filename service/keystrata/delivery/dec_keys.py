@@ -106,11 +106,14 @@ def get_keys_with_ids(
         # One pull per owner at a time in this process; the requests that arrive while
         # it runs share the next one (a group, like the commits below).
         pulls = group_commit.shared(
-            ctx.lanes, f"pull:{owner}", partial(_pull_group, ctx, owner), max_batch=GROUP_BATCH
+            ctx.process_state,
+            f"pull:{owner}",
+            partial(_pull_group, ctx, owner),
+            max_batch=GROUP_BATCH,
         )
         unsettled = pulls.submit(_MissingIds(frozenset(set(ids) - known), allocation_source))
     serving = group_commit.shared(
-        ctx.lanes, "get_key_with_ids", partial(_serve, ctx), max_batch=GROUP_BATCH
+        ctx.process_state, "get_key_with_ids", partial(_serve, ctx), max_batch=GROUP_BATCH
     )
     return serving.submit(_KeyIdsRequest(caller, master_sae_id, ids, unsettled))
 

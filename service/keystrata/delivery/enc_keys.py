@@ -100,7 +100,7 @@ def get_keys(
     route = route_for_master(ctx, caller, slave_sae_id, request.additional_slave_SAE_IDs or ())
     number, size = check_request(route, request)
     allocating = group_commit.shared(
-        ctx.lanes, "get_key", partial(_allocate, ctx), max_batch=GROUP_BATCH
+        ctx.process_state, "get_key", partial(_allocate, ctx), max_batch=GROUP_BATCH
     )
     return allocating.submit(_GetKeyRequest(caller, route, number, size))
 

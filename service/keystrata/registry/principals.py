@@ -108,9 +108,9 @@ class RefusalDigest:
 
 def refusal_digest(ctx: NodeContext) -> RefusalDigest:
     """The node context's refusal windows (created on first use)."""
-    digest = ctx.lanes.get("auth.refused")
+    digest = ctx.process_state.get("auth.refused")
     if digest is None:
-        digest = ctx.lanes.setdefault("auth.refused", RefusalDigest())
+        digest = ctx.process_state.setdefault("auth.refused", RefusalDigest())
     assert isinstance(digest, RefusalDigest)
     return digest
 

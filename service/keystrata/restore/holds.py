@@ -21,14 +21,14 @@ from keystrata.restore.points import pair_and_partner
 from keystrata.restore.rules import Behind
 from keystrata.storage.models import PairHold, Principal
 
-#: ``ctx.lanes`` key: partner stations this process has not compared a pair with since
+#: ``ctx.process_state`` key: partner stations this process has not compared a pair with since
 #: it started (restore check). Their pairs serve nothing here until compared.
 _UNVERIFIED_PARTNERS = "progress.unverified"
 
 
 def unverified(ctx: NodeContext) -> set[str]:
     """This process's partners not yet compared since start (a shared, mutable set)."""
-    found: set[str] = ctx.lanes.setdefault(_UNVERIFIED_PARTNERS, set())
+    found: set[str] = ctx.process_state.setdefault(_UNVERIFIED_PARTNERS, set())
     return found
 
 

@@ -55,17 +55,17 @@ def check_once(ctx: NodeContext, source: points.ProgressSource, holder: str) -> 
         pending.intersection_update(still)
     interval = ctx.settings.restore_check.interval_seconds
     now = time.monotonic()
-    due = ctx.lanes.get(_DUE, 0.0)
+    due = ctx.process_state.get(_DUE, 0.0)
     if now < due:
         return False
     ttl = timedelta(seconds=max(30.0, 3 * interval))
     if leases.acquire(ctx.db, LEASE, holder, now=ctx.clock.now(), ttl=ttl):
         comparison.check_all(ctx, source)
-        ctx.lanes[_DUE] = now + interval
+        ctx.process_state[_DUE] = now + interval
     return False
 
 
-#: ``ctx.lanes`` key: when this process's next full round is due (monotonic seconds).
+#: ``ctx.process_state`` key: when this process's next full round is due (monotonic seconds).
 _DUE = "progress.next_round"
 #: How often a worker looks again at partners it has not compared yet.
 RETRY_SECONDS = 1.0
