@@ -138,7 +138,7 @@ def _apply_twice_at_once(net: relaynet.RelayNet, message: dict[str, Any]) -> lis
     def apply() -> None:
         start.wait()
         try:
-            results.append(slave_copy.apply_allocated(net.b.ctx, "station-a", parsed).status)
+            results.append(str(slave_copy.apply_allocated(net.b.ctx, "station-a", parsed).outcome))
         except Exception as exc:
             results.append(repr(exc))
 

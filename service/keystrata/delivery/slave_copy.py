@@ -31,6 +31,7 @@ from keystrata.ledger.entries import Event
 from keystrata.peering import messages, outbox
 from keystrata.peering.messages import MessageResult
 from keystrata.ranges import Range
+from keystrata.relay.segment_states import SegmentState
 from keystrata.storage.front import Front, Refusals, segment_front, store_segment
 from keystrata.storage.models import KeyAlloc, Pair, PairSegment, Principal
 from keystrata.storage.sealed import key_context
@@ -217,7 +218,7 @@ def _take_named(
         row = s.get(PairSegment, r.segment, with_for_update=True)
         if row is not None and (row.pair_id != pair_id or row.owner != owner):
             raise Forbidden("a key range names a segment of another pair or owner")
-        if row is None or row.state != "ready":
+        if row is None or row.state != SegmentState.READY:
             raise OutOfOrder("not yet: the segment of this key is not ready here")
         if r.segment not in fronts:
             fronts[r.segment] = (row, segment_front(ctx.keyring, row, _REFUSALS))

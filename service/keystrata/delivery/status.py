@@ -11,6 +11,7 @@ from keystrata.context import NodeContext
 from keystrata.delivery.enc_keys import MAX_KEY_PER_REQUEST, MAX_SAE_ID_COUNT
 from keystrata.delivery.routing import route_for_master
 from keystrata.registry.principals import Caller
+from keystrata.relay.segment_states import SegmentState
 from keystrata.storage.models import PairSegment
 
 
@@ -41,7 +42,7 @@ def _owned_ready_bytes(s: Session, pair_id: str, owner: str) -> int:
             select(func.coalesce(func.sum(PairSegment.length - PairSegment.used), 0)).where(
                 PairSegment.pair_id == pair_id,
                 PairSegment.owner == owner,
-                PairSegment.state == "ready",
+                PairSegment.state == SegmentState.READY,
             )
         ).scalar_one()
     )

@@ -18,6 +18,7 @@ from sqlalchemy.orm import Session
 from keystrata.crypto.hazmat import Keyring
 from keystrata.errors import SealBroken, StoredKeyBroken
 from keystrata.ranges import Range
+from keystrata.relay.segment_states import SegmentState
 from keystrata.storage.front import LOCKED, segment_front, store_segment
 from keystrata.storage.models import PairSegment
 
@@ -62,7 +63,7 @@ class OwnedStock:
                 .where(
                     PairSegment.pair_id == self.pair_id,
                     PairSegment.owner == self.owner,
-                    PairSegment.state == "ready",
+                    PairSegment.state == SegmentState.READY,
                     PairSegment.used < PairSegment.length,
                 )
                 .order_by(PairSegment.settled_at, PairSegment.segment_id)
@@ -84,7 +85,7 @@ class OwnedStock:
                     select(PairSegment.segment_id, PairSegment.used, PairSegment.length)
                     .where(
                         PairSegment.segment_id.in_(chosen),
-                        PairSegment.state == "ready",
+                        PairSegment.state == SegmentState.READY,
                         PairSegment.used < PairSegment.length,
                     )
                     .order_by(PairSegment.segment_id)

@@ -27,6 +27,7 @@ from keystrata.context import NodeContext
 from keystrata.errors import Conflict, InvalidInput, Unavailable
 from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
+from keystrata.relay.segment_states import SegmentState
 from keystrata.restore.points import ProgressSource, fetched_keys, partner_progress
 from keystrata.restore.rules import Behind, Reason
 from keystrata.storage.models import KeyAlloc, PairHold, PairSegment, PartnerMark
@@ -73,7 +74,7 @@ def release(
     with ctx.db.write() as s:
         rows = s.execute(
             select(PairSegment)
-            .where(PairSegment.pair_id == pair_id, PairSegment.state != "discarded")
+            .where(PairSegment.pair_id == pair_id, PairSegment.state != SegmentState.DISCARDED)
             .order_by(PairSegment.segment_id)
             .with_for_update()
         ).scalars()
