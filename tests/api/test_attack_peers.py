@@ -263,7 +263,6 @@ def test_one_station_reporting_an_empty_buffer_does_not_drain_its_partners_link(
     """Station A lies that its buffer of the pair is empty. Both stations hold the same
     ready segments, so B's honest report shows the pair is above its target: the relay
     spends no link key on it."""
-    from dataclasses import replace
 
     from keystrata.relay.buffers import record_report, station_report
     from keystrata.relay.scheduler import schedule_once
@@ -275,7 +274,9 @@ def test_one_station_reporting_an_empty_buffer_does_not_drain_its_partners_link(
     net.feed("station-b", 8)
     honest = station_report(net.b.ctx, relaynet.PAIR)
     assert honest.ready_bits > 65_536
-    lie = replace(station_report(net.a.ctx, relaynet.PAIR), ready_bits=0, owned_ready_bits=0)
+    lie = station_report(net.a.ctx, relaynet.PAIR).model_copy(
+        update={"ready_bits": 0, "owned_ready_bits": 0}
+    )
     record_report(net.relay.ctx, lie)
     record_report(net.relay.ctx, honest)
     assert schedule_once(net.relay.ctx, None).made == []

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 from datetime import datetime, timedelta
 from typing import Any
 
@@ -13,30 +13,10 @@ from sqlalchemy.orm import Session
 
 from keystrata.context import NodeContext
 from keystrata.errors import Forbidden, NotFound
+from keystrata.peering import answers
 from keystrata.relay import planning
 from keystrata.relay.segment_states import RelayOpState, SegmentState
 from keystrata.storage.models import Pair, PairBuffer, PairSegment, RelayOp
-
-
-@dataclass(frozen=True)
-class BufferReport:
-    """A station's key buffer for one pair (bits)."""
-
-    pair_id: str
-    station: str
-    ready_bits: int
-    owned_ready_bits: int
-    pending_bits: int
-    #: Bits of this pair's key handed to SAEs at this station in the window. Key
-    #: delivery (ETSI GS QKD 014) feeds it; until a station delivers, it is 0.
-    delivered_bits: int
-    window_seconds: int
-    reported_at: datetime
-
-    def to_json(self) -> dict[str, Any]:
-        out = asdict(self)
-        out["reported_at"] = self.reported_at.isoformat()
-        return out
 
 
 def _levels(s: Session, pair_id: str, me: str) -> tuple[int, int, int]:
@@ -66,7 +46,7 @@ def _levels(s: Session, pair_id: str, me: str) -> tuple[int, int, int]:
     return 8 * int(ready), 8 * int(owned), 8 * int(pending)
 
 
-def station_report(ctx: NodeContext, pair_id: str) -> BufferReport:
+def station_report(ctx: NodeContext, pair_id: str) -> answers.BufferReport:
     """This station's buffer for ``pair_id``. Raises NotFound for a pair not here."""
     window = ctx.settings.ingest.rate_window_seconds
     with ctx.db.read() as s:
@@ -74,7 +54,7 @@ def station_report(ctx: NodeContext, pair_id: str) -> BufferReport:
         if pair is None or ctx.node_id not in (pair.station_a, pair.station_b):
             raise NotFound("no such pair at this station")
         ready, owned, pending = _levels(s, pair_id, ctx.node_id)
-    return BufferReport(
+    return answers.BufferReport(
         pair_id=pair_id,
         station=ctx.node_id,
         ready_bits=ready,
@@ -86,7 +66,7 @@ def station_report(ctx: NodeContext, pair_id: str) -> BufferReport:
     )
 
 
-def report_for_relay(ctx: NodeContext, pair_id: str, relay_id: str) -> BufferReport:
+def report_for_relay(ctx: NodeContext, pair_id: str, relay_id: str) -> answers.BufferReport:
     """This station's buffer for ``pair_id``, asked by peer node ``relay_id``: only the
     relay of that pair may read it (another station or relay learns nothing, not even
     whether the pair exists here).
@@ -105,10 +85,9 @@ def report_for_relay(ctx: NodeContext, pair_id: str, relay_id: str) -> BufferRep
     return station_report(ctx, pair_id)
 
 
-def record_report(ctx: NodeContext, report: BufferReport) -> None:
+def record_report(ctx: NodeContext, report: answers.BufferReport) -> None:
     """At the relay: keep a station's latest report (upsert)."""
-    values = {k: v for k, v in asdict(report).items() if k != "station"}
-    values["station"] = report.station
+    values = report.model_dump(exclude={"v"})
     with ctx.db.write() as s:
         insert = pg_insert if ctx.db.backend == "postgresql" else sqlite_insert
         stmt = insert(PairBuffer).values(**values)

@@ -19,7 +19,6 @@ from keystrata.links import consume
 from keystrata.peering import answers
 from keystrata.peering.client import PeerClient
 from keystrata.relay import arithmetic, buffers, operation
-from keystrata.relay.buffers import BufferReport
 from keystrata.relay.fairness import PairDemand, allocate
 from keystrata.relay.planning import choose_owner
 from keystrata.storage.models import Pair
@@ -45,16 +44,15 @@ def _poll_stations(ctx: NodeContext, peers: PeerClient, pairs: list[Pair]) -> No
             if raw is None:
                 continue
             try:
-                wire = answers.BufferReport.from_json(raw)
+                report = answers.BufferReport.from_json(raw)
             except InvalidInput as exc:
                 log.warning("scheduler: malformed buffer report from %s: %s", station, exc.message)
                 continue
-            if wire.station != station or wire.pair_id != pair.pair_id:
+            if report.station != station or report.pair_id != pair.pair_id:
                 log.warning(
                     "scheduler: %s answered with a report of another pair or station", station
                 )
                 continue
-            report = BufferReport(**wire.model_dump(exclude={"v"}))
             buffers.record_report(ctx, report)
 
 
