@@ -43,7 +43,7 @@ faults: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python -m bench $(ARGS)
 
-## make load: the load test (issue 6): relay and two stations as processes, stations with
+## make load: the load test: relay and two stations as processes, stations with
 ## two workers on PostgreSQL, 64 SAE clients, at least 20000 keys (up to 10 minutes; not
 ## part of make test); ARGS='--quick' for a short run; writes build/loadtest/summary.json
 load: $(STAMP)

@@ -211,7 +211,7 @@ def write_markdown(
         "",
         markdown_table(figures),
         "",
-        "## Targets of issue 6",
+        "## Targets",
         "",
         *[f"- {line}" for line in target_lines(targets(figures))],
         "",

@@ -1,4 +1,4 @@
-"""Load test of key delivery (issue 6, item 2): a relay and two stations as real
+"""Load test of key delivery: a relay and two stations as real
 ``keystrata serve`` processes on loopback with mutual TLS, the stations with two uvicorn
 workers each on PostgreSQL, and many concurrent SAE clients taking keys at station A
 (Get key) and fetching them at station B (Get key with key IDs).
