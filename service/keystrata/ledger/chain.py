@@ -64,7 +64,7 @@ def _append(
     entries: Sequence[tuple[datetime, Event, Mapping[str, Any]]],
 ) -> list[int]:
     # The row lock (and SQLite's write lock) serialises appenders until commit.
-    first, blob = session.execute(
+    first, frontier = session.execute(
         select(LedgerHead.size, LedgerHead.frontier).where(LedgerHead.id == 1).with_for_update()
     ).one()
     prev = None if first == 0 else StoredTree(session).get(0, first - 1)
@@ -77,7 +77,7 @@ def _append(
         leaves.append(prev)
         rows.append({"idx": index, "recorded_at": at, "event": str(event), "entry": entry})
         refs += [{"kind": str(k), "value": v, "idx": index} for k, v in references(fields)]
-    edge = Frontier(first, blob)
+    edge = Frontier(first, frontier)
     nodes = merkle.append(edge, first, leaves)
     size = first + len(entries)
     session.execute(
@@ -108,10 +108,10 @@ class StoredTree:
 
     def head(self) -> tuple[int, bytes]:
         """(size, root hash) of the whole ledger, from the stored right edge."""
-        size, blob = self.session.execute(
+        size, frontier = self.session.execute(
             select(LedgerHead.size, LedgerHead.frontier).where(LedgerHead.id == 1)
         ).one()
-        return int(size), merkle.root(Frontier(int(size), blob), int(size))
+        return int(size), merkle.root(Frontier(int(size), frontier), int(size))
 
     def inclusion_proof(self, index: int, size: int) -> list[bytes]:
         return self._prefetched(lambda store: merkle.inclusion_proof(store, index, size))

@@ -24,19 +24,21 @@ def positions(size: int) -> list[tuple[int, int]]:
 class Frontier:
     """A read-only :class:`~keystrata.ledger.merkle.SubtreeStore` over the right edge."""
 
-    def __init__(self, size: int, blob: bytes | None) -> None:
+    def __init__(self, size: int, stored: bytes | None) -> None:
+        """``stored``: the subtree hashes of ``positions(size)``, concatenated in order."""
         places = positions(size)
-        blob = blob or b""
-        if len(blob) != HASH_SIZE * len(places):
+        stored = stored or b""
+        if len(stored) != HASH_SIZE * len(places):
             raise ValueError("the stored frontier does not match the ledger size")
         self.size = size
-        self.hashes = {p: blob[i * HASH_SIZE : (i + 1) * HASH_SIZE] for i, p in enumerate(places)}
+        self.hashes = {p: stored[i * HASH_SIZE : (i + 1) * HASH_SIZE] for i, p in enumerate(places)}
 
     def get(self, level: int, index: int) -> bytes:
         return self.hashes[(level, index)]
 
     def advance(self, new_rows: Iterable[tuple[int, int, bytes]], new_size: int) -> bytes:
-        """The frontier blob after appending ``new_rows`` to reach ``new_size`` leaves."""
+        """The stored frontier (concatenated hashes) after appending ``new_rows`` to
+        reach ``new_size`` leaves."""
         known = dict(self.hashes)
         known.update({(level, index): h for level, index, h in new_rows})
         return b"".join(known[p] for p in positions(new_size))
