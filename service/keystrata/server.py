@@ -69,7 +69,12 @@ def compose(ctx: NodeContext) -> FastAPI:
     """Wire one process: its peer client, its background loops and its app."""
     peers = PeerClient(ctx.settings)
     loops = Background(ctx, peers) if ctx.settings.server.background_work else None
-    return create_app(ctx, allocation_source=peers, background=_ProcessWork(loops, peers))
+    return create_app(
+        ctx,
+        allocation_source=peers,
+        progress_source=peers,
+        background=_ProcessWork(loops, peers),
+    )
 
 
 def app_factory() -> FastAPI:

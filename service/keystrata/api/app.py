@@ -37,6 +37,7 @@ from keystrata.registry import principals
 
 if TYPE_CHECKING:
     from keystrata.delivery.ports import AllocationSource
+    from keystrata.restore.points import ProgressSource
 
 #: Bodies of routes other than ingest are small JSON documents.
 DEFAULT_BODY_LIMIT = 1024 * 1024
@@ -76,12 +77,15 @@ def create_app(
     ctx: NodeContext,
     *,
     allocation_source: AllocationSource | None = None,
+    progress_source: ProgressSource | None = None,
     background: BackgroundWork | None = None,
 ) -> FastAPI:
     """Return the node's ASGI app; every route needs an authenticated caller.
 
     ``allocation_source`` is how Get key with key IDs asks an owning station for its
-    pending allocations (None: it cannot, and an unknown key ID is a 503).
+    pending allocations (None: it cannot, and an unknown key ID is a 503);
+    ``progress_source`` how an operator's release of a held pair asks the partner for
+    its consumption points (None: it cannot, 503).
     """
 
     @asynccontextmanager
@@ -111,7 +115,7 @@ def create_app(
     )
     app.state.ctx = ctx
     app.state.allocation_source = allocation_source
-    app.state.peers = allocation_source  # until routes/etsi.py reads allocation_source
+    app.state.progress_source = progress_source
     app.state.ca_cert = x509.load_pem_x509_certificate(ctx.settings.tls.ca.read_bytes())
     errors.install(app)
     for router in ROUTERS:

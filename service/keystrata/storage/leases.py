@@ -63,9 +63,3 @@ def take(session: Session, name: str, holder: str, *, now: datetime, ttl: timede
 def release(session: Session, name: str, holder: str) -> None:
     """Give lease ``name`` up (in the caller's transaction) if ``holder`` holds it."""
     session.execute(delete(Lease).where(Lease.name == name, Lease.holder == holder))
-
-
-def holder_of(db: Database, name: str) -> str | None:
-    with db.read() as s:
-        lease = s.get(Lease, name)
-        return None if lease is None else lease.holder

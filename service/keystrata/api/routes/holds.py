@@ -13,8 +13,7 @@ from keystrata.api.errors import error_responses
 from keystrata.api.identity import admit
 from keystrata.config import Role
 from keystrata.context import NodeContext
-from keystrata.errors import NotFound
-from keystrata.peering.client import PeerClient
+from keystrata.errors import NotFound, Unavailable
 from keystrata.registry.principals import Caller
 from keystrata.registry.specs import PrincipalRole
 from keystrata.restore import holds, release
@@ -62,13 +61,9 @@ async def release_hold(
     if ctx.role is not Role.STATION:
         raise NotFound("only stations hold pairs")
 
-    def run() -> dict[str, Any]:
-        peers = PeerClient(ctx.settings)
-        try:
-            return release.release(
-                ctx, peers, pair_id, actor=caller.principal_id, reason=body.reason
-            )
-        finally:
-            peers.close()
-
-    return await run_in_threadpool(run)
+    source = request.app.state.progress_source
+    if source is None:
+        raise Unavailable("this process cannot ask the partner station now")
+    return await run_in_threadpool(
+        release.release, ctx, source, pair_id, actor=caller.principal_id, reason=body.reason
+    )
