@@ -16,7 +16,7 @@ from keystrata.errors import Forbidden, NotFound
 from keystrata.peering import answers
 from keystrata.relay import planning
 from keystrata.relay.segment_states import RelayOpState, SegmentState
-from keystrata.storage.models import Pair, PairBuffer, PairSegment, RelayOp
+from keystrata.storage.models import KeyAlloc, Pair, PairBuffer, PairSegment, RelayOp
 
 
 def _levels(s: Session, pair_id: str, me: str) -> tuple[int, int, int]:
@@ -47,22 +47,39 @@ def _levels(s: Session, pair_id: str, me: str) -> tuple[int, int, int]:
 
 
 def station_report(ctx: NodeContext, pair_id: str) -> answers.BufferReport:
-    """This station's buffer for ``pair_id``. Raises NotFound for a pair not here."""
+    """This station's buffer for ``pair_id``, and its demand: the bits of pair key it
+    handed to master SAEs (Get key here, from the key it owns) over the rate window.
+    Raises NotFound for a pair not here."""
     window = ctx.settings.ingest.rate_window_seconds
+    now = ctx.clock.now()
     with ctx.db.read() as s:
         pair = s.get(Pair, pair_id)
         if pair is None or ctx.node_id not in (pair.station_a, pair.station_b):
             raise NotFound("no such pair at this station")
         ready, owned, pending = _levels(s, pair_id, ctx.node_id)
+        delivered = _delivered_bits(s, pair_id, ctx.node_id, now - timedelta(seconds=window))
     return answers.BufferReport(
         pair_id=pair_id,
         station=ctx.node_id,
         ready_bits=ready,
         owned_ready_bits=owned,
         pending_bits=pending,
-        delivered_bits=0,
+        delivered_bits=delivered,
         window_seconds=window,
-        reported_at=ctx.clock.now(),
+        reported_at=now,
+    )
+
+
+def _delivered_bits(s: Session, pair_id: str, me: str, since: datetime) -> int:
+    """Bits of ``pair_id``'s key this station allocated to its masters since ``since``."""
+    return int(
+        s.execute(
+            select(func.coalesce(func.sum(KeyAlloc.size_bits), 0)).where(
+                KeyAlloc.pair_id == pair_id,
+                KeyAlloc.owner == me,
+                KeyAlloc.allocated_at >= since,
+            )
+        ).scalar_one()
     )
 
 
@@ -123,6 +140,11 @@ def pairs_through(s: Session, relay_id: str) -> list[Pair]:
     )
 
 
+def _demand_bps(report: PairBuffer) -> float:
+    """A station's demand for its pair: bits delivered to its masters per second."""
+    return report.delivered_bits / max(report.window_seconds, 1)
+
+
 def relay_view(ctx: NodeContext, *, now: datetime | None = None) -> list[PairView]:
     """Every active pair through this relay, as its scheduler sees it."""
     now = now or ctx.clock.now()
@@ -160,14 +182,13 @@ def relay_view(ctx: NodeContext, *, now: datetime | None = None) -> list[PairVie
                         "ready_bits": r.ready_bits if r else None,
                         "owned_ready_bits": r.owned_ready_bits if r else None,
                         "pending_bits": r.pending_bits if r else None,
+                        "demand_bps": _demand_bps(r) if r else None,
                         "reported_at": r.reported_at.isoformat() if r else None,
                     }
                 )
             consumption = None
             if len(reports) == 2 and any(r.delivered_bits for r in reports.values()):
-                consumption = sum(
-                    r.delivered_bits / max(r.window_seconds, 1) for r in reports.values()
-                )
+                consumption = sum(_demand_bps(r) for r in reports.values())
             ready = min(int(side["ready_bits"] or 0) for side in sides)
             target = planning.buffer_target(
                 consumption_bps=consumption,

@@ -124,9 +124,15 @@ def schedule_once(
                 # Key is scarce: wait for enough to make a segment worth its messages,
                 # unless this small piece is all the pair still needs.
                 break
-            # Recent demand per side comes with key delivery; until then it is equal.
+            # Each side owns key in proportion to its stations' recent demand (Get key
+            # there); equal shares while neither side has any.
             owner = choose_owner(
-                a["station"], b["station"], 0.0, 0.0, owned[a["station"]], owned[b["station"]]
+                a["station"],
+                b["station"],
+                float(a["demand_bps"] or 0.0),
+                float(b["demand_bps"] or 0.0),
+                owned[a["station"]],
+                owned[b["station"]],
             )
             try:
                 made.append(
