@@ -12,6 +12,9 @@ Families (``--only`` takes a comma-separated list of these names):
   same SQLite file, one transaction per batch, no web layer.
 * ``relay``: ready pair key per second at both stations, relay and stations on
   loopback; and the relay node's peak resident memory meanwhile.
+* ``demand``: a demand trace played in one process on SQLite (bench/demand.py): share of
+  Get key answered 503 for lack of key, wait for key and pair key held in buffers, for
+  the adaptive target and for the smallest fixed target that meets the same 503 goal.
 * ``ledger-sqlite``, ``ledger-postgresql`` (``ledger`` for both): appends per second
   (one per transaction) and inclusion / consistency proof times, p50 and p99, on a
   ledger of a million entries (100,000 with ``--quick``).
@@ -30,7 +33,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
-from bench import common, etsi, ingest, ledger, loadgen, profiling, relay, report
+from bench import common, demand, etsi, ingest, ledger, loadgen, profiling, relay, report
 from bench.common import REPO, Figure, Workspace, postgres_available, workspace
 
 
@@ -105,6 +108,7 @@ FAMILIES: dict[str, tuple[bool, Runner]] = {
         False,
         lambda ws, p: relay.measure(ws, "sqlite", p.relay_bytes, max_seconds=p.relay_seconds),
     ),
+    "demand": (False, lambda ws, p: demand.measure(ws, quick=p is QUICK)),
     "ledger-sqlite": (
         False,
         lambda ws, p: ledger.measure(

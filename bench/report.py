@@ -120,6 +120,19 @@ def targets(figures: Sequence[Figure]) -> list[Target]:
                 f"{fig.value:.2f} ms" + ("" if at_million else " (not at 1,000,000 entries)"),
             )
         )
+    for fig in _find(figures, "demand trace: buffer held, adaptive"):
+        horizon = fig.name[fig.name.index("(horizon") : fig.name.index(")") + 1]
+        refused = _find(figures, f"adaptive target {horizon}", "503")
+        share = refused[0].value if refused else float("nan")
+        ratio = fig.ratio if fig.ratio is not None else float("inf")
+        out.append(
+            Target(
+                f"demand trace, adaptive target {horizon}: <= 0.1 % of Get key answered 503 "
+                "for lack of key, holding <= 0.1 of the fixed baseline's buffer",
+                share <= 0.1 and ratio <= 0.1,
+                f"{share:.2f} % answered 503, {ratio:.2f} of the baseline's buffer",
+            )
+        )
     for fig in _find(figures, "relay node peak resident memory"):
         out.append(Target(f"{fig.name}: < 150 MB", fig.value < 150, f"{fig.value:.0f} MB"))
     return out

@@ -18,7 +18,7 @@ from typing import Any
 import pytest
 
 import relaynet
-from keystrata.relay import buffers, scheduler
+from keystrata.relay import buffers, planning, scheduler
 
 WINDOW = 60  # [ingest] rate_window_seconds
 HORIZON = 1200.0  # [relay] horizon_seconds
@@ -65,14 +65,15 @@ def net(make_node, db_factory) -> Any:
 
 def _cycle(net: Any) -> tuple[int, list[str]]:
     """One scheduler cycle after the stations reported: the pair's target (bits) and the
-    owners of the segments it made; then the segments become ready at both stations."""
+    owner of each byte-range of 1,024 bytes of the segments it made; then the segments
+    become ready at both stations."""
     net.drain()
     net.report_buffers()
     (view,) = buffers.relay_view(net.relay.ctx)
     made = scheduler.schedule_once(net.relay.ctx, None).made
     net.drain()
     net.report_buffers()
-    return view.target_bits, [m.owner for m in made]
+    return view.target_bits, [m.owner for m in made for _ in range(m.length // 1024)]
 
 
 def _take(client: Callable[[str], Any], station: str, slave: str, requests: int) -> int:
@@ -94,19 +95,20 @@ def test_target_and_ownership_follow_a_demand_trace(net, api) -> None:
     # No demand yet: the policy's default target, owned key split evenly.
     target, owners = _cycle(net)
     assert target == POLICY["buffer_target_bits"]
-    assert sorted(owners) == ["station-a", "station-b"]
+    assert owners and abs(owners.count("station-a") - owners.count("station-b")) <= 1
 
     # Consumption steps up at station-a: 24,576 bits within the window, so the target is
-    # that rate for the horizon (491,520 bits), and every new segment is station-a's.
+    # that rate for the horizon (491,520 bits), and new key goes to station-a, all but
+    # the floor share an idle side keeps (planning.MIN_SHARE).
     net.clock.step(5)
     taken = _take(client, "station-a", "sae-b1", 3)
     target, owners = _cycle(net)
     assert target == int(taken / WINDOW * HORIZON) > POLICY["buffer_target_bits"]
-    assert len(owners) > 1 and set(owners) == {"station-a"}
+    assert owners and owners.count("station-a") / len(owners) >= 1 - planning.MIN_SHARE
     assert buffers.station_report(net.b.ctx, relaynet.PAIR).delivered_bits == 0
 
     # The demand moves to station-b: station-a's deliveries leave the window, and what the
-    # relay makes next is station-b's.
+    # relay makes next is station-b's (station-a already holds more than its floor).
     net.clock.step(WINDOW + 1)
     taken = _take(client, "station-b", "sae-a1", 3)
     target, owners = _cycle(net)

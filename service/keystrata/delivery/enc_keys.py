@@ -37,6 +37,7 @@ from keystrata.ledger.entries import Event
 from keystrata.peering import messages, outbox
 from keystrata.ranges import Range
 from keystrata.registry.principals import Caller
+from keystrata.relay import buffers
 from keystrata.restore import holds
 from keystrata.storage.models import KeyAlloc, Pair
 
@@ -133,6 +134,7 @@ def _allocate(
         for pair_id, members in by_pair.items():
             pair = requests[members[0]].route.pair
             stock = OwnedStock(s, ctx.keyring, pair_id, ctx.node_id)
+            unmet = buffers.unmet_demand(ctx)
             stock.reserve(sum(requests[i].need for i in members))
             used = _used_today(s, ctx, pair, now)
             used_by: dict[str, int] = {}
@@ -164,6 +166,7 @@ def _allocate(
                     results[i] = NotEnoughKey(
                         f"{8 * stock.left} of the {8 * request.need} bits asked for are ready"
                     )
+                    unmet.note(pair_id, 8 * request.need, now)  # demand the relay must see
                     continue
                 used += 8 * request.need
                 keys = [

@@ -3,7 +3,7 @@ its authorisation fields: pair, side, partner, owner, length; master, slaves, si
 :mod:`keystrata.storage.sealed`.
 
 Runs when a node opens a database whose ``node_meta.seal_layout`` is not 2 (a database
-made before migration 0009/0010), in batches of one transaction each. It is resumable
+sealed under layout 1), in batches of one transaction each. It is resumable
 and safe to run twice or from two workers at once: a row that already opens under
 layout 2 is left alone, one that opens under layout 1 is sealed again under layout 2,
 and a row that opens under neither stops the node (a tampered row).

@@ -41,6 +41,8 @@ class BufferReport(Answer):
     owned_ready_bits: Count
     pending_bits: Count
     delivered_bits: Count
+    #: Bits its masters asked for in the window and did not get: not enough ready key.
+    unmet_bits: Count = 0
     window_seconds: Annotated[int, Field(strict=True, ge=1, le=86_400)]
     reported_at: Time
 

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import threading
+from collections import deque
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 from typing import Any
@@ -46,10 +48,39 @@ def _levels(s: Session, pair_id: str, me: str) -> tuple[int, int, int]:
     return 8 * int(ready), 8 * int(owned), 8 * int(pending)
 
 
+class UnmetDemand:
+    """Bits this process's Get key answered 503 for lack of ready key, per pair, over the
+    rate window: demand that the delivered bits cannot show (a side that owns nothing
+    delivers nothing). Kept per process: an estimate, counted exactly once key flows."""
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._asked: dict[str, deque[tuple[datetime, int]]] = {}
+
+    def note(self, pair_id: str, bits: int, at: datetime) -> None:
+        with self._lock:
+            self._asked.setdefault(pair_id, deque()).append((at, bits))
+
+    def since(self, pair_id: str, start: datetime) -> int:
+        with self._lock:
+            asked = self._asked.get(pair_id)
+            if not asked:
+                return 0
+            while asked and asked[0][0] < start:
+                asked.popleft()
+            return sum(bits for _, bits in asked)
+
+
+def unmet_demand(ctx: NodeContext) -> UnmetDemand:
+    """This process's :class:`UnmetDemand` (in ``ctx.process_state``)."""
+    found: UnmetDemand = ctx.process_state.setdefault("demand.unmet", UnmetDemand())
+    return found
+
+
 def station_report(ctx: NodeContext, pair_id: str) -> answers.BufferReport:
-    """This station's buffer for ``pair_id``, and its demand: the bits of pair key it
-    handed to master SAEs (Get key here, from the key it owns) over the rate window.
-    Raises NotFound for a pair not here."""
+    """This station's buffer for ``pair_id``, and its demand over the rate window: the
+    bits of pair key it handed to master SAEs (Get key here, from the key it owns), and
+    the bits they asked for that were not ready. Raises NotFound for a pair not here."""
     window = ctx.settings.ingest.rate_window_seconds
     now = ctx.clock.now()
     with ctx.db.read() as s:
@@ -57,7 +88,8 @@ def station_report(ctx: NodeContext, pair_id: str) -> answers.BufferReport:
         if pair is None or ctx.node_id not in (pair.station_a, pair.station_b):
             raise NotFound("no such pair at this station")
         ready, owned, pending = _levels(s, pair_id, ctx.node_id)
-        delivered = _delivered_bits(s, pair_id, ctx.node_id, now - timedelta(seconds=window))
+        since = now - timedelta(seconds=window)
+        delivered = _delivered_bits(s, pair_id, ctx.node_id, since)
     return answers.BufferReport(
         pair_id=pair_id,
         station=ctx.node_id,
@@ -65,6 +97,7 @@ def station_report(ctx: NodeContext, pair_id: str) -> answers.BufferReport:
         owned_ready_bits=owned,
         pending_bits=pending,
         delivered_bits=delivered,
+        unmet_bits=unmet_demand(ctx).since(pair_id, since),
         window_seconds=window,
         reported_at=now,
     )
@@ -141,8 +174,9 @@ def pairs_through(s: Session, relay_id: str) -> list[Pair]:
 
 
 def _demand_bps(report: PairBuffer) -> float:
-    """A station's demand for its pair: bits delivered to its masters per second."""
-    return report.delivered_bits / max(report.window_seconds, 1)
+    """A station's demand for its pair: bits its masters asked for per second (delivered,
+    or refused for lack of ready key)."""
+    return (report.delivered_bits + report.unmet_bits) / max(report.window_seconds, 1)
 
 
 def relay_view(ctx: NodeContext, *, now: datetime | None = None) -> list[PairView]:
@@ -187,7 +221,7 @@ def relay_view(ctx: NodeContext, *, now: datetime | None = None) -> list[PairVie
                     }
                 )
             consumption = None
-            if len(reports) == 2 and any(r.delivered_bits for r in reports.values()):
+            if len(reports) == 2 and any(_demand_bps(r) for r in reports.values()):
                 consumption = sum(_demand_bps(r) for r in reports.values())
             ready = min(int(side["ready_bits"] or 0) for side in sides)
             target = planning.buffer_target(

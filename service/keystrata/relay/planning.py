@@ -5,6 +5,19 @@ key among pairs; :mod:`keystrata.relay.scheduler` calls both.
 
 from __future__ import annotations
 
+#: The least share of a pair's owned key each side keeps, whatever its recent demand, so
+#: that a side whose encryptors start again finds key at once (its demand shows only
+#: after its first requests).
+MIN_SHARE = 0.1
+
+
+def owned_share(demand_a: float, demand_b: float) -> float:
+    """Side a's share of the pair's owned key: proportional to recent demand (equal
+    while neither side has any), and never below :data:`MIN_SHARE` for either side."""
+    if demand_a <= 0 and demand_b <= 0:
+        return 0.5
+    return min(1 - MIN_SHARE, max(MIN_SHARE, demand_a / (demand_a + demand_b)))
+
 
 def choose_owner(
     a: str, b: str, demand_a: float, demand_b: float, owned_a: int, owned_b: int
@@ -14,11 +27,9 @@ def choose_owner(
 
     Ties go to the first station in ID order, so the choice is deterministic.
     """
-    if demand_a <= 0 and demand_b <= 0:
-        demand_a = demand_b = 1.0
+    share_a = owned_share(demand_a, demand_b)
     total_owned = owned_a + owned_b
     # Deficit of each side against its proportional share of what is owned so far.
-    share_a = demand_a / (demand_a + demand_b)
     gap_a = share_a * (total_owned + 1) - owned_a
     gap_b = (1 - share_a) * (total_owned + 1) - owned_b
     if gap_a > gap_b or (gap_a == gap_b and a < b):
@@ -34,3 +45,30 @@ def buffer_target(
     if consumption_bps is None:
         return max(minimum, min(default, maximum))
     return int(max(minimum, min(consumption_bps * horizon_s, maximum)))
+
+
+def pair_deficit(
+    *,
+    target: int,
+    ready: int,
+    in_flight: int,
+    demand_a: float,
+    demand_b: float,
+    owned_a: int,
+    owned_b: int,
+) -> int:
+    """Bits of pair key the relay should add: what the pair lacks of its target, or,
+    when more is owned by a side that consumes little, what the sides lack of their
+    demand-proportional shares of the target. A segment's owner is fixed once both
+    stations hold it, so key owned by an idle side does not serve the busy one.
+    """
+    short = target - ready - in_flight
+    if demand_a <= 0 and demand_b <= 0:
+        return short
+    share_a = owned_share(demand_a, demand_b)
+    lacking = (
+        max(0.0, share_a * target - owned_a)
+        + max(0.0, (1 - share_a) * target - owned_b)
+        - in_flight
+    )
+    return int(max(short, lacking))

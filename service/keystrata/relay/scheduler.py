@@ -18,7 +18,7 @@ from keystrata.errors import Conflict, InvalidInput
 from keystrata.links import consume
 from keystrata.peering import answers
 from keystrata.peering.client import PeerClient
-from keystrata.relay import arithmetic, buffers, operation
+from keystrata.relay import arithmetic, buffers, operation, planning
 from keystrata.relay.fairness import PairDemand, allocate
 from keystrata.relay.planning import choose_owner
 from keystrata.storage.models import Pair
@@ -88,7 +88,16 @@ def schedule_once(
         # their way. The larger report counts, so one station reporting an empty buffer
         # cannot by itself make the relay spend its partner's link key.
         ready = max(int(side["ready_bits"]) for side in view.sides)
-        deficit_bits = view.target_bits - ready - view.in_flight_bits
+        side_a, side_b = view.sides
+        deficit_bits = planning.pair_deficit(
+            target=view.target_bits,
+            ready=ready,
+            in_flight=view.in_flight_bits,
+            demand_a=float(side_a["demand_bps"] or 0.0),
+            demand_b=float(side_b["demand_bps"] or 0.0),
+            owned_a=int(side_a["owned_ready_bits"] or 0),
+            owned_b=int(side_b["owned_ready_bits"] or 0),
+        )
         if deficit_bits <= 0:
             continue
         demands.append(
@@ -118,9 +127,10 @@ def schedule_once(
             a["station"]: int(a["owned_ready_bits"] or 0),
             b["station"]: int(b["owned_ready_bits"] or 0),
         }
+        still_needed = demand.demand
         while left >= MIN_BYTES and count < cfg.max_in_flight_segments:
             n = min(cfg.segment_bytes, left)
-            if n < cfg.min_segment_bytes and left < demand.demand:
+            if n < cfg.min_segment_bytes and left < still_needed:
                 # Key is scarce: wait for enough to make a segment worth its messages,
                 # unless this small piece is all the pair still needs.
                 break
@@ -134,6 +144,15 @@ def schedule_once(
                 owned[a["station"]],
                 owned[b["station"]],
             )
+            # No bigger than the owner's gap to its share of what the pair will own, so
+            # one cycle can give both sides key.
+            share = planning.owned_share(
+                float(a["demand_bps"] or 0.0), float(b["demand_bps"] or 0.0)
+            )
+            if owner == b["station"]:
+                share = 1 - share
+            gap = -(-(share * (sum(owned.values()) + 8 * left) - owned[owner]) // 8)
+            n = min(n, max(cfg.min_segment_bytes, int(gap)))
             try:
                 made.append(
                     operation.make_segment(ctx, demand.pair_id, n, owner=owner, actor=actor)
@@ -143,5 +162,6 @@ def schedule_once(
                 break
             owned[owner] += 8 * n
             left -= n
+            still_needed -= n
             count += 1
     return CycleReport(made=made, skipped=skipped)

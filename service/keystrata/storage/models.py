@@ -380,6 +380,9 @@ class PairBuffer(Base):
     owned_ready_bits: Mapped[int] = mapped_column(BigInteger)
     pending_bits: Mapped[int] = mapped_column(BigInteger)
     delivered_bits: Mapped[int] = mapped_column(BigInteger, comment="in the report's window")
+    unmet_bits: Mapped[int] = mapped_column(
+        BigInteger, server_default="0", comment="asked for and not ready, in the window"
+    )
     window_seconds: Mapped[int] = mapped_column(Integer)
     reported_at: Mapped[datetime]
 

@@ -7,11 +7,11 @@ row (or another offset of the same block) fails to open.
 Pair key is bound to its authorisation fields as well (layout 2): a segment to its pair,
 side, partner, owner and length, a waiting key to its pair, owner, master, slaves and
 size. Someone who can write the database but does not hold the KEK cannot re-point a
-segment to another owner or a waiting key to another slave: the value no longer opens.
+segment to another owner or a waiting key to another slave: the value does not open.
 The consumption offset (``used``) is part of a segment's context, so an older sealed
 value only opens together with its older offset; a row rolled back that way is behind
 its partner's, which restore detection reports (``restore/comparison.py``). Layout 1
-(before migration 0010) bound the row identity only; :mod:`keystrata.node.reseal`
+bound the row identity only; :mod:`keystrata.node.reseal`
 moves rows to layout 2.
 """
 
