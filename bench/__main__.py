@@ -6,7 +6,8 @@ Families (``--only`` takes a comma-separated list of these names):
   (enc_keys, 1 key of 256 bits) and Get key with key IDs (dec_keys) over mutual TLS
   from 16 concurrent clients; one uvicorn worker per node on SQLite, two on PostgreSQL.
   Ceiling: the bare endpoint of bench/ceilings.py, same server options and workers.
-  Requests per second, p50 and p99 latency.
+  Requests per second, p50 and p99 latency. ``etsi-postgresql-1``: the same with one
+  worker on PostgreSQL, so the run shows what the second worker adds.
 * ``ingest``: link key ingest in the binary form, 4 KiB and 64 KiB blocks, Mbit/s.
   Ceiling: the same bytes sealed (AES-256-GCM, the node's Keyring) and inserted in the
   same SQLite file, one transaction per batch, no web layer.
@@ -103,6 +104,12 @@ FAMILIES: dict[str, tuple[bool, Runner]] = {
             ws, "postgresql", 2, warmup=p.warmup, duration=p.duration, catch_up=p.catch_up
         ),
     ),
+    "etsi-postgresql-1": (
+        True,
+        lambda ws, p: etsi.measure(
+            ws, "postgresql", 1, warmup=p.warmup, duration=p.duration, catch_up=p.catch_up
+        ),
+    ),
     "ingest": (False, _ingest),
     "relay": (
         False,
@@ -123,7 +130,7 @@ FAMILIES: dict[str, tuple[bool, Runner]] = {
     ),
 }
 GROUPS = {
-    "etsi": ["etsi-sqlite", "etsi-postgresql"],
+    "etsi": ["etsi-sqlite", "etsi-postgresql", "etsi-postgresql-1"],
     "ledger": ["ledger-sqlite", "ledger-postgresql"],
 }
 

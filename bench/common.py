@@ -106,6 +106,20 @@ def process_tree(pid: int) -> list[int]:
     return out
 
 
+def cpu_seconds(pid: int) -> float:
+    """User and system CPU time of ``pid`` and its living descendants, in seconds (from
+    /proc/<pid>/stat fields 14 and 15, in clock ticks)."""
+    ticks = 0
+    for p in process_tree(pid):
+        try:
+            with open(f"/proc/{p}/stat", encoding="ascii", errors="replace") as f:
+                after_name = f.read().rsplit(")", 1)[1].split()
+        except OSError:
+            continue
+        ticks += int(after_name[11]) + int(after_name[12])  # utime, stime
+    return ticks / os.sysconf("SC_CLK_TCK")
+
+
 def memory_kib(pid: int, field: str) -> int:
     """A memory field of /proc/<pid>/status in KiB (VmRSS, VmHWM); 0 if gone."""
     try:

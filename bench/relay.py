@@ -85,6 +85,7 @@ def measure(
         for name, node in nodes.items():
             profiles.enter_context(profiling.record(node.proc.pid, f"relay-{name}"))
         network.set_policy(ws, nodes, network.UNBOUNDED)
+        cpu_before = common.cpu_seconds(relay_pid)
         started = time.monotonic()
         samples: list[tuple[float, int]] = []
         last_growth: float | None = None
@@ -95,6 +96,7 @@ def measure(
             if last_growth is not None and samples[-1][0] - last_growth > 3.0:
                 break  # the relay has run out of link key
             time.sleep(0.25)
+        cpu = common.cpu_seconds(relay_pid) - cpu_before
         profiles.close()
     finally:
         memory.stop()
@@ -107,6 +109,7 @@ def measure(
     else:
         rate = (samples[end][1] - growing[0][1]) / (samples[end][0] - growing[0][0])
     relayed = samples[end][1] if samples else 0
+    made_mb = (samples[-1][1] - samples[0][1]) / 8e6 if samples else 0.0
     label = "SQLite" if backend == "sqlite" else "PostgreSQL"
     note = (
         f"{relayed / 8e6:.1f} MB ready at both stations from {per_link_bytes / 1e6:.0f} MB "
@@ -115,6 +118,13 @@ def measure(
     )
     return [
         Figure(f"relay: ready pair key, end to end ({label})", rate / 1e6, "Mbit/s", note=note),
+        Figure(
+            f"relay CPU per MB of ready pair key ({label})",
+            cpu / made_mb if made_mb > 0 else float("nan"),
+            "CPU-s/MB",
+            note=f"{cpu:.1f} CPU-s of the relay process (user and system, /proc) for "
+            f"{made_mb:.1f} MB made ready at both stations while it relayed",
+        ),
         Figure(
             f"relay node peak resident memory ({label}, during the relay run)",
             memory.peak_mb,

@@ -111,6 +111,25 @@ def targets(figures: Sequence[Figure]) -> list[Target]:
         out.append(
             Target(f"{fig.name}: >= 100 Mbit/s", fig.value >= 100, f"{fig.value:.1f} Mbit/s")
         )
+    for fig in _find(figures, "relay CPU per MB"):
+        out.append(
+            Target(f"{fig.name}: <= 0.02 CPU-s/MB", fig.value <= 0.02, f"{fig.value:.3f} CPU-s/MB")
+        )
+    for call, label in (
+        ("Get key (enc_keys", "Get key"),
+        ("Get key with key IDs", "Get key with key IDs"),
+    ):
+        two = [f for f in _find(figures, call, "2 workers, PostgreSQL") if f.unit == "requests/s"]
+        one = [f for f in _find(figures, call, "1 worker, PostgreSQL") if f.unit == "requests/s"]
+        if two and one and one[0].value > 0:
+            gain = two[0].value / one[0].value
+            out.append(
+                Target(
+                    f"{label}, PostgreSQL: two workers >= 1.6 x one worker",
+                    gain >= 1.6,
+                    f"{two[0].value:.0f} / {one[0].value:.0f} requests/s = {gain:.2f} x",
+                )
+            )
     for fig in _find(figures, "ledger", "proof p99"):
         at_million = "1,000,000 entries" in fig.name
         out.append(
