@@ -21,7 +21,7 @@ from typing import Any
 
 import httpx
 
-from bench import loadgen, network, profiling
+from bench import common, loadgen, network, profiling
 from bench.common import REPO, Figure, Workspace
 from bench.loadgen import LoadResult
 from keystrata.loopback.processes import free_port
@@ -184,7 +184,9 @@ def measure(
         def keep(_path: str, answer: bytes) -> None:
             ids.extend(k["key_ID"] for k in json.loads(answer)["keys"])
 
-        with profiling.record(nodes["station-a"].proc.pid, f"etsi-{backend}-enc_keys"):
+        station_a = nodes["station-a"].proc.pid
+        cpu_before = common.cpu_seconds(station_a)
+        with profiling.record(station_a, f"etsi-{backend}-enc_keys"):
             real_enc = loadgen.run(
                 nodes["station-a"].url,
                 master,
@@ -193,6 +195,8 @@ def measure(
                 warmup=warmup,
                 duration=duration,
             )
+        enc_cpu = common.cpu_seconds(station_a) - cpu_before
+        enc_keys_served = len(ids)
         # Give station-b's copy time to catch up; what it has not heard of by then,
         # Get key with key IDs pulls from station-a on demand (a path of its own).
         with contextlib.suppress(TimeoutError):
@@ -225,6 +229,15 @@ def measure(
         network.stop(nodes)
     enc_label = f"Get key (enc_keys 1x256 bit, {CLIENTS} clients, {where})"
     dec_label = f"Get key with key IDs (dec_keys, {CLIENTS} clients, {where})"
-    return _figures(enc_label, real_enc, top_enc, stock) + _figures(
-        dec_label, real_dec, top_dec, stock
+    cpu_figure = Figure(
+        f"station CPU per 1,000 keys, Get key ({where})",
+        1000 * enc_cpu / enc_keys_served if enc_keys_served else float("nan"),
+        "CPU-s",
+        note=f"{enc_cpu:.1f} CPU-s of station-a's processes (user and system, /proc) for "
+        f"{enc_keys_served} keys over the whole load run, warm-up included",
     )
+    return [
+        *_figures(enc_label, real_enc, top_enc, stock),
+        cpu_figure,
+        *_figures(dec_label, real_dec, top_dec, stock),
+    ]
