@@ -26,6 +26,7 @@ baseline's.
 from __future__ import annotations
 
 import itertools
+import logging
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -110,6 +111,9 @@ SAE = {"station-a": ("sae-a1", "sae-b1"), "station-b": ("sae-b1", "sae-a1")}
 def run(ws: Workspace, policy: dict[str, int], scale: float, horizon: float = 300.0) -> Outcome:
     """Play the trace once under ``policy`` (``horizon``: the relay's horizon_seconds)."""
     clock = _Clock()
+    # The nodes trade durability for speed on purpose; their start-up warning says so
+    # once per node and run, which here is noise.
+    logging.getLogger("keystrata.node").setLevel(logging.ERROR)
     net = inprocess.build(
         ws.folder("demand"),
         ws.pki,
