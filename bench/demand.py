@@ -25,7 +25,6 @@ baseline's.
 
 from __future__ import annotations
 
-import itertools
 import logging
 import math
 from collections.abc import Sequence
@@ -108,13 +107,10 @@ class _Clock:
 SAE = {"station-a": ("sae-a1", "sae-b1"), "station-b": ("sae-b1", "sae-a1")}
 
 
-def run(ws: Workspace, policy: dict[str, int], scale: float, horizon: float = 300.0) -> Outcome:
-    """Play the trace once under ``policy`` (``horizon``: the relay's horizon_seconds)."""
-    clock = _Clock()
-    # The nodes trade durability for speed on purpose; their start-up warning says so
-    # once per node and run, which here is noise.
-    logging.getLogger("keystrata.node").setLevel(logging.ERROR)
-    net = inprocess.build(
+def _build(
+    ws: Workspace, clock: _Clock, policy: dict[str, int], horizon: float
+) -> inprocess.InProcessNetwork:
+    return inprocess.build(
         ws.folder("demand"),
         ws.pki,
         clock=clock,
@@ -127,6 +123,20 @@ def run(ws: Workspace, policy: dict[str, int], scale: float, horizon: float = 30
             "station-b": f"[ingest]\nrate_window_seconds = {WINDOW}\n",
         },
     )
+
+
+def run(ws: Workspace, policy: dict[str, int], scale: float, horizon: float = 300.0) -> Outcome:
+    """Play the trace once under ``policy`` (``horizon``: the relay's horizon_seconds)."""
+    clock = _Clock()
+    # The nodes trade durability for speed on purpose; their start-up warning says so
+    # once per node and run, which here is noise.
+    node_log = logging.getLogger("keystrata.node")
+    level = node_log.level
+    node_log.setLevel(logging.ERROR)
+    try:
+        net = _build(ws, clock, policy, horizon)
+    finally:
+        node_log.setLevel(level)
     out = Outcome()
     owed = {"station-a": 0.0, "station-b": 0.0}  # keys due and not yet served
     queue: dict[str, list[float]] = {"station-a": [], "station-b": []}  # due times
@@ -225,7 +235,7 @@ def measure(ws: Workspace, *, quick: bool) -> list[Figure]:
 
 
 def _sweep_text(sweep: Sequence[int]) -> str:
-    return ", ".join(f"{b:,}" for b in itertools.islice(sweep, 0, None))
+    return ", ".join(f"{b:,}" for b in sweep)
 
 
 def _figures(mode: str, o: Outcome, note: str) -> list[Figure]:

@@ -18,8 +18,8 @@ REPO = Path(__file__).resolve().parents[2]
 if str(REPO) not in sys.path:
     sys.path.insert(0, str(REPO))
 
-from bench import ledger as bench_ledger  # noqa: E402 - needs the repository root on the path
-from bench import report  # noqa: E402
+from bench import demand, report  # noqa: E402 - needs the repository root on the path
+from bench import ledger as bench_ledger  # noqa: E402
 from bench.common import Figure, Workspace, percentile  # noqa: E402
 
 from keystrata.ledger import chain, merkle  # noqa: E402
@@ -139,3 +139,19 @@ def test_percentile_is_nearest_rank() -> None:
     assert percentile(values, 100) == 100.0
     assert percentile([7.0], 99) == 7.0
     assert math.isnan(percentile([], 50))
+
+
+def test_the_demand_trace_plays_through(tmp_path: Path) -> None:
+    """A few cycles of the demand trace (every phase one or two cycles) run the service's
+    Get key, reports, scheduler and confirmations in one process; every request is
+    counted, served or refused, and the buffer is sampled once per cycle."""
+    ws = Workspace()
+    try:
+        played = demand.run(ws, demand.fixed_policy(200_000), scale=0.02)
+    finally:
+        ws.close()
+    cycles = sum(max(1, round(p.minutes * 0.02 * 60 / demand.STEP)) for p in demand.TRACE)
+    assert len(played.held) == cycles
+    assert played.requests > 0
+    assert 0.0 <= played.refused_share <= 1.0
+    assert max(played.held) > 0
