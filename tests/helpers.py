@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import base64
 import hashlib
+from datetime import datetime, timedelta
 from typing import Any
 
 from sqlalchemy import select, text
@@ -91,3 +92,16 @@ def break_ledger(node: Any) -> None:
                     "FOR EACH ROW EXECUTE FUNCTION ledger_refuses()"
                 )
             )
+
+
+class SteppedClock:
+    """A clock the test moves on by hand (starting at the time it is given)."""
+
+    def __init__(self, start: datetime) -> None:
+        self.at = start
+
+    def now(self) -> datetime:
+        return self.at
+
+    def advance(self, seconds: float) -> None:
+        self.at += timedelta(seconds=seconds)

@@ -12,12 +12,13 @@ from __future__ import annotations
 
 import dataclasses
 from collections.abc import Callable
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, datetime
 from typing import Any
 
 import pytest
 
 import relaynet
+from helpers import SteppedClock
 from keystrata.relay import buffers, planning, scheduler
 
 WINDOW = 60  # [ingest] rate_window_seconds
@@ -32,17 +33,6 @@ segment_bytes = 4096
 min_segment_bytes = 1024
 """
 STATION = f"\n[ingest]\nrate_window_seconds = {WINDOW}\n"
-
-
-class SteppedClock:
-    def __init__(self, start: datetime) -> None:
-        self.at = start
-
-    def now(self) -> datetime:
-        return self.at
-
-    def step(self, seconds: float) -> None:
-        self.at += timedelta(seconds=seconds)
 
 
 @pytest.fixture
@@ -100,7 +90,7 @@ def test_target_and_ownership_follow_a_demand_trace(net, api) -> None:
     # Consumption steps up at station-a: 24,576 bits within the window, so the target is
     # that rate for the horizon (491,520 bits), and new key goes to station-a, all but
     # the floor share an idle side keeps (planning.MIN_SHARE).
-    net.clock.step(5)
+    net.clock.advance(5)
     taken = _take(client, "station-a", "sae-b1", 3)
     target, owners = _cycle(net)
     assert target == int(taken / WINDOW * HORIZON) > POLICY["buffer_target_bits"]
@@ -109,7 +99,7 @@ def test_target_and_ownership_follow_a_demand_trace(net, api) -> None:
 
     # The demand moves to station-b: station-a's deliveries leave the window, and what the
     # relay makes next is station-b's (station-a already holds more than its floor).
-    net.clock.step(WINDOW + 1)
+    net.clock.advance(WINDOW + 1)
     taken = _take(client, "station-b", "sae-a1", 3)
     target, owners = _cycle(net)
     assert target == int(taken / WINDOW * HORIZON)
@@ -118,7 +108,7 @@ def test_target_and_ownership_follow_a_demand_trace(net, api) -> None:
 
     # Consumption stops: once the window is past, the target is the default again, and
     # the pair holds more than that, so the relay spends no link key on it.
-    net.clock.step(WINDOW + 1)
+    net.clock.advance(WINDOW + 1)
     target, owners = _cycle(net)
     assert target == POLICY["buffer_target_bits"]
     assert owners == []

@@ -13,7 +13,7 @@ import hashlib
 import hmac
 import json
 import uuid
-from datetime import datetime, timedelta
+from datetime import timedelta
 from typing import Any
 
 import pytest
@@ -21,6 +21,7 @@ from sqlalchemy import select
 
 import relaynet
 from conftest import Node
+from helpers import SteppedClock
 from keystrata.registry import principals
 from keystrata.storage.models import LedgerEntry
 
@@ -30,19 +31,6 @@ CANARY_TEXTS = (
     base64.urlsafe_b64encode(CANARY).decode().rstrip("="),
     CANARY.hex(),
 )
-
-
-class SteppedClock:
-    """A clock the test moves on by hand (starting at the node's own time)."""
-
-    def __init__(self, start: datetime) -> None:
-        self.at = start
-
-    def now(self) -> datetime:
-        return self.at
-
-    def advance(self, seconds: float) -> None:
-        self.at += timedelta(seconds=seconds)
 
 
 @pytest.fixture
