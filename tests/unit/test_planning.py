@@ -53,3 +53,22 @@ def test_target_follows_consumption_within_the_policy_bounds() -> None:
     assert buffer_target(consumption_bps=100, horizon_s=60, **bounds) == 6000
     assert buffer_target(consumption_bps=1, horizon_s=60, **bounds) == 1000
     assert buffer_target(consumption_bps=10_000, horizon_s=60, **bounds) == 20_000
+
+
+def test_unmet_demand_counts_the_window_and_stays_bounded() -> None:
+    from datetime import UTC, datetime, timedelta
+
+    from keystrata.relay.buffers import UnmetDemand
+
+    unmet = UnmetDemand(window_seconds=60)
+    t0 = datetime(2026, 12, 3, 8, 0, tzinfo=UTC)
+    for i in range(1000):  # a flood of refusals within one second: one entry
+        unmet.note("pair-ab", 256, t0 + timedelta(microseconds=i))
+    unmet.note("pair-ab", 1024, t0 + timedelta(seconds=30))
+    assert unmet.since("pair-ab", t0) == 1000 * 256 + 1024
+    assert len(unmet._asked["pair-ab"]) == 2
+    # A minute later only the later refusal is in the window; a note prunes too.
+    unmet.note("pair-ab", 8, t0 + timedelta(seconds=75))
+    assert len(unmet._asked["pair-ab"]) == 2
+    assert unmet.since("pair-ab", t0 + timedelta(seconds=15)) == 1024 + 8
+    assert unmet.since("pair-xy", t0) == 0

@@ -51,29 +51,49 @@ def _levels(s: Session, pair_id: str, me: str) -> tuple[int, int, int]:
 class UnmetDemand:
     """Bits this process's Get key answered 503 for lack of ready key, per pair, over the
     rate window: demand that the delivered bits cannot show (a side that owns nothing
-    delivers nothing). Kept per process: an estimate, counted exactly once key flows."""
+    delivers nothing). Kept per process: an estimate, counted exactly once key flows.
+    Refusals within one second share an entry and entries older than the window go, so
+    a flood of refusals holds at most one entry per second of the window per pair."""
 
-    def __init__(self) -> None:
+    def __init__(self, window_seconds: int) -> None:
+        self._window = timedelta(seconds=window_seconds)
         self._lock = threading.Lock()
-        self._asked: dict[str, deque[tuple[datetime, int]]] = {}
+        self._asked: dict[str, deque[list[Any]]] = {}
 
     def note(self, pair_id: str, bits: int, at: datetime) -> None:
         with self._lock:
-            self._asked.setdefault(pair_id, deque()).append((at, bits))
+            asked = self._asked.setdefault(pair_id, deque())
+            if asked and at - asked[-1][0] < _SAME_ENTRY:
+                asked[-1][1] += bits
+            else:
+                asked.append([at, bits])
+            self._forget_before(asked, at - self._window)
 
     def since(self, pair_id: str, start: datetime) -> int:
         with self._lock:
             asked = self._asked.get(pair_id)
             if not asked:
                 return 0
-            while asked and asked[0][0] < start:
-                asked.popleft()
+            self._forget_before(asked, start)
             return sum(bits for _, bits in asked)
+
+    @staticmethod
+    def _forget_before(asked: deque[list[Any]], start: datetime) -> None:
+        while asked and asked[0][0] < start:
+            asked.popleft()
+
+
+_SAME_ENTRY = timedelta(seconds=1)
+_UNMET = "demand.unmet"
 
 
 def unmet_demand(ctx: NodeContext) -> UnmetDemand:
     """This process's :class:`UnmetDemand` (in ``ctx.process_state``)."""
-    found: UnmetDemand = ctx.process_state.setdefault("demand.unmet", UnmetDemand())
+    found = ctx.process_state.get(_UNMET)
+    if found is None:
+        window = ctx.settings.ingest.rate_window_seconds
+        found = ctx.process_state.setdefault(_UNMET, UnmetDemand(window))
+    assert isinstance(found, UnmetDemand)
     return found
 
 
