@@ -17,8 +17,9 @@ from keystrata.context import NodeContext
 from keystrata.errors import Unauthenticated
 from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
+from keystrata.registry import cache
 from keystrata.registry.principals import Caller
-from keystrata.storage.models import Pair, Principal
+from keystrata.storage.models import ID_LEN, Pair, Principal
 
 #: Recorded in place of an SAE ID that names no registered principal.
 UNREGISTERED = "(unregistered)"
@@ -64,15 +65,37 @@ def active_sae(s: Session, sae_id: str) -> Principal | None:
     return row
 
 
-def _pairs_between(s: Session, a: str, b: str) -> list[Pair]:
+def _pairs_between(s: Session, a: str, b: str) -> tuple[Pair, ...]:
     first, second = sorted((a, b))
-    return list(
+    rows = list(
         s.execute(
             select(Pair)
             .where(Pair.station_a == first, Pair.station_b == second, Pair.retired_at.is_(None))
             .order_by(Pair.pair_id)
         ).scalars()
     )
+    for row in rows:
+        s.expunge(row)  # kept by the registry snapshot: read only from here on
+    return tuple(rows)
+
+
+def _sae_station(ctx: NodeContext, snapshot: cache.Snapshot, sae_id: str) -> str | None:
+    """The station of ``sae_id`` if it names an active SAE (else None), from the snapshot."""
+
+    def load() -> str | None:
+        with ctx.db.read() as s:
+            row = active_sae(s, sae_id)
+            return None if row is None else row.station_id
+
+    return snapshot.get("sae.station", sae_id, load)
+
+
+def _pairs(ctx: NodeContext, snapshot: cache.Snapshot, a: str, b: str) -> tuple[Pair, ...]:
+    def load() -> tuple[Pair, ...]:
+        with ctx.db.read() as s:
+            return _pairs_between(s, a, b)
+
+    return snapshot.get("pairs.between", (a, b), load)
 
 
 def allowed(pair: Pair, master: str, slaves: Sequence[str]) -> bool:
@@ -92,21 +115,23 @@ def route_for_master(
     Raises:
         Unauthenticated: any reason at all (recorded).
     """
-    with ctx.db.read() as s:
-        slave = active_sae(s, slave_sae_id)
-        ok = caller.role.value == "sae" and caller.station_id == ctx.node_id
-        pairs = []
-        if ok and slave is not None and slave.station_id not in (None, ctx.node_id):
-            pairs = _pairs_between(s, ctx.node_id, str(slave.station_id))
-        if not pairs or slave is None:
-            raise refuse(ctx, caller, "no_pair_for_these_saes", slave=slave_sae_id[:64])
-        slaves = [slave_sae_id]
-        for extra in additional:
-            other = active_sae(s, extra)
-            if other is None or other.station_id != slave.station_id or extra in slaves:
-                raise refuse(ctx, caller, "additional_slave_not_allowed", slave=extra[:64])
-            slaves.append(extra)
-        pair = next((p for p in pairs if allowed(p, caller.principal_id, slaves)), None)
-        if pair is None:
-            raise refuse(ctx, caller, "saes_not_allowed_in_pair", slave=slave_sae_id[:64])
-        return Route(pair=pair, partner=str(slave.station_id), slaves=slaves)
+    snapshot = cache.at_least(ctx, caller.generation)
+    if len(slave_sae_id) > ID_LEN:  # longer than any registered ID: not worth a lookup
+        raise refuse(ctx, caller, "no_pair_for_these_saes", slave=slave_sae_id[:64])
+    station = _sae_station(ctx, snapshot, slave_sae_id)
+    ok = caller.role.value == "sae" and caller.station_id == ctx.node_id
+    pairs: tuple[Pair, ...] = ()
+    if ok and station not in (None, ctx.node_id):
+        pairs = _pairs(ctx, snapshot, ctx.node_id, str(station))
+    if not pairs or station is None:
+        raise refuse(ctx, caller, "no_pair_for_these_saes", slave=slave_sae_id[:64])
+    slaves = [slave_sae_id]
+    for extra in additional:
+        other = _sae_station(ctx, snapshot, extra) if len(extra) <= ID_LEN else None
+        if other is None or other != station or extra in slaves:
+            raise refuse(ctx, caller, "additional_slave_not_allowed", slave=extra[:64])
+        slaves.append(extra)
+    pair = next((p for p in pairs if allowed(p, caller.principal_id, slaves)), None)
+    if pair is None:
+        raise refuse(ctx, caller, "saes_not_allowed_in_pair", slave=slave_sae_id[:64])
+    return Route(pair=pair, partner=str(station), slaves=slaves)

@@ -25,6 +25,7 @@ from keystrata.context import NodeContext
 from keystrata.crypto.hazmat import constant_time_equal, keyed_fingerprint
 from keystrata.ledger import chain
 from keystrata.ledger.entries import Event, timestamp
+from keystrata.registry import cache
 from keystrata.registry.specs import PINNED_ROLES, PrincipalRole
 from keystrata.storage.models import Principal
 
@@ -55,6 +56,35 @@ class Caller:
     station_id: str | None = None
     link_id: str | None = None
     node_id: str | None = None
+    #: The registry generation this caller was resolved at (registry/cache.py); None
+    #: for callers built by hand, whose requests read the generation themselves.
+    generation: int | None = field(default=None, compare=False, repr=False)
+
+
+@dataclass(frozen=True, slots=True)
+class _Registered:
+    """What the registry says of the active principal of a certificate subject."""
+
+    principal_id: str
+    role: str
+    cert_sha256: str | None
+    station_id: str | None
+    link_id: str | None
+    node_id: str | None
+
+
+def _active_by_subject(ctx: NodeContext, subject: str) -> _Registered | None:
+    with ctx.db.read() as s:
+        row = s.execute(
+            select(Principal).where(
+                Principal.cert_subject == subject, Principal.retired_at.is_(None)
+            )
+        ).scalar()
+        if row is None:
+            return None
+        return _Registered(
+            row.principal_id, row.role, row.cert_sha256, row.station_id, row.link_id, row.node_id
+        )
 
 
 def resolve(ctx: NodeContext, subject: str, cert_sha256: str) -> Caller | None:
@@ -63,12 +93,8 @@ def resolve(ctx: NodeContext, subject: str, cert_sha256: str) -> Caller | None:
     When the principal pins a certificate fingerprint, the presented certificate must
     match it as well.
     """
-    with ctx.db.read() as s:
-        row = s.execute(
-            select(Principal).where(
-                Principal.cert_subject == subject, Principal.retired_at.is_(None)
-            )
-        ).scalar()
+    snapshot = cache.fresh(ctx)
+    row = snapshot.get("principal.subject", subject, lambda: _active_by_subject(ctx, subject))
     if row is None:
         return None
     if row.cert_sha256 is None and PrincipalRole(row.role) in PINNED_ROLES:
@@ -83,6 +109,7 @@ def resolve(ctx: NodeContext, subject: str, cert_sha256: str) -> Caller | None:
         station_id=row.station_id,
         link_id=row.link_id,
         node_id=row.node_id,
+        generation=snapshot.generation,
     )
 
 

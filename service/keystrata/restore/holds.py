@@ -16,10 +16,11 @@ from sqlalchemy import select
 
 from keystrata.context import NodeContext
 from keystrata.errors import NotYetCompared, PairHeld
+from keystrata.registry import cache
 from keystrata.registry.principals import Caller
 from keystrata.restore.points import pair_and_partner
 from keystrata.restore.rules import Behind
-from keystrata.storage.models import PairHold, Principal
+from keystrata.storage.models import ID_LEN, PairHold, Principal
 
 #: ``ctx.process_state`` key: partner stations this process has not compared a pair with since
 #: it started (restore check). Their pairs serve nothing here until compared.
@@ -47,7 +48,8 @@ class OpenHold:
 
 def refuse_if_held(ctx: NodeContext, caller: Caller, other_sae_id: str) -> None:
     """Raise :class:`PairHeld` (503) when the pair between this station and the station
-    of ``other_sae_id`` is held because this station is behind. One indexed read;
+    of ``other_sae_id`` is held because this station is behind. From the registry
+    snapshot (:mod:`keystrata.registry.cache`: holds raise the generation too);
     requests that are not from an SAE of this station go on to be refused as usual.
 
     Raises:
@@ -55,24 +57,40 @@ def refuse_if_held(ctx: NodeContext, caller: Caller, other_sae_id: str) -> None:
     """
     if caller.role.value != "sae" or caller.station_id != ctx.node_id:
         return
+    snapshot = cache.at_least(ctx, caller.generation)
     pending = unverified(ctx)
-    with ctx.db.read() as s:
-        if pending:
-            other = s.get(Principal, other_sae_id)
-            if other is not None and other.station_id in pending:
-                raise NotYetCompared()
-        partner = select(Principal.station_id).where(Principal.principal_id == other_sae_id)
-        held = s.execute(
-            select(PairHold.id)
-            .where(
-                PairHold.released_at.is_(None),
-                PairHold.behind == Behind.SELF.value,
-                PairHold.partner == partner.scalar_subquery(),
-            )
-            .limit(1)
-        ).first()
-    if held is not None:
+    held = snapshot.get("holds.self", None, lambda: _held_partners(ctx))
+    if not pending and not held:
+        return
+    partner = snapshot.get(
+        "principal.station", other_sae_id, lambda: _station_of(ctx, other_sae_id)
+    )
+    if pending and partner is not None and partner in pending:
+        raise NotYetCompared()
+    if partner is not None and partner in held:
         raise PairHeld()
+
+
+def _held_partners(ctx: NodeContext) -> frozenset[str]:
+    """Partner stations of the pairs held here because this station is behind."""
+    with ctx.db.read() as s:
+        return frozenset(
+            str(p)
+            for p in s.execute(
+                select(PairHold.partner).where(
+                    PairHold.released_at.is_(None), PairHold.behind == Behind.SELF.value
+                )
+            ).scalars()
+        )
+
+
+def _station_of(ctx: NodeContext, sae_id: str) -> str | None:
+    """The station of principal ``sae_id``, retired or not (None: no such principal)."""
+    if len(sae_id) > ID_LEN:
+        return None
+    with ctx.db.read() as s:
+        row = s.get(Principal, sae_id)
+        return None if row is None or row.station_id is None else str(row.station_id)
 
 
 def refuse_pair_if_held(ctx: NodeContext, pair_id: str) -> None:

@@ -196,6 +196,34 @@ class Database:
             # Closing the session rolls back its transaction.
             yield session
 
+    def peek(self, sql: str) -> Any:
+        """The one value of a fixed, parameterless statement, read on a pooled driver
+        connection without a session: the cheapest read there is (about 20 us on SQLite,
+        one round trip and the pool's ping on PostgreSQL), for counters read per request.
+
+        Raises:
+            Unavailable: the database cannot be reached.
+        """
+        driver_error = self.engine.dialect.loaded_dbapi.Error
+        with _translate_db_errors():
+            conn = self.engine.raw_connection()
+        try:
+            cursor = conn.cursor()
+            try:
+                cursor.execute(sql)
+                row = cursor.fetchone()
+            finally:
+                cursor.close()
+            conn.rollback()
+        except driver_error as err:
+            conn.invalidate()  # a connection that failed is not handed out again
+            raise Unavailable("the database is not available; try again later") from err
+        finally:
+            conn.close()
+        if row is None:
+            raise Unavailable("the database holds no value for a counter it must have")
+        return row[0]
+
     def dispose(self) -> None:
         self.engine.dispose()
 

@@ -19,11 +19,12 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass
 from functools import partial
+from typing import Protocol
 
 from keystrata.crypto.hazmat import Keyring
 from keystrata.ranges import Range
 from keystrata.storage.models import PairSegment
-from keystrata.storage.sealed import block_context, segment_context
+from keystrata.storage.sealed import SegmentRow, block_context, segment_context
 
 #: The error to raise for a range, given the buffer's consumption point.
 ErrorFor = Callable[[Range, int], Exception]
@@ -115,7 +116,15 @@ def block_front(
     )
 
 
-def segment_front(keyring: Keyring, row: PairSegment, refusals: Refusals) -> Front:
+class SealedSegment(SegmentRow, Protocol):
+    """A pair key segment's row as far as its front needs it (the ORM row, or the
+    same columns read with a Core statement)."""
+
+    used: int
+    sealed: bytes | None
+
+
+def segment_front(keyring: Keyring, row: SealedSegment, refusals: Refusals) -> Front:
     """The front of a pair key segment's row."""
     return Front(
         keyring,

@@ -483,3 +483,14 @@ class PartnerMark(Base):
         BigInteger, comment="added to this station's own count after a release of deliveries_lost"
     )
     seen_at: Mapped[datetime]
+
+
+class RegistryGeneration(Base):
+    """One counter that every change of the registry or of a pair hold raises (database
+    triggers of migration 0011), so a process can keep what it read of them and know at
+    the cost of one small read whether it is still true (registry/cache.py)."""
+
+    __tablename__ = "registry_generation"
+    __table_args__ = (CheckConstraint("id = 1", name="one_row"),)
+    id: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
+    value: Mapped[int] = mapped_column(BigInteger)
