@@ -19,9 +19,9 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 from functools import partial
-from typing import Any
+from typing import Any, cast
 
-from sqlalchemy import func, insert, select
+from sqlalchemy import Table, func, insert, select
 from sqlalchemy.orm import Session
 
 from keystrata.context import NodeContext
@@ -46,6 +46,9 @@ MAX_KEY_PER_REQUEST = 1024
 MAX_SAE_ID_COUNT = 8
 #: Requests one group commit serves at most (see delivery/group_commit.py).
 GROUP_BATCH = 64
+#: The owner's rows of the keys it hands out: a Core insert (no ORM bookkeeping for
+#: rows this transaction never reads again).
+_INSERT_OWNED = insert(cast(Table, KeyAlloc.__table__))
 
 
 @dataclass(frozen=True)
@@ -185,7 +188,7 @@ def _allocate(
                     _record(request, key_id, ranges, now, expires) for key_id, ranges in keys
                 ]
                 s.execute(
-                    insert(KeyAlloc),
+                    _INSERT_OWNED,
                     [_owned_row(pair_id, ctx.node_id, r, now, expires) for r in allocated],
                 )
                 records += allocated
