@@ -3,18 +3,20 @@ cannot be written, the transaction, and so the change it records, is rolled back
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import exc, insert, select, update
+from sqlalchemy import Connection, exc, select
 from sqlalchemy.orm import Session
 
 from keystrata.errors import Unavailable
 from keystrata.ledger import merkle
-from keystrata.ledger.entries import Event, encode_entry, references
+from keystrata.ledger.entries import Event, Prepared, prepare, references
 from keystrata.ledger.frontier import Frontier
-from keystrata.storage.models import LedgerEntry, LedgerHead, LedgerNode, LedgerRef
+from keystrata.storage.models import LedgerEntry, LedgerHead
 
 
 def append(
@@ -38,16 +40,34 @@ def append(
 def append_many(
     session: Session, *, node_id: str, entries: Sequence[tuple[datetime, Event, Mapping[str, Any]]]
 ) -> list[int]:
-    """Append several entries, in order, in the session's transaction (one read of the
-    head and one insert per table for all of them); return their indexes.
+    """Append several entries, in order, in the session's transaction; return their
+    indexes.
+
+    Everything that does not depend on the ledger head (the entries' canonical bytes
+    but for ``index`` and ``prev``, their references) is done first; then one read
+    takes the head (and, on PostgreSQL, its row lock, held to commit), and the entries,
+    the Merkle nodes, the references and the new head are written with one statement
+    per table on SQLite and one statement in all on PostgreSQL.
 
     Raises:
         Unavailable: as :func:`append`; none of the entries is written.
     """
     if not entries:
         return []
+    prepared = [
+        (at, str(event), prepare(event=event, node_id=node_id, at=at, fields=fields))
+        for at, event, fields in entries
+    ]
+    refs = [[(str(k), v) for k, v in references(fields)] for _, _, fields in entries]
     try:
-        return _append(session, node_id=node_id, entries=entries)
+        # The caller's pending changes go first, as an ORM statement would autoflush
+        # them, so that they are not written while the head is held.
+        session.flush()
+        conn = session.connection()
+        sql = _statements(conn)
+        # recorded_at as the column type binds it (UTC; a naive time raises ValueError).
+        ready = [(sql.when(at), event, entry) for at, event, entry in prepared]
+        return _append(conn, sql, ready, refs)
     except (
         exc.IntegrityError,
         exc.OperationalError,
@@ -58,40 +78,152 @@ def append_many(
 
 
 def _append(
-    session: Session,
-    *,
-    node_id: str,
-    entries: Sequence[tuple[datetime, Event, Mapping[str, Any]]],
+    conn: Connection,
+    sql: _Sql,
+    prepared: list[tuple[Any, str, Prepared]],
+    refs: list[list[tuple[str, str]]],
 ) -> list[int]:
-    # The row lock (and SQLite's write lock) serialises appenders until commit.
-    first, frontier = session.execute(
-        select(LedgerHead.size, LedgerHead.frontier).where(LedgerHead.id == 1).with_for_update()
-    ).one()
-    prev = None if first == 0 else StoredTree(session).get(0, first - 1)
-    rows, leaves, refs = [], [], []
-    for index, (at, event, fields) in enumerate(entries, start=first):
-        entry = encode_entry(
-            index=index, event=event, node_id=node_id, at=at, fields=fields, prev=prev
-        )
-        prev = merkle.leaf_hash(entry)
+    # From here to commit the head is ours: SQLite's write lock was taken at BEGIN
+    # IMMEDIATE; on PostgreSQL this statement locks the row (FOR UPDATE).
+    first, frontier = conn.exec_driver_sql(sql.head).one()
+    first = int(first)
+    prev = None if first == 0 else _last_leaf(conn, sql, first, frontier)
+    rows, leaves, ref_rows = [], [], []
+    for index, (at, event, entry) in enumerate(prepared, start=first):
+        raw = entry.at(index, prev)
+        prev = merkle.leaf_hash(raw)
         leaves.append(prev)
-        rows.append({"idx": index, "recorded_at": at, "event": str(event), "entry": entry})
-        refs += [{"kind": str(k), "value": v, "idx": index} for k, v in references(fields)]
+        rows.append((index, at, event, raw))
+        ref_rows += [(kind, value, index) for kind, value in refs[index - first]]
     edge = Frontier(first, frontier)
     nodes = merkle.append(edge, first, leaves)
-    size = first + len(entries)
-    session.execute(
-        update(LedgerHead)
-        .where(LedgerHead.id == 1)
-        .values(size=size, frontier=edge.advance(nodes, size))
-    )
-    session.execute(insert(LedgerEntry), rows)
-    session.execute(
-        insert(LedgerNode), [{"level": lv, "idx": ix, "hash": h} for lv, ix, h in nodes]
-    )
-    if refs:
-        session.execute(insert(LedgerRef), refs)
+    size = first + len(rows)
+    new_frontier = edge.advance(nodes, size)
+    sql.write(conn, rows, nodes, ref_rows, (size, new_frontier))
+    _remember(size, new_frontier, leaves[-1])
     return list(range(first, size))
+
+
+# ---------------------------------------------------------------- the previous leaf
+
+#: (size, stored frontier) -> leaf hash of entry ``size - 1``, as this process wrote it.
+#: The frontier's last subtree covers that leaf, so a head with the same size and
+#: frontier has the same last leaf (SHA-256 collision resistance, RFC 9162 section 2.1):
+#: the cache is safe across databases and rollbacks, and saves a read per append while
+#: this process is the one appending.
+_LAST_LEAF: dict[tuple[int, bytes], bytes] = {}
+_LAST_LEAF_MAX = 64
+_LAST_LEAF_LOCK = threading.Lock()
+
+
+def _remember(size: int, frontier: bytes, leaf: bytes) -> None:
+    with _LAST_LEAF_LOCK:
+        if len(_LAST_LEAF) >= _LAST_LEAF_MAX:
+            _LAST_LEAF.clear()
+        _LAST_LEAF[(size, frontier)] = leaf
+
+
+def _last_leaf(conn: Connection, sql: _Sql, size: int, frontier: bytes | None) -> bytes:
+    known = _LAST_LEAF.get((size, bytes(frontier or b"")))
+    if known is not None:
+        return known
+    row = conn.exec_driver_sql(sql.leaf, (size - 1,)).one_or_none()
+    if row is None:
+        raise KeyError((0, size - 1))
+    return bytes(row[0])
+
+
+# ---------------------------------------------------------------- statements
+
+
+@dataclass(frozen=True)
+class _Sql:
+    """The append's statements for one database dialect, as driver SQL: built once,
+    never compiled per call."""
+
+    head: str
+    leaf: str
+    when: Callable[[datetime], Any]  # recorded_at as SQLAlchemy's DateTime binds it
+    write: Callable[[Connection, list[Any], list[Any], list[Any], tuple[int, bytes]], None]
+
+
+_SQL: dict[str, _Sql] = {}
+
+
+def _statements(conn: Connection) -> _Sql:
+    dialect = conn.dialect
+    found = _SQL.get(dialect.name)
+    if found is None:
+        column = LedgerEntry.__table__.c.recorded_at.type
+        bind = column.dialect_impl(dialect).bind_processor(dialect)
+        when: Callable[[datetime], Any] = bind if bind is not None else _same
+        if dialect.name == "postgresql":
+            found = _Sql(_HEAD + " FOR UPDATE", _LEAF.replace("?", "%s"), when, _write_postgresql)
+        else:
+            found = _Sql(_HEAD, _LEAF, when, _write_sqlite)
+        _SQL[dialect.name] = found
+    return found
+
+
+def _same(at: datetime) -> datetime:
+    return at
+
+
+_HEAD = "SELECT size, frontier FROM ledger_head WHERE id = 1"
+_LEAF = "SELECT hash FROM ledger_node WHERE level = 0 AND idx = ?"
+_INSERT_ENTRY = "INSERT INTO ledger_entry (idx, recorded_at, event, entry) VALUES "
+_INSERT_NODE = "INSERT INTO ledger_node (level, idx, hash) VALUES "
+_INSERT_REF = "INSERT INTO ledger_ref (kind, value, idx) VALUES "
+_UPDATE_HEAD = "UPDATE ledger_head SET size = ?, frontier = ? WHERE id = 1"
+
+
+def _write_sqlite(
+    conn: Connection,
+    rows: list[Any],
+    nodes: list[Any],
+    refs: list[Any],
+    head: tuple[int, bytes],
+) -> None:
+    """SQLite runs in process: one prepared statement per table, run for every row."""
+    conn.exec_driver_sql(_INSERT_ENTRY + "(?, ?, ?, ?)", rows)
+    conn.exec_driver_sql(_INSERT_NODE + "(?, ?, ?)", nodes)
+    if refs:
+        conn.exec_driver_sql(_INSERT_REF + "(?, ?, ?)", refs)
+    conn.exec_driver_sql(_UPDATE_HEAD, head)
+
+
+def _write_postgresql(
+    conn: Connection,
+    rows: list[Any],
+    nodes: list[Any],
+    refs: list[Any],
+    head: tuple[int, bytes],
+) -> None:
+    """One round trip, one statement of constant text (so psycopg prepares it once):
+    the inserts are data-modifying WITH queries of the head update (PostgreSQL
+    documentation, "WITH Queries", section 7.8.4), each row set passed as one array per
+    column and expanded by ``unnest``. The casts are the columns' own types (the
+    timestamps arrive UTC-aware from the column's bind processing, as timestamptz)."""
+    columns = (*_columns(rows, 4), *_columns(nodes, 3), *_columns(refs, 3))
+    conn.exec_driver_sql(_PG_WRITE, (*columns, *head))
+
+
+def _columns(table: list[Any], width: int) -> list[list[Any]]:
+    """The rows' columns as lists: psycopg sends a list as an array (a tuple would be
+    a record)."""
+    return [list(c) for c in zip(*table, strict=True)] if table else [[] for _ in range(width)]
+
+
+#: Constant text: only placeholders, every value is a parameter.
+_PG_WRITE = (
+    "WITH e AS (INSERT INTO ledger_entry (idx, recorded_at, event, entry)"
+    " SELECT * FROM unnest(%s::bigint[], %s::timestamptz[], %s::text[], %s::bytea[])),"
+    " n AS (INSERT INTO ledger_node (level, idx, hash)"
+    " SELECT * FROM unnest(%s::integer[], %s::bigint[], %s::bytea[])),"
+    " r AS (INSERT INTO ledger_ref (kind, value, idx)"
+    " SELECT * FROM unnest(%s::text[], %s::text[], %s::bigint[]))"
+    " UPDATE ledger_head SET size = %s, frontier = %s WHERE id = 1"
+)
 
 
 class StoredTree:
@@ -101,10 +233,10 @@ class StoredTree:
         self.session = session
 
     def get(self, level: int, index: int) -> bytes:
-        row = self.session.get(LedgerNode, (level, index))
-        if row is None:
+        rows = _read_subtrees(self.session, {(level, index)})
+        if not rows:
             raise KeyError((level, index))
-        return row.hash
+        return bytes(rows[0][2])
 
     def head(self) -> tuple[int, bytes]:
         """(size, root hash) of the whole ledger, from the stored right edge."""

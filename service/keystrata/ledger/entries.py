@@ -19,9 +19,12 @@ from datetime import datetime
 from enum import StrEnum
 from typing import Any
 
-import rfc8785
+from rfc8785 import IntegerDomainError
+
+from keystrata.ledger import canonical
 
 ENTRY_VERSION = 2
+_RESERVED = frozenset({"v", "index", "event", "node", "at", "prev"})
 
 
 class Event(StrEnum):
@@ -63,27 +66,68 @@ def encode_entry(
     fields: Mapping[str, Any],
     prev: bytes | None = None,
 ) -> bytes:
-    """Return the canonical bytes of one ledger entry.
+    """Return the canonical bytes (RFC 8785) of one ledger entry.
 
     ``fields`` must be JSON values (str, int, bool, None, lists, objects); floats are
     allowed but RFC 8785 serialises them by the ECMAScript rules. ``prev`` is the leaf
     hash of entry ``index - 1`` (None for the first entry).
+
+    Raises:
+        ValueError: a reserved field name, ``prev`` given for entry 0 or missing for a
+            later one, or a value RFC 8785 cannot encode (``rfc8785.CanonicalizationError``).
     """
-    if (prev is None) != (index == 0):
-        raise ValueError("prev is the previous entry's leaf hash, and only entry 0 has none")
-    reserved = {"v", "index", "event", "node", "at", "prev"} & fields.keys()
+    return prepare(event=event, node_id=node_id, at=at, fields=fields).at(index, prev)
+
+
+class Prepared:
+    """An entry encoded but for its ``index`` and ``prev``, which only the ledger head
+    knows: :meth:`at` splices them in, so the appender does the encoding before it
+    takes the head and only joins bytes while it holds it."""
+
+    __slots__ = ("_head", "_middle", "_tail")
+
+    def __init__(self, head: bytes, middle: bytes, tail: bytes) -> None:
+        self._head, self._middle, self._tail = head, middle, tail
+
+    def at(self, index: int, prev: bytes | None) -> bytes:
+        """The entry's canonical bytes as entry ``index`` after the leaf hash ``prev``."""
+        if (prev is None) != (index == 0):
+            raise ValueError("prev is the previous entry's leaf hash, and only entry 0 has none")
+        if not -canonical.INT_MAX <= index <= canonical.INT_MAX:
+            raise IntegerDomainError(index)
+        link = b"null" if prev is None else b'"' + base64.b64encode(prev) + b'"'
+        return b"".join((self._head, b"%d" % index, self._middle, link, self._tail))
+
+
+def prepare(*, event: Event, node_id: str, at: datetime, fields: Mapping[str, Any]) -> Prepared:
+    """Encode an entry whose index and ``prev`` are not known yet (see :class:`Prepared`).
+
+    Raises:
+        ValueError: as :func:`encode_entry`.
+    """
+    reserved = _RESERVED & fields.keys()
     if reserved:
         raise ValueError(f"ledger fields may not be named {sorted(reserved)}")
+    # The members in RFC 8785 order, "index" and "prev" with their values left out.
     body = {
         "v": ENTRY_VERSION,
-        "index": index,
+        "index": 0,
         "event": str(event),
         "node": node_id,
         "at": timestamp(at),
-        "prev": None if prev is None else base64.b64encode(prev).decode(),
+        "prev": None,
         **fields,
     }
-    return rfc8785.dumps(body)
+    pieces = canonical.members(body)
+    i = pieces.index('"index":0')
+    p = pieces.index('"prev":null')
+    pieces[i], pieces[p] = '"index":', '"prev":'
+    tail = "," + ",".join(pieces[p + 1 :]) if p + 1 < len(pieces) else ""
+    return Prepared(
+        canonical.utf8("{" + ",".join(pieces[: i + 1])),
+        canonical.utf8("," + ",".join(pieces[i + 1 : p + 1])),
+        canonical.utf8(tail + "}"),
+    )
 
 
 class Ref(StrEnum):
