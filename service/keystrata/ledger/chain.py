@@ -153,7 +153,10 @@ def _remember(size: int, frontier: bytes, leaf: bytes) -> None:
 
 
 def _last_leaf(cur: Any, sql: _Sql, size: int, frontier: bytes | None) -> bytes:
-    known = _LAST_LEAF.get((size, bytes(frontier or b"")))
+    stored = bytes(frontier or b"")
+    if size & 1:  # the right edge ends with the leaf itself, H(0, size - 1)
+        return stored[-merkle.HASH_SIZE :]
+    known = _LAST_LEAF.get((size, stored))
     if known is not None:
         return known
     cur.execute(sql.leaf, (size - 1,))
