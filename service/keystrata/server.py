@@ -6,7 +6,21 @@ the node's context, one peer client for the process (shared by the background lo
 by key delivery's port to owning stations), the loops, and the app.
 """
 
+# ruff: noqa: E402 (the imports after SERVER_LEAVES_OUT must come after it)
 from __future__ import annotations
+
+import sys
+
+#: Optional parts of libraries this process never runs, kept out of its memory. Each
+#: library imports them inside ``try: ... except ImportError`` and does without them;
+#: ``None`` in ``sys.modules`` makes such an import fail (the import system's rule):
+#: - ``httpx._main``: httpx's own command line, which brings click, rich and pygments
+#:   (about 6 MiB) whenever they are installed, as ours are for ``keystrata``'s CLI;
+#: - ``uvicorn.supervisors.watchfilesreload``: uvicorn's ``--reload`` supervisor, never
+#:   used by a node (it falls back to its plain stat reloader), and watchfiles with it.
+SERVER_LEAVES_OUT = ("httpx._main", "uvicorn.supervisors.watchfilesreload")
+for _name in SERVER_LEAVES_OUT:
+    sys.modules.setdefault(_name, None)  # type: ignore[arg-type]
 
 import logging
 import os
@@ -33,18 +47,21 @@ from keystrata.storage.db import Database
 log = logging.getLogger("keystrata.server")
 
 
+def _database(settings: Settings) -> Database:
+    return Database.from_url(
+        settings.database.url,
+        sqlite_synchronous=settings.database.sqlite_synchronous,
+        pool_size=settings.database.pool_size,
+    )
+
+
 def build_app(settings: Settings) -> FastAPI:
     """Open the node (every start-up check) and return its app.
 
     Raises:
         StartupRefused / ConfigError: the node must not serve.
     """
-    db = Database.from_url(
-        settings.database.url,
-        sqlite_synchronous=settings.database.sqlite_synchronous,
-        pool_size=settings.database.pool_size,
-    )
-    return compose(open_node(settings, db))
+    return compose(open_node(settings, _database(settings)))
 
 
 class _ProcessWork:
@@ -65,9 +82,10 @@ class _ProcessWork:
         self.peers.close()
 
 
-def compose(ctx: NodeContext) -> FastAPI:
-    """Wire one process: its peer client, its background loops and its app."""
-    peers = PeerClient(ctx.settings)
+def compose(ctx: NodeContext, peers: PeerClient | None = None) -> FastAPI:
+    """Wire one process: its peer client (``peers``, or a new one), its background
+    loops and its app."""
+    peers = peers or PeerClient(ctx.settings)
     loops = Background(ctx, peers) if ctx.settings.server.background_work else None
     return create_app(
         ctx,
@@ -119,11 +137,18 @@ def serve(settings: Settings, config_path: str) -> None:
         tls.server_context(settings.tls)
     except (OSError, ssl.SSLError, InvalidInput) as exc:
         raise ConfigError(f"setting tls: the server's TLS context cannot be built: {exc}") from exc
-    build_app(settings)  # refuse to start here, with a clear message, not in each worker
+    # Refuse to start here, with a clear message, not in each worker. One worker serves
+    # in this process, with this very app; several build their own (app_factory), and
+    # this process, their supervisor, keeps no database connection or peer client.
+    db, peers = _database(settings), PeerClient(settings)
+    app = compose(open_node(settings, db), peers)
     os.environ[CONFIG_ENV] = config_path
+    if settings.server.workers > 1:
+        peers.close()
+        db.dispose()
     uvicorn.run(
-        "keystrata.server:app_factory",
-        factory=True,
+        app if settings.server.workers == 1 else "keystrata.server:app_factory",
+        factory=settings.server.workers > 1,
         host=settings.server.host,
         port=settings.server.port,
         workers=settings.server.workers,

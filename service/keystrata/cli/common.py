@@ -1,4 +1,8 @@
-"""What every command shares: loading settings, one error handler, output helpers."""
+"""What every command shares: loading settings, one error handler, output helpers.
+
+``console`` and ``err_console`` (rich consoles) are made on first use, so a command that
+prints nothing through them (``keystrata serve``) does not import rich.
+"""
 
 from __future__ import annotations
 
@@ -7,19 +11,37 @@ import sys
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Any, TypeVar
+from typing import TYPE_CHECKING, Any, TypeVar
 
 import click
-from rich.console import Console
-from rich.table import Table
 
 from keystrata.config import Settings, load_settings
 from keystrata.errors import ConfigError, KeystrataError
 
-F = TypeVar("F", bound=Callable[..., Any])
+if TYPE_CHECKING:
+    from rich.console import Console
 
-console = Console()
-err_console = Console(stderr=True)
+    console: Console
+    err_console: Console
+
+F = TypeVar("F", bound=Callable[..., Any])
+_CONSOLES = {"console": False, "err_console": True}  # name -> writes to stderr
+
+
+def _console(name: str) -> Console:
+    made: Console | None = globals().get(name)
+    if made is None:
+        from rich.console import Console
+
+        made = globals()[name] = Console(stderr=_CONSOLES[name])
+    return made
+
+
+def __getattr__(name: str) -> Any:
+    """``console`` and ``err_console``, made on first use (PEP 562)."""
+    if name not in _CONSOLES:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    return _console(name)
 
 
 def config_option(f: F) -> F:
@@ -43,9 +65,10 @@ def handled() -> Iterator[None]:
     try:
         yield
     except KeystrataError as exc:
-        err_console.print(f"[red]error:[/red] {exc.message}", highlight=False)
+        err = _console("err_console")
+        err.print(f"[red]error:[/red] {exc.message}", highlight=False)
         for d in exc.details[:20]:
-            err_console.print(f"  - {d}", highlight=False)
+            err.print(f"  - {d}", highlight=False)
         sys.exit(2 if isinstance(exc, ConfigError) else 1)
 
 
@@ -54,9 +77,11 @@ def print_json(value: Any) -> None:
 
 
 def print_table(rows: Sequence[dict[str, Any]], columns: Sequence[str], title: str = "") -> None:
+    from rich.table import Table
+
     table = Table(title=title or None)
     for col in columns:
         table.add_column(col)
     for row in rows:
         table.add_row(*("" if row.get(c) is None else str(row.get(c)) for c in columns))
-    console.print(table)
+    _console("console").print(table)

@@ -1,16 +1,68 @@
-"""Entry point of the ``keystrata`` command."""
+"""Entry point of the ``keystrata`` command.
+
+Each command's module is imported when that command runs (or when ``--help`` lists the
+commands), not before: ``keystrata serve`` is the process that serves a node, and it
+should not keep the other commands' imports (rich, the SDK, the demo) resident.
+"""
 
 from __future__ import annotations
+
+import importlib
+from collections.abc import Iterator, Mapping, MutableMapping
 
 import click
 
 from keystrata import __version__
-from keystrata.cli.audit_cmd import audit
-from keystrata.cli.keys_cmd import keys
-from keystrata.cli.node_cmd import db, kek, node, serve
-from keystrata.cli.pki_cmd import pki
-from keystrata.cli.remote_cmd import deliveries, pairs, pools, registry
-from keystrata.demo.main import demo
+
+#: Each command's name -> "module:attribute" of its click command.
+COMMANDS = {
+    "node": "keystrata.cli.node_cmd:node",
+    "serve": "keystrata.cli.serve_cmd:serve",
+    "db": "keystrata.cli.node_cmd:db",
+    "kek": "keystrata.cli.node_cmd:kek",
+    "pki": "keystrata.cli.pki_cmd:pki",
+    "registry": "keystrata.cli.remote_cmd:registry",
+    "pools": "keystrata.cli.remote_cmd:pools",
+    "pairs": "keystrata.cli.remote_cmd:pairs",
+    "deliveries": "keystrata.cli.remote_cmd:deliveries",
+    "keys": "keystrata.cli.keys_cmd:keys",
+    "audit": "keystrata.cli.audit_cmd:audit",
+    "demo": "keystrata.demo.main:demo",
+}
+
+
+class LazyCommands(MutableMapping[str, click.Command]):
+    """A group's commands by name (click reads ``Group.commands`` as a mapping), each
+    imported from its module the first time it is looked up."""
+
+    def __init__(self, where: Mapping[str, str]) -> None:
+        self._where = dict(where)
+        self._loaded: dict[str, click.Command] = {}
+
+    def __getitem__(self, name: str) -> click.Command:
+        if name not in self._loaded:
+            module, attribute = self._where[name].split(":")
+            command = getattr(importlib.import_module(module), attribute)
+            assert isinstance(command, click.Command), self._where[name]
+            self._loaded[name] = command
+        return self._loaded[name]
+
+    def __setitem__(self, name: str, command: click.Command) -> None:
+        self._where[name] = ""
+        self._loaded[name] = command
+
+    def __delitem__(self, name: str) -> None:
+        del self._where[name]
+        self._loaded.pop(name, None)
+
+    def __contains__(self, name: object) -> bool:
+        return name in self._where
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._where)
+
+    def __len__(self) -> int:
+        return len(self._where)
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
@@ -19,8 +71,7 @@ def cli() -> None:
     """keystrata: key manager for QKD networks with an airborne trusted relay."""
 
 
-for command in (node, serve, db, kek, pki, registry, pools, pairs, deliveries, keys, audit, demo):
-    cli.add_command(command)
+cli.commands = LazyCommands(COMMANDS)
 
 
 def main() -> None:

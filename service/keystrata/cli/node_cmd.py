@@ -1,4 +1,5 @@
-"""Local node administration: init, serve, schema, key-encryption key."""
+"""Local node administration: init, pin, schema, key-encryption key (`keystrata serve`
+is :mod:`keystrata.cli.serve_cmd`)."""
 
 from __future__ import annotations
 
@@ -146,16 +147,6 @@ def node_pin(config_path: Path, principal_id: str, cert: Path | None, sha256: st
         finally:
             database.dispose()
         console.print(f"principal {principal_id} pinned to {pin}")
-
-
-@click.command("serve")
-@config_option
-def serve(config_path: Path) -> None:
-    """Serve this node's API over HTTPS with required client certificates."""
-    from keystrata.server import serve as run
-
-    with handled():
-        run(settings_from(config_path), str(config_path.resolve()))
 
 
 @click.group("db")

@@ -26,6 +26,7 @@ import threading
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from cryptography import x509
 from cryptography.exceptions import InvalidSignature
@@ -34,8 +35,10 @@ from cryptography.hazmat.primitives.asymmetric import ec
 
 from keystrata.crypto.certificates import load_certificate
 from keystrata.crypto.files import write_atomic
-from keystrata.crypto.pki import PkiDir
 from keystrata.errors import InvalidInput
+
+if TYPE_CHECKING:  # issuing certificates is for the CLI; a serving node only reads CRLs
+    from keystrata.crypto.pki import PkiDir
 
 log = logging.getLogger("keystrata.revocation")
 
