@@ -98,16 +98,22 @@ class OwnedStock:
         SQLite: the transaction holds the only write lock, so the front as read is
         the front. PostgreSQL: first the front segments no other transaction holds,
         locked without waiting; when those are too few (another worker holds the rest),
-        the segments are chosen without locks, then locked in one order (segment ID, so
-        two workers cannot deadlock) and read again, and more are chosen when a
-        concurrent transaction took from them meanwhile.
+        those locks are let go and the segments are chosen without locks, then locked in
+        one order (segment ID, so two workers cannot deadlock) and read again, and more
+        are chosen when a concurrent transaction took from them meanwhile.
         """
         if self.session.get_bind().dialect.name == "sqlite":
             self.front = self._choose(_FRONT, want)
             return
+        # In a savepoint: rolling back to it releases the row locks it took (PostgreSQL,
+        # "Explicit Locking"), so a worker that found too few free segments waits for
+        # the others' holding nothing, and two such workers cannot deadlock.
+        free = self.session.begin_nested()
         self.front = self._choose(_FREE_FRONT, want)
         if self.left >= want:
+            free.commit()
             return
+        free.rollback()
         limit = 4
         for _ in range(_LOCK_ATTEMPTS):
             rows = self._rows(_FRONT, limit)
