@@ -205,8 +205,11 @@ class Database:
             Unavailable: the database cannot be reached.
         """
         driver_error = self.engine.dialect.loaded_dbapi.Error
-        with _translate_db_errors():
-            conn = self.engine.raw_connection()
+        try:
+            with _translate_db_errors():
+                conn = self.engine.raw_connection()
+        except driver_error as err:  # the pool hands the driver's own error through
+            raise Unavailable("the database is not available; try again later") from err
         try:
             cursor = conn.cursor()
             try:
