@@ -290,7 +290,12 @@ def test_a_programming_error_in_a_handler_is_not_a_400(net, api, monkeypatch):
     def broken(ctx, sender, msg):
         raise KeyError("a bug")
 
+    def broken_in(ctx, session, sender, msg):
+        raise KeyError("a bug")
+
     monkeypatch.setitem(dispatch.HANDLERS[Role.STATION], messages.RelayNotice, broken)
+    # A batch applies runs of segment messages in one transaction, by these handlers.
+    monkeypatch.setitem(dispatch.IN_SESSION[Role.STATION], messages.RelayNotice, broken_in)
     net.feed("station-a", 2)
     net.feed("station-b", 2)
     operation.make_segment(net.relay.ctx, relaynet.PAIR, 2048, cipher_station="station-b")

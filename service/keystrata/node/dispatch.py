@@ -15,6 +15,8 @@ import logging
 from collections.abc import Callable
 from typing import Any
 
+from sqlalchemy.orm import Session
+
 from keystrata.config import Role
 from keystrata.context import NodeContext
 from keystrata.delivery import slave_copy
@@ -27,6 +29,7 @@ from keystrata.relay import confirmation, segments
 log = logging.getLogger("keystrata.peers")
 
 Handler = Callable[[NodeContext, str, Any], MessageResult]
+InSession = Callable[[NodeContext, Session, str, Any], MessageResult]
 
 HANDLERS: dict[Role, dict[type[messages.PeerMessage], Handler]] = {
     Role.STATION: {
@@ -40,6 +43,26 @@ HANDLERS: dict[Role, dict[type[messages.PeerMessage], Handler]] = {
     },
     Role.RELAY: {messages.SegmentSettled: confirmation.apply_settled},
 }
+
+#: The same handlers inside the caller's write transaction: a run of these messages in
+#: one request is applied in one transaction (one commit, one fsync), each in a
+#: savepoint, so the relay's segments cost a commit per request rather than per message.
+IN_SESSION: dict[Role, dict[type[messages.PeerMessage], InSession]] = {
+    Role.STATION: {
+        messages.RelayNotice: segments.apply_notice_in,
+        messages.RelayCiphertext: segments.apply_ciphertext_in,
+        messages.SegmentCheck: confirmation.apply_check_in,
+        messages.SegmentConfirmed: confirmation.apply_confirmed_in,
+        messages.SegmentDiscarded: confirmation.apply_discarded_in,
+        messages.KeyAllocated: slave_copy.apply_allocated_in,
+    },
+    Role.RELAY: {messages.SegmentSettled: confirmation.apply_settled_in},
+}
+
+#: Bytes of bodies one transaction applies at most (the first message always): the
+#: sender's request is bounded already (peering/sender.py), this keeps a receiver's
+#: transaction short whatever a peer sends.
+RUN_BYTES = 4 << 20
 
 
 def read(ctx: NodeContext, body: Any) -> messages.PeerMessage:
@@ -70,11 +93,12 @@ def handle(ctx: NodeContext, sender: str, body: Any) -> MessageResult:
 
 
 def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[MessageResult]:
-    """Apply messages from ``sender`` in order, each as if it came alone (its own
-    transaction; a run of ``key.allocated`` messages shares one, each in a savepoint),
-    and stop at the first that is not applied: the sender's later messages
-    to this node wait behind it (a later range would be refused "not yet" anyway).
-    Returns one result per message attempted, the last being the refusal if any.
+    """Apply messages from ``sender`` in order, each as if it came alone, and stop at the
+    first that is not applied: the sender's later messages to this node wait behind it
+    (a later range would be refused "not yet" anyway). A run of messages with a handler
+    in :data:`IN_SESSION` shares one transaction, each in a savepoint (what it changed
+    is kept only if it applied). Returns one result per message attempted, the last
+    being the refusal if any.
 
     Raises:
         InvalidInput: ``bodies`` holds something that is not a message this node takes
@@ -86,38 +110,73 @@ def handle_batch(ctx: NodeContext, sender: str, bodies: list[Any]) -> list[Messa
             msgs.append(read(ctx, body))
         except InvalidInput as exc:
             raise InvalidInput(f"messages[{i}]: {exc.message}", details=exc.details) from None
+    in_session = IN_SESSION[ctx.role]
     results: list[MessageResult] = []
     i = 0
     while i < len(msgs):
-        run = _allocations_from(msgs, i)
-        if run:
-            # Key allocations come in long runs under load: one transaction for a run.
+        run = _run_from(msgs, i, in_session)
+        if not run:
             try:
-                applied, error = slave_copy.apply_allocated_run(ctx, sender, run)
+                results.append(apply(ctx, sender, msgs[i]))
             except KeystrataError as exc:
-                applied, error = [], exc
-            results += applied
-            if error is not None:
-                if isinstance(error, Forbidden):
-                    record_refusal(ctx, sender, run[len(applied)], error)
-                results.append(MessageResult.failed(error))
+                results.append(MessageResult.failed(exc))
                 break
-            i += len(run)
+            i += 1
             continue
         try:
-            results.append(apply(ctx, sender, msgs[i]))
-        except KeystrataError as exc:
-            results.append(MessageResult.failed(exc))
+            applied, error = _apply_run(ctx, sender, run, in_session)
+        except KeystrataError as exc:  # the transaction itself failed: none applied
+            applied, error = [], exc
+        results += applied
+        if error is not None:
+            if isinstance(error, Forbidden):
+                record_refusal(ctx, sender, run[len(applied)], error)
+            results.append(MessageResult.failed(error))
             break
-        i += 1
+        i += len(run)
     return results
 
 
-def _allocations_from(msgs: list[messages.PeerMessage], start: int) -> list[messages.KeyAllocated]:
-    """The run of ``key.allocated`` messages at ``start``."""
-    run: list[messages.KeyAllocated] = []
+def _run_from(
+    msgs: list[messages.PeerMessage], start: int, in_session: dict[type, InSession]
+) -> list[messages.PeerMessage]:
+    """The run of messages at ``start`` that :data:`IN_SESSION` can apply together, of
+    at most :data:`RUN_BYTES` (a lone message longer than that is a run of one)."""
+    run: list[messages.PeerMessage] = []
+    size = 0
     for msg in msgs[start:]:
-        if not isinstance(msg, messages.KeyAllocated):
+        if type(msg) not in in_session:
+            break
+        size += _size(msg)
+        if run and size > RUN_BYTES:
             break
         run.append(msg)
     return run
+
+
+def _size(msg: messages.PeerMessage) -> int:
+    ciphertext = getattr(msg, "ciphertext", b"")
+    return 512 + len(ciphertext) if isinstance(ciphertext, bytes) else 512
+
+
+def _apply_run(
+    ctx: NodeContext,
+    sender: str,
+    run: list[messages.PeerMessage],
+    in_session: dict[type, InSession],
+) -> tuple[list[MessageResult], KeystrataError | None]:
+    """Apply ``run`` in order in one transaction, each in a savepoint; stop at the
+    first that does not apply. Returns the outcomes of those applied and the error
+    that stopped the run. A failure of the transaction itself raises: then none of
+    them is applied."""
+    outcomes: list[MessageResult] = []
+    error: KeystrataError | None = None
+    with ctx.db.write() as s:
+        for msg in run:
+            try:
+                with s.begin_nested():
+                    outcomes.append(in_session[type(msg)](ctx, s, sender, msg))
+            except KeystrataError as exc:
+                error = exc
+                break
+    return outcomes, error

@@ -6,6 +6,7 @@ from __future__ import annotations
 import contextlib
 import logging
 import threading
+import time
 from collections.abc import Callable
 from datetime import timedelta
 
@@ -37,6 +38,9 @@ class Background:
         self.wake = threading.Event()
         self._unwake: Callable[[], None] | None = None
         self.threads: list[threading.Thread] = []
+        #: Monotonic time until which this process surely holds the scheduler lease
+        #: without renewing it (half its time to live after the last renewal).
+        self._lease_sure_until = 0.0
 
     def start(self) -> None:
         self._unwake = outbox.wake_on_commit(self.ctx.db, self.wake)
@@ -94,10 +98,16 @@ class Background:
     def _schedule(self) -> bool:
         cfg = self.ctx.settings.relay
         ttl = timedelta(seconds=max(10.0, 5 * cfg.cycle_seconds))
-        if not leases.acquire(
-            self.ctx.db, scheduler.LEASE, self.holder, now=self.ctx.clock.now(), ttl=ttl
-        ):
-            return False
+        # Renewed once half its time to live has gone, not every cycle: a renewal is a
+        # commit (an fsync), and a short cycle made it most of an idle relay's work.
+        if time.monotonic() >= self._lease_sure_until:
+            started = time.monotonic()
+            if not leases.acquire(
+                self.ctx.db, scheduler.LEASE, self.holder, now=self.ctx.clock.now(), ttl=ttl
+            ):
+                self._lease_sure_until = 0.0
+                return False
+            self._lease_sure_until = started + ttl.total_seconds() / 2
         report = scheduler.schedule_once(self.ctx, self.peers, actor=f"scheduler@{self.holder}")
         if report.made:
             log.info("scheduler: made %d segments", len(report.made))

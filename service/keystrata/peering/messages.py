@@ -23,7 +23,6 @@ import json
 from datetime import datetime
 from typing import Annotated, Any, ClassVar, Literal
 
-import rfc8785
 from pydantic import (
     BaseModel,
     BeforeValidator,
@@ -37,6 +36,7 @@ from pydantic import (
 
 from keystrata.errors import InvalidInput, KeystrataError
 from keystrata.ids import ID_PATTERN
+from keystrata.peering import jcs
 
 #: The version of every message kind this node writes and reads.
 VERSION = 1
@@ -170,7 +170,7 @@ class SegmentHeader(StrictModel):
 
     def encode(self) -> bytes:
         """The canonical bytes (RFC 8785) both MACs cover."""
-        return rfc8785.dumps(self.model_dump(mode="json"))
+        return jcs.dumps(self.model_dump(mode="json"))
 
     @staticmethod
     def decode(raw: bytes) -> SegmentHeader:

@@ -30,6 +30,7 @@ import threading
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from datetime import datetime, timedelta
+from functools import cached_property
 from typing import Any
 
 from sqlalchemy import Engine, delete, event, func, or_, select, update
@@ -53,8 +54,14 @@ class Pending:
     destination: str
     kind: str
     segment_id: str | None
-    body: dict[str, Any]
+    #: The body as stored (JSON): sent as it is, parsed only when asked for.
+    raw: bytes
     attempts: int
+
+    @cached_property
+    def body(self) -> dict[str, Any]:
+        value: dict[str, Any] = json.loads(self.raw)
+        return value
 
 
 def send(
@@ -137,7 +144,7 @@ def claim(db: Database, *, now: datetime, limit: int = 64) -> list[Pending]:
             .all()
         )
         return [
-            Pending(r.id, r.destination, r.kind, r.segment_id, json.loads(r.body), r.attempts)
+            Pending(r.id, r.destination, r.kind, r.segment_id, bytes(r.body), r.attempts)
             for r in rows
         ]
 
@@ -243,7 +250,7 @@ def claim_next(
             select(OutboxMessage).where(OutboxMessage.id.in_(ids)).order_by(OutboxMessage.id)
         ).scalars()
         return [
-            Pending(r.id, r.destination, r.kind, r.segment_id, json.loads(r.body), r.attempts)
+            Pending(r.id, r.destination, r.kind, r.segment_id, bytes(r.body), r.attempts)
             for r in bodies
         ]
 

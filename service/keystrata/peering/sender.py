@@ -70,7 +70,7 @@ def _send(
     error: str | None = None
     done = 0
     try:
-        results = peers.post_messages(destination, [m.body for m in claimed])
+        results = peers.post_messages(destination, [m.raw for m in claimed])
     except PeerUnavailable as exc:
         results, error = [], str(exc)
     except Exception:

@@ -157,16 +157,24 @@ def report_for_relay(ctx: NodeContext, pair_id: str, relay_id: str) -> answers.B
 
 def record_report(ctx: NodeContext, report: answers.BufferReport) -> None:
     """At the relay: keep a station's latest report (upsert)."""
-    values = report.model_dump(exclude={"v"})
+    record_reports(ctx, [report])
+
+
+def record_reports(ctx: NodeContext, reports: list[answers.BufferReport]) -> None:
+    """At the relay: keep stations' latest reports (upserts), in one transaction."""
+    if not reports:
+        return
+    insert = pg_insert if ctx.db.backend == "postgresql" else sqlite_insert
     with ctx.db.write() as s:
-        insert = pg_insert if ctx.db.backend == "postgresql" else sqlite_insert
-        stmt = insert(PairBuffer).values(**values)
-        s.execute(
-            stmt.on_conflict_do_update(
-                index_elements=["pair_id", "station"],
-                set_={k: stmt.excluded[k] for k in values if k not in ("pair_id", "station")},
+        for report in reports:
+            values = report.model_dump(exclude={"v"})
+            stmt = insert(PairBuffer).values(**values)
+            s.execute(
+                stmt.on_conflict_do_update(
+                    index_elements=["pair_id", "station"],
+                    set_={k: stmt.excluded[k] for k in values if k not in ("pair_id", "station")},
+                )
             )
-        )
 
 
 @dataclass(frozen=True)

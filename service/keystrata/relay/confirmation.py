@@ -79,77 +79,91 @@ def _record_ready(s: Session, ctx: NodeContext, row: PairSegment, now: datetime)
 def apply_check(ctx: NodeContext, sender: str, msg: messages.SegmentCheck) -> MessageResult:
     """A: compare B's check value; on a match the segment is ready here, and B and the
     relay are told. On a mismatch it is discarded on both sides."""
-    segment_id = msg.segment_id
     with ctx.db.write() as s:
-        row = s.get(PairSegment, segment_id, with_for_update=True)
-        if row is None or not row.link_applied:
-            raise OutOfOrder("not yet: the relay's notice for this segment has not arrived")
-        _check_sender(row, sender, msg.pair_id, "notice")
-        if row.state != SegmentState.PENDING:
-            return _settled_before(row)
-        pair = pair_of_station(s, ctx, row.pair_id)
-        key = _key_of(ctx, row)
-        if not _partner_confirms(ctx, row, key, msg.check):
-            discard(
-                s,
-                ctx,
-                pair=pair,
-                segment_id=segment_id,
-                side="notice",
-                reason="check_mismatch",
-                tell=[row.partner, pair.relay_id],
-            )
-            return MessageResult.handled(segment_id, "discarded")
-        now = ctx.clock.now()
-        row.state, row.settled_at = next_state(row.state, SegmentEvent.CONFIRMED), now
-        confirmation = check_value(key, identity_of(row, ctx.node_id).canonical(), ctx.node_id)
-        outbox.send(
+        return apply_check_in(ctx, s, sender, msg)
+
+
+def apply_check_in(
+    ctx: NodeContext, s: Session, sender: str, msg: messages.SegmentCheck
+) -> MessageResult:
+    """:func:`apply_check` in the caller's write transaction."""
+    segment_id = msg.segment_id
+    row = s.get(PairSegment, segment_id, with_for_update=True)
+    if row is None or not row.link_applied:
+        raise OutOfOrder("not yet: the relay's notice for this segment has not arrived")
+    _check_sender(row, sender, msg.pair_id, "notice")
+    if row.state != SegmentState.PENDING:
+        return _settled_before(row)
+    pair = pair_of_station(s, ctx, row.pair_id)
+    key = _key_of(ctx, row)
+    if not _partner_confirms(ctx, row, key, msg.check):
+        discard(
             s,
-            destination=row.partner,
-            message=messages.SegmentConfirmed(
-                segment_id=segment_id, pair_id=row.pair_id, check=confirmation
-            ),
+            ctx,
+            pair=pair,
             segment_id=segment_id,
-            now=now,
+            side="notice",
+            reason="check_mismatch",
+            tell=[row.partner, pair.relay_id],
         )
-        outbox.send(
-            s,
-            destination=pair.relay_id,
-            message=messages.SegmentSettled(segment_id=segment_id, outcome="ready"),
-            segment_id=segment_id,
-            now=now,
-        )
-        _record_ready(s, ctx, row, now)
-        return MessageResult.handled(segment_id, "applied")
+        return MessageResult.handled(segment_id, "discarded")
+    now = ctx.clock.now()
+    row.state, row.settled_at = next_state(row.state, SegmentEvent.CONFIRMED), now
+    confirmation = check_value(key, identity_of(row, ctx.node_id).canonical(), ctx.node_id)
+    outbox.send(
+        s,
+        destination=row.partner,
+        message=messages.SegmentConfirmed(
+            segment_id=segment_id, pair_id=row.pair_id, check=confirmation
+        ),
+        segment_id=segment_id,
+        now=now,
+    )
+    outbox.send(
+        s,
+        destination=pair.relay_id,
+        message=messages.SegmentSettled(segment_id=segment_id, outcome="ready"),
+        segment_id=segment_id,
+        now=now,
+    )
+    _record_ready(s, ctx, row, now)
+    return MessageResult.handled(segment_id, "applied")
 
 
 def apply_confirmed(ctx: NodeContext, sender: str, msg: messages.SegmentConfirmed) -> MessageResult:
     """B: A confirmed the segment; check A's value and turn the segment ready here."""
-    segment_id = msg.segment_id
     with ctx.db.write() as s:
-        row = s.get(PairSegment, segment_id, with_for_update=True)
-        if row is None:
-            raise NotFound(f"no segment {segment_id} here")
-        _check_sender(row, sender, msg.pair_id, "cipher")
-        if row.state != SegmentState.PENDING:
-            return _settled_before(row)
-        pair = pair_of_station(s, ctx, row.pair_id)
-        key = _key_of(ctx, row)
-        now = ctx.clock.now()
-        if not _partner_confirms(ctx, row, key, msg.check):
-            discard(
-                s,
-                ctx,
-                pair=pair,
-                segment_id=segment_id,
-                side="cipher",
-                reason="confirmation_mismatch",
-                tell=[row.partner],
-            )
-            return MessageResult.handled(segment_id, "discarded")
-        row.state, row.settled_at = next_state(row.state, SegmentEvent.CONFIRMED), now
-        _record_ready(s, ctx, row, now)
-        return MessageResult.handled(segment_id, "applied")
+        return apply_confirmed_in(ctx, s, sender, msg)
+
+
+def apply_confirmed_in(
+    ctx: NodeContext, s: Session, sender: str, msg: messages.SegmentConfirmed
+) -> MessageResult:
+    """:func:`apply_confirmed` in the caller's write transaction."""
+    segment_id = msg.segment_id
+    row = s.get(PairSegment, segment_id, with_for_update=True)
+    if row is None:
+        raise NotFound(f"no segment {segment_id} here")
+    _check_sender(row, sender, msg.pair_id, "cipher")
+    if row.state != SegmentState.PENDING:
+        return _settled_before(row)
+    pair = pair_of_station(s, ctx, row.pair_id)
+    key = _key_of(ctx, row)
+    now = ctx.clock.now()
+    if not _partner_confirms(ctx, row, key, msg.check):
+        discard(
+            s,
+            ctx,
+            pair=pair,
+            segment_id=segment_id,
+            side="cipher",
+            reason="confirmation_mismatch",
+            tell=[row.partner],
+        )
+        return MessageResult.handled(segment_id, "discarded")
+    row.state, row.settled_at = next_state(row.state, SegmentEvent.CONFIRMED), now
+    _record_ready(s, ctx, row, now)
+    return MessageResult.handled(segment_id, "applied")
 
 
 def apply_discarded(ctx: NodeContext, sender: str, msg: messages.SegmentDiscarded) -> MessageResult:
@@ -160,37 +174,50 @@ def apply_discarded(ctx: NodeContext, sender: str, msg: messages.SegmentDiscarde
     tombstone bound to the pair and partner named; the relay's message of another pair
     under that ID does not honour it.
     """
-    segment_id = msg.segment_id
     with ctx.db.write() as s:
-        pair = pair_of_station(s, ctx, msg.pair_id)
-        if sender != partner_of(pair, ctx.node_id):
-            raise Forbidden("only the partner station discards a segment")
-        row = s.get(PairSegment, segment_id, with_for_update=True)
-        side: Side = "cipher" if msg.sender_side == "notice" else "notice"
-        if row is not None:
-            _check_sender(row, sender, msg.pair_id, row.side)
-            if row.state == SegmentState.DISCARDED:
-                return MessageResult.handled(segment_id, "already")
-            if row.side != side:
-                raise Forbidden("sender_side: the partner holds the other side of this segment")
-        discard(
-            s,
-            ctx,
-            pair=pair,
-            segment_id=segment_id,
-            side=side,
-            reason=msg.reason,
-            tell=[pair.relay_id] if side == "notice" else [],
-            notify_partner=False,
-        )
-        return MessageResult.handled(segment_id, "applied")
+        return apply_discarded_in(ctx, s, sender, msg)
+
+
+def apply_discarded_in(
+    ctx: NodeContext, s: Session, sender: str, msg: messages.SegmentDiscarded
+) -> MessageResult:
+    """:func:`apply_discarded` in the caller's write transaction."""
+    segment_id = msg.segment_id
+    pair = pair_of_station(s, ctx, msg.pair_id)
+    if sender != partner_of(pair, ctx.node_id):
+        raise Forbidden("only the partner station discards a segment")
+    row = s.get(PairSegment, segment_id, with_for_update=True)
+    side: Side = "cipher" if msg.sender_side == "notice" else "notice"
+    if row is not None:
+        _check_sender(row, sender, msg.pair_id, row.side)
+        if row.state == SegmentState.DISCARDED:
+            return MessageResult.handled(segment_id, "already")
+        if row.side != side:
+            raise Forbidden("sender_side: the partner holds the other side of this segment")
+    discard(
+        s,
+        ctx,
+        pair=pair,
+        segment_id=segment_id,
+        side=side,
+        reason=msg.reason,
+        tell=[pair.relay_id] if side == "notice" else [],
+        notify_partner=False,
+    )
+    return MessageResult.handled(segment_id, "applied")
 
 
 def apply_settled(ctx: NodeContext, sender: str, msg: messages.SegmentSettled) -> MessageResult:
     """Relay: the segment's notice station reports how it ended; record it once."""
-    if operation.notice_station_of(ctx, msg.segment_id) != sender:
-        raise Forbidden("only the segment's notice station settles it")
-    changed = operation.settle(ctx, msg.segment_id, msg.outcome, msg.reason)
+    with ctx.db.write() as s:
+        return apply_settled_in(ctx, s, sender, msg)
+
+
+def apply_settled_in(
+    ctx: NodeContext, s: Session, sender: str, msg: messages.SegmentSettled
+) -> MessageResult:
+    """:func:`apply_settled` in the caller's write transaction."""
+    changed = operation.settle_in(ctx, s, msg.segment_id, msg.outcome, msg.reason, sender=sender)
     return MessageResult.handled(msg.segment_id, "applied" if changed else "already")
 
 

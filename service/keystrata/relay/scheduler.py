@@ -13,6 +13,7 @@ from __future__ import annotations
 import logging
 from dataclasses import dataclass
 
+from keystrata.config import RelaySection
 from keystrata.context import NodeContext
 from keystrata.errors import Conflict, InvalidInput
 from keystrata.links import consume
@@ -38,6 +39,7 @@ class CycleReport:
 
 
 def _poll_stations(ctx: NodeContext, peers: PeerClient, pairs: list[Pair]) -> None:
+    reports: list[answers.BufferReport] = []
     for pair in pairs:
         for station in (pair.station_a, pair.station_b):
             raw = peers.pair_buffer(station, pair.pair_id)
@@ -53,7 +55,8 @@ def _poll_stations(ctx: NodeContext, peers: PeerClient, pairs: list[Pair]) -> No
                     "scheduler: %s answered with a report of another pair or station", station
                 )
                 continue
-            buffers.record_report(ctx, report)
+            reports.append(report)
+    buffers.record_reports(ctx, reports)
 
 
 def schedule_once(
@@ -68,21 +71,25 @@ def schedule_once(
         links = operation.links_to(s, ctx.node_id, stations)
         free = consume.free_bytes(s, links.values())
         in_flight = operation.segments_in_flight(s)
+    skipped: dict[str, str] = {}
+    for pair in pairs:
+        if pair.station_a not in links or pair.station_b not in links:
+            skipped[pair.pair_id] = "a station has no active QKD link to this relay"
+        elif in_flight.get(pair.pair_id, 0) >= cfg.max_in_flight_segments:
+            skipped[pair.pair_id] = "segments on their way at the limit"
+    # A pair that can get no segment this cycle is not polled: a relay whose segments
+    # wait for the stations costs one read per cycle, not two requests and a commit.
+    pairs = [pair for pair in pairs if pair.pair_id not in skipped]
+    if not pairs:
+        return CycleReport(made=[], skipped=skipped)
     if peers is not None:
         _poll_stations(ctx, peers, pairs)
     views = {v.pair_id: v for v in buffers.relay_view(ctx)}
     demands: list[PairDemand] = []
-    skipped: dict[str, str] = {}
     for pair in pairs:
         view = views[pair.pair_id]
-        if pair.station_a not in links or pair.station_b not in links:
-            skipped[pair.pair_id] = "a station has no active QKD link to this relay"
-            continue
         if any(side["ready_bits"] is None for side in view.sides):
             skipped[pair.pair_id] = "waiting for both stations' buffer reports"
-            continue
-        if in_flight.get(pair.pair_id, 0) >= cfg.max_in_flight_segments:
-            skipped[pair.pair_id] = "segments on their way at the limit"
             continue
         # Both stations hold the same ready segments; they differ only by allocations on
         # their way. The larger report counts, so one station reporting an empty buffer
@@ -119,49 +126,79 @@ def schedule_once(
     shares = allocate(demands, budget)
     made: list[operation.SegmentMade] = []
     for demand in sorted(demands, key=lambda d: d.pair_id):
-        left = shares.get(demand.pair_id, 0)
-        count = in_flight.get(demand.pair_id, 0)
-        a, b = views[demand.pair_id].sides
-        # Owned key per side: the stations' last reports plus what this cycle adds.
-        owned = {
-            a["station"]: int(a["owned_ready_bits"] or 0),
-            b["station"]: int(b["owned_ready_bits"] or 0),
-        }
-        still_needed = demand.demand
-        while left >= MIN_BYTES and count < cfg.max_in_flight_segments:
-            n = min(cfg.segment_bytes, left)
-            if n < cfg.min_segment_bytes and left < still_needed:
-                # Key is scarce: wait for enough to make a segment worth its messages,
-                # unless this small piece is all the pair still needs.
-                break
-            # Each side owns key in proportion to its stations' recent demand (Get key
-            # there); equal shares while neither side has any.
-            owner = choose_owner(
-                a["station"],
-                b["station"],
-                float(a["demand_bps"] or 0.0),
-                float(b["demand_bps"] or 0.0),
-                owned[a["station"]],
-                owned[b["station"]],
-            )
-            # No bigger than the owner's gap to its share of what the pair will own, so
-            # one cycle can give both sides key.
-            share = planning.owned_share(
-                float(a["demand_bps"] or 0.0), float(b["demand_bps"] or 0.0)
-            )
-            if owner == b["station"]:
-                share = 1 - share
-            gap = -(-(share * (sum(owned.values()) + 8 * left) - owned[owner]) // 8)
-            n = min(n, max(cfg.min_segment_bytes, int(gap)))
-            try:
-                made.append(
-                    operation.make_segment(ctx, demand.pair_id, n, owner=owner, actor=actor)
-                )
-            except Conflict as exc:  # link key short, or epsilon above the pair's limit
-                skipped[demand.pair_id] = exc.message
-                break
-            owned[owner] += 8 * n
-            left -= n
-            still_needed -= n
-            count += 1
+        plan = _plan(
+            cfg,
+            views[demand.pair_id],
+            shares.get(demand.pair_id, 0),
+            demand.demand,
+            in_flight.get(demand.pair_id, 0),
+        )
+        error = _make(ctx, demand.pair_id, plan, actor, made)
+        if error is not None:  # link key short, or epsilon above the pair's limit
+            skipped[demand.pair_id] = error
     return CycleReport(made=made, skipped=skipped)
+
+
+def _plan(
+    cfg: RelaySection, view: buffers.PairView, left: int, still_needed: int, count: int
+) -> list[operation.Planned]:
+    """The segments (size, owner) of one pair's share ``left`` this cycle."""
+    plan: list[operation.Planned] = []
+    a, b = view.sides
+    # Owned key per side: the stations' last reports plus what this cycle adds.
+    owned = {
+        a["station"]: int(a["owned_ready_bits"] or 0),
+        b["station"]: int(b["owned_ready_bits"] or 0),
+    }
+    demand_a, demand_b = float(a["demand_bps"] or 0.0), float(b["demand_bps"] or 0.0)
+    while left >= MIN_BYTES and count < cfg.max_in_flight_segments:
+        n = min(cfg.segment_bytes, left)
+        if n < cfg.min_segment_bytes and left < still_needed:
+            # Key is scarce: wait for enough to make a segment worth its messages,
+            # unless this small piece is all the pair still needs.
+            break
+        # Each side owns key in proportion to its stations' recent demand (Get key
+        # there); equal shares while neither side has any.
+        owner = choose_owner(
+            a["station"], b["station"], demand_a, demand_b, owned[a["station"]], owned[b["station"]]
+        )
+        # No bigger than the owner's gap to its share of what the pair will own, so
+        # one cycle can give both sides key.
+        share = planning.owned_share(demand_a, demand_b)
+        if owner == b["station"]:
+            share = 1 - share
+        gap = -(-(share * (sum(owned.values()) + 8 * left) - owned[owner]) // 8)
+        n = min(n, max(cfg.min_segment_bytes, int(gap)))
+        plan.append(operation.Planned(n, owner))
+        owned[owner] += 8 * n
+        left -= n
+        still_needed -= n
+        count += 1
+    return plan
+
+
+def _make(
+    ctx: NodeContext,
+    pair_id: str,
+    plan: list[operation.Planned],
+    actor: str,
+    made: list[operation.SegmentMade],
+) -> str | None:
+    """Make the planned segments in transactions of about
+    :data:`operation.BATCH_BYTES` each (``made`` grows); the reason it stopped early,
+    if it did."""
+    i = 0
+    while i < len(plan):
+        j, size = i + 1, plan[i].n
+        while j < len(plan) and size + plan[j].n <= operation.BATCH_BYTES:
+            size += plan[j].n
+            j += 1
+        try:
+            done, error = operation.make_segments(ctx, pair_id, plan[i:j], actor=actor)
+        except Conflict as exc:
+            return exc.message
+        made += done
+        if error is not None:
+            return error.message
+        i = j
+    return None

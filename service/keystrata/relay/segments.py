@@ -185,29 +185,36 @@ def _bad_tag(
 
 def apply_notice(ctx: NodeContext, sender: str, msg: messages.RelayNotice) -> MessageResult:
     """A: check tagA, take the named link bytes as the segment, wait for B's check value."""
-    segment_id = msg.segment_id
     with ctx.db.write() as s:
-        pair, header = _header_for(s, ctx, sender, segment_id, msg.header, "notice")
-        existing = s.get(PairSegment, segment_id)
-        if existing is not None and existing.link_applied:
-            return MessageResult.handled(segment_id, "already")
-        key, mac_key = _spend(
-            s,
-            ctx,
-            header.notice_link,
-            pair,
-            header.notice_key_ranges,
-            header.notice_mac_ranges,
-            header.length,
-        )
-        try:
-            verify_one_time_mac(mac_key, arithmetic.mac_input(msg.header), msg.tag)
-        except CryptoError:
-            return _bad_tag(s, ctx, pair, segment_id, "notice", sender)
-        row = _store(s, ctx, header=header, pair=pair, side="notice", key=key)
-        if row.state == SegmentState.DISCARDED:
-            return MessageResult.handled(segment_id, "discarded")
-        return MessageResult.handled(segment_id, "applied")
+        return apply_notice_in(ctx, s, sender, msg)
+
+
+def apply_notice_in(
+    ctx: NodeContext, s: Session, sender: str, msg: messages.RelayNotice
+) -> MessageResult:
+    """:func:`apply_notice` in the caller's write transaction."""
+    segment_id = msg.segment_id
+    pair, header = _header_for(s, ctx, sender, segment_id, msg.header, "notice")
+    existing = s.get(PairSegment, segment_id)
+    if existing is not None and existing.link_applied:
+        return MessageResult.handled(segment_id, "already")
+    key, mac_key = _spend(
+        s,
+        ctx,
+        header.notice_link,
+        pair,
+        header.notice_key_ranges,
+        header.notice_mac_ranges,
+        header.length,
+    )
+    try:
+        verify_one_time_mac(mac_key, arithmetic.mac_input(msg.header), msg.tag)
+    except CryptoError:
+        return _bad_tag(s, ctx, pair, segment_id, "notice", sender)
+    row = _store(s, ctx, header=header, pair=pair, side="notice", key=key)
+    if row.state == SegmentState.DISCARDED:
+        return MessageResult.handled(segment_id, "discarded")
+    return MessageResult.handled(segment_id, "applied")
 
 
 def apply_ciphertext(ctx: NodeContext, sender: str, msg: messages.RelayCiphertext) -> MessageResult:
@@ -216,40 +223,47 @@ def apply_ciphertext(ctx: NodeContext, sender: str, msg: messages.RelayCiphertex
     A bad tag spends the named link bytes all the same (so the link stays in step with
     the relay), records the refusal and discards the segment on both sides.
     """
-    segment_id = msg.segment_id
     with ctx.db.write() as s:
-        pair, header = _header_for(s, ctx, sender, segment_id, msg.header, "cipher")
-        existing = s.get(PairSegment, segment_id)
-        if existing is not None and existing.link_applied:
-            return MessageResult.handled(segment_id, "already")
-        if len(msg.ciphertext) != header.length:
-            raise InvalidInput("ciphertext: its length is not the header's bytes")
-        key_b, mac_key = _spend(
-            s,
-            ctx,
-            header.cipher_link,
-            pair,
-            header.cipher_key_ranges,
-            header.cipher_mac_ranges,
-            header.length,
-        )
-        try:
-            verify_one_time_mac(mac_key, arithmetic.mac_input(msg.header, msg.ciphertext), msg.tag)
-        except CryptoError:
-            return _bad_tag(s, ctx, pair, segment_id, "cipher", sender)
-        key_a = xor_bytes(msg.ciphertext, key_b)
-        row = _store(s, ctx, header=header, pair=pair, side="cipher", key=key_a)
-        if row.state == SegmentState.DISCARDED:
-            return MessageResult.handled(segment_id, "discarded")
-        check = check_value(key_a, identity_of(row, ctx.node_id).canonical(), ctx.node_id)
-        outbox.send(
-            s,
-            destination=row.partner,
-            message=messages.SegmentCheck(segment_id=segment_id, pair_id=pair.pair_id, check=check),
-            segment_id=segment_id,
-            now=ctx.clock.now(),
-        )
-        return MessageResult.handled(segment_id, "applied")
+        return apply_ciphertext_in(ctx, s, sender, msg)
+
+
+def apply_ciphertext_in(
+    ctx: NodeContext, s: Session, sender: str, msg: messages.RelayCiphertext
+) -> MessageResult:
+    """:func:`apply_ciphertext` in the caller's write transaction."""
+    segment_id = msg.segment_id
+    pair, header = _header_for(s, ctx, sender, segment_id, msg.header, "cipher")
+    existing = s.get(PairSegment, segment_id)
+    if existing is not None and existing.link_applied:
+        return MessageResult.handled(segment_id, "already")
+    if len(msg.ciphertext) != header.length:
+        raise InvalidInput("ciphertext: its length is not the header's bytes")
+    key_b, mac_key = _spend(
+        s,
+        ctx,
+        header.cipher_link,
+        pair,
+        header.cipher_key_ranges,
+        header.cipher_mac_ranges,
+        header.length,
+    )
+    try:
+        verify_one_time_mac(mac_key, arithmetic.mac_input(msg.header, msg.ciphertext), msg.tag)
+    except CryptoError:
+        return _bad_tag(s, ctx, pair, segment_id, "cipher", sender)
+    key_a = xor_bytes(msg.ciphertext, key_b)
+    row = _store(s, ctx, header=header, pair=pair, side="cipher", key=key_a)
+    if row.state == SegmentState.DISCARDED:
+        return MessageResult.handled(segment_id, "discarded")
+    check = check_value(key_a, identity_of(row, ctx.node_id).canonical(), ctx.node_id)
+    outbox.send(
+        s,
+        destination=row.partner,
+        message=messages.SegmentCheck(segment_id=segment_id, pair_id=pair.pair_id, check=check),
+        segment_id=segment_id,
+        now=ctx.clock.now(),
+    )
+    return MessageResult.handled(segment_id, "applied")
 
 
 def discard(
