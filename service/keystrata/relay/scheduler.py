@@ -65,20 +65,30 @@ def schedule_once(
     """Run one scheduling cycle (the caller holds the lease). ``peers=None`` skips
     polling and uses the last reports (tests drive stations by hand)."""
     cfg = ctx.settings.relay
+    skipped: dict[str, str] = {}
     with ctx.db.read() as s:
         pairs = buffers.pairs_through(s, ctx.node_id)
+        in_flight = operation.segments_in_flight(s)
+        for pair in pairs:
+            count = in_flight.get(pair.pair_id, 0)
+            if count >= cfg.max_in_flight_segments:
+                skipped[pair.pair_id] = "segments on their way at the limit"
+            elif count > cfg.max_in_flight_segments // 2:
+                # Refill once half the slots are free, not slot by slot: a cycle's
+                # segments share its poll, its reads and their transactions.
+                skipped[pair.pair_id] = "segments on their way: refilled once half settle"
+        # A pair that can get no segment this cycle is neither polled nor viewed, and
+        # its links are not summed: a relay whose segments wait for the stations costs
+        # two small queries per cycle, not two requests, a commit and a sum over blocks.
+        pairs = [pair for pair in pairs if pair.pair_id not in skipped]
+        if not pairs:
+            return CycleReport(made=[], skipped=skipped)
         stations = [st for pair in pairs for st in (pair.station_a, pair.station_b)]
         links = operation.links_to(s, ctx.node_id, stations)
         free = consume.free_bytes(s, links.values())
-        in_flight = operation.segments_in_flight(s)
-    skipped: dict[str, str] = {}
     for pair in pairs:
         if pair.station_a not in links or pair.station_b not in links:
             skipped[pair.pair_id] = "a station has no active QKD link to this relay"
-        elif in_flight.get(pair.pair_id, 0) >= cfg.max_in_flight_segments:
-            skipped[pair.pair_id] = "segments on their way at the limit"
-    # A pair that can get no segment this cycle is not polled: a relay whose segments
-    # wait for the stations costs one read per cycle, not two requests and a commit.
     pairs = [pair for pair in pairs if pair.pair_id not in skipped]
     if not pairs:
         return CycleReport(made=[], skipped=skipped)
