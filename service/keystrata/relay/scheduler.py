@@ -70,13 +70,8 @@ def schedule_once(
         pairs = buffers.pairs_through(s, ctx.node_id)
         in_flight = operation.segments_in_flight(s)
         for pair in pairs:
-            count = in_flight.get(pair.pair_id, 0)
-            if count >= cfg.max_in_flight_segments:
+            if in_flight.get(pair.pair_id, 0) >= cfg.max_in_flight_segments:
                 skipped[pair.pair_id] = "segments on their way at the limit"
-            elif count > cfg.max_in_flight_segments // 2:
-                # Refill once half the slots are free, not slot by slot: a cycle's
-                # segments share its poll, its reads and their transactions.
-                skipped[pair.pair_id] = "segments on their way: refilled once half settle"
         # A pair that can get no segment this cycle is neither polled nor viewed, and
         # its links are not summed: a relay whose segments wait for the stations costs
         # two small queries per cycle, not two requests, a commit and a sum over blocks.
