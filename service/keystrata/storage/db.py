@@ -151,6 +151,19 @@ def durability_risks(engine: Engine) -> list[DurabilityRisk]:
     return risks
 
 
+def upsert_insert(backend: str) -> Any:
+    """The ``insert`` construct of ``backend``'s dialect, which has ``ON CONFLICT``;
+    imported on first use, as the PostgreSQL dialect (about 2 MiB) is nothing a SQLite
+    node needs."""
+    if backend == "postgresql":
+        from sqlalchemy.dialects.postgresql import insert as pg_insert
+
+        return pg_insert
+    from sqlalchemy.dialects.sqlite import insert as sqlite_insert
+
+    return sqlite_insert
+
+
 class Database:
     """One node's database: an engine and the two kinds of transaction it offers."""
 

@@ -8,11 +8,9 @@ import socket
 from datetime import datetime, timedelta
 
 from sqlalchemy import delete, or_, update
-from sqlalchemy.dialects.postgresql import insert as pg_insert
-from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session
 
-from keystrata.storage.db import Database
+from keystrata.storage.db import Database, upsert_insert
 from keystrata.storage.models import Lease
 
 
@@ -48,7 +46,7 @@ def take(session: Session, name: str, holder: str, *, now: datetime, ttl: timede
     ).rowcount
     if taken:
         return True
-    dialect_insert = pg_insert if session.get_bind().dialect.name == "postgresql" else sqlite_insert
+    dialect_insert = upsert_insert(session.get_bind().dialect.name)
     # RETURNING, not rowcount: SQLAlchemy reports -1 (unknown) as the rowcount of this
     # statement on PostgreSQL, which bool() took for "created" while another held it.
     created = session.execute(
