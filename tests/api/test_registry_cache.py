@@ -64,9 +64,7 @@ def test_a_pair_narrowed_by_another_process_refuses_at_once(net, api, other_proc
     assert ledger_events(net.a.ctx)[-2] == "key.refused"
 
 
-def test_a_hold_opened_by_another_process_stops_delivery_at_once(
-    net, api, other_process
-) -> None:
+def test_a_hold_opened_by_another_process_stops_delivery_at_once(net, api, other_process) -> None:
     a1 = api(net.a)("sae-a1")
     _warm(a1)
     with other_process.db.write() as s:

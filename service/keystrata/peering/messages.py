@@ -36,7 +36,7 @@ from pydantic import (
 
 from keystrata.errors import InvalidInput, KeystrataError
 from keystrata.ids import ID_PATTERN
-from keystrata.peering import jcs
+from keystrata.ledger import canonical
 
 #: The version of every message kind this node writes and reads.
 VERSION = 1
@@ -170,7 +170,7 @@ class SegmentHeader(StrictModel):
 
     def encode(self) -> bytes:
         """The canonical bytes (RFC 8785) both MACs cover."""
-        return jcs.dumps(self.model_dump(mode="json"))
+        return canonical.dumps(self.model_dump(mode="json"))
 
     @staticmethod
     def decode(raw: bytes) -> SegmentHeader:

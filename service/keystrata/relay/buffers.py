@@ -9,8 +9,6 @@ from datetime import datetime, timedelta
 from typing import Any
 
 from sqlalchemy import case, func, select
-from sqlalchemy.dialects.postgresql import insert as pg_insert
-from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session
 
 from keystrata.context import NodeContext
@@ -18,6 +16,7 @@ from keystrata.errors import Forbidden, NotFound
 from keystrata.peering import answers
 from keystrata.relay import planning
 from keystrata.relay.segment_states import RelayOpState, SegmentState
+from keystrata.storage.db import upsert_insert
 from keystrata.storage.models import KeyAlloc, Pair, PairBuffer, PairSegment, RelayOp
 
 
@@ -164,7 +163,7 @@ def record_reports(ctx: NodeContext, reports: list[answers.BufferReport]) -> Non
     """At the relay: keep stations' latest reports (upserts), in one transaction."""
     if not reports:
         return
-    insert = pg_insert if ctx.db.backend == "postgresql" else sqlite_insert
+    insert = upsert_insert(ctx.db.backend)
     with ctx.db.write() as s:
         for report in reports:
             values = report.model_dump(exclude={"v"})

@@ -1,6 +1,7 @@
-"""The segment header's canonical JSON (keystrata.peering.jcs) against the rfc8785
-package, the reference implementation of RFC 8785 the header used before: the bytes
-must be equal for every value, or both must refuse it."""
+"""The segment header's canonical JSON (keystrata.ledger.canonical, the project's one
+RFC 8785 encoder) against the rfc8785 package, the reference implementation of RFC 8785
+the header used before: the bytes must be equal for every value, or both must refuse
+it."""
 
 from __future__ import annotations
 
@@ -11,7 +12,8 @@ import rfc8785
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from keystrata.peering import jcs, messages
+from keystrata.ledger import canonical as jcs
+from keystrata.peering import messages
 
 _scalars = (
     st.none()
