@@ -47,13 +47,15 @@ HANDLERS: dict[Role, dict[type[messages.PeerMessage], Handler]] = {
 #: The same handlers inside the caller's write transaction: a run of these messages in
 #: one request is applied in one transaction (one commit, one fsync), each in a
 #: savepoint, so the relay's segments cost a commit per request rather than per message.
+#: At a station only the relay's messages run together: a run from the other station
+#: may mix ``key.allocated`` (which takes from a segment's front, then appends to the
+#: ledger) with segment messages, and while such a run held the ledger head from an
+#: earlier message, a Get key with key IDs pulling the same allocations held a segment
+#: it wanted and waited for the head: PostgreSQL deadlocks, seen as 503s in the load test.
 IN_SESSION: dict[Role, dict[type[messages.PeerMessage], InSession]] = {
     Role.STATION: {
         messages.RelayNotice: segments.apply_notice_in,
         messages.RelayCiphertext: segments.apply_ciphertext_in,
-        messages.SegmentCheck: confirmation.apply_check_in,
-        messages.SegmentConfirmed: confirmation.apply_confirmed_in,
-        messages.SegmentDiscarded: confirmation.apply_discarded_in,
         messages.KeyAllocated: slave_copy.apply_allocated_in,
     },
     Role.RELAY: {messages.SegmentSettled: confirmation.apply_settled_in},
