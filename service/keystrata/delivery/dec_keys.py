@@ -28,7 +28,7 @@ from keystrata.delivery import group_commit
 from keystrata.delivery.enc_keys import GROUP_BATCH, DeliveredKey
 from keystrata.delivery.key_states import KeyState, after_fetch, move
 from keystrata.delivery.ports import AllocationSource
-from keystrata.delivery.routing import active_sae, refusal_entry, refuse
+from keystrata.delivery.routing import refusal_entry, refuse, sae_station
 from keystrata.delivery.slave_copy import apply_allocated_in
 from keystrata.errors import (
     AllocationNotHere,
@@ -62,6 +62,14 @@ class _KeyIdsRequest:
     master: str
     ids: list[str]
     unsettled: bool  # the owner could not say whether unknown IDs are allocated
+    may_pull: bool  # unknown IDs may be pulled from the owner before any refusal
+
+
+@dataclass(frozen=True)
+class _Unknown:
+    """The answer of a first serving to a request naming IDs not here: pull them."""
+
+    ids: frozenset[str]
 
 
 @dataclass(frozen=True)
@@ -97,25 +105,32 @@ def get_keys_with_ids(
         raise BadRequest("the same key_ID is asked for more than once")
     if caller.role.value != "sae" or caller.station_id != ctx.node_id:
         raise refuse(ctx, caller, "not_an_sae_of_this_station", master=master_sae_id[:64])
-    with ctx.db.read() as s:
-        known = _known(s, ids)
-        master = active_sae(s, master_sae_id)
-    unsettled = False
-    if len(known) < len(ids) and allocation_source is not None and master is not None:
-        owner = str(master.station_id)
-        # One pull per owner at a time in this process; the requests that arrive while
-        # it runs share the next one (a group, like the commits below).
-        pulls = group_commit.shared(
-            ctx.process_state,
-            f"pull:{owner}",
-            partial(_pull_group, ctx, owner),
-            max_batch=GROUP_BATCH,
-        )
-        unsettled = pulls.submit(_MissingIds(frozenset(set(ids) - known), allocation_source))
+    serving: group_commit.GroupCommit[_KeyIdsRequest, list[DeliveredKey] | _Unknown]
     serving = group_commit.shared(
         ctx.process_state, "get_key_with_ids", partial(_serve, ctx), max_batch=GROUP_BATCH
     )
-    return serving.submit(_KeyIdsRequest(caller, master_sae_id, ids, unsettled))
+    owner = None
+    if allocation_source is not None:
+        owner = sae_station(ctx, caller.generation, master_sae_id)
+    # Served at once when every key ID is here (the owner's message came first, as it
+    # mostly does); else the unknown IDs are pulled from the owner and the request is
+    # served again, as unsettled if the pull could not settle them.
+    first = serving.submit(_KeyIdsRequest(caller, master_sae_id, ids, False, owner is not None))
+    if not isinstance(first, _Unknown):
+        return first
+    assert owner is not None and allocation_source is not None
+    # One pull per owner at a time in this process; the requests that arrive while
+    # it runs share the next one (a group, like the commits).
+    pulls = group_commit.shared(
+        ctx.process_state,
+        f"pull:{owner}",
+        partial(_pull_group, ctx, owner),
+        max_batch=GROUP_BATCH,
+    )
+    unsettled = pulls.submit(_MissingIds(first.ids, allocation_source))
+    again = serving.submit(_KeyIdsRequest(caller, master_sae_id, ids, unsettled, False))
+    assert not isinstance(again, _Unknown)
+    return again
 
 
 def _known(s: Session, ids: list[str]) -> set[str]:
@@ -185,11 +200,11 @@ def _pull_and_apply(
 
 def _serve(
     ctx: NodeContext, requests: Sequence[_KeyIdsRequest]
-) -> list[list[DeliveredKey] | BaseException]:
+) -> list[list[DeliveredKey] | _Unknown | BaseException]:
     """Serve several Get key with key IDs requests in one transaction, in order. Each is
     served whole or not at all; a later request sees what earlier ones fetched."""
     now = ctx.clock.now()
-    results: list[list[DeliveredKey] | BaseException] = []
+    results: list[list[DeliveredKey] | _Unknown | BaseException] = []
     wanted = sorted({k for request in requests for k in request.ids})
     with ctx.db.write() as s:
         rows: dict[str, KeyAlloc] = {}
@@ -199,7 +214,11 @@ def _serve(
             rows.update((r.key_id, r) for r in s.execute(query).scalars())
         entries: list[tuple[datetime, Event, Mapping[str, Any]]] = []
         for request in requests:
-            if request.unsettled and any(k not in rows for k in request.ids):
+            unknown = frozenset(k for k in request.ids if k not in rows)
+            if unknown and request.may_pull:
+                results.append(_Unknown(unknown))  # nothing recorded: asked again after the pull
+                continue
+            if request.unsettled and unknown:
                 results.append(AllocationNotHere())  # before any per-key check
                 continue
             problem = next(

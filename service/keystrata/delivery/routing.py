@@ -90,6 +90,14 @@ def _sae_station(ctx: NodeContext, snapshot: cache.Snapshot, sae_id: str) -> str
     return snapshot.get("sae.station", sae_id, load)
 
 
+def sae_station(ctx: NodeContext, generation: int | None, sae_id: str) -> str | None:
+    """The station of ``sae_id`` if it names an active SAE, from the registry snapshot of
+    ``generation`` or later (a caller's :attr:`Caller.generation`)."""
+    if len(sae_id) > ID_LEN:
+        return None
+    return _sae_station(ctx, cache.at_least(ctx, generation), sae_id)
+
+
 def _pairs(ctx: NodeContext, snapshot: cache.Snapshot, a: str, b: str) -> tuple[Pair, ...]:
     def load() -> tuple[Pair, ...]:
         with ctx.db.read() as s:
