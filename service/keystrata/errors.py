@@ -153,6 +153,14 @@ class Unavailable(KeystrataError):
     default_message = "service temporarily unavailable"
 
 
+class TransactionConflict(Unavailable):
+    """The database ended the transaction to break a deadlock or a serialisation
+    conflict (PostgreSQL SQLSTATE 40P01, 40001): nothing of it was committed, and the
+    same work may simply run again."""
+
+    default_message = "the database is not available; try again later"
+
+
 class PeerUnavailable(Unavailable):
     """The peer did not answer (connection, TLS, a wrong identity, or timeout)."""
 

@@ -10,6 +10,10 @@ and hands each its own result. Requests that arrive meanwhile queue for the next
 leader. Under no load a batch is a single request and nothing waits; under load the
 batch grows with the queue.
 
+A batch whose transaction the database ended to break a deadlock (PostgreSQL) runs
+again, up to :data:`CONFLICT_ATTEMPTS` times: nothing of it was committed, and a batch
+function keeps no state outside its transaction but counters of unmet demand.
+
 Each request still gets its own outcome: the batch function returns a result or an
 exception per request, so one request's refusal does not fail its neighbours. Only an
 error of the transaction itself (the database went away) reaches every request of it,
@@ -22,7 +26,11 @@ import threading
 from collections.abc import Callable, Sequence
 from typing import Any, Generic, TypeVar
 
+from keystrata.errors import TransactionConflict
+
 T = TypeVar("T")
+#: Times a batch runs when the database ends its transaction to break a deadlock.
+CONFLICT_ATTEMPTS = 3
 R = TypeVar("R")
 
 #: A batch function: one result (or the exception to raise) per request, in order.
@@ -69,12 +77,20 @@ class GroupCommit(Generic[T, R]):
             batch, self._queue = self._queue[: self._max], self._queue[self._max :]
         if not batch:
             return
-        try:
-            results = list(self._run([s.item for s in batch]))
-            if len(results) != len(batch):
-                raise RuntimeError("a batch function returned the wrong number of results")
-        except BaseException as exc:  # the transaction failed: every request of it did
-            results = [exc] * len(batch)
+        items = [s.item for s in batch]
+        for attempt in range(1, CONFLICT_ATTEMPTS + 1):
+            try:
+                results = list(self._run(items))
+                if len(results) != len(batch):
+                    raise RuntimeError("a batch function returned the wrong number of results")
+            except TransactionConflict as exc:
+                # Rolled back whole (a deadlock broken by PostgreSQL): run it again.
+                results = [exc] * len(batch)
+                if attempt < CONFLICT_ATTEMPTS:
+                    continue
+            except BaseException as exc:  # the transaction failed: every request of it did
+                results = [exc] * len(batch)
+            break
         for slot, result in zip(batch, results, strict=True):
             if isinstance(result, BaseException):
                 slot.error = result

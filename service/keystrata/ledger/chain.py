@@ -13,10 +13,11 @@ from typing import Any
 from sqlalchemy import Connection, exc, select
 from sqlalchemy.orm import Session
 
-from keystrata.errors import Unavailable
+from keystrata.errors import TransactionConflict, Unavailable
 from keystrata.ledger import merkle
 from keystrata.ledger.entries import Event, Prepared, prepare, references
 from keystrata.ledger.frontier import Frontier
+from keystrata.storage.db import CONFLICT_STATES
 from keystrata.storage.models import LedgerEntry, LedgerHead
 
 
@@ -76,6 +77,8 @@ def append_many(
         exc.ProgrammingError,
         exc.InternalError,
     ) as err:
+        if getattr(err.orig, "sqlstate", None) in CONFLICT_STATES:
+            raise TransactionConflict() from err  # a deadlock broken: may run again
         raise Unavailable("the audit ledger cannot be written; nothing was changed") from err
 
 

@@ -25,9 +25,12 @@ from sqlalchemy import Engine, create_engine, event, exc
 from sqlalchemy.engine import URL, make_url
 from sqlalchemy.orm import Session, sessionmaker
 
-from keystrata.errors import InvalidInput, Unavailable
+from keystrata.errors import InvalidInput, TransactionConflict, Unavailable
 
 _WRITE = "keystrata_write"
+#: PostgreSQL SQLSTATEs of a transaction the server ended to resolve a conflict
+#: (postgresql.org, "PostgreSQL Error Codes"): deadlock_detected, serialization_failure.
+CONFLICT_STATES = frozenset({"40P01", "40001"})
 #: How long a writer waits for its turn before the database counts as unavailable (the
 #: same as SQLite's busy timeout below).
 WRITE_WAIT_SECONDS = 30.0
@@ -249,6 +252,8 @@ def _translate_db_errors() -> Iterator[None]:
     try:
         yield
     except exc.OperationalError as err:
+        if getattr(err.orig, "sqlstate", None) in CONFLICT_STATES:
+            raise TransactionConflict() from err
         # Connection refused, server gone, database locked past the busy timeout.
         raise Unavailable("the database is not available; try again later") from err
     except exc.InterfaceError as err:
