@@ -16,6 +16,7 @@ import pytest
 ROOT = Path(__file__).resolve().parents[2]
 SERVICE = ROOT / "service" / "keystrata"
 CLIENTS = ROOT / "clients" / "keystrata_client"
+PHYSICS = ROOT / "service" / "keystrata_physics"
 
 #: Areas from the bottom up; an area may import from itself and from any area before it.
 #: Names on one line share a level and must not import each other.
@@ -113,7 +114,33 @@ def test_the_sdk_never_imports_the_service() -> None:
     assert not wrong, wrong
 
 
-@pytest.mark.parametrize("folder", [SERVICE, CLIENTS], ids=["service", "clients"])
+#: Standard-library modules that would give the link model I/O, a clock or randomness.
+IMPURE = ("os", "io", "sys", "socket", "time", "random", "subprocess", "pathlib", "shutil")
+
+
+def _all_imports(path: Path) -> set[str]:
+    found: set[str] = set()
+    for node in ast.walk(ast.parse(path.read_text())):
+        if isinstance(node, ast.ImportFrom) and node.module and node.level == 0:
+            found.add(node.module)
+        elif isinstance(node, ast.Import):
+            found.update(a.name for a in node.names)
+    return found
+
+
+def test_the_link_model_is_pure_and_stands_alone() -> None:
+    wrong = [
+        f"{p.relative_to(PHYSICS)}: {m}"
+        for p in sorted(PHYSICS.rglob("*.py"))
+        for m in _all_imports(p)
+        if m.split(".")[0] in ("keystrata", "keystrata_client", *IMPURE)
+    ]
+    assert not wrong, wrong
+
+
+@pytest.mark.parametrize(
+    "folder", [SERVICE, CLIENTS, PHYSICS], ids=["service", "clients", "physics"]
+)
 def test_no_module_is_much_longer_than_400_lines(folder: Path) -> None:
     long = {}
     for path in sorted(folder.rglob("*.py")):
