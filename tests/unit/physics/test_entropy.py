@@ -41,8 +41,9 @@ def test_shor_preskill_threshold_is_eleven_percent() -> None:
     # Shor and Preskill 2000: 1 - 2 h2(e) = 0 at e = 11.0 %. scipy's brentq finds the root
     # independently of the module's bisection.
     root = brentq(lambda e: 1.0 - 2.0 * float(entropy([e, 1.0 - e], base=2)), 0.01, 0.4, xtol=1e-14)
-    assert SHOR_PRESKILL_THRESHOLD == pytest.approx(root, abs=1e-12)
-    assert round(SHOR_PRESKILL_THRESHOLD, 3) == 0.110
+    threshold = SHOR_PRESKILL_THRESHOLD
+    assert threshold == pytest.approx(root, abs=1e-12)
+    assert round(threshold, 3) == 0.110
 
 
 def test_shor_preskill_rate_values() -> None:
