@@ -6,8 +6,8 @@ of that paper, not with it at hand; every formula is listed here so it can be ch
 
 Protocol. Alice sends ``N`` pulses of intensity ``k`` in ``{mu1, mu2, mu3}`` (``mu1 > mu2
 + mu3``, ``mu2 > mu3 >= 0``; ``mu``, ``nu`` and ``omega`` in :class:`FiniteParams`) with
-probabilities ``p_k``; Alice and Bob each choose the key
-basis X with probability ``q_x`` (the test basis Z otherwise). Key comes from the X-basis
+probabilities ``p_k``; Alice and Bob each choose the key basis X with probability ``q_x``
+(the test basis Z otherwise). Key comes from the X-basis
 detections of all intensities; the Z-basis ones estimate the phase error. ``n_{X,k}`` and
 ``m_{X,k}`` are the X detections and errors at intensity ``k``, ``n_X`` and ``m_X`` their
 sums, likewise for Z. This module computes them as the expected values of the link model
@@ -204,9 +204,9 @@ def _estimate(
     v_z1 = max(0.0, tau1 * (mz_up[1] - mz_lo[2]) / (mu[1] - mu[2]))
 
     if s_x1 > 0.0 and s_z1 > 0.0:
-        ratio = min(0.5, v_z1 / s_z1)
-        correction = _gamma(params.eps_sec / EPS_SPLIT, ratio, s_z1, s_x1) if finite else 0.0
-        phi_x = min(0.5, ratio + correction)
+        z_error = min(0.5, v_z1 / s_z1)
+        correction = _gamma(params.eps_sec / EPS_SPLIT, z_error, s_z1, s_x1) if finite else 0.0
+        phi_x = min(0.5, z_error + correction)
     else:
         phi_x = 0.5
     # With no detection at all the error rate is 0/0; its limit for a faint signal is e_d.
