@@ -175,10 +175,11 @@ def hufnagel_valley_cn2(
 
 
 #: The shortest height scale of the profile (its ground layer), and the number of
-#: Simpson intervals over u = ln(1 + h / scale): steps of 0.3 % of h + 100 m, which
-#: resolve each exponential of the profile (tests compare with scipy's adaptive quad).
+#: Simpson intervals over u = ln(1 + h / scale): steps of about 1.5 % of h + 100 m up to
+#: 20 km, which resolve each exponential of the profile to about 1e-9 (the tests compare
+#: with scipy's adaptive quad) at half a millisecond a call.
 _CN2_SCALE_M = 100.0
-_CN2_INTERVALS = 2000
+_CN2_INTERVALS = 400
 
 
 def _cn2_integral(
@@ -241,9 +242,10 @@ def fried_parameter_m(
     return math.pow(0.423 * k * k / math.cos(math.radians(zenith)) * integral, -0.6)
 
 
-#: Simpson intervals for the on-axis intensity integral, in t with x = t^6 up to x = 60.
-_SPREAD_INTERVALS = 2000
-_SPREAD_T_MAX = 60.0 ** (1.0 / 6.0)
+#: Simpson intervals for the on-axis intensity integral, in t with x = t^6, up to where
+#: the exponent reaches 60 (the integrand is then below 1e-26 of its scale).
+_SPREAD_INTERVALS = 400
+_SPREAD_EXPONENT = 60.0
 
 
 def turbulence_factor(
@@ -315,4 +317,7 @@ def turbulence_factor(
         t5 = t**5
         return 6.0 * t5 * math.exp(-t5 * t - c * t5)
 
-    return min(1.0, _simpson(integrand, 0.0, _SPREAD_T_MAX, _SPREAD_INTERVALS))
+    t_max = math.pow(_SPREAD_EXPONENT, 1.0 / 6.0)
+    if c > 0.0:
+        t_max = min(t_max, math.pow(_SPREAD_EXPONENT / c, 0.2))
+    return min(1.0, _simpson(integrand, 0.0, t_max, _SPREAD_INTERVALS))

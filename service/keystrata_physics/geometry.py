@@ -123,7 +123,8 @@ def look(station: Site, platform: Site) -> Look:
 
     Both positions go to Earth-centred vectors (``ecef_m``); with d = platform - station
     and the station's local unit vectors up (radial), east and north, elevation =
-    asin(d . up / |d|) and azimuth = atan2(d . east, d . north), clockwise from north.
+    asin(d . up / |d|) (evaluated as an atan2) and azimuth = atan2(d . east, d . north),
+    clockwise from north.
     Spherical Earth, no refraction. The elevation is negative when the platform is below
     the station's horizontal plane; the azimuth of a platform straight overhead is 0.
 
@@ -142,7 +143,9 @@ def look(station: Site, platform: Site) -> Look:
     up = dx * cos_lat * cos_lon + dy * cos_lat * sin_lon + dz * sin_lat
     east = -dx * sin_lon + dy * cos_lon
     north = -dx * sin_lat * cos_lon - dy * sin_lat * sin_lon + dz * cos_lat
-    elevation = math.degrees(math.asin(max(-1.0, min(1.0, up / distance))))
+    # atan2 of the vertical over the horizontal part is asin(d . up / |d|) without the
+    # loss of digits asin has next to the zenith.
+    elevation = math.degrees(math.atan2(up, math.hypot(east, north)))
     azimuth = math.degrees(math.atan2(east, north)) % 360.0
     return Look(slant_range_m=distance, elevation_deg=elevation, azimuth_deg=azimuth)
 
