@@ -184,6 +184,14 @@ class OperatorClient:
         """
         return self._call("GET", "/api/v1/pairs")
 
+    def plan(self, day: str | None = None) -> dict[str, Any]:
+        """Return the node's key-supply plan for UTC ``day`` (YYYY-MM-DD; default today):
+        ``{"node_id", "day", "caution", "links": [...], "pairs": [...]}``. Per link the
+        geometry, link budget, QBER, key rate beside the PLOB bound, expected bits per day
+        and an ``hourly`` list; per pair daily supply against demand, time until empty and
+        the buffer that rides out a cloud spell."""
+        return self._call("GET", "/api/v1/plan", params={"day": day} if day else None)
+
     def deliveries(self) -> dict[str, Any]:
         """Return key delivery accounting at a station: ``{"node_id", "pairs": [...],
         "saes": [...]}`` with keys and bits to masters, to slaves, waiting, expired, and

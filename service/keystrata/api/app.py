@@ -28,6 +28,7 @@ from keystrata.api.routes import (
     node,
     pairs,
     peer,
+    plan,
     registry,
 )
 from keystrata.context import NodeContext
@@ -52,6 +53,7 @@ ROUTERS: tuple[APIRouter, ...] = (
     registry.router,
     links.router,
     pairs.router,
+    plan.router,
     holds.router,
     peer.router,
     etsi.router,

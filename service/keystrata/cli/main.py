@@ -25,6 +25,7 @@ COMMANDS = {
     "pools": "keystrata.cli.remote_cmd:pools",
     "pairs": "keystrata.cli.remote_cmd:pairs",
     "deliveries": "keystrata.cli.remote_cmd:deliveries",
+    "plan": "keystrata.cli.plan_cmd:plan",
     "keys": "keystrata.cli.keys_cmd:keys",
     "audit": "keystrata.cli.audit_cmd:audit",
     "demo": "keystrata.demo.main:demo",

@@ -27,6 +27,7 @@ from keystrata.relay import buffers
 from keystrata.restore import holds
 from keystrata.storage.db import durability_risks
 from keystrata.storage.models import LedgerHead, OutboxMessage, RelayOp
+from keystrata.supply import observed
 
 
 class Families(Collector):
@@ -109,11 +110,28 @@ def _links(ctx: NodeContext) -> list[Metric]:
         "Link key consumed (and destroyed), per link.",
         labels=["link"],
     )
-    for level in pools.pool_levels(ctx):
+    planned = GaugeMetricFamily(
+        "keystrata_link_planned_rate_bps",
+        "The link model's clear-sky secret key rate for now, per link with a profile.",
+        labels=["link"],
+    )
+    ratio = GaugeMetricFamily(
+        "keystrata_link_plan_ratio",
+        "Observed link key rate over the link model's rate for now, per link with a "
+        "profile and a planned rate above zero.",
+        labels=["link"],
+    )
+    levels = pools.pool_levels(ctx)
+    for level in levels:
         available.add_metric([level.link_id], level.bits_available)
         received.add_metric([level.link_id], level.bits_received)
         used.add_metric([level.link_id], level.bits_used)
-    return [available, received, used]
+    for check in observed.plan_checks(ctx, levels):
+        if check.planned_bps is not None:
+            planned.add_metric([check.link_id], check.planned_bps)
+        if check.ratio is not None:
+            ratio.add_metric([check.link_id], check.ratio)
+    return [available, received, used, planned, ratio]
 
 
 def _relay(ctx: NodeContext) -> list[Metric]:

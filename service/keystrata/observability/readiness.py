@@ -18,6 +18,10 @@
 - ``pairs`` (advisory): pairs held by the restore check (restore/holds.py) are
   named; readiness stays 200, since the node still serves its other pairs and a
   restart does not resolve a hold (an operator does).
+- ``links`` (advisory): links whose observed key rate over a whole rate window is far
+  below the link model's plan for now (supply/observed.py) are named with their share
+  of the plan: clouds, pointing trouble or a stopped QKD module. Readiness stays 200;
+  the node serves what key it has and a restart fixes none of these.
 
 Problems are reported in fixed words of our own, never with the database's error text.
 """
@@ -38,6 +42,7 @@ from keystrata.node.lifecycle import check_kek, describe_risks
 from keystrata.restore import holds
 from keystrata.storage.db import durability_risks
 from keystrata.storage.models import LedgerEntry, LedgerHead, NodeMeta
+from keystrata.supply import observed
 
 log = logging.getLogger("keystrata.readiness")
 
@@ -51,7 +56,8 @@ PROBE_EVENT = "readiness.probe"
 #: An advisory check that is not ``ok`` starts with one of these; readiness stays true.
 OVERRIDDEN = "overridden: "
 HELD = "held: "
-ADVISORY = ("durability", "pairs")
+BELOW_PLAN = "below plan: "
+ADVISORY = ("durability", "pairs", "links")
 
 
 class NotReady(Exception):
@@ -76,7 +82,7 @@ class Readiness:
 def _passes(name: str, value: str) -> bool:
     if value == OK:
         return True
-    return name in ADVISORY and value.startswith((OVERRIDDEN, HELD))
+    return name in ADVISORY and value.startswith((OVERRIDDEN, HELD, BELOW_PLAN))
 
 
 def assess(ctx: NodeContext) -> Readiness:
@@ -97,9 +103,12 @@ def assess(ctx: NodeContext) -> Readiness:
             "durability", lambda: _durability(ctx), "the database settings cannot be read"
         )
         checks["pairs"] = _advise("pairs", lambda: _pairs(ctx), "pair holds cannot be read")
+        checks["links"] = _advise(
+            "links", lambda: _links(ctx), "link rates or their plan cannot be read"
+        )
     else:
         checks["kek"] = checks["ledger"] = NOT_CHECKED
-        checks["durability"] = checks["pairs"] = NOT_CHECKED
+        checks["durability"] = checks["pairs"] = checks["links"] = NOT_CHECKED
     return Readiness(checks)
 
 
@@ -128,6 +137,16 @@ def _pairs(ctx: NodeContext) -> str:
     if not held:
         return OK
     return HELD + ", ".join(f"{h.pair_id} ({h.behind} {h.reason})" for h in held)
+
+
+def _links(ctx: NodeContext) -> str:
+    low = [c for c in observed.plan_checks(ctx) if c.far_below]
+    if not low:
+        return OK
+    return BELOW_PLAN + ", ".join(
+        f"{c.link_id} at {100 * (c.ratio or 0.0):.0f} % of plan (clouds, pointing or the module?)"
+        for c in low
+    )
 
 
 def _run(name: str, check: Callable[[], None], problem: str) -> str:

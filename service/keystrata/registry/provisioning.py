@@ -29,6 +29,7 @@ from keystrata.registry.specs import (
     PrincipalChange,
     PrincipalRole,
     PrincipalSpec,
+    check_physical,
     check_pin_kept,
 )
 from keystrata.storage.models import Base, Pair, Principal, QkdLink, RegistryNode
@@ -67,6 +68,7 @@ def to_dict(kind: Kind, row: Any) -> dict[str, Any]:
             "role": row.role,
             "url": row.url,
             "description": row.description,
+            "physical": row.physical,
         }
     elif kind is Kind.LINKS:
         out = {
@@ -74,6 +76,7 @@ def to_dict(kind: Kind, row: Any) -> dict[str, Any]:
             "relay_id": row.relay_id,
             "station_id": row.station_id,
             "description": row.description,
+            "optics": row.optics,
         }
     elif kind is Kind.PAIRS:
         out = {
@@ -271,6 +274,8 @@ def change(ctx: NodeContext, kind: Kind, key: str, change: Change, *, actor: str
                     ],
                 ) from None
             given = {f: v for f, v in policy.model_dump().items() if v != current[f]}
+        if isinstance(change, NodeChange) and "physical" in given:
+            check_physical(row.role, given["physical"])
         if isinstance(change, PrincipalChange):
             check_pin_kept(row.role, change)
         if isinstance(change, PrincipalChange) and "cert_subject" in given:

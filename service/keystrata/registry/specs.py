@@ -14,6 +14,7 @@ from pydantic import BaseModel, ConfigDict, Field, StringConstraints, model_vali
 
 from keystrata.errors import InvalidInput
 from keystrata.ids import ID_PATTERN
+from keystrata_physics import optics as physics
 
 Ident = Annotated[str, StringConstraints(strict=True, pattern=ID_PATTERN)]
 Text = Annotated[str, StringConstraints(strict=True, max_length=1000)]
@@ -56,11 +57,51 @@ class _Input(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
 
 
+#: A physical profile as JSON: a platform (relay), a station's site and sky, or a link's
+#: optics (keystrata_physics.optics); checked by :func:`check_physical`.
+Profile = Annotated[dict[str, Any], Field(max_length=64)]
+
+
+def check_physical(kind: str, values: dict[str, Any] | None) -> None:
+    """Check a physical profile: ``kind`` is ``relay``, ``station`` or ``link``.
+
+    Raises:
+        InvalidInput: an unknown name or a value out of range; the details name the field
+            (``physical.latitude_deg``, ``optics.rx_aperture_m``).
+    """
+    if values is None:
+        return
+    record: Any
+    record, prefix = {
+        "relay": (physics.Platform, "physical"),
+        "station": (physics.StationSky, "physical"),
+        "link": (physics.LinkOptics, "optics"),
+    }[kind]
+    try:
+        physics.from_mapping(record, values)
+    except ValueError as exc:
+        message = str(exc)
+        name = message.split(" ", 1)[0].strip("'")
+        known = set(record.__dataclass_fields__)
+        if message.startswith("unknown field"):
+            name = message.split("'")[1]
+        where = f"{prefix}.{name}" if name in known or message.startswith("unknown") else prefix
+        raise InvalidInput(
+            f"{where}: {message}", details=[{"field": where, "problem": message}]
+        ) from None
+
+
 class NodeSpec(_Input):
     node_id: Ident
     role: NodeRoleIn
     url: Url | None = None
     description: Text = ""
+    physical: Profile | None = None
+
+    @model_validator(mode="after")
+    def _physical_fits_role(self) -> Self:
+        check_physical(self.role.value, self.physical)
+        return self
 
 
 class _Change(_Input):
@@ -79,9 +120,12 @@ class _Change(_Input):
 
 
 class NodeChange(_Change):
+    """Checked against the node's role by the service (the role is in its row)."""
+
     _not_null = ("description",)
     url: Url | None = None
     description: Text | None = None
+    physical: Profile | None = None
 
 
 class LinkSpec(_Input):
@@ -89,17 +133,25 @@ class LinkSpec(_Input):
     relay_id: Ident
     station_id: Ident
     description: Text = ""
+    optics: Profile | None = None
 
     @model_validator(mode="after")
     def _distinct_ends(self) -> Self:
         if self.relay_id == self.station_id:
             raise ValueError("relay_id and station_id must name two different nodes")
+        check_physical("link", self.optics)
         return self
 
 
 class LinkChange(_Change):
     _not_null = ("description",)
     description: Text | None = None
+    optics: Profile | None = None
+
+    @model_validator(mode="after")
+    def _optics(self) -> Self:
+        check_physical("link", self.optics)
+        return self
 
 
 class PairPolicy(_Input):

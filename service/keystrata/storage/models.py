@@ -88,6 +88,10 @@ class RegistryNode(_Lifecycle, Base):
     role: Mapped[str] = mapped_column(String(16))
     url: Mapped[str | None] = mapped_column(String(255), comment="base HTTPS URL of the node")
     description: Mapped[str] = mapped_column(Text, default="")
+    physical: Mapped[dict[str, Any] | None] = mapped_column(
+        JSON(none_as_null=True),
+        comment="JSON: platform (relay) or station position and sky, for the link model",
+    )
 
 
 class QkdLink(_Lifecycle, Base):
@@ -97,6 +101,10 @@ class QkdLink(_Lifecycle, Base):
     relay_id: Mapped[str] = mapped_column(ForeignKey("registry_node.node_id"))
     station_id: Mapped[str] = mapped_column(ForeignKey("registry_node.node_id"))
     description: Mapped[str] = mapped_column(Text, default="")
+    optics: Mapped[dict[str, Any] | None] = mapped_column(
+        JSON(none_as_null=True),
+        comment="JSON: transmitter, receiver and protocol of the link, for the link model",
+    )
 
 
 class Pair(_Lifecycle, Base):

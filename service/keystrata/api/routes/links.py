@@ -20,6 +20,7 @@ from keystrata.links import ingest, pools
 from keystrata.links.blocks import BlockIn, decode_batch
 from keystrata.registry.principals import Caller
 from keystrata.registry.specs import PrincipalRole
+from keystrata.supply import observed
 
 router = APIRouter(prefix="/api/v1/links", tags=["link key"])
 
@@ -62,6 +63,10 @@ class PoolAnswer(BaseModel):
     rate_bps: float
     window_seconds: int
     last_block_at: datetime | None
+    planned_rate_bps: float | None = Field(
+        description="the link model's clear-sky rate for now; null without a profile"
+    )
+    plan_ratio: float | None = Field(description="rate_bps / planned_rate_bps")
 
 
 class PoolsAnswer(BaseModel):
@@ -164,7 +169,19 @@ async def push_blocks(link_id: str, request: Request, caller: Module) -> dict[st
 )
 def list_pools(request: Request, _: Reader) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx
-    return {"node_id": ctx.node_id, "pools": [asdict(p) for p in pools.pool_levels(ctx)]}
+    return {"node_id": ctx.node_id, "pools": _with_plan(ctx, pools.pool_levels(ctx))}
+
+
+def _with_plan(ctx: NodeContext, levels: list[pools.PoolLevel]) -> list[dict[str, Any]]:
+    checks = {c.link_id: c for c in observed.plan_checks(ctx, levels)}
+    return [
+        asdict(level)
+        | {
+            "planned_rate_bps": checks[level.link_id].planned_bps,
+            "plan_ratio": checks[level.link_id].ratio,
+        }
+        for level in levels
+    ]
 
 
 @router.get(
@@ -176,4 +193,4 @@ def list_pools(request: Request, _: Reader) -> dict[str, Any]:
 )
 def get_pool(link_id: str, request: Request, _: Reader) -> dict[str, Any]:
     ctx: NodeContext = request.app.state.ctx
-    return asdict(pools.pool_levels(ctx, link_id)[0])
+    return _with_plan(ctx, pools.pool_levels(ctx, link_id))[0]
