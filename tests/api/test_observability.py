@@ -52,6 +52,8 @@ TYPES = {
     "keystrata_link_key_available_bits": "gauge",
     "keystrata_link_key_received_bits": "counter",
     "keystrata_link_key_used_bits": "counter",
+    "keystrata_link_planned_rate_bps": "gauge",
+    "keystrata_link_plan_ratio": "gauge",
     "keystrata_outbox_pending_messages": "gauge",
     "keystrata_outbox_oldest_pending_age_seconds": "gauge",
     "keystrata_outbox_head_refusals": "gauge",
