@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -36,75 +37,69 @@ def _num(value: float | None, fmt: str) -> str:
     return "-" if value is None else format(value, fmt)
 
 
-def links_table(answer: dict[str, Any]) -> Table:
-    table = Table(title=f"links planned at {answer['node_id']} for {answer['day']} (UTC)")
-    columns = (
-        ("link", "left"),
-        ("protocol", "left"),
-        ("range", "right"),
-        ("elevation", "right"),
-        ("footprint", "right"),
-        ("geometric", "right"),
-        ("total loss", "right"),
-        ("QBER", "right"),
-        ("key rate", "right"),
-        ("PLOB bound", "right"),
-        ("per day", "right"),
-    )
-    for name, justify in columns:
-        table.add_column(name, justify=justify)  # type: ignore[arg-type]
-    for row in answer["links"]:
-        if not row["planned"]:
-            table.add_row(row["link_id"], "not planned: " + "; ".join(row["missing"]))
-            continue
-        qber = row["qber"]
-        spread = row["daily_secret_bits_sd"] or 0.0
-        table.add_row(
-            row["link_id"],
-            row["protocol"],
-            _si(row["slant_range_m"], "m"),
-            _num(row["elevation_deg"], ".1f") + " deg",
-            _si(row["footprint_diameter_m"], "m"),
-            _num(row["geometric_loss_db"], ".1f") + " dB",
-            _num(row["total_loss_db"], ".1f") + " dB",
-            "-" if qber is None else f"{100 * qber:.2f} %",
-            _si(row["secret_key_rate_bps"], "bit/s"),
-            _si(row["plob_bound_bps"], "bit/s"),
-            f"{_si(row['daily_secret_bits'], 'bit')} ± {_si(spread, 'bit')}",
-        )
+def _transposed(title: str, rows: list[dict[str, Any]], key: str, lines: list[Line]) -> Table:
+    """One column per link or pair, one line per figure: fits 80 columns for a few."""
+    table = Table(title=title)
+    table.add_column("")
+    for row in rows:
+        table.add_column(row[key], justify="right")
+    for label, show in lines:
+        cells = [show(row) if row["planned"] else "-" for row in rows]
+        table.add_row(label, *cells)
+    missing = [", ".join(row["missing"]) if not row["planned"] else "" for row in rows]
+    if any(missing):
+        table.add_row("missing", *missing)
     return table
+
+
+Line = tuple[str, Callable[[dict[str, Any]], str]]
+
+LINK_LINES: list[Line] = [
+    ("protocol", lambda r: str(r["protocol"])),
+    ("slant range", lambda r: _si(r["slant_range_m"], "m")),
+    ("elevation", lambda r: _num(r["elevation_deg"], ".1f") + " deg"),
+    ("footprint", lambda r: _si(r["footprint_diameter_m"], "m")),
+    ("geometric loss", lambda r: _num(r["geometric_loss_db"], ".1f") + " dB"),
+    ("total loss", lambda r: _num(r["total_loss_db"], ".1f") + " dB"),
+    ("QBER", lambda r: "-" if r["qber"] is None else f"{100 * r['qber']:.2f} %"),
+    ("key rate (best hour)", lambda r: _si(r["secret_key_rate_bps"], "bit/s")),
+    ("PLOB bound", lambda r: _si(r["plob_bound_bps"], "bit/s")),
+    ("below the bound", lambda r: _num(r["below_plob_db"], ".1f") + " dB"),
+    ("expected per day", lambda r: _si(r["daily_secret_bits"], "bit")),
+    ("spread (1 sd)", lambda r: _si(r["daily_secret_bits_sd"], "bit")),
+]
+
+
+def _until_empty(r: dict[str, Any]) -> str:
+    if r["time_until_empty_s"] is None and r["ready_bits"] is not None and r["daily_demand_bits"]:
+        return "never (supply keeps up)"
+    return _duration(r["time_until_empty_s"])
+
+
+PAIR_LINES: list[Line] = [
+    ("supply per day", lambda r: _si(r["daily_supply_bits"], "bit")),
+    (
+        "demand per day",
+        lambda r: (
+            "unknown"
+            if r["daily_demand_bits"] is None
+            else f"{_si(r['daily_demand_bits'], 'bit')} ({r['demand_source']})"
+        ),
+    ),
+    ("surplus per day", lambda r: _si(r["daily_surplus_bits"], "bit")),
+    ("until empty", _until_empty),
+    ("buffer for a spell", lambda r: _si(r["buffer_bits_needed"], "bit")),
+]
+
+
+def links_table(answer: dict[str, Any]) -> Table:
+    title = f"links planned at {answer['node_id']} for {answer['day']} (UTC)"
+    return _transposed(title, answer["links"], "link_id", LINK_LINES)
 
 
 def pairs_table(answer: dict[str, Any]) -> Table:
-    table = Table(title=f"pairs planned at {answer['node_id']} for {answer['day']} (UTC)")
-    for name in (
-        "pair",
-        "supply per day",
-        "demand per day",
-        "surplus",
-        "until empty",
-        "buffer for a spell",
-    ):
-        table.add_column(name, justify="left" if name == "pair" else "right")
-    for row in answer["pairs"]:
-        if not row["planned"]:
-            table.add_row(row["pair_id"], "not planned: " + "; ".join(row["missing"]))
-            continue
-        demand = row["daily_demand_bits"]
-        source = f" ({row['demand_source']})" if row["demand_source"] else ""
-        table.add_row(
-            row["pair_id"],
-            _si(row["daily_supply_bits"], "bit"),
-            ("-" if demand is None else _si(demand, "bit")) + source,
-            _si(row["daily_surplus_bits"], "bit"),
-            "never"
-            if row["time_until_empty_s"] is None
-            and demand is not None
-            and row["ready_bits"] is not None
-            else _duration(row["time_until_empty_s"]),
-            _si(row["buffer_bits_needed"], "bit"),
-        )
-    return table
+    title = f"pairs planned at {answer['node_id']} for {answer['day']} (UTC)"
+    return _transposed(title, answer["pairs"], "pair_id", PAIR_LINES)
 
 
 @click.command("plan")

@@ -214,15 +214,27 @@ def _show(
 
 def pools_table(answer: dict[str, Any]) -> Table:
     table = Table(title=f"link key pools at {answer['node_id']}")
-    for col in ("link", "peer", "available (bit)", "used (bit)", "rate (bit/s)", "last block"):
-        table.add_column(col, justify="right" if "bit" in col else "left")
+    for col in (
+        "link",
+        "peer",
+        "available (bit)",
+        "used (bit)",
+        "rate (bit/s)",
+        "plan (bit/s)",
+        "of plan",
+        "last block",
+    ):
+        table.add_column(col, justify="right" if "bit" in col or col == "of plan" else "left")
     for p in answer["pools"]:
+        planned, ratio = p.get("planned_rate_bps"), p.get("plan_ratio")
         table.add_row(
             p["link_id"],
             p["peer_node_id"],
             f"{p['bits_available']:,}",
             f"{p['bits_used']:,}",
             f"{p['rate_bps']:,.0f}",
+            "-" if planned is None else f"{planned:,.0f}",
+            "-" if ratio is None else f"{100 * ratio:.0f} %",
             p["last_block_at"] or "-",
         )
     return table
