@@ -1,7 +1,9 @@
 """Emulators of the equipment around keystrata nodes, for demos and tests.
 
-``links``: the QKD modules of relay-station QKD links (``keystrata-links``), driven by
-the daylight-and-clouds rate model in ``model``.
+``links``: the QKD modules of relay-station QKD links (``keystrata-links``). A link runs
+in fixed-rate mode (``model``: a base rate shaped by a daylight curve and clouds) or in
+physical mode (``physical``: rate, QBER and clouds from the link's optical profile
+through ``keystrata_physics``, as the operator's plan computes them).
 
 ``encryptors``: pairs of encryptors rekeying over ETSI GS QKD 014
 (``keystrata-encryptors``; TOML file in ``encryptor_config``, command in
@@ -20,9 +22,11 @@ from keystrata_client.emulators.model import (
     LinkModel,
     LinkState,
     ModelParams,
+    RateModel,
     TimeScale,
     Weather,
 )
+from keystrata_client.emulators.physical import PhysicalLinkModel, PhysicalProfile
 
 __all__ = [
     "ConfigError",
@@ -34,6 +38,9 @@ __all__ = [
     "LinkState",
     "LinkStats",
     "ModelParams",
+    "PhysicalLinkModel",
+    "PhysicalProfile",
+    "RateModel",
     "TimeScale",
     "Weather",
     "load_config",

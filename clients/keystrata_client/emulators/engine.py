@@ -1,11 +1,13 @@
 """Link emulator engine: the QKD modules of relay-station QKD links, pushing key to both ends.
 
-For every link, the emulator integrates the modelled secret key rate (see ``model.py``)
-over real time, cuts a block of ``block_bytes`` random bytes (``os.urandom``, a version
-4 UUID as block ID) each time enough bits have gathered, and queues the IDENTICAL block
-for both ends of the link: the relay node and the station node. One sender per end pushes
-its queue in batches over mutual TLS, concurrently with the other end.
+For every link, the emulator integrates the modelled secret key rate over real time (a
+fixed-rate link: ``model.py``; a physical one, from its optical profile: ``physical.py``),
+cuts a block of ``block_bytes`` random bytes (``os.urandom``, a version 4 UUID as block
+ID) each time enough bits have gathered, and queues the IDENTICAL block for both ends of
+the link: the relay node and the station node. One sender per end pushes its queue in
+batches over mutual TLS, concurrently with the other end.
 
+Blocks carry the QBER the model gives for the moment they are made (see those modules).
 Rate is in bits per real second. ``time_scale`` speeds up the sky (day, night, clouds),
 not the detectors, so the pools at the nodes fill at the rate the summary line shows.
 
@@ -43,7 +45,8 @@ from keystrata_client._errors import ApiError, KeystrataClientError
 from keystrata_client._module import AsyncModuleClient
 from keystrata_client._tls import TlsIdentity
 from keystrata_client.emulators.config import LinkSpec
-from keystrata_client.emulators.model import LinkModel, TimeScale, draw_qber
+from keystrata_client.emulators.model import LinkState, RateModel, TimeScale, draw_qber
+from keystrata_client.emulators.physical import PhysicalProfile, rate_model
 
 __all__ = ["ENDS", "EndStats", "LinkEmulator", "LinkSpec", "LinkStats"]
 
@@ -75,16 +78,27 @@ class EndStats:
 
 @dataclass
 class LinkStats:
-    """Counters and current model state of one link (a snapshot when read)."""
+    """Counters and current model state of one link (a snapshot when read).
+
+    ``rate_bps`` is the rate emulated now; ``planned_rate_bps`` and ``planned_qber`` the
+    clear-sky figures (on station); ``mode`` is ``"fixed"`` or ``"physical"``, and
+    ``sun_elevation_deg`` (the sun over the station) is ``None`` in fixed-rate mode. The
+    other model fields are those of :class:`~keystrata_client.emulators.model.LinkState`.
+    """
 
     link_id: str
     relay: EndStats
     station: EndStats
+    mode: str = "fixed"
     blocks_generated: int = 0
     bits_generated: int = 0
     blocks_discarded: int = 0
     rate_bps: float = 0.0
+    planned_rate_bps: float = 0.0
+    planned_qber: float | None = None
     weather: str = "clear"
+    on_station: bool = True
+    sun_elevation_deg: float | None = None
     daylight: float = 1.0
     emulated_at: datetime | None = None
 
@@ -101,7 +115,7 @@ def _default_client(url: str, identity: TlsIdentity | None) -> AsyncModuleClient
 @dataclass
 class _Link:
     spec: LinkSpec
-    model: LinkModel
+    model: RateModel
     qber_rng: random.Random
     stats: LinkStats
     carry_bits: float = 0.0
@@ -172,9 +186,10 @@ class LinkEmulator:
 
     def _make_link(self, spec: LinkSpec) -> _Link:
         stats = LinkStats(spec.link_id, EndStats(spec.relay_url), EndStats(spec.station_url))
+        stats.mode = "physical" if isinstance(spec.model, PhysicalProfile) else "fixed"
         link = _Link(
             spec=spec,
-            model=LinkModel(spec.model, seed=spec.seed, start=self.scale.start),
+            model=rate_model(spec.model, seed=spec.seed, start=self.scale.start),
             # QBER values are reported figures, not key: a seeded PRNG keeps runs repeatable.
             qber_rng=random.Random(spec.seed + 1),  # noqa: S311
             stats=stats,
@@ -195,21 +210,31 @@ class LinkEmulator:
 
     # -- generating ----------------------------------------------------------------------
 
-    def _observe(self, link: _Link, t: float) -> float:
+    def _observe(self, link: _Link, t: float) -> LinkState:
         state = link.model.state_at(t)
         stats = link.stats
-        if stats.weather != state.weather.value and stats.emulated_at is not None:
-            logger.info("link %s: weather now %s", link.spec.link_id, state.weather.value)
+        if stats.emulated_at is not None:
+            if stats.weather != state.weather.value:
+                logger.info("link %s: weather now %s", link.spec.link_id, state.weather.value)
+            if stats.on_station != state.on_station:
+                where = "on" if state.on_station else "off"
+                logger.info("link %s: platform now %s station", link.spec.link_id, where)
         stats.rate_bps = state.rate_bps
+        stats.planned_rate_bps = state.planned_rate_bps
+        stats.planned_qber = state.planned_qber
         stats.weather = state.weather.value
+        stats.on_station = state.on_station
+        stats.sun_elevation_deg = state.sun_elevation_deg
         stats.daylight = state.daylight
         stats.emulated_at = datetime.fromtimestamp(t, UTC)
-        return state.rate_bps
+        return state
 
     def _generate(self, link: _Link, dt: float) -> None:
         """Add ``dt`` real seconds of key at the current rate; queue completed blocks."""
         spec, stats = link.spec, link.stats
         link.carry_bits += stats.rate_bps * dt
+        # A CV link has no QBER in the model: its blocks say 0.0 (physical.py).
+        qber = stats.planned_qber if stats.planned_qber is not None else 0.0
         block_bits = 8 * spec.block_bytes
         made = False
         while link.carry_bits >= block_bits:
@@ -219,7 +244,7 @@ class LinkEmulator:
                 continue
             block = LinkBlock.new(
                 self._urandom(spec.block_bytes),
-                qber=draw_qber(link.qber_rng, spec.model.qber_mean, spec.model.qber_sd),
+                qber=draw_qber(link.qber_rng, qber, spec.model.qber_sd),
                 epsilon=spec.epsilon,
                 produced_at=self._now(),
             )

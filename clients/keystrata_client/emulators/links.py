@@ -5,7 +5,10 @@
 Reads the TOML file described in ``config.py``, pushes identical link key blocks to the
 relay and station end of every link (see ``engine.py``), and prints one summary line per
 link every ``summary_seconds``: emulated time, weather, rate, blocks made and, per end,
-blocks acknowledged, duplicates, errors and backlog. Never key bytes. Ctrl-C (or
+blocks acknowledged, duplicates, errors and backlog. A link in physical mode shows
+instead of the daylight factor whether the platform is on station, the sun's elevation
+over the station, and the rate emulated beside the planned (clear-sky) rate and QBER.
+Never key bytes. Ctrl-C (or
 SIGTERM) stops generating, drains the queues for up to ``drain_seconds`` and exits;
 a second Ctrl-C exits at once.
 
@@ -41,6 +44,19 @@ def _end_text(name: str, end: EndStats) -> str:
     )
 
 
+def _sky_text(stats: LinkStats) -> str:
+    rate = f"{stats.rate_bps / 1000:8.2f} kbit/s"
+    if stats.mode != "physical":
+        return f"{stats.weather:<5} {rate} (daylight {stats.daylight:4.2f})"
+    station = "on station" if stats.on_station else "off station"
+    sun = "-" if stats.sun_elevation_deg is None else f"{stats.sun_elevation_deg:+5.1f}"
+    qber = "-" if stats.planned_qber is None else f"{100 * stats.planned_qber:.2f} %"
+    return (
+        f"{stats.weather:<5} {station:<11} sun {sun} deg {rate} "
+        f"(planned {stats.planned_rate_bps / 1000:.2f} kbit/s, QBER {qber})"
+    )
+
+
 def summary_line(stats: LinkStats) -> str:
     """Return one human-readable line for a link's stats (no key material exists in it)."""
     when = stats.emulated_at.strftime("%Y-%m-%d %H:%M") if stats.emulated_at else "-"
@@ -48,8 +64,7 @@ def summary_line(stats: LinkStats) -> str:
     if stats.blocks_discarded:
         made += f" discarded {stats.blocks_discarded}"
     return (
-        f"[{when}Z] {stats.link_id:<18} {stats.weather:<5} "
-        f"{stats.rate_bps / 1000:8.2f} kbit/s (daylight {stats.daylight:4.2f}) {made} | "
+        f"[{when}Z] {stats.link_id:<18} {_sky_text(stats)} {made} | "
         f"{_end_text('relay', stats.relay)} | {_end_text('station', stats.station)}"
     )
 

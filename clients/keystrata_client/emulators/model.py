@@ -1,10 +1,19 @@
-"""Rate model of an emulated free-space QKD link: daylight and clouds.
+"""Rate model of an emulated free-space QKD link in fixed-rate mode: daylight and clouds.
 
-Pure: no I/O, no wall clock. Given the parameters, a seed and a start time, every answer
-for a time ``t`` is fixed, whatever order the questions come in. Times are emulated
-POSIX seconds (seconds since 1970-01-01T00:00:00Z on the emulated clock).
+The emulator has two modes (see ``config.py`` for the file format):
 
-The model, in full::
+- **fixed-rate** (this module): a link's rate is ``base_rate_bps`` shaped by a daylight
+  curve and clouds, and its QBER is drawn around ``qber_mean``. Tests and simple runs
+  use it; nothing in it is physics.
+- **physical** (``physical.py``): the link's optical profile goes through the link model
+  of ``keystrata_physics``, so rate and QBER follow the sun, the geometry and the sky.
+
+Both are pure: no I/O, no wall clock. Given the parameters, a seed and a start time,
+every answer for a time ``t`` is fixed, whatever order the questions come in. Times are
+emulated POSIX seconds (seconds since 1970-01-01T00:00:00Z on the emulated clock). Both
+draw their clouds with :class:`WeatherChain` and answer with a :class:`LinkState`.
+
+The fixed-rate model, in full::
 
     rate(t) = base_rate_bps * daylight(t) * weather(t)
 
@@ -32,8 +41,10 @@ from __future__ import annotations
 import bisect
 import math
 import random
+from collections.abc import Callable
 from dataclasses import dataclass
 from enum import StrEnum
+from typing import Protocol
 
 SECONDS_PER_DAY = 86_400.0
 
@@ -45,9 +56,87 @@ class Weather(StrEnum):
     CLOUD = "cloud"
 
 
+SpellLength = Callable[[Weather, float], float]
+"""``(state, begin)`` -> length in seconds of a spell of ``state`` that begins at
+``begin``: ``inf`` for ever, 0 for a spell that does not happen."""
+
+
+class WeatherChain:
+    """Clear and cloud spells in turn from ``start``, drawn lazily as far as asked.
+
+    ``spell`` gives each spell's length when it begins (it draws from its own seeded
+    source, so the chain is fixed by that source and ``start``). A spell of length 0 is
+    skipped: the state before it goes on with a fresh spell. Memory grows with one float
+    per change of weather.
+
+    Args:
+        start: emulated POSIX second at which the chain starts.
+        first: the state at ``start``.
+        spell: the spell lengths (see :data:`SpellLength`).
+    """
+
+    def __init__(self, start: float, first: Weather, spell: SpellLength) -> None:
+        self.start = start
+        self._spell = spell
+        #: _changes[i] is when _states[i] begins; _states alternate.
+        self._changes: list[float] = [start]
+        self._states: list[Weather] = [first]
+        self._horizon = start + spell(first, start)
+
+    def _extend(self, t: float) -> None:
+        while self._horizon <= t:
+            begin = self._horizon
+            state = Weather.CLOUD if self._states[-1] is Weather.CLEAR else Weather.CLEAR
+            length = self._spell(state, begin)
+            if length <= 0.0:
+                # A spell that does not happen (a clear chance of 0 at its start): the
+                # state before it goes on.
+                self._horizon = begin + self._spell(self._states[-1], begin)
+                continue
+            self._changes.append(begin)
+            self._states.append(state)
+            self._horizon = begin + length
+
+    def _index(self, t: float) -> int:
+        if t < self.start:
+            raise ValueError("the model starts at its start time; t lies before it")
+        self._extend(t)
+        return bisect.bisect_right(self._changes, t) - 1
+
+    def at(self, t: float) -> tuple[Weather, float]:
+        """Return the weather at ``t`` and when it ends (``inf``: never).
+
+        Raises:
+            ValueError: ``t`` is before ``start``.
+        """
+        i = self._index(t)
+        until = self._changes[i + 1] if i + 1 < len(self._changes) else self._horizon
+        return self._states[i], until
+
+    def time_in(self, t0: float, t1: float) -> dict[Weather, float]:
+        """Return how many seconds of ``[t0, t1)`` are clear and how many cloudy.
+
+        Raises:
+            ValueError: ``t0`` is before ``start`` or ``t1`` < ``t0``.
+        """
+        if t1 < t0:
+            raise ValueError("t1 must not be before t0")
+        i = self._index(t0)
+        self._extend(t1)
+        totals = {Weather.CLEAR: 0.0, Weather.CLOUD: 0.0}
+        while i < len(self._states):
+            begin = max(t0, self._changes[i])
+            end = min(t1, self._changes[i + 1] if i + 1 < len(self._changes) else self._horizon)
+            if begin >= t1:
+                break
+            totals[self._states[i]] += end - begin
+            i += 1
+        return totals
+
+
 @dataclass(frozen=True, slots=True)
 class ModelParams:
-    """Parameters of one link's rate model.
+    """Parameters of one link's fixed-rate model.
 
     Attributes:
         base_rate_bps: secret key rate on a clear night, bits per second.
@@ -91,16 +180,25 @@ class ModelParams:
 
 @dataclass(frozen=True, slots=True)
 class LinkState:
-    """The model's view of a link at time ``t``.
+    """A rate model's view of a link at time ``t``.
 
     Attributes:
         t: emulated POSIX seconds.
-        solar_hour: local mean solar hour, [0, 24).
-        daylight: the daylight factor, [day_factor, 1].
+        solar_hour: local mean solar hour, [0, 24) (at the station in physical mode).
+        daylight: share of the clear-night rate that daylight leaves, [0, 1]: fixed-rate
+            mode, the daylight factor; physical mode, the planned rate over the planned
+            rate under a night sky (1 for CV links, whose receivers filter the sky out).
         weather: clear or cloud.
-        rate_bps: the secret key rate, bits per second.
+        rate_bps: the secret key rate emulated now, bits per second (0 in cloud or off
+            station).
         weather_until: when the current weather ends (emulated POSIX seconds; ``inf``
-            when the sky never clouds).
+            when the sky never changes again).
+        planned_rate_bps: the rate on a clear sky with the platform on station.
+        planned_qber: the QBER on a clear sky, before the noise of ``qber_sd``: fixed-rate
+            mode ``qber_mean``; physical mode the link model's, ``None`` for CV links and
+            while the model makes no key.
+        sun_elevation_deg: the sun over the station (physical mode; ``None`` otherwise).
+        on_station: whether the platform is on station (always true in fixed-rate mode).
     """
 
     t: float
@@ -109,6 +207,25 @@ class LinkState:
     weather: Weather
     rate_bps: float
     weather_until: float
+    planned_rate_bps: float
+    planned_qber: float | None
+    sun_elevation_deg: float | None
+    on_station: bool
+
+
+class RateModel(Protocol):
+    """What the emulator asks of a link's rate model, in either mode."""
+
+    @property
+    def start(self) -> float: ...
+
+    def state_at(self, t: float) -> LinkState: ...
+
+    def rate_at(self, t: float) -> float: ...
+
+    def weather_at(self, t: float) -> Weather: ...
+
+    def weather_time(self, t0: float, t1: float) -> dict[Weather, float]: ...
 
 
 def solar_hour(t: float, longitude_deg: float = 0.0) -> float:
@@ -134,7 +251,8 @@ def draw_qber(rng: random.Random, mean: float, sd: float) -> float:
 
 
 class LinkModel:
-    """The rate model of one link, deterministic given ``params``, ``seed`` and ``start``.
+    """The fixed-rate model of one link, deterministic given ``params``, ``seed`` and
+    ``start``.
 
     The weather chain is drawn lazily from ``random.Random(seed)`` as far as the latest
     time asked about, so memory grows with one float per weather change.
@@ -148,33 +266,22 @@ class LinkModel:
     def __init__(self, params: ModelParams, *, seed: int, start: float) -> None:
         self.params = params
         self.seed = seed
-        self.start = start
         # Weather is for the emulation, not for keys: a seeded PRNG is what we want.
         self._rng = random.Random(seed)  # noqa: S311
         clouds = params.mean_cloud_s > 0
         p_clear = stationary_clear_fraction(params.mean_clear_s, params.mean_cloud_s)
         first = Weather.CLEAR if not clouds or self._rng.random() < p_clear else Weather.CLOUD
-        #: _changes[i] is when _states[i] begins; _states alternate.
-        self._changes: list[float] = [start]
-        self._states: list[Weather] = [first]
-        self._horizon = math.inf if not clouds else start + self._holding(first)
+        self._chain = WeatherChain(start, first, self._holding)
 
-    def _holding(self, state: Weather) -> float:
+    @property
+    def start(self) -> float:
+        return self._chain.start
+
+    def _holding(self, state: Weather, begin: float) -> float:
+        if self.params.mean_cloud_s <= 0:
+            return math.inf
         mean = self.params.mean_clear_s if state is Weather.CLEAR else self.params.mean_cloud_s
         return self._rng.expovariate(1.0 / mean)
-
-    def _extend(self, t: float) -> None:
-        while self._horizon <= t:
-            state = Weather.CLOUD if self._states[-1] is Weather.CLEAR else Weather.CLEAR
-            self._changes.append(self._horizon)
-            self._states.append(state)
-            self._horizon += self._holding(state)
-
-    def _index(self, t: float) -> int:
-        if t < self.start:
-            raise ValueError("the model starts at its start time; t lies before it")
-        self._extend(t)
-        return bisect.bisect_right(self._changes, t) - 1
 
     def weather_at(self, t: float) -> Weather:
         """Return the weather at ``t``.
@@ -182,7 +289,7 @@ class LinkModel:
         Raises:
             ValueError: ``t`` is before ``start``.
         """
-        return self._states[self._index(t)]
+        return self._chain.at(t)[0]
 
     def daylight_at(self, t: float) -> float:
         """Return the daylight factor at ``t`` (defined for any ``t``)."""
@@ -205,17 +312,20 @@ class LinkModel:
         Raises:
             ValueError: ``t`` is before ``start``.
         """
-        i = self._index(t)
-        weather = self._states[i]
-        until = self._changes[i + 1] if i + 1 < len(self._changes) else self._horizon
+        weather, until = self._chain.at(t)
         daylight = self.daylight_at(t)
+        planned = self.params.base_rate_bps * daylight
         return LinkState(
             t=t,
             solar_hour=solar_hour(t, self.params.longitude_deg),
             daylight=daylight,
             weather=weather,
-            rate_bps=0.0 if weather is Weather.CLOUD else self.params.base_rate_bps * daylight,
+            rate_bps=0.0 if weather is Weather.CLOUD else planned,
             weather_until=until,
+            planned_rate_bps=planned,
+            planned_qber=self.params.qber_mean,
+            sun_elevation_deg=None,
+            on_station=True,
         )
 
     def weather_time(self, t0: float, t1: float) -> dict[Weather, float]:
@@ -224,19 +334,7 @@ class LinkModel:
         Raises:
             ValueError: ``t0`` is before ``start`` or ``t1`` < ``t0``.
         """
-        if t1 < t0:
-            raise ValueError("t1 must not be before t0")
-        i = self._index(t0)
-        self._extend(t1)
-        totals = {Weather.CLEAR: 0.0, Weather.CLOUD: 0.0}
-        while i < len(self._states):
-            begin = max(t0, self._changes[i])
-            end = min(t1, self._changes[i + 1] if i + 1 < len(self._changes) else self._horizon)
-            if begin >= t1:
-                break
-            totals[self._states[i]] += end - begin
-            i += 1
-        return totals
+        return self._chain.time_in(t0, t1)
 
 
 @dataclass(frozen=True, slots=True)
