@@ -1,4 +1,6 @@
-"""The link emulator's rate model (``keystrata_client.emulators.model``), without I/O.
+"""The link emulator's fixed-rate model (``keystrata_client.emulators.model``) and the
+weather chain both modes share, without I/O (physical mode:
+``test_link_emulator_physical.py``).
 
 The model is ours and its daylight curve is a modelling assumption (see the module's
 docstring); these tests check that the code does what that docstring says. The one
@@ -21,6 +23,7 @@ from keystrata_client.emulators.model import (
     ModelParams,
     TimeScale,
     Weather,
+    WeatherChain,
     daylight_factor,
     draw_qber,
     solar_hour,
@@ -157,6 +160,38 @@ def test_mean_spell_lengths_match_the_parameters() -> None:
         5 * HOUR, rel=0.05
     )
     assert sum(spells[Weather.CLOUD]) / len(spells[Weather.CLOUD]) == pytest.approx(HOUR, rel=0.05)
+
+
+def test_a_spell_that_does_not_happen_lets_the_state_before_it_go_on() -> None:
+    # Clear spells of 0 s before 10 000 s (a clear chance of 0, as physical mode gives
+    # them), 100 s after; cloud spells of 1 000 s.
+    def spell(state: Weather, begin: float) -> float:
+        if state is Weather.CLOUD:
+            return 1000.0
+        return 0.0 if begin < 10_000.0 else 100.0
+
+    chain = WeatherChain(0.0, Weather.CLOUD, spell)
+    assert chain.at(500.0) == (Weather.CLOUD, 10_000.0)
+    assert chain.time_in(0.0, 10_000.0) == {Weather.CLEAR: 0.0, Weather.CLOUD: 10_000.0}
+    assert chain.at(10_050.0) == (Weather.CLEAR, 10_100.0)
+    assert chain.at(10_100.0) == (Weather.CLOUD, 11_100.0)
+
+
+def test_state_reports_the_planned_figures_in_fixed_rate_mode() -> None:
+    params = ModelParams(base_rate_bps=8000.0, mean_clear_s=HOUR, mean_cloud_s=HOUR)
+    model = LinkModel(params, seed=3, start=MIDNIGHT)
+    seen = set()
+    for i in range(500):
+        state = model.state_at(MIDNIGHT + i * 173.0)
+        seen.add(state.weather)
+        assert state.planned_rate_bps == pytest.approx(8000.0 * state.daylight)
+        assert state.rate_bps == (state.planned_rate_bps if state.weather is Weather.CLEAR else 0)
+        assert (state.planned_qber, state.sun_elevation_deg, state.on_station) == (
+            0.02,
+            None,
+            True,
+        )
+    assert seen == {Weather.CLEAR, Weather.CLOUD}
 
 
 # -- daylight ----------------------------------------------------------------------------

@@ -65,9 +65,10 @@ class WeatherChain:
     """Clear and cloud spells in turn from ``start``, drawn lazily as far as asked.
 
     ``spell`` gives each spell's length when it begins (it draws from its own seeded
-    source, so the chain is fixed by that source and ``start``). A spell of length 0 is
-    skipped: the state before it goes on with a fresh spell. Memory grows with one float
-    per change of weather.
+    source, once per spell and in time order, so the chain is fixed by that source and
+    ``start`` whatever order the questions come in). A spell of length 0 is skipped: the
+    state before it goes on with a fresh spell, and the end reported for a spell is where
+    the weather really changes. Memory grows with one float per change of weather.
 
     Args:
         start: emulated POSIX second at which the chain starts.
@@ -82,20 +83,32 @@ class WeatherChain:
         self._changes: list[float] = [start]
         self._states: list[Weather] = [first]
         self._horizon = start + spell(first, start)
+        #: Length of the spell that begins at the horizon, once drawn.
+        self._next: float | None = None
+
+    def _settle(self) -> None:
+        """Make the horizon the true end of the last spell: a spell of no length after it
+        lets the last state go on with a fresh spell (a clear chance of 0 at its start)."""
+        while math.isfinite(self._horizon):
+            if self._next is None:
+                following = Weather.CLOUD if self._states[-1] is Weather.CLEAR else Weather.CLEAR
+                self._next = self._spell(following, self._horizon)
+            if self._next > 0.0:
+                return
+            self._next = None
+            self._horizon += self._spell(self._states[-1], self._horizon)
 
     def _extend(self, t: float) -> None:
-        while self._horizon <= t:
-            begin = self._horizon
-            state = Weather.CLOUD if self._states[-1] is Weather.CLEAR else Weather.CLEAR
-            length = self._spell(state, begin)
-            if length <= 0.0:
-                # A spell that does not happen (a clear chance of 0 at its start): the
-                # state before it goes on.
-                self._horizon = begin + self._spell(self._states[-1], begin)
-                continue
-            self._changes.append(begin)
-            self._states.append(state)
-            self._horizon = begin + length
+        while True:
+            self._settle()
+            if self._horizon > t or self._next is None:
+                return
+            self._changes.append(self._horizon)
+            self._states.append(
+                Weather.CLOUD if self._states[-1] is Weather.CLEAR else Weather.CLEAR
+            )
+            self._horizon += self._next
+            self._next = None
 
     def _index(self, t: float) -> int:
         if t < self.start:

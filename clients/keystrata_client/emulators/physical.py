@@ -17,9 +17,14 @@ same model the operator's plan uses, so every number it makes is physically cons
   ``keystrata_physics.availability`` assumes for the plan: cloud spells last
   ``station.mean_cloud_spell_s`` (b) on average, clear spells b p / (1 - p) with p =
   ``station.clear_probability(month, hour)`` at the time the clear spell begins, so in a
-  stretch of constant p the long-run clear share is p. With p = 0 a clear spell does
-  not happen; with p = 1 it lasts at least until the next hour whose p is below 1 (for
-  ever if there is none). The chain starts clear with probability p at the start.
+  stretch of constant p the long-run clear share is p. An hour of p = 0 is always cloud
+  and an hour of p = 1 always clear, as the plan counts them: no clear spell begins at
+  p = 0 and one ends where an hour of p = 0 begins; no cloud spell begins at p = 1 and
+  one ends where an hour of p = 1 begins; a clear spell begun at p = 1 lasts until the
+  next hour whose p is below 1 (for ever if there is none), then as drawn with that
+  hour's p. Elsewhere a spell begun under one hour's p runs on into the next hours, so
+  where the table changes from hour to hour the emulated clear share follows it about
+  one spell late. The chain starts clear with probability p at the start.
 
 QBER of the blocks: the model's (clipped to [0, 0.5]), plus a normal noise of sd
 ``qber_sd`` only when that is given (default 0). While the model makes no key, no block
@@ -144,8 +149,11 @@ class PhysicalLinkModel:
         self._rng = random.Random(seed)  # noqa: S311
         self._points: dict[int, link.LinkPoint] = {}
         station = profile.station
-        self._always_clear = min(min(row) for row in station.clear_sky) >= 1.0
-        self._never_clear = max(max(row) for row in station.clear_sky) <= 0.0
+        chances = {p for row in station.clear_sky for p in row}
+        self._always_clear = chances == {1.0}
+        self._never_clear = chances == {0.0}
+        self._some_zero = 0.0 in chances
+        self._some_one = 1.0 in chances
         look = geometry.look(link.station_site(station), link.platform_site(profile.platform))
         night = link.evaluate(
             profile.optics,
@@ -169,29 +177,37 @@ class PhysicalLinkModel:
         when = _utc(t)
         return self.profile.station.clear_probability(when.month, when.hour)
 
-    def _next_hour_not_clear(self, t: float) -> float:
-        if self._always_clear:
-            return math.inf
-        hour = math.floor(t / SECONDS_PER_HOUR) + 1
-        for k in range(_HOURS_AHEAD):
-            boundary = (hour + k) * SECONDS_PER_HOUR
-            if self.clear_chance(boundary) < 1.0:
+    def _first_hour(self, begin: float, end: float, chance: float | None) -> float:
+        """The first whole UTC hour after ``begin`` and before ``end`` whose clear chance
+        is ``chance`` (``None``: below 1), else ``end``."""
+        hour = math.floor(begin / SECONDS_PER_HOUR) + 1
+        while (boundary := hour * SECONDS_PER_HOUR) < end:
+            p = self.clear_chance(boundary)
+            if p == chance or (chance is None and p < 1.0):
                 return boundary
-        return math.inf
+            hour += 1
+        return end
 
     def _spell(self, state: Weather, begin: float) -> float:
         mean_cloud = self.profile.station.mean_cloud_spell_s
         if state is Weather.CLOUD:
             if self._never_clear:
                 return math.inf
-            return self._rng.expovariate(1.0 / mean_cloud) if mean_cloud > 0 else 0.0
+            if self._some_one and self.clear_chance(begin) >= 1.0:
+                return 0.0
+            end = begin + self._rng.expovariate(1.0 / mean_cloud)
+            return (self._first_hour(begin, end, 1.0) if self._some_one else end) - begin
         p = self.clear_chance(begin)
         if p <= 0.0:
             return 0.0
         if p >= 1.0:
-            until = self._next_hour_not_clear(begin)
-            return until - begin + self._spell(state, until) if math.isfinite(until) else until
-        return self._rng.expovariate((1.0 - p) / (mean_cloud * p))
+            if self._always_clear:
+                return math.inf
+            horizon = begin + _HOURS_AHEAD * SECONDS_PER_HOUR
+            until = self._first_hour(begin, horizon, None)
+            return until - begin + self._spell(state, until) if until < horizon else math.inf
+        end = begin + self._rng.expovariate((1.0 - p) / (mean_cloud * p))
+        return (self._first_hour(begin, end, 0.0) if self._some_zero else end) - begin
 
     def weather_at(self, t: float) -> Weather:
         """Return the weather at ``t``.
