@@ -18,7 +18,7 @@ from typing import Any
 
 import pytest
 import rfc8785
-from sqlalchemy import insert, update
+from sqlalchemy import insert, select, update
 
 from helpers import mth
 from keystrata.errors import Unavailable
@@ -184,4 +184,64 @@ def test_naive_times_are_refused_as_the_column_refuses_them(db_url: str) -> None
             chain.append_many(s, node_id="n", entries=[(naive, Event.KEY_DELIVERED, {})])
         assert dump(db) == before
     finally:
+        db.dispose()
+
+
+def test_deferred_appends_write_in_order_at_the_end(db_factory: Callable[[], str]) -> None:
+    """Entries appended inside ``chain.deferred`` are the entries appended one by one, in
+    the same order; the ones after a mark that was rolled back are not written."""
+    deferred, plain = Database.from_url(db_factory()), Database.from_url(db_factory())
+    try:
+        kept = [(T0, Event.KEY_ALLOCATED, get_key_fields(i)) for i in range(5)]
+        with deferred.write() as s, chain.deferred(s, node_id="n") as held:
+            for i, entry in enumerate(kept):
+                assert chain.append(s, node_id="n", **_kw(entry)) == -1
+                mark = held.mark()
+                chain.append(s, node_id="n", at=T0, event=Event.KEY_EXPIRED, fields={"i": i})
+                held.back_to(mark)  # as a savepoint that rolled back
+        with plain.write() as s:
+            for entry in kept:
+                chain.append(s, node_id="n", **_kw(entry))
+        assert dump(deferred) == dump(plain)
+        with deferred.write() as s, pytest.raises(RuntimeError), chain.deferred(s, node_id="n"):
+            chain.append(s, node_id="n", at=T0, event=Event.KEY_EXPIRED, fields={})
+            raise RuntimeError("the run fails: none of its entries is written")
+        assert dump(deferred) == dump(plain)
+    finally:
+        deferred.dispose()
+        plain.dispose()
+
+
+def _kw(entry: tuple[datetime, Event, dict[str, Any]]) -> dict[str, Any]:
+    at, event, fields = entry
+    return {"at": at, "event": event, "fields": fields}
+
+
+def test_deferred_appends_leave_the_head_free_until_the_end(
+    pg_factory: Callable[[], str],
+) -> None:
+    """The reason for ``chain.deferred``: a run that appended for its first change does not
+    hold the ledger head while it locks the rows of the next ones (PostgreSQL: another
+    connection can still take the head's row lock without waiting)."""
+    url = pg_factory()
+    db, probe = Database.from_url(url), Database.from_url(url)
+    try:
+
+        def head_free() -> bool:
+            with probe.read() as other:
+                row = other.execute(
+                    select(LedgerHead.id).where(LedgerHead.id == 1).with_for_update(nowait=True)
+                ).first()
+                return row is not None
+
+        with db.write() as s, chain.deferred(s, node_id="n"):
+            chain.append(s, node_id="n", at=T0, event=Event.KEY_ALLOCATED, fields={"i": 1})
+            s.flush()
+            assert head_free()
+        with db.write() as s:
+            chain.append(s, node_id="n", at=T0, event=Event.KEY_ALLOCATED, fields={"i": 2})
+            with pytest.raises(Unavailable):  # the lock is not available (NOWAIT)
+                head_free()
+    finally:
+        probe.dispose()
         db.dispose()

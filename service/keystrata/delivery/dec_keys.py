@@ -171,7 +171,9 @@ def _pull_and_apply(
     # All in one transaction (one commit however many messages), each message in a
     # savepoint of its own: one that cannot apply leaves the others applied.
     refused: list[tuple[messages.KeyAllocated, Forbidden]] = []
-    with ctx.db.write() as s:
+    # The ledger entries are written last (chain.deferred), so this transaction takes
+    # the ledger head after the rows of every message, as the owner's push does.
+    with ctx.db.write() as s, chain.deferred(s, node_id=ctx.node_id) as entries:
         for body in bodies:
             try:
                 msg = messages.parse(body)
@@ -179,15 +181,19 @@ def _pull_and_apply(
                 continue  # a malformed message holds no key of this request; others may
             if not isinstance(msg, messages.KeyAllocated):
                 continue
+            mark = entries.mark()
             try:
                 with s.begin_nested():
                     apply_allocated_in(ctx, s, owner, msg)
             except OutOfOrder:
+                entries.back_to(mark)
                 return True
             except Forbidden as refusal:
+                entries.back_to(mark)
                 refused.append((msg, refusal))
                 continue
             except InvalidInput:
+                entries.back_to(mark)
                 continue
             # Messages apply in order; later ones can wait for the owner's push.
             missing -= {k.key_ID for k in msg.keys}

@@ -23,6 +23,7 @@ and then nothing of the batch was committed.
 from __future__ import annotations
 
 import threading
+import time
 from collections.abc import Callable, Sequence
 from typing import Any, Generic, TypeVar
 
@@ -31,6 +32,8 @@ from keystrata.errors import TransactionConflict
 T = TypeVar("T")
 #: Times a batch runs when the database ends its transaction to break a deadlock.
 CONFLICT_ATTEMPTS = 3
+#: Pause before the second run of such a batch (twice that before the third).
+CONFLICT_PAUSE_S = 0.01
 R = TypeVar("R")
 
 #: A batch function: one result (or the exception to raise) per request, in order.
@@ -87,6 +90,8 @@ class GroupCommit(Generic[T, R]):
                 # Rolled back whole (a deadlock broken by PostgreSQL): run it again.
                 results = [exc] * len(batch)
                 if attempt < CONFLICT_ATTEMPTS:
+                    # Let the transaction PostgreSQL kept commit before running again.
+                    time.sleep(CONFLICT_PAUSE_S * attempt)
                     continue
             except BaseException as exc:  # the transaction failed: every request of it did
                 results = [exc] * len(batch)

@@ -51,11 +51,18 @@ def append_many(
     the Merkle nodes, the references and the new head are written with one statement
     per table on SQLite and one statement in all on PostgreSQL.
 
+    Inside :func:`deferred` the entries are kept and written when it ends, and the
+    indexes returned are -1.
+
     Raises:
         Unavailable: as :func:`append`; none of the entries is written.
     """
     if not entries:
         return []
+    held: Deferred | None = session.info.get(_DEFERRED)
+    if held is not None:
+        held.entries.extend(entries)
+        return [-1] * len(entries)
     prepared = [
         (at, str(event), prepare(event=event, node_id=node_id, at=at, fields=fields))
         for at, event, fields in entries
@@ -80,6 +87,48 @@ def append_many(
         if getattr(err.orig, "sqlstate", None) in CONFLICT_STATES:
             raise TransactionConflict() from err  # a deadlock broken: may run again
         raise Unavailable("the audit ledger cannot be written; nothing was changed") from err
+
+
+_DEFERRED = "keystrata.ledger.deferred"
+
+
+@dataclass
+class Deferred:
+    """Entries appended inside :func:`deferred`, not yet written."""
+
+    entries: list[tuple[datetime, Event, Mapping[str, Any]]]
+
+    def mark(self) -> int:
+        """A point to come back to (before a savepoint that may roll back)."""
+        return len(self.entries)
+
+    def back_to(self, mark: int) -> None:
+        """Forget the entries appended since ``mark`` (their savepoint rolled back)."""
+        del self.entries[mark:]
+
+
+@contextmanager
+def deferred(session: Session, *, node_id: str) -> Iterator[Deferred]:
+    """Keep the entries appended in the block and write them, in order, when it ends.
+
+    For a transaction that applies several changes one after the other (a run of peer
+    messages, each in a savepoint): appended at once, the first change's entry would
+    take the ledger head, held to commit, while the later changes lock their rows, and
+    a transaction that locked one of those rows first and then appends would wait for
+    the head while holding it (a deadlock on PostgreSQL). Written at the end, the head is
+    the last lock the transaction takes. A change whose savepoint rolls back must drop
+    its entries with :meth:`Deferred.back_to`. The entries still commit with the
+    changes they record; an error in the block writes none of them.
+    """
+    if _DEFERRED in session.info:
+        raise RuntimeError("ledger appends are deferred already in this session")
+    held = Deferred([])
+    session.info[_DEFERRED] = held
+    try:
+        yield held
+    finally:
+        del session.info[_DEFERRED]
+    append_many(session, node_id=node_id, entries=held.entries)
 
 
 @contextmanager

@@ -21,6 +21,7 @@ from keystrata.config import Role
 from keystrata.context import NodeContext
 from keystrata.delivery import slave_copy
 from keystrata.errors import Forbidden, InvalidInput, KeystrataError
+from keystrata.ledger import chain
 from keystrata.peering import messages
 from keystrata.peering.messages import MessageResult
 from keystrata.peering.refusals import record_refusal
@@ -173,12 +174,14 @@ def _apply_run(
     them is applied."""
     outcomes: list[MessageResult] = []
     error: KeystrataError | None = None
-    with ctx.db.write() as s:
+    with ctx.db.write() as s, chain.deferred(s, node_id=ctx.node_id) as entries:
         for msg in run:
+            mark = entries.mark()
             try:
                 with s.begin_nested():
                     outcomes.append(in_session[type(msg)](ctx, s, sender, msg))
             except KeystrataError as exc:
+                entries.back_to(mark)
                 error = exc
                 break
     return outcomes, error
