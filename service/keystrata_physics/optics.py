@@ -24,6 +24,8 @@ from dataclasses import dataclass
 from enum import StrEnum
 from typing import Any, TypeVar
 
+from keystrata_physics.bb84 import MAX_MEAN_PHOTON_NUMBER
+
 __all__ = [
     "ClearSky",
     "LinkOptics",
@@ -132,25 +134,38 @@ class LinkOptics:
             raise ValueError(f"protocol must be one of {known}, got {self.protocol!r}") from None
         _in("clock_hz", self.clock_hz, 0.0, 1e12, open_low=True)
         _in("wavelength_nm", self.wavelength_nm, 300.0, 2000.0)
-        _in("divergence_urad", self.divergence_urad, 0.0, 1e5, open_low=True)
-        _in("rx_aperture_m", self.rx_aperture_m, 0.0, 20.0, open_low=True)
+        # The lower ends keep every factor of the budget a normal float: a beam wider
+        # than about 27 m at its waist, an aperture under 1 mm or an efficiency below
+        # 1e-9 would round the collected power to zero.
+        _in("divergence_urad", self.divergence_urad, 0.01, 1e5)
+        _in("rx_aperture_m", self.rx_aperture_m, 0.001, 20.0)
         _in("pointing_jitter_urad", self.pointing_jitter_urad, 0.0, 1e5)
         for name in ("zenith_transmittance", "receiver_efficiency", "detector_efficiency"):
-            _in(name, getattr(self, name), 0.0, 1.0, open_low=True)
+            _in(name, getattr(self, name), 1e-9, 1.0)
         _require(isinstance(self.turbulence, bool), "turbulence", "true or false", self.turbulence)
         _not_negative("dark_count_rate_hz", self.dark_count_rate_hz)
         ok = isinstance(self.detectors, int) and not isinstance(self.detectors, bool)
         _require(ok and 1 <= self.detectors <= 16, "detectors", "an integer 1-16", self.detectors)
-        for name in ("gate_ns", "filter_nm", "fov_urad", "mu", "nu"):
+        for name in ("gate_ns", "filter_nm"):
             _positive(name, getattr(self, name))
+        # The sky's etendue is taken as solid angle x area (background.py), which holds
+        # for a field of view of a few degrees or less: 1e5 microradians is 5.7 degrees.
+        _in("fov_urad", self.fov_urad, 0.0, 1e5, open_low=True)
+        # The decoy bounds (bb84.py, finite.py) take mean photon numbers up to
+        # MAX_MEAN_PHOTON_NUMBER; below 1e-6 a source sends next to nothing, and far
+        # below it the quotient mu / (mu nu - nu^2) of Ma et al.'s bound divides by zero.
+        _in("mu", self.mu, 1e-6, MAX_MEAN_PHOTON_NUMBER)
+        _in("nu", self.nu, 1e-6, MAX_MEAN_PHOTON_NUMBER)
         _require(self.nu < self.mu, "nu", f"below mu ({self.mu})", self.nu)
         _in("misalignment", self.misalignment, 0.0, 0.5)
         _in("ec_efficiency", self.ec_efficiency, 1.0, 3.0)
         if self.block_pulses is not None:
             _in("block_pulses", self.block_pulses, 1e3, 1e18)
-        _positive("modulation_variance", self.modulation_variance)
-        _not_negative("excess_noise", self.excess_noise)
-        _not_negative("electronic_noise", self.electronic_noise)
+        # Far beyond any Gaussian-modulated system (V_A of a few to a few tens, noise of
+        # hundredths of a shot noise), and short of where GG02's terms overflow.
+        _in("modulation_variance", self.modulation_variance, 0.0, 1e3, open_low=True)
+        _in("excess_noise", self.excess_noise, 0.0, 10.0)
+        _in("electronic_noise", self.electronic_noise, 0.0, 10.0)
         _in("reconciliation_efficiency", self.reconciliation_efficiency, 0.0, 1.0, open_low=True)
         ok = self.detection in ("homodyne", "heterodyne")
         _require(ok, "detection", "homodyne or heterodyne", self.detection)
@@ -193,11 +208,7 @@ class Platform:
         _in("longitude_deg", self.longitude_deg, -180.0, 180.0)
         _in("altitude_m", self.altitude_m, 1_000.0, 100_000_000.0)
         _in("station_keeping_radius_m", self.station_keeping_radius_m, 0.0, 200_000.0)
-        windows = tuple(tuple(w) for w in self.on_station_hours)
-        for window in windows:
-            ok = len(window) == 2 and all(_finite(h) and 0 <= h <= 24 for h in window)
-            _require(ok, "on_station_hours", "pairs of UTC hours in [0, 24]", window)
-        object.__setattr__(self, "on_station_hours", windows)
+        object.__setattr__(self, "on_station_hours", _windows(self.on_station_hours))
 
     def on_station(self, utc_hour: float) -> bool:
         """Whether the platform is on station at ``utc_hour`` (in [0, 24))."""
@@ -208,6 +219,20 @@ class Platform:
             if inside:
                 return True
         return False
+
+
+def _windows(value: object) -> tuple[tuple[float, float], ...]:
+    """The on-station windows as pairs of floats, or a ValueError naming the field."""
+    rule = "a list of [start, end] pairs of UTC hours in [0, 24]"
+    if not isinstance(value, Sequence) or isinstance(value, str | bytes):
+        raise ValueError(f"on_station_hours must be {rule}, got {value!r}")
+    out = []
+    for window in value:
+        ok = isinstance(window, Sequence) and not isinstance(window, str | bytes)
+        ok = ok and len(window) == 2 and all(_finite(h) and 0 <= h <= 24 for h in window)
+        _require(ok, "on_station_hours", rule, window)
+        out.append((float(window[0]), float(window[1])))
+    return tuple(out)
 
 
 ClearSky = tuple[tuple[float, ...], ...]
@@ -257,9 +282,16 @@ class StationSky:
     def __post_init__(self) -> None:
         _in("latitude_deg", self.latitude_deg, -90.0, 90.0)
         _in("longitude_deg", self.longitude_deg, -180.0, 180.0)
-        _in("height_m", self.height_m, -500.0, 9_000.0)
-        _not_negative("day_radiance", self.day_radiance)
-        _not_negative("night_radiance", self.night_radiance)
+        # geometry.Site takes heights above -500 m, not at it
+        _in("height_m", self.height_m, -500.0, 9_000.0, open_low=True)
+        # background.sky_radiance interpolates log(radiance) through twilight, from the
+        # night value up to the day value: both > 0, night not above day.
+        _positive("day_radiance", self.day_radiance)
+        _positive("night_radiance", self.night_radiance)
+        rule = f"at most day_radiance ({self.day_radiance!r})"
+        _require(
+            self.night_radiance <= self.day_radiance, "night_radiance", rule, self.night_radiance
+        )
         _not_negative("mean_cloud_spell_s", self.mean_cloud_spell_s)
         object.__setattr__(self, "clear_sky", _clear_table(self.clear_sky))
 
@@ -269,7 +301,7 @@ class StationSky:
         return table[month - 1][utc_hour % 24]
 
 
-_T = TypeVar("_T", LinkOptics, Platform, StationSky)
+_T = TypeVar("_T", bound=LinkOptics | Platform | StationSky)
 
 
 def from_mapping(kind: type[_T], values: Mapping[str, Any]) -> _T:
@@ -278,11 +310,17 @@ def from_mapping(kind: type[_T], values: Mapping[str, Any]) -> _T:
     Raises:
         ValueError: an unknown or missing name, or a value out of range (named).
     """
-    names = {f.name for f in dataclasses.fields(kind)}
-    unknown = sorted(set(values) - names)
+    fields = dataclasses.fields(kind)
+    names = {f.name for f in fields}
+    unknown = sorted(str(name) for name in set(values) - names)
     if unknown:
         raise ValueError(f"unknown field {unknown[0]!r}; known: {', '.join(sorted(names))}")
-    try:
-        return kind(**values)
-    except TypeError as exc:  # a required field left out
-        raise ValueError(str(exc).split("() ", 1)[-1]) from None
+    required = [
+        f.name
+        for f in fields
+        if f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING
+    ]
+    missing = [name for name in required if name not in values]
+    if missing:
+        raise ValueError(f"missing required field {missing[0]!r}")
+    return kind(**values)
