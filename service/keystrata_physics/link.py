@@ -43,6 +43,12 @@ __all__ = [
 #: budgets of free-space terminals are not meant for grazing paths (common practice).
 MIN_ELEVATION_DEG = 5.0
 
+#: GG02's key is a difference of entropies of about a bit each, so below about 1e-12 bit
+#: per symbol it is rounding: at channel transmittances under about 1e-15 gg02 loses
+#: the Holevo term altogether and its "key" passes the PLOB bound. Keys this small (0.1
+#: bit/s at 1 GHz) are none in practice, and are counted as none.
+CV_KEY_FLOOR = 1e-10
+
 
 @dataclass(frozen=True, slots=True)
 class Budget:
@@ -51,7 +57,7 @@ class Budget:
     Attributes:
         footprint_diameter_m: 1/e^2 beam diameter at the station.
         geometric_db: power outside the receiving aperture.
-        pointing_db: mean loss from pointing jitter.
+        pointing_db: mean loss from pointing jitter (Gaussian per axis, see :func:`budget`).
         atmospheric_db: extinction along the slant path.
         turbulence_db: beam wander and spread (0 when the link leaves it out).
         receiver_db: receiver optics and detector (trusted, not part of the PLOB bound).
@@ -94,7 +100,8 @@ class LinkPoint:
         background_per_gate: sky photo-detections per gate (BB84; 0 for CV).
         qber: quantum bit error rate (BB84; ``None`` for CV and when no key is made).
         secret_key_rate_bps: secret key rate in bits per second, >= 0.
-        plob_bound_bps: the repeaterless bound for the channel at the link's clock.
+        plob_bound_bps: the repeaterless bound for the channel at the link's clock
+            (``inf`` for a channel without loss; 0 below the minimum elevation).
     """
 
     slant_range_m: float
@@ -122,6 +129,13 @@ def station_site(sky: StationSky) -> geometry.Site:
     return geometry.Site(sky.latitude_deg, sky.longitude_deg, sky.height_m)
 
 
+def _bound_bps(channel_transmittance: float, clock_hz: float) -> float:
+    """The PLOB bound of the channel; ``inf`` for a lossless one (0 dB), which has none."""
+    if channel_transmittance >= 1.0:
+        return math.inf
+    return bounds.plob_bps(channel_transmittance, clock_hz)
+
+
 def budget(
     optics: LinkOptics,
     look: geometry.Look,
@@ -130,6 +144,14 @@ def budget(
     station_height_m: float = 0.0,
 ) -> Budget:
     """The link budget of ``optics`` along ``look`` (the heights matter to turbulence).
+
+    The beam leaves the platform with its waist there (``beam.waist_from_divergence_m``)
+    and reaches the station with the 1/e^2 radius w(z) of Siegman's Gaussian beam at
+    the slant range; the aperture collects 1 - exp(-2 a^2 / w^2). Pointing jitter of
+    standard deviation s per axis moves the beam centre by s z at the station, and the
+    mean collected power is that of a Gaussian of radius sqrt(w^2 + 4 (s z)^2); the
+    pointing term is its ratio to the aligned capture. Extinction is the Kasten-Young
+    air mass of the zenith transmittance (``atmosphere.transmittance``).
 
     Raises:
         ValueError: ``look`` is below :data:`MIN_ELEVATION_DEG`.
@@ -143,7 +165,14 @@ def budget(
     waist = beam.waist_from_divergence_m(optics.divergence_rad, wavelength)
     radius = beam.beam_radius_m(waist, wavelength, look.slant_range_m)
     captured = beam.capture_fraction(optics.rx_aperture_m, radius)
-    pointing = beam.pointing_factor(optics.divergence_rad, optics.jitter_rad)
+    # Gaussian jitter of the beam centre, s z per axis at the station, averages the
+    # footprint into a Gaussian of radius sqrt(w^2 + 4 (s z)^2) (beam.py), exactly for
+    # any aperture and distance; theta^2 / (theta^2 + 4 s^2) is its limit for a small
+    # aperture in the far field and overstates the loss of a wide aperture or a beam
+    # short of its far field.
+    wandering = beam.jittered_beam_radius_m(radius, optics.jitter_rad * look.slant_range_m)
+    # min: sqrt(w^2) may come back an ulp wider or narrower than w without jitter
+    pointing = min(1.0, beam.capture_fraction(optics.rx_aperture_m, wandering) / captured)
     air = atmosphere.transmittance(optics.zenith_transmittance, look.elevation_deg)
     turbulence = 1.0
     if optics.turbulence:
@@ -205,7 +234,8 @@ def key_rate(
                 detection="heterodyne" if optics.detection == "heterodyne" else "homodyne",
             ),
         )
-        return max(0.0, cv.key_per_symbol) * optics.clock_hz, None
+        key = cv.key_per_symbol if cv.key_per_symbol >= CV_KEY_FLOOR else 0.0
+        return key * optics.clock_hz, None
     dark = optics.detectors * optics.dark_count_rate_hz * optics.gate_ns * 1e-9
     dark_yield = min(1.0, dark + background_per_gate)
     eta_total = channel_transmittance * receiver
@@ -251,7 +281,7 @@ def evaluate(
         optics, look, platform_altitude_m=platform_altitude_m, station_height_m=sky.height_m
     )
     eta_channel = terms.channel_transmittance
-    plob = bounds.plob_bps(eta_channel, optics.clock_hz)
+    plob = _bound_bps(eta_channel, optics.clock_hz)
     sky_light = sky_counts(optics, sky, sun_elevation_deg)
     rate, qber = key_rate(optics, eta_channel, sky_light)
     return LinkPoint(
@@ -270,12 +300,16 @@ def loss_sweep(
     optics: LinkOptics, losses_db: list[float], *, background_per_gate: float = 0.0
 ) -> list[tuple[float, float, float]]:
     """``(channel loss dB, key rate bps, PLOB bound bps)`` over ``losses_db``: the link's
-    protocol and receiver against channel loss alone (for the rate-against-loss plot)."""
+    protocol and receiver against channel loss alone (for the rate-against-loss plot).
+
+    Raises:
+        ValueError: a loss is negative or not finite (``loss_db``).
+    """
     out = []
     for loss in losses_db:
         eta = beam.fraction_from_db(loss)
         rate, _ = key_rate(optics, eta, background_per_gate)
-        out.append((loss, rate, bounds.plob_bps(eta, optics.clock_hz)))
+        out.append((loss, rate, _bound_bps(eta, optics.clock_hz)))
     return out
 
 
