@@ -28,17 +28,26 @@ __all__ = [
 MAC_KEY_BYTES = 32
 
 
-def _check(name: str, value: float, *, positive: bool = False) -> None:
-    ok = math.isfinite(value) and (value > 0 if positive else value >= 0)
-    if not ok:
-        raise ValueError(f"{name} must be a number {'>' if positive else '>='} 0, got {value!r}")
+def _number(value: object) -> bool:
+    return isinstance(value, int | float) and not isinstance(value, bool) and math.isfinite(value)
+
+
+def _check(name: str, value: float) -> None:
+    if not (_number(value) and value >= 0):
+        raise ValueError(f"{name} must be a number >= 0, got {value!r}")
 
 
 def pair_ceiling_bps(rate_a_bps: float, rate_b_bps: float, segment_bytes: int) -> float:
-    """The most pair key links R-A and R-B can carry, bits per second, before sharing."""
+    """The most pair key links R-A and R-B can carry, bits per second, before sharing.
+
+    Raises:
+        ValueError: a rate not a finite number >= 0, or ``segment_bytes`` not a positive
+            integer (the message names it).
+    """
     _check("rate_a_bps", rate_a_bps)
     _check("rate_b_bps", rate_b_bps)
-    if not isinstance(segment_bytes, int) or segment_bytes <= 0:
+    ok = isinstance(segment_bytes, int) and not isinstance(segment_bytes, bool)
+    if not ok or segment_bytes <= 0:
         raise ValueError(f"segment_bytes must be a positive integer, got {segment_bytes!r}")
     return min(rate_a_bps, rate_b_bps * segment_bytes / (segment_bytes + MAC_KEY_BYTES))
 
@@ -46,10 +55,14 @@ def pair_ceiling_bps(rate_a_bps: float, rate_b_bps: float, segment_bytes: int) -
 def buffer_for_spell_bits(
     demand_bps: float, mean_spell_s: float, shortfall_probability: float
 ) -> float:
-    """The buffer that outlasts a cloud spell with probability ``1 - shortfall_probability``."""
+    """The buffer that outlasts a cloud spell with probability ``1 - shortfall_probability``.
+
+    Raises:
+        ValueError: a negative or non-finite input, or a probability outside (0, 1) (named).
+    """
     _check("demand_bps", demand_bps)
     _check("mean_spell_s", mean_spell_s)
-    if not (0 < shortfall_probability < 1):
+    if not (_number(shortfall_probability) and 0 < shortfall_probability < 1):
         raise ValueError(f"shortfall_probability must be in (0, 1), got {shortfall_probability!r}")
     return demand_bps * mean_spell_s * math.log(1.0 / shortfall_probability)
 
@@ -57,7 +70,12 @@ def buffer_for_spell_bits(
 def spell_shortfall_probability(
     buffer_bits: float, demand_bps: float, mean_spell_s: float
 ) -> float:
-    """The chance that one cloud spell drains ``buffer_bits`` at ``demand_bps``."""
+    """The chance that one cloud spell drains ``buffer_bits`` at ``demand_bps`` (0 with no
+    demand or no spells).
+
+    Raises:
+        ValueError: a negative or non-finite input (named).
+    """
     _check("buffer_bits", buffer_bits)
     _check("demand_bps", demand_bps)
     _check("mean_spell_s", mean_spell_s)
@@ -70,6 +88,9 @@ def seconds_until_empty(ready_bits: float, demand_bps: float, supply_bps: float)
     """How long ``ready_bits`` last at ``demand_bps`` while ``supply_bps`` comes in.
 
     ``inf`` when the supply keeps up with the demand.
+
+    Raises:
+        ValueError: a negative or non-finite input (named).
     """
     _check("ready_bits", ready_bits)
     _check("demand_bps", demand_bps)
