@@ -17,7 +17,13 @@ from keystrata.demo import scenario
 from keystrata.demo.audit import audit, ledgers_table, reconciliation_table
 from keystrata.demo.provision import operator_identity, provision
 from keystrata.demo.verify import check_network
-from keystrata.demo.view import Snapshot, encryptors_table, links_table, pairs_table
+from keystrata.demo.view import (
+    ObservedRates,
+    Snapshot,
+    encryptors_table,
+    links_table,
+    pairs_table,
+)
 from keystrata.demo.workdir import (
     DemoNode,
     build_pki,
@@ -29,12 +35,13 @@ from keystrata.demo.workdir import (
 from keystrata.loopback.pki import PkiFiles
 from keystrata.loopback.processes import NodeProcess, free_ports, stop_all
 from keystrata_client import OperatorClient, TlsIdentity
-from keystrata_client.emulators import LinkEmulator, LinkSpec, LinkStats, ModelParams
+from keystrata_client.emulators import LinkEmulator, LinkSpec, LinkStats, PhysicalProfile
 from keystrata_client.emulators.encryptors import (
     EncryptorEmulator,
     EncryptorPairSpec,
     PairStats,
 )
+from keystrata_physics.optics import LinkOptics, Platform, StationSky, from_mapping
 
 # Wide enough for the pool table when the output goes to a file or a pipe.
 console = Console(width=None if sys.stdout.isatty() else 140)
@@ -73,12 +80,10 @@ def _link_specs(workdir: Path, nodes: list[DemoNode]) -> list[LinkSpec]:
                 station_identity=ident,
                 seed=11 + i,
                 block_bytes=4096,
-                model=ModelParams(
-                    base_rate_bps=st.base_rate_bps,
-                    day_factor=0.1,
-                    longitude_deg=0.0,
-                    mean_clear_s=st.mean_clear_s,
-                    mean_cloud_s=st.mean_cloud_s,
+                model=PhysicalProfile(
+                    optics=from_mapping(LinkOptics, st.optics),
+                    platform=from_mapping(Platform, scenario.PLATFORM),
+                    station=from_mapping(StationSky, st.physical),
                 ),
             )
         )
@@ -106,11 +111,15 @@ def _read_nodes(
 
 
 def _view(
-    snap: Snapshot, stats: dict[str, LinkStats], enc: dict[str, PairStats], title: str
+    snap: Snapshot,
+    stats: dict[str, LinkStats],
+    enc: dict[str, PairStats],
+    title: str,
+    observed: ObservedRates,
 ) -> Group:
     return Group(
         encryptors_table(enc),
-        links_table(snap, stats, title),
+        links_table(snap, stats, title, observed),
         pairs_table(snap.relay_pairs, snap.station_pairs),
     )
 
@@ -127,11 +136,13 @@ async def _watch(
     started = time.monotonic()
     last_print = 0.0
     snap = Snapshot(pools={}, elapsed=0.0, dead=[])
+    observed = ObservedRates()
     while True:
         elapsed = time.monotonic() - started
         snap = await asyncio.to_thread(_read_nodes, nodes, identity, procs, elapsed)
+        observed.add(snap)
         title = _title(emulator.stats, elapsed, duration)
-        view = _view(snap, emulator.stats, encryptors.stats, title)
+        view = _view(snap, emulator.stats, encryptors.stats, title, observed)
         if live is not None:
             live.update(view)
         elif elapsed - last_print >= 5.0:
@@ -288,7 +299,7 @@ def demo(duration: float | None, workdir: Path) -> None:
             audited = audit(workdir, nodes)
     finally:
         stop_all(procs)
-    console.print(_view(snap, stats, enc, "final levels (emulator drained)"))
+    console.print(_view(snap, stats, enc, "final levels (emulator drained)", ObservedRates()))
     console.print(ledgers_table(audited))
     console.print(reconciliation_table(audited))
     with console.status("checking every relay record and segment in the node databases"):

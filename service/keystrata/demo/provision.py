@@ -46,11 +46,20 @@ def _facts_for(node_id: str, pki: Path) -> list[tuple[str, dict[str, Any]]]:
                     "node_id": scenario.RELAY,
                     "role": "relay",
                     "description": "airship Vela, trusted relay",
+                    "physical": scenario.PLATFORM,
                 },
             )
         )
     facts += [
-        ("nodes", {"node_id": st.node_id, "role": "station", "description": st.place})
+        (
+            "nodes",
+            {
+                "node_id": st.node_id,
+                "role": "station",
+                "description": st.place,
+                "physical": st.physical,
+            },
+        )
         for st in stations
         if st.node_id != node_id
     ]
@@ -63,6 +72,7 @@ def _facts_for(node_id: str, pki: Path) -> list[tuple[str, dict[str, Any]]]:
                 "relay_id": scenario.RELAY,
                 "station_id": st.node_id,
                 "description": f"Vela to {st.place}",
+                "optics": st.optics,
             },
         )
         for st in own_links
@@ -130,12 +140,21 @@ def _facts_for(node_id: str, pki: Path) -> list[tuple[str, dict[str, Any]]]:
     return facts
 
 
+def _own_profile(node_id: str) -> dict[str, Any]:
+    """A node's own entry (written by ``node init``) gets its physical profile."""
+    if node_id == scenario.RELAY:
+        return {"physical": scenario.PLATFORM}
+    return {"physical": scenario.station(node_id).physical}
+
+
 def provision(workdir: Path, nodes: list[DemoNode]) -> int:
     """Create every registry entry at every node; return how many were sent."""
     identity = operator_identity(workdir)
     sent = 0
     for node in nodes:
         with OperatorClient(node.url, identity) as client:
+            client.change("nodes", node.node_id, _own_profile(node.node_id))
+            sent += 1
             for kind, body in _facts_for(node.node_id, workdir / "pki"):
                 _create(client, kind, body)
                 sent += 1

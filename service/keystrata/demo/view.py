@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections import deque
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -32,17 +33,56 @@ def _bits(n: int | None) -> str:
     return f"{n} bit"
 
 
-def links_table(snap: Snapshot, stats: dict[str, LinkStats], title: str) -> Table:
+class ObservedRates:
+    """Link key rates as the stations received them: the change of each station's
+    ``bits_received`` over the last few snapshots (about five seconds)."""
+
+    def __init__(self, keep: int = 6) -> None:
+        self._seen: deque[tuple[float, dict[str, int]]] = deque(maxlen=keep)
+
+    def add(self, snap: Snapshot) -> None:
+        got = {
+            st.link_id: int(pool["bits_received"])
+            for st in scenario.STATIONS
+            if (pool := snap.pools.get((st.node_id, st.link_id))) is not None
+        }
+        self._seen.append((snap.elapsed, got))
+
+    def rate_bps(self, link_id: str) -> float | None:
+        if len(self._seen) < 2:
+            return None
+        (t0, first), (t1, last) = self._seen[0], self._seen[-1]
+        if t1 <= t0 or link_id not in first or link_id not in last:
+            return None
+        return (last[link_id] - first[link_id]) / (t1 - t0)
+
+
+def _sky(link: LinkStats) -> str:
+    if link.sun_elevation_deg is None:
+        return str(link.weather)
+    sun = link.sun_elevation_deg
+    light = "night" if sun < -6 else ("twilight" if sun < 6 else "day")
+    where = "" if link.on_station else ", off station"
+    return f"{link.weather}, {light} {sun:+.0f} deg{where}"
+
+
+def links_table(
+    snap: Snapshot, stats: dict[str, LinkStats], title: str, observed: ObservedRates
+) -> Table:
+    """Per QKD link: the sky, the link model's clear-sky rate and QBER for the emulated
+    moment (planned), what the stations received over the last seconds (observed), and
+    the pools at both ends."""
     table = Table(title=title, title_justify="left")
     for col, just in (
         ("QKD link", "left"),
-        ("station", "left"),
         ("sky", "left"),
-        ("key rate", "right"),
+        ("planned", "right"),
+        ("QBER", "right"),
+        ("observed", "right"),
+        ("of plan", "right"),
         ("relay pool", "right"),
         ("station pool", "right"),
-        ("received alike", "left"),
-        ("blocks", "right"),
+        ("alike", "left"),
         ("errors", "right"),
     ):
         table.add_column(col, justify=just, no_wrap=True)  # type: ignore[arg-type]
@@ -51,13 +91,18 @@ def links_table(snap: Snapshot, stats: dict[str, LinkStats], title: str) -> Tabl
         relay_pool = snap.pools.get((scenario.RELAY, st.link_id), {})
         station_pool = snap.pools.get((st.node_id, st.link_id), {})
         relay, station = relay_pool.get("bits_available"), station_pool.get("bits_available")
+        seen = observed.rate_bps(st.link_id)
         if link is None:
-            sky, rate, blocks, errors = "-", "-", "-", "-"
+            sky, planned, qber, share, errors = "-", "-", "-", "-", "-"
         else:
-            night = "night" if link.daylight > 0.5 else "day"
-            sky = f"{link.weather}, {night}"
-            rate = f"{_bits(int(link.rate_bps))}/s"
-            blocks = f"{link.blocks_generated:,}"
+            sky = _sky(link)
+            planned = f"{_bits(int(link.planned_rate_bps))}/s"
+            qber = "-" if link.planned_qber is None else f"{100 * link.planned_qber:.1f} %"
+            share = (
+                f"{100 * seen / link.planned_rate_bps:.0f} %"
+                if seen is not None and link.planned_rate_bps > 0
+                else "-"
+            )
             errors = str(
                 link.relay.errors
                 + link.station.errors
@@ -69,7 +114,16 @@ def links_table(snap: Snapshot, stats: dict[str, LinkStats], title: str) -> Tabl
         got = (relay_pool.get("bits_received"), station_pool.get("bits_received"))
         agree = "-" if None in got else ("yes" if got[0] == got[1] else "catching up")
         table.add_row(
-            st.link_id, st.place, sky, rate, _bits(relay), _bits(station), agree, blocks, errors
+            st.link_id.removeprefix("link-"),
+            sky,
+            planned,
+            qber,
+            "-" if seen is None else f"{_bits(int(seen))}/s",
+            share,
+            _bits(relay),
+            _bits(station),
+            agree,
+            errors,
         )
     return table
 
