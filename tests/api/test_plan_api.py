@@ -134,3 +134,44 @@ def test_a_bad_day_is_a_400_and_changes_nothing(relay, api, day) -> None:
 def test_monitor_reads_the_plan_and_saes_do_not(relay, api) -> None:
     assert api(relay)("mon-cal").get("/api/v1/plan").status_code == 200
     assert api(relay)("sae-a1").get("/api/v1/plan").status_code == 403
+
+
+def test_a_pair_with_a_small_demand_leaves_its_share_to_the_other(relay, api) -> None:
+    """pair-ac asks for a small daily quota: pair-ab's supply is what fairness gives it
+    when pair-ac asks for that quota only; pair-ac's supply is its share when it asks for
+    everything it can get (its surplus is then positive)."""
+    ops = api(relay)("ops-ada")
+    _provision(ops)
+    quota = 10_000_000
+    r = ops.patch("/api/v1/registry/pairs/pair-ac", json={"policy": {"daily_quota_bits": quota}})
+    assert r.is_success, r.text
+    plan = ops.get("/api/v1/plan", params={"day": "2026-06-21"}).json()
+    links = {row["link_id"]: row for row in plan["links"]}
+    pairs = {row["pair_id"]: row for row in plan["pairs"]}
+    segment = relay.ctx.settings.relay.segment_bytes
+    available = {
+        k: int(v["daily_secret_bits"] * segment / (segment + 32) / 8) for k, v in links.items()
+    }
+    unbounded = sum(available.values()) + 1
+
+    def share(pair_id: str, ab: int, ac: int) -> int:
+        given = fairness.allocate(
+            [
+                fairness.PairDemand("pair-ab", ("link-a", "link-b"), 300, ab),
+                fairness.PairDemand("pair-ac", ("link-a", "link-c"), 100, ac),
+            ],
+            available,
+        )
+        return 8 * given[pair_id]
+
+    ab, ac = pairs["pair-ab"], pairs["pair-ac"]
+    assert ac["daily_demand_bits"] == quota and ac["demand_source"] == "policy"
+    assert ab["daily_supply_bits"] == pytest.approx(
+        share("pair-ab", unbounded, quota // 8), rel=1e-3
+    )
+    assert ac["daily_supply_bits"] == pytest.approx(
+        share("pair-ac", unbounded, unbounded), rel=1e-3
+    )
+    assert ac["daily_surplus_bits"] == pytest.approx(ac["daily_supply_bits"] - quota, rel=1e-3)
+    assert ac["daily_surplus_bits"] > 0
+    assert ac["buffer_bits_needed"] > 0  # a demand and cloud spells: a buffer to hold

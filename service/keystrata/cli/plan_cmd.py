@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -41,8 +42,11 @@ def _transposed(title: str, rows: list[dict[str, Any]], key: str, lines: list[Li
     """One column per link or pair, one line per figure: fits 80 columns for a few."""
     table = Table(title=title)
     table.add_column("")
-    for row in rows:
-        table.add_column(row[key], justify="right")
+    names = [str(row[key]) for row in rows]
+    # IDs that all start alike ("pair-", "link-") lose that start in the header.
+    cut = os.path.commonprefix(names).rpartition("-")[0]  # noqa: RUF071 (by character)
+    for name in names:
+        table.add_column(name[len(cut) + 1 :] if cut else name, justify="right")
     for label, show in lines:
         cells = [show(row) if row["planned"] else "-" for row in rows]
         table.add_row(label, *cells)
@@ -72,28 +76,22 @@ LINK_LINES: list[Line] = [
 
 def _until_empty(r: dict[str, Any]) -> str:
     if r["time_until_empty_s"] is None and r["ready_bits"] is not None and r["daily_demand_bits"]:
-        return "never (supply keeps up)"
+        return "never"
     return _duration(r["time_until_empty_s"])
 
 
 PAIR_LINES: list[Line] = [
     ("supply per day", lambda r: _si(r["daily_supply_bits"], "bit")),
-    (
-        "demand per day",
-        lambda r: (
-            "unknown"
-            if r["daily_demand_bits"] is None
-            else f"{_si(r['daily_demand_bits'], 'bit')} ({r['demand_source']})"
-        ),
-    ),
+    ("demand per day", lambda r: _si(r["daily_demand_bits"], "bit")),
+    ("demand from", lambda r: r["demand_source"] or "unknown"),
     ("surplus per day", lambda r: _si(r["daily_surplus_bits"], "bit")),
     ("until empty", _until_empty),
-    ("buffer for a spell", lambda r: _si(r["buffer_bits_needed"], "bit")),
+    ("buffer (99 %)", lambda r: _si(r["buffer_bits_needed"], "bit")),
 ]
 
 
 def links_table(answer: dict[str, Any]) -> Table:
-    title = f"links planned at {answer['node_id']} for {answer['day']} (UTC)"
+    title = f"QKD links planned at {answer['node_id']} for {answer['day']} (UTC)"
     return _transposed(title, answer["links"], "link_id", LINK_LINES)
 
 

@@ -74,6 +74,9 @@ def _pairs(pairs: list[dict[str, Any]], path: Path) -> None:
     )
     ax.set_xticks(list(xs), [p["pair_id"] for p in planned], rotation=15, fontsize="small")
     ax.set_ylabel("bits per day")
+    values = [v for p in planned for v in (p["daily_supply_bits"], p["daily_demand_bits"]) if v]
+    if values and max(values) > 100 * min(values):
+        ax.set_yscale("log")  # supply and demand often differ by orders of magnitude
     ax.legend(fontsize="small")
     fig.tight_layout()
     fig.savefig(path)

@@ -3,8 +3,10 @@
 Per link, the link model's day (``keystrata_physics.availability``). Per pair, the expected
 link key of its two links shared between the pairs on each link by the scheduler's own
 fairness rule (weighted max-min, weights the pairs' priorities, demands their daily
-demand), against that demand: surplus or shortfall, time until empty at today's rate,
-and the buffer that rides out a cloud spell with the stated probability.
+demand): a pair's supply is what that rule gives it when it asks for all it can get and
+the others ask for their demand. Against its demand: surplus or shortfall, time until
+empty at today's rate, and the buffer that rides out a cloud spell with the stated
+probability.
 
 A pair's demand is what its stations measured (the relay's view of their buffer reports:
 bits delivered plus bits asked for and not ready, over the rate window), else its policy's
@@ -16,6 +18,7 @@ plan charges it to both links of every pair, which overstates it by at most
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from datetime import date
 from typing import Any
@@ -172,7 +175,7 @@ def pair_plans(
         for pair, ends, demand, _, _ in rows
         if ends[0] is not None and ends[1] is not None
     ]
-    shares = fairness.allocate(demands, available) if demands else {}
+    shares = _supplies(demands, available, unbounded)
     out = []
     for pair, ends, demand, source, ready in rows:
         missing = [
@@ -213,6 +216,18 @@ def pair_plans(
                 "mean_cloud_spell_s": spell,
             }
         )
+    return out
+
+
+def _supplies(
+    demands: list[fairness.PairDemand], available: dict[str, int], unbounded: int
+) -> dict[str, int]:
+    """Each pair's daily supply in bytes: its fair share when it asks for as much as it
+    can get while every other pair asks for its demand (what it could take today)."""
+    out = {}
+    for mine in demands:
+        asks = [d if d is not mine else dataclasses.replace(d, demand=unbounded) for d in demands]
+        out[mine.pair_id] = fairness.allocate(asks, available)[mine.pair_id]
     return out
 
 
