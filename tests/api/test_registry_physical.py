@@ -77,3 +77,52 @@ def test_a_new_link_with_bad_optics_is_refused(station, api) -> None:
     assert r.status_code == 400, r.text
     assert r.json()["details"][0]["field"] == "optics.wavelength_nm"
     assert snapshot(station.ctx) == before
+
+
+FAR_STATION = {"latitude_deg": 63.5, "longitude_deg": 11.2}  # about 710 km north
+
+
+def test_a_platform_below_a_stations_horizon_is_refused(station, api) -> None:
+    """From 20 km the horizon is about 505 km away (spherical Earth, common practice): a
+    station 710 km from the platform cannot see it, whichever entry completes the link."""
+    ops = api(station)("ops-ada")
+    assert ops.patch("/api/v1/registry/links/link-a", json={"optics": OPTICS}).is_success
+    assert ops.patch("/api/v1/registry/nodes/relay-1", json={"physical": PLATFORM}).is_success
+    before = snapshot(station.ctx)
+    r = ops.patch("/api/v1/registry/nodes/station-a", json={"physical": FAR_STATION})
+    assert r.status_code == 400, r.text
+    assert r.json()["details"][0] == {"field": "physical", "problem": "platform below the horizon"}
+    assert "station-a would see the platform of relay-1 at -" in r.json()["message"]
+    assert snapshot(station.ctx) == before
+    # A station near enough is fine; then moving the platform away is refused the same way.
+    assert ops.patch("/api/v1/registry/nodes/station-a", json={"physical": STATION}).is_success
+    before = snapshot(station.ctx)
+    r = ops.patch(
+        "/api/v1/registry/nodes/relay-1",
+        json={"physical": PLATFORM | {"latitude_deg": 50.0}},
+    )
+    assert r.status_code == 400 and r.json()["details"][0]["field"] == "physical"
+    assert snapshot(station.ctx) == before
+
+
+def test_a_new_link_to_a_station_over_the_horizon_is_refused(station, api) -> None:
+    ops = api(station)("ops-ada")
+    assert ops.patch("/api/v1/registry/nodes/relay-1", json={"physical": PLATFORM}).is_success
+    r = ops.post(
+        "/api/v1/registry/nodes",
+        json={"node_id": "station-far", "role": "station", "physical": FAR_STATION},
+    )
+    assert r.status_code == 201  # no link yet: nothing to fly
+    before = snapshot(station.ctx)
+    r = ops.post(
+        "/api/v1/registry/links",
+        json={
+            "link_id": "link-far",
+            "relay_id": "relay-1",
+            "station_id": "station-far",
+            "optics": OPTICS,
+        },
+    )
+    assert r.status_code == 400, r.text
+    assert r.json()["details"][0]["field"] == "optics"
+    assert snapshot(station.ctx) == before

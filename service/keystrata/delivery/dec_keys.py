@@ -29,7 +29,7 @@ from keystrata.delivery.enc_keys import GROUP_BATCH, DeliveredKey
 from keystrata.delivery.key_states import KeyState, after_fetch, move
 from keystrata.delivery.ports import AllocationSource
 from keystrata.delivery.routing import refusal_entry, refuse, sae_station
-from keystrata.delivery.slave_copy import apply_allocated_in
+from keystrata.delivery.slave_copy import apply_allocated_in, lock_named_segments
 from keystrata.errors import (
     AllocationNotHere,
     BadRequest,
@@ -173,14 +173,17 @@ def _pull_and_apply(
     refused: list[tuple[messages.KeyAllocated, Forbidden]] = []
     # The ledger entries are written last (chain.deferred), so this transaction takes
     # the ledger head after the rows of every message, as the owner's push does.
+    parsed: list[messages.KeyAllocated] = []
+    for body in bodies:
+        try:
+            msg = messages.parse(body)
+        except InvalidInput:
+            continue  # a malformed message holds no key of this request; others may
+        if isinstance(msg, messages.KeyAllocated):
+            parsed.append(msg)
     with ctx.db.write() as s, chain.deferred(s, node_id=ctx.node_id) as entries:
-        for body in bodies:
-            try:
-                msg = messages.parse(body)
-            except InvalidInput:
-                continue  # a malformed message holds no key of this request; others may
-            if not isinstance(msg, messages.KeyAllocated):
-                continue
+        lock_named_segments(s, parsed)
+        for msg in parsed:
             mark = entries.mark()
             try:
                 with s.begin_nested():

@@ -130,6 +130,34 @@ def check_binding(
     return pair
 
 
+def lock_named_segments(s: Session, msgs: Sequence[messages.PeerMessage]) -> None:
+    """Lock every segment the ``key.allocated`` messages among ``msgs`` name, in one
+    sorted statement, before any of them is applied.
+
+    A transaction that applies several such messages (a run of pushed messages, a pull)
+    and locked each message's segments in turn could lock them in another order than a
+    transaction applying an overlapping set, and PostgreSQL would end one of them as a
+    deadlock (seen in the load test: two runs each holding the segment the other needs).
+    Taken all at once in segment order, the later transaction waits for the earlier.
+    """
+    named = sorted(
+        {
+            r.segment
+            for msg in msgs
+            if isinstance(msg, messages.KeyAllocated)
+            for rec in msg.keys
+            for r in rec.ranges
+        }
+    )
+    if named:
+        s.execute(
+            select(PairSegment.segment_id)
+            .where(PairSegment.segment_id.in_(named))
+            .order_by(PairSegment.segment_id)
+            .with_for_update()
+        ).all()
+
+
 def apply_allocated_in(
     ctx: NodeContext, s: Session, sender: str, msg: messages.KeyAllocated
 ) -> MessageResult:

@@ -175,6 +175,7 @@ def _apply_run(
     outcomes: list[MessageResult] = []
     error: KeystrataError | None = None
     with ctx.db.write() as s, chain.deferred(s, node_id=ctx.node_id) as entries:
+        slave_copy.lock_named_segments(s, run)
         for msg in run:
             mark = entries.mark()
             try:

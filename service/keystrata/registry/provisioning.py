@@ -16,6 +16,7 @@ from keystrata.context import NodeContext
 from keystrata.errors import AlreadyExists, Conflict, InvalidInput, NotFound
 from keystrata.ledger import chain
 from keystrata.ledger.entries import Event
+from keystrata.registry import physical
 from keystrata.registry.specs import (
     Kind,
     LinkChange,
@@ -201,6 +202,7 @@ def create(ctx: NodeContext, kind: Kind, spec: Spec, *, actor: str) -> dict[str,
         row = _new_row(spec, now)
         s.add(row)
         s.flush()
+        physical.check_geometry(s, kind, row, "optics" if kind is Kind.LINKS else "physical")
         out = to_dict(kind, row)
         chain.append(
             s,
@@ -287,6 +289,8 @@ def change(ctx: NodeContext, kind: Kind, key: str, change: Change, *, actor: str
         now = ctx.clock.now()
         row.updated_at = now
         s.flush()
+        if "physical" in given or "optics" in given:
+            physical.check_geometry(s, kind, row, "optics" if kind is Kind.LINKS else "physical")
         out = to_dict(kind, row)
         chain.append(
             s,
