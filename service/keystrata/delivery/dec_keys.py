@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import json
 import logging
-import time
 import uuid
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -53,11 +52,6 @@ log = logging.getLogger("keystrata.delivery")
 
 #: Key IDs per ``IN (...)`` (SQLite allows 32,766 parameters per statement).
 _IN_CHUNK = 500
-#: How long a Get key with key IDs keeps pulling and serving again while the owner's
-#: allocation names segment bytes not ready here yet, or the owner cannot be asked,
-#: before it answers 503; and the pause between two tries.
-NOT_HERE_WAIT_S = 2.0
-NOT_HERE_PAUSE_S = 0.1
 
 
 @dataclass(frozen=True)
@@ -103,8 +97,7 @@ def get_keys_with_ids(
         Unauthenticated: anything not allocated to (master -> caller), already fetched,
             expired or unknown (401, recorded).
         AllocationNotHere: a key ID is unknown here while the master's station could not
-            be asked, or named key this station cannot take yet, still after
-            :data:`NOT_HERE_WAIT_S` of pulling again (503, try again).
+            be asked, or named key this station cannot take yet (503, try again).
     """
     holds.refuse_if_held(ctx, caller, master_sae_id)  # restore check: 503 while held
     ids = [str(uuid.UUID(k)) for k in key_ids]
@@ -134,21 +127,10 @@ def get_keys_with_ids(
         partial(_pull_group, ctx, owner),
         max_batch=GROUP_BATCH,
     )
-    # The owner's message may name segment bytes not ready here yet (the relay's
-    # confirmation is on its way): pull and serve again for a moment before answering
-    # 503, as the key is most likely a few hundred milliseconds away.
-    deadline = time.monotonic() + NOT_HERE_WAIT_S
-    while True:
-        unsettled = pulls.submit(_MissingIds(first.ids, allocation_source))
-        try:
-            again = serving.submit(_KeyIdsRequest(caller, master_sae_id, ids, unsettled, False))
-        except AllocationNotHere:
-            if time.monotonic() + NOT_HERE_PAUSE_S >= deadline:
-                raise
-            time.sleep(NOT_HERE_PAUSE_S)
-            continue
-        assert not isinstance(again, _Unknown)
-        return again
+    unsettled = pulls.submit(_MissingIds(first.ids, allocation_source))
+    again = serving.submit(_KeyIdsRequest(caller, master_sae_id, ids, unsettled, False))
+    assert not isinstance(again, _Unknown)
+    return again
 
 
 def _known(s: Session, ids: list[str]) -> set[str]:
