@@ -18,11 +18,15 @@ import httpx
 
 from keystrata_client import TlsIdentity
 
-#: 503 answers that DEVELOPERS.md documents for Get key: too little ready key, or the
-#: pair's daily quota spent. A client waits and asks again; they are not errors.
+#: 503 answers that DEVELOPERS.md documents ("Key delivery"): for Get key, too little
+#: ready key or the pair's daily quota spent; for Get key with key IDs, an allocation
+#: that names segment bytes not ready at the slave's station yet (the relay's
+#: confirmation is on its way). A client waits and asks again; they are counted and
+#: reported, not errors.
 DOCUMENTED_503 = {
     "bits asked for are ready": "not_enough_key",
     "quota": "quota_reached",
+    "has not reached this station yet": "allocation_not_here_yet",
 }
 RETRY_SECONDS = 0.05
 
@@ -169,8 +173,11 @@ class Worker:
                 return
             elapsed = 1000 * (time.perf_counter() - started)
             if r.status_code == 503:
-                # Not documented as "quota or empty pool": counted, and asked again.
-                tally.violation(f"dec_keys 503: {_message(r)}")
+                reason = _documented(r)
+                if reason is None:  # not documented: a violation, and asked again
+                    tally.violation(f"dec_keys 503: {_message(r)}")
+                else:
+                    tally.documented_503[f"dec_keys {reason}"] += 1
                 await asyncio.sleep(RETRY_SECONDS)
                 continue
             break
