@@ -181,6 +181,14 @@ def _pull_and_apply(
             continue  # a malformed message holds no key of this request; others may
         if isinstance(msg, messages.KeyAllocated):
             parsed.append(msg)
+    # Messages apply in order; the ones after the last missing key can wait for the
+    # owner's push, and their segments are not locked here.
+    needed = set(missing)
+    for end, msg in enumerate(parsed, start=1):
+        needed -= {k.key_ID for k in msg.keys}
+        if not needed:
+            del parsed[end:]
+            break
     with ctx.db.write() as s, chain.deferred(s, node_id=ctx.node_id) as entries:
         lock_named_segments(s, parsed)
         for msg in parsed:
