@@ -18,23 +18,11 @@ from __future__ import annotations
 import math
 from typing import TYPE_CHECKING
 
+from keystrata_physics.checks import number as _number
+from keystrata_physics.checks import positive as _positive
+
 if TYPE_CHECKING:
     from collections.abc import Callable
-
-
-def _number(name: str, value: float) -> float:
-    if isinstance(value, bool) or not isinstance(value, int | float):
-        raise ValueError(f"{name} must be a number, got {value!r}")
-    if not math.isfinite(value):
-        raise ValueError(f"{name} must be finite, got {value!r}")
-    return float(value)
-
-
-def _positive(name: str, value: float) -> float:
-    number = _number(name, value)
-    if number <= 0.0:
-        raise ValueError(f"{name} must be > 0, got {value!r}")
-    return number
 
 
 def _elevation(value: float) -> float:

@@ -12,24 +12,12 @@ from __future__ import annotations
 
 import math
 
+from keystrata_physics.checks import number as _number
+from keystrata_physics.checks import positive as _positive
+
 #: Planck constant (J s) and speed of light (m/s): exact in the SI since 2019.
 PLANCK_J_S = 6.62607015e-34
 LIGHT_SPEED_M_S = 299_792_458.0
-
-
-def _number(name: str, value: float) -> float:
-    if isinstance(value, bool) or not isinstance(value, int | float):
-        raise ValueError(f"{name} must be a number, got {value!r}")
-    if not math.isfinite(value):
-        raise ValueError(f"{name} must be finite, got {value!r}")
-    return float(value)
-
-
-def _positive(name: str, value: float) -> float:
-    number = _number(name, value)
-    if number <= 0.0:
-        raise ValueError(f"{name} must be > 0, got {value!r}")
-    return number
 
 
 def sky_radiance(

@@ -14,19 +14,13 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
+from keystrata_physics.checks import number as _finite
+
 EARTH_RADIUS_M = 6_371_000.0
 """Mean Earth radius of the spherical model, metres."""
 
 #: The lowest height a site may have: below the lowest dry land (about -430 m).
 _MIN_HEIGHT_M = -500.0
-
-
-def _finite(name: str, value: float) -> float:
-    if isinstance(value, bool) or not isinstance(value, int | float):
-        raise ValueError(f"{name} must be a number, got {value!r}")
-    if not math.isfinite(value):
-        raise ValueError(f"{name} must be finite, got {value!r}")
-    return float(value)
 
 
 def _height(name: str, value: float) -> float:

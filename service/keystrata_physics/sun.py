@@ -15,16 +15,10 @@ import math
 from dataclasses import dataclass
 from datetime import UTC, datetime
 
+from keystrata_physics.checks import number as _finite
+
 #: Julian day of the epoch J2000.0 (2000 January 1.5 TD).
 J2000 = 2451545.0
-
-
-def _finite(name: str, value: float) -> float:
-    if isinstance(value, bool) or not isinstance(value, int | float):
-        raise ValueError(f"{name} must be a number, got {value!r}")
-    if not math.isfinite(value):
-        raise ValueError(f"{name} must be finite, got {value!r}")
-    return float(value)
 
 
 def _aware(when: datetime) -> datetime:
