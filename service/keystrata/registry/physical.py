@@ -12,6 +12,7 @@ from keystrata.errors import InvalidInput
 from keystrata.registry.specs import Kind
 from keystrata.storage.models import QkdLink, RegistryNode
 from keystrata_physics import geometry
+from keystrata_physics import link as link_model
 from keystrata_physics.link import MIN_ELEVATION_DEG
 from keystrata_physics.optics import Platform, StationSky, from_mapping
 
@@ -47,10 +48,7 @@ def check_geometry(s: Session, kind: Kind, row: Any, field: str) -> None:
             continue
         platform = from_mapping(Platform, relay.physical)
         sky = from_mapping(StationSky, station.physical)
-        seen = geometry.look(
-            geometry.Site(sky.latitude_deg, sky.longitude_deg, sky.height_m),
-            geometry.Site(platform.latitude_deg, platform.longitude_deg, platform.altitude_m),
-        )
+        seen = geometry.look(link_model.station_site(sky), link_model.platform_site(platform))
         if seen.elevation_deg < MIN_ELEVATION_DEG:
             message = (
                 f"{field}: {station.node_id} would see the platform of {relay.node_id} at "
