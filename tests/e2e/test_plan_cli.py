@@ -4,18 +4,33 @@ registry's physical profiles, through the SDK and mutual TLS."""
 from __future__ import annotations
 
 import json
+import shutil
+from collections.abc import Iterator
 from pathlib import Path
 
+import pytest
+
 from keystrata.loopback.pki import PkiFiles
-from keystrata.loopback.processes import NodeProcess, run_cli
+from keystrata.loopback.processes import NodeProcess, prepare_node, run_cli
 from keystrata_client import OperatorClient, TlsIdentity
 
 
+@pytest.fixture
+def station_process(tmp_path: Path, pki: PkiFiles, sqlite_template: Path) -> Iterator[NodeProcess]:
+    db = tmp_path / "station.db"
+    shutil.copy(sqlite_template, db)
+    node = prepare_node(tmp_path, pki, "station-a", "station", f"sqlite:///{db}").start(pki)
+    try:
+        yield node
+    finally:
+        node.stop()
+
+
 def test_plan_prints_tables_json_and_writes_plots(
-    sqlite_station: NodeProcess, pki: PkiFiles, tmp_path: Path
+    station_process: NodeProcess, pki: PkiFiles, tmp_path: Path
 ) -> None:
     ops_id = TlsIdentity(ca=pki.ca, cert=pki.cert("ops-ada"), key=pki.key("ops-ada"))
-    with OperatorClient(sqlite_station.url, ops_id) as ops:
+    with OperatorClient(station_process.url, ops_id) as ops:
         ops.create(
             "nodes",
             {
@@ -39,7 +54,7 @@ def test_plan_prints_tables_json_and_writes_plots(
             },
         )
     env = {
-        "KEYSTRATA_URL": sqlite_station.url,
+        "KEYSTRATA_URL": station_process.url,
         "KEYSTRATA_CA": str(pki.ca),
         "KEYSTRATA_CERT": str(pki.cert("ops-ada")),
         "KEYSTRATA_KEY": str(pki.key("ops-ada")),

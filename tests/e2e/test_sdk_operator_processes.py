@@ -3,10 +3,14 @@ client and a node understand each other (registry round trip, errors, roles)."""
 
 from __future__ import annotations
 
+import shutil
+from collections.abc import Iterator
+from pathlib import Path
+
 import pytest
 
 from keystrata.loopback.pki import PkiFiles
-from keystrata.loopback.processes import NodeProcess
+from keystrata.loopback.processes import NodeProcess, prepare_node
 from keystrata_client import (
     ApiError,
     OperatorClient,
@@ -18,10 +22,21 @@ def identity(pki: PkiFiles, name: str) -> TlsIdentity:
     return TlsIdentity(ca=pki.ca, cert=pki.cert(name), key=pki.key(name))
 
 
+@pytest.fixture
+def station_process(tmp_path: Path, pki: PkiFiles, sqlite_template: Path) -> Iterator[NodeProcess]:
+    db = tmp_path / "station.db"
+    shutil.copy(sqlite_template, db)
+    node = prepare_node(tmp_path, pki, "station-a", "station", f"sqlite:///{db}").start(pki)
+    try:
+        yield node
+    finally:
+        node.stop()
+
+
 def test_registry_round_trip_and_errors_from_a_real_node(
-    sqlite_station: NodeProcess, pki: PkiFiles
+    station_process: NodeProcess, pki: PkiFiles
 ) -> None:
-    url = sqlite_station.url
+    url = station_process.url
     with OperatorClient(url, identity(pki, "ops-ada")) as ops:
         assert ops.node_info()["node_id"] == "station-a"
         relay = ops.create("nodes", {"node_id": "relay-1", "role": "relay"})
