@@ -502,3 +502,35 @@ class RegistryGeneration(Base):
     __table_args__ = (CheckConstraint("id = 1", name="one_row"),)
     id: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
     value: Mapped[int] = mapped_column(BigInteger)
+
+
+class PeerRegistryView(Base):
+    """What the last comparison of shared registry facts with one peer found
+    (registry/comparison.py): names of the facts that differ, never their values."""
+
+    __tablename__ = "peer_registry_view"
+    peer_id: Mapped[str] = mapped_column(String(ID_LEN), primary_key=True)
+    checked_at: Mapped[datetime] = mapped_column(comment="the last comparison that got an answer")
+    disagreements: Mapped[str] = mapped_column(
+        Text, comment="JSON list of {kind, id, field}: the shared facts the two nodes differ on"
+    )
+    count: Mapped[int] = mapped_column(Integer, comment="how many facts differ")
+    last_error: Mapped[str | None] = mapped_column(
+        String(255), comment="why the last attempt got no answer, if it failed"
+    )
+
+
+class HistorySample(Base):
+    """A compact time series of what the dashboard plots (observability/history.py): one
+    value of one series (link rate, pool level, pair buffer, deliveries) for one subject
+    (a link or pair ID) at one time; rows older than the retention are deleted."""
+
+    __tablename__ = "history_sample"
+    __table_args__ = (Index("ix_history_sample_series_subject_at", "series", "subject", "at"),)
+    id: Mapped[int] = mapped_column(
+        BigInteger().with_variant(Integer, "sqlite"), primary_key=True, autoincrement=True
+    )
+    at: Mapped[datetime] = mapped_column(index=True)
+    series: Mapped[str] = mapped_column(String(32))
+    subject: Mapped[str] = mapped_column(String(ID_LEN))
+    value: Mapped[float] = mapped_column(Float)
