@@ -1,5 +1,9 @@
 """Node processes on loopback: `keystrata serve` on free 127.0.0.1 ports, started, waited
-for until they answer, stopped (SIGTERM, or SIGKILL as the crash tests do)."""
+for until they answer, stopped (SIGTERM, or SIGKILL as the crash tests do).
+
+Each node runs in a session of its own, so a Ctrl-C at the terminal (SIGINT to the
+terminal's foreground process group) reaches only the program that started the nodes,
+which then stops them when it is ready to (the demo first drains and audits them)."""
 
 from __future__ import annotations
 
@@ -94,6 +98,8 @@ class NodeProcess:
                 [*KEYSTRATA, "serve", "--config", str(self.config)],
                 stdout=log,
                 stderr=subprocess.STDOUT,
+                stdin=subprocess.DEVNULL,
+                start_new_session=True,
             )
         return self
 
