@@ -8,7 +8,7 @@ from typing import Any, Final, Literal
 
 import httpx
 
-from keystrata_client._errors import KeystrataClientError
+from keystrata_client._errors import ApiError, KeystrataClientError
 from keystrata_client._http import (
     build_client,
     check_base_url,
@@ -110,6 +110,25 @@ class OperatorClient:
     def node_info(self) -> dict[str, Any]:
         """Return ``{"node_id", "role", "version"}`` of the node."""
         return self._call("GET", "/api/v1/node")
+
+    def api_document(self) -> dict[str, Any]:
+        """Return the node's OpenAPI document (operator and monitor): its routes and the
+        schemas of their bodies, defaults included."""
+        return self._call("GET", "/openapi.json")
+
+    def readiness(self) -> dict[str, Any]:
+        """Return ``{"status", "checks"}``: each readiness check's ``ok`` or its note.
+
+        A node that is not ready answers 503; its failing checks come back in the same
+        shape (``status`` ``"not ready"``) rather than as an :class:`ApiError`.
+        """
+        try:
+            return self._call("GET", "/api/v1/health/ready")
+        except ApiError as exc:
+            if exc.status != 503 or not exc.details:
+                raise
+            checks = {str(d.get("check")): str(d.get("problem")) for d in exc.details}
+            return {"status": "not ready", "checks": checks}
 
     # -- registry ----------------------------------------------------------------------
 

@@ -26,6 +26,7 @@ COMMANDS = {
     "pairs": "keystrata.cli.remote_cmd:pairs",
     "deliveries": "keystrata.cli.remote_cmd:deliveries",
     "plan": "keystrata.cli.plan_cmd:plan",
+    "network": "keystrata.cli.network_cmd:network",
     "keys": "keystrata.cli.keys_cmd:keys",
     "audit": "keystrata.cli.audit_cmd:audit",
     "demo": "keystrata.demo.main:demo",

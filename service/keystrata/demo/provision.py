@@ -1,15 +1,22 @@
-"""Provision the demo network on every node through the operator API, as an operator
-would: each node gets the part of the registry it needs."""
+"""Provision the demo network as an operator would: write its network description to
+the workdir (``network.toml``) and apply it to every node through their APIs, the way
+`keystrata network apply` does."""
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 from typing import Any
 
 from keystrata.demo import scenario
 from keystrata.demo.workdir import DemoNode
-from keystrata.loopback.pki import cert_pin
-from keystrata_client import ApiError, OperatorClient, TlsIdentity
+from keystrata_client import KeystrataClientError, TlsIdentity
+from keystrata_client.network import apply as applying
+from keystrata_client.network import description
+
+#: The description's name in the workdir.
+DESCRIPTION = "network.toml"
+OPTICS_PROFILE = "lowmarch"
 
 
 def operator_identity(workdir: Path) -> TlsIdentity:
@@ -21,141 +28,132 @@ def operator_identity(workdir: Path) -> TlsIdentity:
     )
 
 
-def _create(client: OperatorClient, kind: str, body: dict[str, Any]) -> None:
-    try:
-        client.create(kind, body)
-    except ApiError as exc:
-        if exc.status != 409:  # already there from an earlier step: fine
-            raise
+def _value(value: Any) -> str:
+    """A TOML value: strings, numbers, booleans, lists of them and inline tables."""
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return json.dumps(value)  # a TOML basic string: the same escapes
+    if isinstance(value, int | float):
+        return repr(value)
+    if isinstance(value, list | tuple):
+        return "[" + ", ".join(_value(v) for v in value) + "]"
+    if isinstance(value, dict):
+        return "{ " + ", ".join(f"{k} = {_value(v)}" for k, v in value.items()) + " }"
+    raise TypeError(f"no TOML form for {type(value).__name__}")
 
 
-def _facts_for(node_id: str, pki: Path) -> list[tuple[str, dict[str, Any]]]:
-    """The registry entries node ``node_id`` needs, in an order that satisfies references."""
-    relay = node_id == scenario.RELAY
-    stations = (
-        scenario.STATIONS
-        if relay
-        else [scenario.station(s) for s in sorted({node_id, *scenario.partners(node_id)})]
-    )
-    facts: list[tuple[str, dict[str, Any]]] = []
-    if not relay:
-        facts.append(
-            (
-                "nodes",
+def _table(name: str, values: dict[str, Any]) -> str:
+    lines = [f"[{name}]"] + [f"{k} = {_value(v)}" for k, v in values.items()]
+    return "\n".join(lines) + "\n"
+
+
+def description_text(nodes: list[DemoNode]) -> str:
+    """The demo network's description, with the nodes' URLs of this run."""
+    urls = {n.node_id: n.url for n in nodes}
+    parts = [
+        f"# The {scenario.ORGANISATION}'s network (an invented scenario), written by\n"
+        "# `keystrata demo`. Paths are relative to this file. See what applying it would\n"
+        "# change with `keystrata network check network.toml`, apply it with\n"
+        "# `keystrata network apply network.toml`, and see every node with\n"
+        "# `keystrata network status network.toml`.\n",
+        _table(
+            "network",
+            {
+                "name": scenario.ORGANISATION,
+                "ca": "pki/ca.crt",
+                "cert": f"pki/{scenario.OPERATOR}.crt",
+                "key": f"pki/{scenario.OPERATOR}.key",
+            },
+        ),
+        "# What every link shares; each link adds its receiving telescope.",
+        _table(f"optics.{OPTICS_PROFILE}", scenario.OPTICS),
+        _table(
+            f"relays.{scenario.RELAY}",
+            {
+                "url": urls[scenario.RELAY],
+                "certificate": f"pki/{scenario.RELAY}.crt",
+                "description": "airship Vela, trusted relay",
+                "platform": scenario.PLATFORM,
+            },
+        ),
+    ]
+    for st in scenario.STATIONS:
+        parts.append(
+            _table(
+                f"stations.{st.node_id}",
                 {
-                    "node_id": scenario.RELAY,
-                    "role": "relay",
-                    "description": "airship Vela, trusted relay",
-                    "physical": scenario.PLATFORM,
+                    "url": urls[st.node_id],
+                    "certificate": f"pki/{st.node_id}.crt",
+                    "description": st.place,
+                    "site": st.physical,
                 },
             )
         )
-    facts += [
-        (
-            "nodes",
-            {
-                "node_id": st.node_id,
-                "role": "station",
-                "description": st.place,
-                "physical": st.physical,
-            },
-        )
-        for st in stations
-        if st.node_id != node_id
-    ]
-    own_links = [st for st in stations if relay or st.node_id == node_id]
-    facts += [
-        (
-            "links",
-            {
-                "link_id": st.link_id,
-                "relay_id": scenario.RELAY,
-                "station_id": st.node_id,
-                "description": f"Vela to {st.place}",
-                "optics": st.optics,
-            },
-        )
-        for st in own_links
-    ]
-    for a, b in scenario.PAIRS:
-        if relay or node_id in (a, b):
-            facts.append(
-                (
-                    "pairs",
-                    {
-                        "pair_id": scenario.pair_id(a, b),
-                        "relay_id": scenario.RELAY,
-                        "stations": [a, b],
-                    },
-                )
-            )
-    facts.append(
-        (
-            "principals",
-            {
-                "principal_id": scenario.AUDITOR,
-                "role": "auditor",
-                "cert_subject": scenario.AUDITOR,
-                "description": "Marek Olwen, auditor",
-            },
-        )
-    )
-    facts += [
-        (
-            "principals",
-            {
-                "principal_id": st.module,
-                "role": "qkd-module",
-                "cert_subject": st.module,
-                "link_id": st.link_id,
-            },
-        )
-        for st in own_links
-    ]
-    peers = [scenario.RELAY] if not relay else []
-    peers += [st.node_id for st in stations if st.node_id != node_id]
-    facts += [
-        (
-            "principals",
-            {
-                "principal_id": f"peer-{p}",
-                "role": "peer",
-                "cert_subject": p,
-                # Peers are pinned to their node certificates.
-                "cert_sha256": cert_pin(pki, p),
-                "node_id": p,
-            },
-        )
-        for p in peers
-    ]
-    if not relay:
-        facts += [
-            (
-                "principals",
-                {"principal_id": sae, "role": "sae", "cert_subject": sae, "station_id": st.node_id},
-            )
-            for st in stations
+        parts += [
+            _table(f"stations.{st.node_id}.saes.{sae}", {"description": f"encryptor at {st.place}"})
             for sae in st.saes
         ]
-    return facts
+    parts += [
+        _table(
+            f"links.{st.link_id}",
+            {
+                "relay": scenario.RELAY,
+                "station": st.node_id,
+                "description": f"Vela to {st.place}",
+                "optics": {"extends": OPTICS_PROFILE, "rx_aperture_m": st.rx_aperture_m},
+                "module": {"id": st.module},
+            },
+        )
+        for st in scenario.STATIONS
+    ]
+    parts += [
+        _table(
+            f"pairs.{scenario.pair_id(a, b)}",
+            {"relay": scenario.RELAY, "stations": [a, b]},
+        )
+        for a, b in scenario.PAIRS
+    ]
+    parts += [
+        _table(
+            f"people.{scenario.OPERATOR}",
+            {
+                "role": "operator",
+                "certificate": f"pki/{scenario.OPERATOR}.crt",
+                "description": "Ida Varga, network operator",
+            },
+        ),
+        _table(
+            f"people.{scenario.AUDITOR}",
+            {"role": "auditor", "description": "Marek Olwen, auditor"},
+        ),
+    ]
+    return "\n".join(parts)
 
 
-def _own_profile(node_id: str) -> dict[str, Any]:
-    """A node's own entry (written by ``node init``) gets its physical profile."""
-    if node_id == scenario.RELAY:
-        return {"physical": scenario.PLATFORM}
-    return {"physical": scenario.station(node_id).physical}
+def write_description(workdir: Path, nodes: list[DemoNode]) -> Path:
+    path = workdir / DESCRIPTION
+    path.write_text(description_text(nodes))
+    return path
 
 
 def provision(workdir: Path, nodes: list[DemoNode]) -> int:
-    """Create every registry entry at every node; return how many were sent."""
+    """Write the description and apply it to every node; return how many registry
+    calls were made.
+
+    Raises:
+        KeystrataClientError: a node could not be asked, or a call failed (the message
+            names the node and the node's own reason).
+    """
+    net = description.load(write_description(workdir, nodes))
     identity = operator_identity(workdir)
-    sent = 0
-    for node in nodes:
-        with OperatorClient(node.url, identity) as client:
-            client.change("nodes", node.node_id, _own_profile(node.node_id))
-            sent += 1
-            for kind, body in _facts_for(node.node_id, workdir / "pki"):
-                _create(client, kind, body)
-                sent += 1
-    return sent
+    surveys = applying.survey(net, identity, timeout=30)
+    for s in surveys:
+        if s.error is not None:
+            raise KeystrataClientError(f"{s.node_id}: {s.error}")
+    outcomes = applying.apply(net, surveys, identity, timeout=30)
+    for o in outcomes:
+        if o.failed:
+            action, error = o.failed[0]
+            raise KeystrataClientError(f"{o.node_id}: {action.describe()}: {error}")
+    return sum(len(o.done) for o in outcomes)
