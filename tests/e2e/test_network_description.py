@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import json
 import shutil
-import time
 from collections.abc import Iterator
 from pathlib import Path
 
