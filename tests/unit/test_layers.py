@@ -48,7 +48,7 @@ LAYERS: tuple[tuple[str, ...], ...] = (
 LONG_MODULES = {
     # The whole schema in one file, so that a reviewer compares it with a migration
     # revision at a glance.
-    "storage/models.py": 520,
+    "storage/models.py": 560,
 }
 MAX_LINES = 420
 
