@@ -8,6 +8,8 @@ import struct
 import uuid
 from datetime import UTC, datetime, timedelta
 
+import pytest
+
 from helpers import ledger_events, snapshot
 from keystrata_client import LinkBlock
 from keystrata_client._blocks import encode_binary
@@ -43,7 +45,13 @@ def test_json_blocks_are_stored_and_counted(station, api) -> None:
     assert pool["blocks_available"] == 3
     assert pool["peer_node_id"] == "relay-1"
     assert pool["rate_bps"] == 3 * 8192 / pool["window_seconds"]
+    assert pool["qber"] == pytest.approx(0.021)
     assert ledger_events(station.ctx)[-1] == "link_key.ingested"
+    # The mean weighs blocks by their length: three of 1 KiB at 0.021, one of 3 KiB at 0.041.
+    r = mod.post(URL, json={"blocks": [_json_block(os.urandom(3 * 1024), qber=0.041)]})
+    assert r.status_code == 200, r.text
+    pool = api(station)("ops-ada").get("/api/v1/links/link-a/pool").json()
+    assert pool["qber"] == pytest.approx((3 * 1024 * 0.021 + 3 * 1024 * 0.041) / (6 * 1024))
 
 
 def test_binary_blocks_and_harmless_resend(station, api) -> None:

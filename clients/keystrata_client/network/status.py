@@ -75,6 +75,7 @@ class LinkRow:
     relay: str
     station: str
     rate_bps: float | None  # received at the station end over the node's rate window
+    qber: float | None  # mean QBER of those blocks
     planned_bps: float | None
     plan_ratio: float | None
     relay_pool_bits: int | None
@@ -111,6 +112,7 @@ def links(net: Network, statuses: list[NodeStatus]) -> list[LinkRow]:
                 link.relay,
                 link.station,
                 seen.get("rate_bps") if seen else None,
+                seen.get("qber") if seen else None,
                 seen.get("planned_rate_bps") if seen else None,
                 seen.get("plan_ratio") if seen else None,
                 at_relay.get("bits_available") if at_relay else None,

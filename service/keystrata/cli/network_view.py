@@ -64,18 +64,18 @@ def render(
     for col, justify in (
         ("Link", "left"),
         ("Received", "right"),
-        ("Planned", "right"),
-        ("Of plan", "right"),
-        ("Pool at relay", "right"),
-        ("Pool at station", "right"),
+        ("QBER", "right"),
+        ("Plan (share)", "right"),
+        ("Relay pool", "right"),
+        ("Station pool", "right"),
     ):
         table.add_column(col, justify=justify)  # type: ignore[arg-type]
     for r in links:
         table.add_row(
             r.link_id,
             rate(r.rate_bps),
-            rate(r.planned_bps),
-            ratio(r.plan_ratio),
+            "-" if r.qber is None else f"{100 * r.qber:.1f} %",
+            rate(r.planned_bps) + ("" if r.plan_ratio is None else f" ({ratio(r.plan_ratio)})"),
             amount(r.relay_pool_bits),
             amount(r.station_pool_bits),
         )

@@ -28,12 +28,16 @@ class PoolLevel:
     rate_bps: float
     window_seconds: int
     last_block_at: str | None
+    #: Mean QBER of the blocks received over the window, weighted by their length
+    #: (None when none arrived): what the QKD module reported with each block.
+    qber: float | None = None
 
 
 def pool_levels(ctx: NodeContext, link_id: str | None = None) -> list[PoolLevel]:
     """Return the link key pool of every active link ending at this node (or one link).
 
-    ``rate_bps`` is the bits received over the last ``ingest.rate_window_seconds``.
+    ``rate_bps`` is the bits received over the last ``ingest.rate_window_seconds``, and
+    ``qber`` their mean QBER.
 
     Raises:
         NotFound: ``link_id`` given but no such active link ends at this node.
@@ -49,7 +53,7 @@ def pool_levels(ctx: NodeContext, link_id: str | None = None) -> list[PoolLevel]
             raise NotFound(f"no active QKD link {link_id!r} ends at this node")
         out = []
         for link in links:
-            total, used, avail_blocks, recent, last = s.execute(
+            total, used, avail_blocks, recent, last, errors = s.execute(
                 select(
                     func.coalesce(func.sum(LinkBlock.length), 0),
                     func.coalesce(func.sum(LinkBlock.used), 0),
@@ -61,6 +65,15 @@ def pool_levels(ctx: NodeContext, link_id: str | None = None) -> list[PoolLevel]
                         0,
                     ),
                     func.max(LinkBlock.received_at),
+                    func.coalesce(
+                        func.sum(
+                            case(
+                                (LinkBlock.received_at >= since, LinkBlock.length * LinkBlock.qber),
+                                else_=0.0,
+                            )
+                        ),
+                        0.0,
+                    ),
                 ).where(LinkBlock.link_id == link.link_id)
             ).one()
             peer = link.station_id if ctx.node_id == link.relay_id else link.relay_id
@@ -75,6 +88,7 @@ def pool_levels(ctx: NodeContext, link_id: str | None = None) -> list[PoolLevel]
                     rate_bps=8 * int(recent) / window,
                     window_seconds=window,
                     last_block_at=_iso(last),
+                    qber=float(errors) / int(recent) if recent else None,
                 )
             )
     return out

@@ -63,6 +63,9 @@ class PoolAnswer(BaseModel):
     rate_bps: float
     window_seconds: int
     last_block_at: datetime | None
+    qber: float | None = Field(
+        description="mean QBER of the blocks received over the window (by length); null: none"
+    )
     planned_rate_bps: float | None = Field(
         description="the link model's clear-sky rate for now; null without a profile"
     )
