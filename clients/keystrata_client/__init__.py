@@ -20,7 +20,12 @@ from keystrata_client._blocks import (
     encode_binary,
     to_json,
 )
-from keystrata_client._errors import ApiError, KeystrataClientError, TransportError
+from keystrata_client._errors import (
+    ApiError,
+    ConnectionProblem,
+    KeystrataClientError,
+    TransportError,
+)
 from keystrata_client._module import AsyncModuleClient, IngestResult, ModuleClient
 from keystrata_client._operator import REGISTRY_KINDS, OperatorClient, RegistryKind
 from keystrata_client._tls import TlsIdentity
@@ -42,6 +47,7 @@ __all__ = [
     "ApiError",
     "AsyncKeyClient",
     "AsyncModuleClient",
+    "ConnectionProblem",
     "IngestResult",
     "Key",
     "KeyClient",

@@ -7,6 +7,10 @@ message, and a :class:`TransportError` names the failure, not the request body.
     KeystrataClientError        base; also raised for an answer the SDK cannot read
     ├── ApiError                the server answered with a non-2xx status
     └── TransportError          no answer: connection refused, TLS failure, timeout
+        └── ConnectionProblem   a cause the SDK recognises, as one sentence and a hint:
+                                certificate files it cannot use, a URL that is not a
+                                node's base URL, a server certificate the CA does not
+                                verify, a closed or refused connection
 """
 
 from __future__ import annotations
@@ -54,3 +58,23 @@ class TransportError(KeystrataClientError):
 
     The original ``httpx`` exception is chained as ``__cause__``.
     """
+
+
+class ConnectionProblem(TransportError):
+    """The client cannot talk to the node as it is set up, for a reason the SDK named.
+
+    Raised when a client is built (certificate, key or CA files it cannot use, a URL
+    with a path) or by a call that got no answer for a recognised reason (no server at
+    the address, the server's certificate not verified by the CA, the node closing the
+    connection, plain HTTP to a node that speaks HTTPS only). ``str()`` is the problem
+    and the hint, one sentence each.
+
+    Attributes:
+        problem: what is wrong, one sentence naming the file or address.
+        hint: what to do about it, one sentence.
+    """
+
+    def __init__(self, problem: str, hint: str) -> None:
+        self.problem = problem
+        self.hint = hint
+        super().__init__(f"{problem}; {hint}" if hint else problem)

@@ -206,6 +206,7 @@ def test_operator_cli_against_a_running_node(station_process, pki) -> None:
         "node_id=station-b",
         "--set",
         "role=station",
+        "--json",
         env=env,
     )
     assert json.loads(out.stdout)["node_id"] == "station-b"

@@ -674,7 +674,9 @@ def test_cli_turns_errors_into_status_and_message(cli) -> None:
     refused = answer({"message": "not authorised for this pair"}, 401)
     result = cli(refused, "get", "sae-orlin-1")
     assert result.exit_code == 1
-    assert "401: not authorised for this pair" in result.stderr
+    assert "(HTTP 401): not authorised for this pair" in result.stderr
+    assert "registry create principals" in result.stderr  # the hint
+    assert "Traceback" not in result.output
     bad = cli(GOOD, "get", "sae-orlin-1", "--size", "100")
     assert bad.exit_code == 2
     assert "multiple of 8" in bad.stderr

@@ -19,6 +19,7 @@ import pytest
 from keystrata.loopback.processes import free_port
 from keystrata_client import (
     ApiError,
+    ConnectionProblem,
     KeystrataClientError,
     OperatorClient,
     TransportError,
@@ -168,7 +169,10 @@ def test_no_answer_is_a_transport_error() -> None:
     ):
         ops.node_info()
     assert isinstance(caught.value.__cause__, httpx.ConnectError)
-    assert str(caught.value).startswith("ConnectError")
+    assert isinstance(caught.value, ConnectionProblem)
+    assert caught.value.problem == (
+        f"nothing accepts connections at http://127.0.0.1:{port} (connection refused)"
+    )
 
 
 def test_close_leaves_a_caller_owned_client_open() -> None:

@@ -61,15 +61,22 @@ def settings_from(path: Path) -> Settings:
 
 @contextmanager
 def handled() -> Iterator[None]:
-    """Turn our errors into a message on stderr and exit code 1 (2 for bad config)."""
+    """Turn our errors, and files that cannot be read, into ``error: ...`` on stderr
+    with ``field: problem`` detail lines; exit status 1 (2 for bad configuration)."""
+    from keystrata.cli import render
+
     try:
         yield
     except KeystrataError as exc:
-        err = _console("err_console")
-        err.print(f"[red]error:[/red] {exc.message}", highlight=False)
-        for d in exc.details[:20]:
-            err.print(f"  - {d}", highlight=False)
+        click.echo(f"error: {exc.message}", err=True)
+        for line in render.details(exc.details, said=exc.message):
+            click.echo(f"  {line}", err=True)
         sys.exit(2 if isinstance(exc, ConfigError) else 1)
+    except OSError as exc:
+        # strerror and the path only: an OSError never carries file content.
+        where = f"{exc.filename}: " if exc.filename else ""
+        click.echo(f"error: {where}{exc.strerror or exc}", err=True)
+        sys.exit(1)
 
 
 def print_json(value: Any) -> None:
@@ -77,11 +84,18 @@ def print_json(value: Any) -> None:
 
 
 def print_table(rows: Sequence[dict[str, Any]], columns: Sequence[str], title: str = "") -> None:
+    from rich import box
     from rich.table import Table
 
-    table = Table(title=title or None)
+    from keystrata.cli import render
+    from keystrata.cli.units import HUMAN
+
+    def cell(v: Any) -> str:
+        return "" if v is None else v if isinstance(v, str) else render.value(v, HUMAN)
+
+    table = Table(title=title or None, box=box.SIMPLE_HEAD)
     for col in columns:
         table.add_column(col)
     for row in rows:
-        table.add_row(*("" if row.get(c) is None else str(row.get(c)) for c in columns))
+        table.add_row(*(cell(row.get(c)) for c in columns))
     _console("console").print(table)

@@ -17,8 +17,9 @@ import click
 from rich.table import Table
 
 from keystrata.cli.common import console, print_json
-from keystrata.cli.remote_cmd import connection_options
-from keystrata_client import ApiError, KeystrataClientError, TlsIdentity
+from keystrata.cli.connection import client_errors, connection_options
+from keystrata.cli.units import Units
+from keystrata_client import TlsIdentity
 from keystrata_client.keys import KeyClient, KeyContainer, KeyStatus, RequestForm
 
 __all__ = ["keys"]
@@ -34,41 +35,53 @@ def open_client(url: str, ca: Path, cert: Path, key: Path) -> KeyClient:
     """Return a client for the node at ``url`` that presents the SAE's certificate.
 
     Raises:
-        click.ClickException: the URL or a TLS file is unusable.
+        CommandError: the URL or a TLS file is unusable (one sentence and a hint).
     """
-    try:
+    with client_errors():
         return KeyClient(url, TlsIdentity(ca=ca, cert=cert, key=key))
-    except ValueError as exc:
-        raise click.BadParameter(str(exc), param_hint="--url") from None
-    except OSError as exc:  # ssl.SSLError is an OSError
-        raise click.ClickException(f"cannot use the TLS files: {exc}") from None
 
 
 @contextmanager
 def sae(url: str, ca: Path, cert: Path, key: Path) -> Iterator[KeyClient]:
-    """Yield a client; turn SDK errors into a message and exit code 1."""
+    """Yield a client; SDK errors shown as one sentence and a hint, exit status 1."""
     client = open_client(url, ca, cert, key)
     try:
-        yield client
-    except ApiError as exc:
-        detail = "".join(f"\n  - {d}" for d in exc.details[:20])
-        raise click.ClickException(f"{exc.status}: {exc.message}{detail}") from None
-    except KeystrataClientError as exc:
-        raise click.ClickException(str(exc)) from None
-    except ValueError as exc:
-        # The SDK checks arguments before sending anything.
-        raise click.UsageError(str(exc)) from None
+        with client_errors():
+            yield client
     finally:
         client.close()
 
 
-def _status_table(status: KeyStatus) -> Table:
+#: The Get status answer's fields (ETSI GS QKD 014 names, in --json) in words.
+STATUS_LINES = (
+    ("source_KME_ID", "source KME"),
+    ("target_KME_ID", "target KME"),
+    ("master_SAE_ID", "master SAE"),
+    ("slave_SAE_ID", "slave SAE"),
+    ("key_size", "default key size"),
+    ("stored_key_count", "keys ready"),
+    ("max_key_count", "most keys stored"),
+    ("max_key_per_request", "most keys per request"),
+    ("min_key_size", "smallest key size"),
+    ("max_key_size", "largest key size"),
+    ("max_SAE_ID_count", "most additional slaves"),
+)
+
+
+def _status_table(status: KeyStatus, units: Units) -> Table:
     table = Table(title=f"key status, {status.master_sae_id} -> {status.slave_sae_id}")
-    table.add_column("field")
-    table.add_column("value", justify="right")
-    for name, value in status.to_json().items():
-        if name != "status_extension":
-            table.add_row(name, f"{value:,}" if isinstance(value, int) else str(value))
+    table.add_column("")
+    table.add_column("", justify="right")
+    table.add_column("ETSI GS QKD 014 field", style="dim")
+    answer = status.to_json()
+    for name, label in STATUS_LINES:
+        value = answer.get(name)
+        if isinstance(value, int):
+            # A key size is a parameter, always exact; counts with separators.
+            text = f"{value:,} bit" if name.endswith("key_size") else units.count(value)
+        else:
+            text = str(value)
+        table.add_row(label, text, name)
     return table
 
 
@@ -85,9 +98,9 @@ def _show_keys(container: KeyContainer, as_json: bool, show_key: bool) -> None:
         print_json({"keys": rows})
         return
     # Plain lines, not a table: a digest must never be wrapped or cut on a narrow terminal.
-    click.echo(f"{'key_ID':<36}  {'size':>6}  sha256")
+    click.echo(f"{'key ID':<36}  {'size':>10}  SHA-256")
     for row in rows:
-        click.echo(f"{row['key_ID']:<36}  {row['size']:>6}  {row['sha256']}")
+        click.echo(f"{row['key_ID']:<36}  {row['size']:>6} bit  {row['sha256']}")
     if show_key:
         click.echo("")
         for row in rows:
@@ -99,12 +112,12 @@ form_opt = click.option(
     type=click.Choice(["post", "get"]),
     default="post",
     show_default=True,
-    help="the standard's POST form (JSON body) or GET form (query string)",
+    help="The standard's POST form (JSON body) or GET form (query string).",
 )
 show_key_opt = click.option(
     "--show-key",
     is_flag=True,
-    help="also print the keys in Base64 (exposes them; a warning goes to stderr)",
+    help="Also print the keys in Base64 (exposes them; a warning goes to stderr).",
 )
 
 
@@ -116,21 +129,36 @@ def keys() -> None:
 @keys.command("status")
 @click.argument("slave_sae_id")
 @connection_options
-def status_cmd(slave_sae_id: str, url: str, ca: Path, cert: Path, key: Path, as_json: bool) -> None:
+def status_cmd(
+    slave_sae_id: str, url: str, ca: Path, cert: Path, key: Path, as_json: bool, exact: bool
+) -> None:
     """Show what the node can give for keys shared with SLAVE_SAE_ID (Get status)."""
     with sae(url, ca, cert, key) as client:
         status = client.status(slave_sae_id)
     if as_json:
         print_json(status.to_json())
     else:
-        console.print(_status_table(status))
+        console.print(_status_table(status, Units(exact)))
 
 
 @keys.command("get")
 @click.argument("slave_sae_id")
-@click.option("--number", type=click.IntRange(min=1), default=1, show_default=True)
-@click.option("--size", type=click.IntRange(min=8), default=None, help="bits, a multiple of 8")
-@click.option("--also", "also", multiple=True, metavar="SAE_ID", help="another slave SAE")
+@click.option(
+    "--number", type=click.IntRange(min=1), default=1, show_default=True, help="Keys to get."
+)
+@click.option(
+    "--size",
+    type=click.IntRange(min=8),
+    default=None,
+    help="Bits per key, a multiple of 8 [default: the pair's default key size].",
+)
+@click.option(
+    "--also",
+    "also",
+    multiple=True,
+    metavar="SAE_ID",
+    help="Another slave SAE that may fetch the same keys (repeatable).",
+)
 @form_opt
 @show_key_opt
 @connection_options
@@ -146,6 +174,7 @@ def get_cmd(
     cert: Path,
     key: Path,
     as_json: bool,
+    exact: bool,
 ) -> None:
     """Get new keys shared with SLAVE_SAE_ID (Get key, enc_keys).
 
@@ -173,6 +202,7 @@ def get_by_id_cmd(
     cert: Path,
     key: Path,
     as_json: bool,
+    exact: bool,
 ) -> None:
     """Get the keys MASTER_SAE_ID obtained under KEY_ID... (Get key with key IDs, dec_keys).
 
