@@ -185,6 +185,14 @@ class LedgerSection(_Section):
     refusal_interval_seconds: Annotated[float, Field(ge=0, le=3600)] = 60.0
 
 
+class DashboardSection(_Section):
+    """The operators' dashboard: its history samples every ``sample_seconds`` and keeps
+    ``retention_days`` of them (node/history.py)."""
+
+    sample_seconds: Annotated[float, Field(ge=1, le=3600)] = 30.0
+    retention_days: Annotated[float, Field(gt=0, le=366)] = 7.0
+
+
 class Settings(_Section):
     node: NodeSection
     server: ServerSection = ServerSection()
@@ -198,6 +206,7 @@ class Settings(_Section):
     outbox: OutboxSection = OutboxSection()
     ledger: LedgerSection = LedgerSection()
     restore_check: RestoreCheckSection = RestoreCheckSection()
+    dashboard: DashboardSection = DashboardSection()
     #: Folder of the TOML file; relative paths above were resolved against it.
     base_dir: Path = Path(".")
 

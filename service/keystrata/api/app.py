@@ -17,9 +17,11 @@ from starlette.concurrency import run_in_threadpool
 
 from keystrata import __version__
 from keystrata.api import errors
+from keystrata.api.browsers import BrowserGuard
 from keystrata.api.limits import BodyLimit
 from keystrata.api.routes import (
     audit,
+    dashboard,
     docs,
     etsi,
     health,
@@ -60,6 +62,7 @@ ROUTERS: tuple[APIRouter, ...] = (
     audit.router,
     health.router,
     docs.router,
+    dashboard.router,
 )
 
 
@@ -129,6 +132,7 @@ def create_app(
         large_prefixes=("/api/v1/links/", "/api/v1/peer/"),
         as_400_prefixes=("/api/v1/keys/",),
     )
+    app.add_middleware(BrowserGuard, ctx=ctx)  # before any route or body: browsers.py
     # Added last, so outermost: it also times refusals from the body limit.
     app.state.request_metrics = RequestMetrics()
     app.add_middleware(RequestTimer, metrics=app.state.request_metrics)

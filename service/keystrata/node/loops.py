@@ -16,6 +16,7 @@ from keystrata.config import Role
 from keystrata.context import NodeContext
 from keystrata.delivery import slave_copy
 from keystrata.ledger import checkpoints
+from keystrata.node import history
 from keystrata.peering import outbox, sender
 from keystrata.peering.client import PeerClient
 from keystrata.relay import confirmation, scheduler
@@ -47,6 +48,11 @@ class Background:
         loops: list[tuple[str, Callable[[], object], float]] = [
             ("outbox", self._outbox, self.ctx.settings.outbox.idle_seconds),
             ("checkpoints", self._checkpoint, 1.0),
+            (
+                "history",
+                lambda: history.sample_once(self.ctx, self.holder),
+                self.ctx.settings.dashboard.sample_seconds,
+            ),
         ]
         if self.ctx.role is Role.RELAY:
             loops.append(("scheduler", self._schedule, self.ctx.settings.relay.cycle_seconds))
