@@ -17,6 +17,7 @@ from typing import Any
 import click
 
 from keystrata.cli.common import console, print_json
+from keystrata.cli.units import exact_option
 from keystrata_client import KeystrataClientError, TlsIdentity
 from keystrata_client.network import apply as applying
 from keystrata_client.network import description, status
@@ -223,7 +224,7 @@ def _apply_with_progress(
 @network.command("status")
 @_options
 @click.option("--json", "as_json", is_flag=True, help="print JSON for scripts (exact bits)")
-@click.option("--exact", is_flag=True, help="show exact bits instead of human units")
+@exact_option
 def status_cmd(
     path: Path, ca: Path | None, cert: Path | None, key: Path | None, as_json: bool, exact: bool
 ) -> None:

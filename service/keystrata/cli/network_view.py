@@ -5,37 +5,11 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING
 
+from keystrata.cli.units import Units
 from keystrata_client.network.status import LinkRow, NodeStatus, PairRow
 
 if TYPE_CHECKING:
     from rich.console import Console
-
-
-def bits(value: float) -> str:
-    for unit, size in (("Gbit", 1e9), ("Mbit", 1e6), ("kbit", 1e3)):
-        if abs(value) >= size:
-            return f"{value / size:.3g} {unit}"
-    return f"{value:.0f} bit"
-
-
-def rate(value: float | None) -> str:
-    return "-" if value is None else bits(value) + "/s"
-
-
-def ratio(value: float | None) -> str:
-    return "-" if value is None else f"{100 * value:.0f} %"
-
-
-def duration(seconds: float | None) -> str:
-    if seconds is None:
-        return "-"
-    if seconds < 90:
-        return f"{seconds:.0f} s"
-    if seconds < 5400:
-        return f"{seconds / 60:.0f} min"
-    if seconds < 172_800:
-        return f"{seconds / 3600:.1f} h"
-    return f"{seconds / 86400:.1f} d"
 
 
 def render(
@@ -49,8 +23,8 @@ def render(
 ) -> None:
     from rich.table import Table
 
-    def amount(value: int | None) -> str:
-        return "-" if value is None else (f"{value} bit" if exact else bits(value))
+    units = Units(exact=exact)
+    amount, rate = units.bits, units.rate
 
     nodes = Table(title=f"{name}: nodes", title_justify="left")
     for col in ("Node", "Role", "Up", "Version", "Alerts"):
@@ -75,7 +49,8 @@ def render(
             r.link_id,
             rate(r.rate_bps),
             "-" if r.qber is None else f"{100 * r.qber:.1f} %",
-            rate(r.planned_bps) + ("" if r.plan_ratio is None else f" ({ratio(r.plan_ratio)})"),
+            rate(r.planned_bps)
+            + ("" if r.plan_ratio is None else f" ({units.share(r.plan_ratio)})"),
             amount(r.relay_pool_bits),
             amount(r.station_pool_bits),
         )
@@ -98,8 +73,8 @@ def render(
             p.pair_id,
             ready,
             amount(p.target_bits),
-            duration(p.time_until_empty_s),
-            "-" if p.keys_delivered is None else f"{p.keys_delivered:,}",
+            units.duration(p.time_until_empty_s),
+            units.count(p.keys_delivered),
         )
     console.print(table)
 
