@@ -129,6 +129,9 @@ def test_get_status(network, pki, tool) -> None:
     assert status == 200  # clause 5.2: 200 with a Status object (from memory)
     assert ctype.startswith("application/json")  # clause 5.1: JSON (from memory)
     assert set(body) - STATUS_OPTIONAL == set(STATUS_MEMBERS)
+    # Optional members are left out when absent, not written as null (clause 6.1 marks
+    # status_extension optional; from memory).
+    assert None not in body.values()
     for name, kind in STATUS_MEMBERS.items():
         assert type(body[name]) is kind, name  # exact JSON types; bool is not an integer
     assert body["source_KME_ID"] == "station-a" and body["target_KME_ID"] == "station-b"
@@ -138,9 +141,11 @@ def test_get_status(network, pki, tool) -> None:
 
 def _check_container(body: dict[str, Any], number: int, size_bits: int) -> dict[str, bytes]:
     assert set(body) <= {"keys", "key_container_extension"}  # clause 6.3 (from memory)
+    assert None not in body.values()  # an absent optional member is left out
     keys = {}
     for entry in body["keys"]:
         assert KEY_MEMBERS <= set(entry) <= KEY_MEMBERS | KEY_OPTIONAL
+        assert None not in entry.values()
         # key_ID: a UUID in its string form (RFC 9562 section 4; the standard names UUIDs
         # for key IDs, from memory).
         assert str(uuid.UUID(entry["key_ID"])) == entry["key_ID"].lower()
@@ -189,6 +194,18 @@ def test_get_key_and_get_key_with_key_ids(network, pki, tool, form) -> None:
 
 
 @pytest.mark.parametrize("tool", TOOLS)
+def test_get_key_post_without_a_body(network, pki, tool) -> None:
+    """Clause 6.2 (from memory): every member of the Key request is optional, so a POST
+    with no body at all (curl -X POST sends neither a body nor a content type) asks for
+    one key of the Status's key_size."""
+    a = Station(network["station-a"], pki, "sae-a1", tool)
+    size = a.call("GET", "/api/v1/keys/sae-b1/status")[1]["key_size"]
+    status, body, _ = a.call("POST", "/api/v1/keys/sae-b1/enc_keys")
+    assert status == 200, body
+    _check_container(body, 1, size)
+
+
+@pytest.mark.parametrize("tool", TOOLS)
 def test_error_codes_and_object(network, pki, tool) -> None:
     a = Station(network["station-a"], pki, "sae-a1", tool)
     cases = [
@@ -206,14 +223,18 @@ def test_error_codes_and_object(network, pki, tool) -> None:
             {"extension_optional": [{"x_hint": 1}]},
             200,
         ),  # optional extensions are ignored
+        # Clause 6.2 (from memory): every member of the Key request is optional; members
+        # it does not name are ignored (clients of other makers send some).
+        ("POST", "/api/v1/keys/sae-b1/enc_keys", {"x_vendor": {"a": 1}, "number": 1}, 200),
         ("POST", "/api/v1/keys/nobody/enc_keys", {}, 401),
         ("POST", "/api/v1/keys/sae-b1/dec_keys", {"key_IDs": [{"key_ID": str(uuid.uuid4())}]}, 401),
     ]
     for method, path, body, expected in cases:
         status, answer, ctype = a.call(method, path, body)
         assert status == expected, (path, body, answer)  # clause 5: 200/400/401/503
+        assert ctype.startswith("application/json")
+        assert None not in answer.values()  # absent optional members are left out
         if status != 200:
-            assert ctype.startswith("application/json")
             assert ERROR_MEMBERS <= set(answer) <= ERROR_MEMBERS | ERROR_OPTIONAL
             assert isinstance(answer["message"], str)
             assert isinstance(answer.get("details", []), list)

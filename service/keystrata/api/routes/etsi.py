@@ -4,6 +4,11 @@ Get status, Get key (POST and GET) and Get key with key IDs (POST and GET), with
 standard's objects and status codes: 200, 400 (bad request format), 401 (unauthorized,
 the same answer for every reason) and 503 (error on the server side). Clause numbers and
 wording of the standard are cited from memory in the conformance tests.
+
+Every member of the Key request is optional, so a Get key POST without a body (no
+content, whatever its headers say) is the default request, and a JSON body sent without
+a content type is read as JSON (any other content type is a 400). Answers leave absent
+optional members out instead of writing ``null`` (``response_model_exclude_none``).
 """
 
 # No `from __future__ import annotations`: FastAPI reads the body model classes here.
@@ -11,7 +16,7 @@ wording of the standard are cited from memory in the conformance tests.
 import base64
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Depends, Query, Request
+from fastapi import APIRouter, Body, Depends, Query, Request
 from starlette.concurrency import run_in_threadpool
 
 from keystrata.api.identity import admit
@@ -25,7 +30,13 @@ from keystrata.errors import NotFound
 from keystrata.registry.principals import Caller
 from keystrata.registry.specs import PrincipalRole
 
-router = APIRouter(prefix="/api/v1/keys", tags=["key delivery (ETSI GS QKD 014)"])
+# strict_content_type=False: a body that comes without any content type is read as JSON
+# (FastAPI's strict default would refuse it); a body of another declared type is not.
+router = APIRouter(
+    prefix="/api/v1/keys",
+    tags=["key delivery (ETSI GS QKD 014)"],
+    strict_content_type=False,
+)
 
 Sae = Annotated[Caller, Depends(admit(PrincipalRole.SAE, hide_role=True))]
 
@@ -37,6 +48,11 @@ _ERRORS: dict[int | str, dict[str, Any]] = {
     # a 422 that the error handler never gives (it answers 400).
     "4XX": {"model": ErrorBody, "description": "Any other client error"},
 }
+#: The Key request of a POST that carries no body: the standard's defaults throughout.
+_NO_BODY = Body(
+    default_factory=KeyRequest,
+    description="Key request; every member is optional, and so is the body itself",
+)
 KEY_ID_PATTERN = r"^[0-9a-fA-F]{8}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{12}$"
 
 
@@ -61,6 +77,7 @@ def _allocation_source(request: Request) -> AllocationSource | None:
     "/{slave_SAE_ID}/status",
     response_model=Status,
     responses=_ERRORS,
+    response_model_exclude_none=True,
     summary="Get status",
     operation_id="get_status",
 )
@@ -72,14 +89,15 @@ def get_status(slave_SAE_ID: str, request: Request, caller: Sae) -> dict[str, An
     "/{slave_SAE_ID}/enc_keys",
     response_model=KeyContainer,
     responses=_ERRORS,
+    response_model_exclude_none=True,
     summary="Get key",
     operation_id="get_key",
 )
 async def get_key(
     slave_SAE_ID: str,
-    body: KeyRequest,
     request: Request,
     caller: Sae,
+    body: Annotated[KeyRequest, _NO_BODY],
 ) -> dict[str, Any]:
     ctx = _station(request)
     keys = await run_in_threadpool(enc_keys.get_keys, ctx, caller, slave_SAE_ID, body)
@@ -90,6 +108,7 @@ async def get_key(
     "/{slave_SAE_ID}/enc_keys",
     response_model=KeyContainer,
     responses=_ERRORS,
+    response_model_exclude_none=True,
     summary="Get key (GET form)",
     operation_id="get_key_simple",
 )
@@ -110,6 +129,7 @@ async def get_key_simple(
     "/{master_SAE_ID}/dec_keys",
     response_model=KeyContainer,
     responses=_ERRORS,
+    response_model_exclude_none=True,
     summary="Get key with key IDs",
     operation_id="get_key_with_key_ids",
 )
@@ -131,6 +151,7 @@ async def get_key_with_ids(
     "/{master_SAE_ID}/dec_keys",
     response_model=KeyContainer,
     responses=_ERRORS,
+    response_model_exclude_none=True,
     summary="Get key with key IDs (GET form)",
     operation_id="get_key_with_key_id_simple",
 )
