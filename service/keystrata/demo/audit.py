@@ -9,9 +9,8 @@ import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from rich.table import Table
-
 from keystrata.demo import scenario
+from keystrata.demo.layout import Column, Fitted, Sheet
 from keystrata.demo.workdir import CHECKPOINT_SECONDS, DemoNode
 from keystrata_client import TlsIdentity
 from keystrata_client.audit import AuditClient, Report, verify_export, write_export
@@ -81,27 +80,46 @@ def audit(workdir: Path, nodes: list[DemoNode]) -> AuditResult:
     return result
 
 
-def ledgers_table(result: AuditResult) -> Table:
-    table = Table(title="ledgers (exported, verified offline against signed checkpoints)")
-    for name in ("node", "entries", "root (SHA-256, first bytes)", "verified"):
-        table.add_column(name, justify="right" if name == "entries" else "left")
+def ledgers_table(result: AuditResult) -> Fitted:
+    sheet = Sheet(
+        "ledgers, verified offline against signed checkpoints",
+        (
+            Column("node", "left"),
+            Column("entries"),
+            Column("root (SHA-256, first bytes)", "left", drop=1),
+            Column("verified", "left"),
+        ),
+    )
     for node_id, r in result.reports.items():
-        table.add_row(
-            node_id,
-            f"{r.tree_size or 0:,}",
-            base64.b64decode(r.root).hex()[:16] if r.root else "-",
-            "[green]yes[/green]" if r.ok else "[red]NO[/red]",
+        sheet.rows.append(
+            (
+                node_id,
+                f"{r.tree_size or 0:,}",
+                base64.b64decode(r.root).hex()[:16] if r.root else "-",
+                "[green]yes[/green]" if r.ok else "[red]NO[/red]",
+            )
         )
-    return table
+    return Fitted(sheet)
 
 
-def reconciliation_table(result: AuditResult) -> Table:
-    table = Table(title="reconciliation per pair (both stations' ledgers, key ID by key ID)")
-    columns = ("delivered", "expired", "waiting", "served_twice", "one_sided", "mismatch")
-    table.add_column("pair")
-    for name in columns:
-        table.add_column(name.replace("_", " "), justify="right")
+def reconciliation_table(result: AuditResult) -> Fitted:
+    # On a narrow terminal the counts that are not findings go first.
+    columns = {
+        "delivered": 0,
+        "expired": 2,
+        "waiting": 1,
+        "served_twice": 0,
+        "one_sided": 0,
+        "mismatch": 0,
+    }
+    sheet = Sheet(
+        "reconciliation per pair (both stations' ledgers, key ID by key ID)",
+        (
+            Column("pair", "left"),
+            *(Column(name.replace("_", " "), drop=rank) for name, rank in columns.items()),
+        ),
+    )
     for pair, rec in result.pairs.items():
         counts = rec.counts().get(pair, {})
-        table.add_row(pair, *(f"{counts.get(c, 0):,}" for c in columns))
-    return table
+        sheet.rows.append((pair.removeprefix("pair-"), *(f"{counts.get(c, 0):,}" for c in columns)))
+    return Fitted(sheet)

@@ -3,48 +3,48 @@
 from __future__ import annotations
 
 import asyncio
+import os
 import signal
 import sys
 import time
+from collections.abc import Callable
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 
 import click
-from rich.console import Console, Group
+from rich.console import Console
 from rich.live import Live
 
 from keystrata.demo import scenario
 from keystrata.demo.audit import audit, ledgers_table, reconciliation_table
 from keystrata.demo.provision import operator_identity, provision
+from keystrata.demo.stopping import StopNow, Stopper
 from keystrata.demo.verify import check_network
-from keystrata.demo.view import (
-    ObservedRates,
-    Snapshot,
-    encryptors_table,
-    links_table,
-    pairs_table,
-)
+from keystrata.demo.view import ObservedRates, Snapshot, screen
 from keystrata.demo.workdir import (
+    ENCRYPTORS,
     DemoNode,
     build_pki,
     init_databases,
     prepare_folder,
     write_configs,
+    write_encryptor_config,
     write_manifest,
 )
 from keystrata.loopback.pki import PkiFiles
 from keystrata.loopback.processes import NodeProcess, free_ports, stop_all
 from keystrata_client import OperatorClient, TlsIdentity
 from keystrata_client.emulators import LinkEmulator, LinkSpec, LinkStats, PhysicalProfile
-from keystrata_client.emulators.encryptors import (
-    EncryptorEmulator,
-    EncryptorPairSpec,
-    PairStats,
-)
+from keystrata_client.emulators.encryptor_cli import build_emulator
+from keystrata_client.emulators.encryptor_config import load_encryptor_config
+from keystrata_client.emulators.encryptors import EncryptorEmulator, PairStats
 from keystrata_physics.optics import LinkOptics, Platform, StationSky, from_mapping
 
-# Wide enough for the pool table when the output goes to a file or a pipe.
-console = Console(width=None if sys.stdout.isatty() else 140)
+# A terminal gives its own size, and so does COLUMNS; a file or a pipe gets every column.
+console = Console(width=None if sys.stdout.isatty() or "COLUMNS" in os.environ else 140)
+#: What the live screen says about stopping, and what the summary reports after it.
+STOP_HINT = "Ctrl-C stops, audits and exits"
 
 #: Seconds each node gets to answer after it was started.
 START_TIMEOUT = 30.0
@@ -110,18 +110,31 @@ def _read_nodes(
     return snap
 
 
-def _view(
-    snap: Snapshot,
-    stats: dict[str, LinkStats],
-    enc: dict[str, PairStats],
-    title: str,
-    observed: ObservedRates,
-) -> Group:
-    return Group(
-        encryptors_table(enc),
-        links_table(snap, stats, title, observed),
-        pairs_table(snap.relay_pairs, snap.station_pairs),
-    )
+def _headline(
+    stats: dict[str, LinkStats], elapsed: float, duration: float | None, stopping: bool
+) -> str:
+    if stopping:
+        return (
+            f"{scenario.ORGANISATION}: stopping; the emulators drain, then every ledger "
+            "is audited (Ctrl-C again stops at once)"
+        )
+    sky = next((s.emulated_at for s in stats.values() if s.emulated_at), None)
+    clock = f"sky over Lowmarch {sky:%H:%M}" if sky else "starting"
+    left = f"; {duration - elapsed:.0f} s left" if duration is not None else ""
+    return f"{scenario.ORGANISATION}: {clock}{left}; {STOP_HINT}"
+
+
+@dataclass
+class Run:
+    """How the run went: the final levels, the emulators' counts, how it ended."""
+
+    snap: Snapshot
+    links: dict[str, LinkStats]
+    encryptors: dict[str, PairStats]
+    elapsed: float
+    #: The signal that stopped the load, or None when ``--duration`` ended it (or a
+    #: node stopped: ``snap.dead``).
+    stopped_by: int | None
 
 
 async def _watch(
@@ -129,78 +142,42 @@ async def _watch(
     encryptors: EncryptorEmulator,
     procs: list[NodeProcess],
     nodes: list[DemoNode],
-    identity: TlsIdentity,
     duration: float | None,
     live: Live | None,
-) -> Snapshot:
+    identity: TlsIdentity,
+    stopping: asyncio.Event,
+    stop: Callable[[], None],
+) -> None:
+    """Show the screen every second (every five without a terminal) until cancelled;
+    stop the load when ``duration`` is over or a node stopped."""
     started = time.monotonic()
-    last_print = 0.0
-    snap = Snapshot(pools={}, elapsed=0.0, dead=[])
+    last_print = -5.0
     observed = ObservedRates()
     while True:
         elapsed = time.monotonic() - started
         snap = await asyncio.to_thread(_read_nodes, nodes, identity, procs, elapsed)
         observed.add(snap)
-        title = _title(emulator.stats, elapsed, duration)
-        view = _view(snap, emulator.stats, encryptors.stats, title, observed)
+        headline = _headline(emulator.stats, elapsed, duration, stopping.is_set())
+        view = screen(headline, snap, emulator.stats, encryptors.stats, observed)
         if live is not None:
             live.update(view)
         elif elapsed - last_print >= 5.0:
             console.print(view)
             last_print = elapsed
-        if snap.dead:
-            return snap
-        if duration is not None and elapsed >= duration:
-            return snap
+        if snap.dead or (duration is not None and elapsed >= duration):
+            stop()
         await asyncio.sleep(1.0)
 
 
-def _title(stats: dict[str, LinkStats], elapsed: float, duration: float | None) -> str:
-    sky = next((s.emulated_at for s in stats.values() if s.emulated_at), None)
-    clock = f"sky over Lowmarch {sky:%H:%M}" if sky else "starting"
-    left = f", {duration - elapsed:.0f} s left" if duration is not None else ", Ctrl-C stops"
-    return f"{scenario.ORGANISATION}: link key pools ({clock}{left})"
-
-
-def _encryptor_specs(workdir: Path, nodes: list[DemoNode]) -> list[EncryptorPairSpec]:
-    """For each station pair, one encryptor pair each way (first SAE of A to first SAE
-    of B, second SAE of B to second SAE of A)."""
-    url = {n.node_id: n.url for n in nodes}
-
-    def ident(sae: str) -> TlsIdentity:
-        return TlsIdentity(
-            ca=workdir / "pki/ca.crt",
-            cert=workdir / f"pki/{sae}.crt",
-            key=workdir / f"pki/{sae}.key",
-        )
-
-    specs = []
-    for a, b in scenario.PAIRS:
-        sa, sb = scenario.station(a), scenario.station(b)
-        for master, slave, m_at, s_at in (
-            (sa.saes[0], sb.saes[0], a, b),
-            (sb.saes[1], sa.saes[1], b, a),
-        ):
-            specs.append(
-                EncryptorPairSpec(
-                    name=f"{master} -> {slave}",
-                    master_sae_id=master,
-                    slave_sae_id=slave,
-                    master_url=url[m_at],
-                    slave_url=url[s_at],
-                    master_identity=ident(master),
-                    slave_identity=ident(slave),
-                    key_size_bits=256,
-                    keys_per_rekey=2,
-                    interval_seconds=1.0,
-                )
-            )
-    return specs
-
-
 async def _run(
-    workdir: Path, nodes: list[DemoNode], procs: list[NodeProcess], duration: float | None
-) -> tuple[Snapshot, dict[str, LinkStats], dict[str, PairStats]]:
+    workdir: Path,
+    nodes: list[DemoNode],
+    procs: list[NodeProcess],
+    duration: float | None,
+    stopper: Stopper,
+) -> Run:
+    """Run the link and encryptor emulators under the live screen until ``duration``
+    is over, a node stops or a signal comes; then let both drain and read the levels."""
     identity = operator_identity(workdir)
     emulator = LinkEmulator(
         _link_specs(workdir, nodes),
@@ -208,35 +185,40 @@ async def _run(
         start=SKY_START.timestamp(),
         drain_seconds=5.0,
     )
-    encryptors = EncryptorEmulator(_encryptor_specs(workdir, nodes))
+    # The demo's encryptors run from the file it wrote for people to reuse.
+    encryptors = build_emulator(load_encryptor_config(workdir / ENCRYPTORS))
+    stopping = asyncio.Event()
 
     def stop() -> None:
+        stopper.load_stopped()
+        stopping.set()
         emulator.stop()
         encryptors.stop()
 
-    loop = asyncio.get_running_loop()
-    for sig in (signal.SIGINT, signal.SIGTERM):
-        loop.add_signal_handler(sig, stop)
+    started = time.monotonic()
+    stopper.load_started(asyncio.get_running_loop(), stop)
     emulating = asyncio.create_task(emulator.run())
     rekeying = asyncio.create_task(encryptors.run())
     live = Live(console=console, refresh_per_second=2) if sys.stdout.isatty() else None
+    watching: asyncio.Task[None] | None = None
     try:
         if live is not None:
             live.start()
         watching = asyncio.create_task(
-            _watch(emulator, encryptors, procs, nodes, identity, duration, live)
+            _watch(emulator, encryptors, procs, nodes, duration, live, identity, stopping, stop)
         )
-        await asyncio.wait({emulating, watching}, return_when=asyncio.FIRST_COMPLETED)
+        # Both emulators run until stop() and drain after it; the screen stays live.
+        link_stats, enc_stats = await asyncio.gather(emulating, rekeying)
+        elapsed = time.monotonic() - started
     finally:
-        watching.cancel()
         stop()
-        link_stats = await emulating
-        enc_stats = await rekeying
+        if watching is not None:
+            watching.cancel()
         if live is not None:
             live.stop()
     # After the emulator drained its queues, both ends of each link must agree.
-    snap = await asyncio.to_thread(_read_nodes, nodes, identity, procs, 0.0)
-    return snap, link_stats, enc_stats
+    snap = await asyncio.to_thread(_read_nodes, nodes, identity, procs, elapsed)
+    return Run(snap, link_stats, enc_stats, elapsed, stopper.stopped_by)
 
 
 def _disagreements(snap: Snapshot) -> list[str]:
@@ -255,22 +237,42 @@ def _disagreements(snap: Snapshot) -> list[str]:
     type=click.FloatRange(min=1),
     default=None,
     metavar="SECONDS",
-    help="run this long, print a summary and exit (default: until Ctrl-C)",
+    help="run this long, then audit, print a summary and exit (default: until Ctrl-C, "
+    "which does the same)",
 )
 @click.option(
     "--workdir",
     type=click.Path(file_okay=False, path_type=Path),
     default=Path("demo-work"),
     show_default=True,
-    help="folder for PKI, configs, databases, logs and demo.json",
+    help="folder for PKI, configs, databases, logs, demo.json and encryptors.toml",
 )
 def demo(duration: float | None, workdir: Path) -> None:
-    """Run one relay and three stations on loopback, fed by emulated QKD links."""
+    """Run one relay and three stations on loopback, fed by emulated QKD links and
+    used by emulated encryptors.
+
+    The first Ctrl-C (or SIGTERM) stops the load; the demo then drains the emulators,
+    audits every ledger, prints its summary and stops the nodes, as at the end of
+    --duration. A second Ctrl-C stops it at once (exit status 128 + the signal's
+    number)."""
     workdir = workdir.resolve()
     try:
         prepare_folder(workdir)
     except ValueError as exc:
         raise click.ClickException(str(exc)) from None
+    stopper = Stopper()
+    stopper.install()
+    try:
+        _demo(workdir, duration, stopper)
+    except StopNow as stop:
+        console.print(
+            f"[yellow]stopped at once[/yellow] ({_signal_name(stop.signum)}): the nodes "
+            f"are stopped; no summary. Their logs are in {workdir / 'logs'}."
+        )
+        sys.exit(128 + stop.signum)
+
+
+def _demo(workdir: Path, duration: float | None, stopper: Stopper) -> None:
     nodes = _nodes(workdir)
     procs = [
         NodeProcess(
@@ -278,54 +280,80 @@ def demo(duration: float | None, workdir: Path) -> None:
         )
         for n in nodes
     ]
-    with console.status("creating the network CA and certificates") as status:
-        pki = build_pki(workdir, nodes)
-        status.update("writing node configs and key-encryption keys")
-        write_configs(workdir, nodes)
-        status.update("initialising node databases")
-        init_databases(nodes)
-        manifest = write_manifest(workdir, nodes)
-        status.update("starting nodes")
-        for proc in procs:
-            proc.launch()
     try:
+        with console.status("creating the network CA and certificates") as status:
+            pki = build_pki(workdir, nodes)
+            status.update("writing node configs and key-encryption keys")
+            write_configs(workdir, nodes)
+            status.update("initialising node databases")
+            init_databases(nodes)
+            manifest = write_manifest(workdir, nodes)
+            encryptors = write_encryptor_config(workdir, nodes)
+            status.update("starting nodes")
+            for proc in procs:
+                proc.launch()
         with console.status("waiting for the nodes to answer"):
             _wait_ready(procs, pki)
         with console.status("provisioning links, pairs and principals"):
             sent = provision(workdir, nodes)
-        _intro(workdir, nodes, manifest, sent)
-        snap, stats, enc = asyncio.run(_run(workdir, nodes, procs, duration))
+        _intro(workdir, nodes, manifest, encryptors, sent)
+        run = asyncio.run(_run(workdir, nodes, procs, duration, stopper))
         with console.status("exporting, verifying and reconciling every ledger as an auditor"):
             audited = audit(workdir, nodes)
     finally:
-        stop_all(procs)
-    console.print(_view(snap, stats, enc, "final levels (emulator drained)", ObservedRates()))
+        with stopper.ignoring(), console.status("stopping the nodes"):
+            stop_all(procs)
+    console.print(
+        screen(
+            "final levels (emulators drained)", run.snap, run.links, run.encryptors, ObservedRates()
+        )
+    )
     console.print(ledgers_table(audited))
     console.print(reconciliation_table(audited))
     with console.status("checking every relay record and segment in the node databases"):
         check = check_network(
             nodes[0].config, {n.node_id: n.config for n in nodes if n.role == "station"}
         )
-    problems = [f"node {n} stopped unexpectedly" for n in snap.dead] + _disagreements(snap)
-    problems += check.problems + audited.problems
+    console.print(_ending(run, workdir))
+    problems = [f"node {n} stopped unexpectedly" for n in run.snap.dead]
+    problems += _disagreements(run.snap) + check.problems + audited.problems
     problems += [
         f"encryptors {name}: {st.mismatches} keys differ between the two ends"
-        for name, st in enc.items()
+        for name, st in run.encryptors.items()
         if st.mismatches
     ]
     if problems:
         for p in problems:
             console.print(f"[red]problem:[/red] {p}")
         sys.exit(1)
-    total = sum(s.bits_generated for s in stats.values())
+    total = sum(s.bits_generated for s in run.links.values())
     console.print(
-        f"[green]ok:[/green] {total:,} bits of link key reached both ends of {len(stats)} "
-        f"QKD links alike; {check.relay_ops} relay operations used no link byte twice; "
-        f"{check.segments_ready_both} segments are ready at both stations of their pair, "
-        "byte-identical; "
-        f"{sum(st.keys_delivered for st in enc.values()):,} keys reached both encryptors of "
-        f"{len(enc)} encryptor pairs, all matching; {len(audited.reports)} ledgers verify "
-        f"offline (exports in {workdir / 'audit'}) and every pair reconciles."
+        f"[green]ok:[/green] {total:,} bits of link key reached both ends of "
+        f"{len(run.links)} QKD links alike; {check.relay_ops} relay operations used no link "
+        f"byte twice; {check.segments_ready_both} segments are ready at both stations of "
+        "their pair, byte-identical; "
+        f"{sum(st.keys_delivered for st in run.encryptors.values()):,} keys reached both "
+        f"encryptors of {len(run.encryptors)} encryptor pairs, all matching; "
+        f"{len(audited.reports)} ledgers verify offline (exports in {workdir / 'audit'}) "
+        "and every pair reconciles."
+    )
+
+
+def _signal_name(signum: int) -> str:
+    return "Ctrl-C" if signum == signal.SIGINT else signal.Signals(signum).name
+
+
+def _ending(run: Run, workdir: Path) -> str:
+    """How the run ended, in one sentence: what was stopped, drained and audited."""
+    how = (
+        f"ran {run.elapsed:.0f} s"
+        if run.stopped_by is None
+        else f"stopped by {_signal_name(run.stopped_by)} after {run.elapsed:.0f} s"
+    )
+    return (
+        f"{how}: the emulators drained, every ledger was exported to {workdir / 'audit'} "
+        "and checked, and the nodes are stopped (logs, databases and configs stay in "
+        f"{workdir})."
     )
 
 
@@ -339,11 +367,18 @@ def _wait_ready(procs: list[NodeProcess], pki: PkiFiles) -> None:
         proc.start(pki, client=scenario.OPERATOR)
 
 
-def _intro(workdir: Path, nodes: list[DemoNode], manifest: Path, sent: int) -> None:
+def _intro(
+    workdir: Path, nodes: list[DemoNode], manifest: Path, encryptors: Path, sent: int
+) -> None:
     console.print(f"[bold]{scenario.ORGANISATION}[/bold] demo in {workdir}")
     for n in nodes:
         console.print(f"  {n.role:8} {n.node_id:10} {n.url}")
     console.print(f"  {sent} registry entries provisioned; manifest: {manifest}")
+    console.print(
+        f"  encryptor pairs: {encryptors}; more of them, from another shell:\n"
+        f"    keystrata-encryptors --config {encryptors} --rekeys 20",
+        soft_wrap=True,
+    )
     op = f"pki/{scenario.OPERATOR}"
     console.print(
         f"  try: cd {workdir} && curl --cacert pki/ca.crt --cert {op}.crt "

@@ -1,4 +1,6 @@
-"""What the demo shows: link key pools at both ends of every QKD link."""
+"""What the demo shows, in the order key flows: link key pools at both ends of every QKD
+link, pair key at both stations of every pair, and the encryptor pairs using it. The
+tables are sheets (``layout.py``) fitted to the terminal at every render."""
 
 from __future__ import annotations
 
@@ -6,9 +8,8 @@ from collections import deque
 from dataclasses import dataclass, field
 from typing import Any
 
-from rich.table import Table
-
 from keystrata.demo import scenario
+from keystrata.demo.layout import Column, Screen, Sheet
 from keystrata_client.emulators import LinkStats
 
 
@@ -57,41 +58,45 @@ class ObservedRates:
         return (last[link_id] - first[link_id]) / (t1 - t0)
 
 
-def _sky(link: LinkStats) -> str:
+def _sky(link: LinkStats) -> tuple[str, str]:
+    """The sky over the station: in full (weather, daylight and the sun's elevation),
+    and short (weather and daylight)."""
     if link.sun_elevation_deg is None:
-        return str(link.weather)
+        return str(link.weather), str(link.weather)
+    if not link.on_station:
+        return f"{link.weather}, off station", "off station"
     sun = link.sun_elevation_deg
     light = "night" if sun < -6 else ("twilight" if sun < 6 else "day")
-    where = "" if link.on_station else ", off station"
-    return f"{link.weather}, {light} {sun:+.0f} deg{where}"
+    return f"{link.weather}, {light} {sun:+.0f} deg", f"{link.weather}, {light}"
 
 
-def links_table(
-    snap: Snapshot, stats: dict[str, LinkStats], title: str, observed: ObservedRates
-) -> Table:
+#: The links sheet's columns; a higher ``drop`` leaves first on a narrow terminal.
+LINK_COLUMNS = (
+    Column("QKD link", "left"),
+    Column("sky", "left", drop=2),
+    Column("planned", drop=1),
+    Column("QBER", drop=5),
+    Column("observed"),
+    Column("of plan", drop=3),
+    Column("relay pool", drop=4),
+    Column("station pool", drop=1),
+    Column("alike", "left", drop=4),
+    Column("errors", drop=4),
+)
+
+
+def links_sheet(snap: Snapshot, stats: dict[str, LinkStats], observed: ObservedRates) -> Sheet:
     """Per QKD link: the sky, the link model's clear-sky rate and QBER for the emulated
     moment (planned), what the stations received over the last seconds (observed), and
     the pools at both ends."""
-    table = Table(title=title, title_justify="left")
-    for col, just in (
-        ("QKD link", "left"),
-        ("sky", "left"),
-        ("planned", "right"),
-        ("QBER", "right"),
-        ("observed", "right"),
-        ("of plan", "right"),
-        ("relay pool", "right"),
-        ("station pool", "right"),
-        ("alike", "left"),
-        ("errors", "right"),
-    ):
-        table.add_column(col, justify=just, no_wrap=True)  # type: ignore[arg-type]
+    sheet = Sheet("QKD links: link key pools at both ends", LINK_COLUMNS)
     for st in scenario.STATIONS:
         link = stats.get(st.link_id)
         relay_pool = snap.pools.get((scenario.RELAY, st.link_id), {})
         station_pool = snap.pools.get((st.node_id, st.link_id), {})
         relay, station = relay_pool.get("bits_available"), station_pool.get("bits_available")
         seen = observed.rate_bps(st.link_id)
+        sky: tuple[str, str] | str
         if link is None:
             sky, planned, qber, share, errors = "-", "-", "-", "-", "-"
         else:
@@ -113,81 +118,112 @@ def links_table(
         # relay messages are on their way).
         got = (relay_pool.get("bits_received"), station_pool.get("bits_received"))
         agree = "-" if None in got else ("yes" if got[0] == got[1] else "catching up")
-        table.add_row(
-            st.link_id.removeprefix("link-"),
-            sky,
-            planned,
-            qber,
-            "-" if seen is None else f"{_bits(int(seen))}/s",
-            share,
-            _bits(relay),
-            _bits(station),
-            agree,
-            errors,
+        sheet.rows.append(
+            (
+                st.link_id.removeprefix("link-"),
+                sky,
+                planned,
+                qber,
+                "-" if seen is None else f"{_bits(int(seen))}/s",
+                share,
+                _bits(relay),
+                _bits(station),
+                agree,
+                errors,
+            )
         )
-    return table
+    return sheet
 
 
-def pairs_table(
+PAIR_COLUMNS = (
+    Column("pair", "left"),
+    Column("first", drop=0),
+    Column("owns", drop=3),
+    Column("second", drop=0),
+    Column("owns", drop=3),
+    Column("on its way", drop=2),
+    Column("relay rate", drop=1),
+    Column("target", drop=1),
+)
+
+
+def pairs_sheet(
     relay_pairs: list[dict[str, Any]], station_pairs: dict[str, list[dict[str, Any]]]
-) -> Table:
-    """Pair key buffers: ready key at each station (and how much of it each owns)."""
-    table = Table(
-        title="pair key (ready at each station; owned share in brackets)", title_justify="left"
-    )
-    for col, just in (
-        ("pair", "left"),
-        ("first station", "right"),
-        ("second station", "right"),
-        ("on its way", "right"),
-        ("relay rate", "right"),
-        ("target", "right"),
-    ):
-        table.add_column(col, justify=just, no_wrap=True)  # type: ignore[arg-type]
+) -> Sheet:
+    """Pair key buffers: ready key at each station (first and second as in the pair's
+    name), how much of it each owns, key on its way, the relay's rate and the target."""
+    sheet = Sheet("pair key: ready at the first and the second station", PAIR_COLUMNS)
     for pair in relay_pairs:
-        cells = []
-        for station in pair["stations"]:
+        cells: list[str] = []
+        for station in sorted(pair["stations"]):
             mine = next(
                 (p for p in station_pairs.get(station, []) if p["pair_id"] == pair["pair_id"]), None
             )
-            cells.append(
-                "-"
-                if mine is None
-                else f"{station}: {_bits(mine['ready_bits'])} ({_bits(mine['owned_ready_bits'])})"
+            if mine is None:
+                cells += ["-", "-"]
+            else:
+                cells += [_bits(mine["ready_bits"]), _bits(mine["owned_ready_bits"])]
+        sheet.rows.append(
+            (
+                pair["pair_id"].removeprefix("pair-"),
+                *cells,
+                _bits(pair["in_flight_bits"]),
+                f"{_bits(int(pair['relay_rate_bps']))}/s",
+                _bits(pair["target_bits"]),
             )
-        table.add_row(
-            pair["pair_id"],
-            *cells,
-            _bits(pair["in_flight_bits"]),
-            f"{_bits(int(pair['relay_rate_bps']))}/s",
-            _bits(pair["target_bits"]),
         )
-    return table
+    return sheet
 
 
-def encryptors_table(stats: dict[str, Any]) -> Table:
+def _short_pair_name(name: str) -> str:
+    """ "enc-a-1 -> enc-b-1" as "a-1 -> b-1": the SAE IDs without their common prefix."""
+    return " -> ".join(part.removeprefix("enc-") for part in name.split(" -> "))
+
+
+ENCRYPTOR_COLUMNS = (
+    Column("encryptors", "left"),
+    Column("rekeys", drop=2),
+    Column("keys delivered"),
+    Column("bits", drop=3),
+    Column("match", drop=2),
+    Column("mismatch"),
+    Column("waiting for key", drop=1),
+    Column("errors"),
+)
+
+
+def encryptors_sheet(stats: dict[str, Any]) -> Sheet:
     """Emulated encryptor pairs rekeying: keys delivered, matches and failures."""
-    table = Table(title="encryptor pairs rekeying (ETSI GS QKD 014)", title_justify="left")
-    for col in (
-        "encryptors",
-        "rekeys",
-        "keys delivered",
-        "bits",
-        "match",
-        "mismatch",
-        "waiting for key",
-        "errors",
-    ):
-        table.add_column(col, justify="left" if col == "encryptors" else "right", no_wrap=True)
+    sheet = Sheet("encryptor pairs rekeying (ETSI GS QKD 014)", ENCRYPTOR_COLUMNS)
     for name, st in sorted(stats.items()):
-        table.add_row(
-            name,
-            f"{st.rekeys_attempted:,}",
-            f"{st.keys_delivered:,}",
-            _bits(st.bits_delivered),
-            f"{st.matches:,}",
-            f"{st.mismatches:,}",
-            f"{st.waiting:,}",
-            f"{sum(st.errors.values()):,}",
+        sheet.rows.append(
+            (
+                (name, _short_pair_name(name)),
+                f"{st.rekeys_attempted:,}",
+                f"{st.keys_delivered:,}",
+                _bits(st.bits_delivered),
+                f"{st.matches:,}",
+                f"{st.mismatches:,}",
+                f"{st.waiting:,}",
+                f"{sum(st.errors.values()):,}",
+            )
         )
-    return table
+    return sheet
+
+
+def screen(
+    headline: str,
+    snap: Snapshot,
+    stats: dict[str, LinkStats],
+    encryptors: dict[str, Any],
+    observed: ObservedRates,
+) -> Screen:
+    """The demo's screen: link pools, pair key, encryptors, under ``headline``."""
+    return Screen(
+        headline,
+        [
+            links_sheet(snap, stats, observed),
+            pairs_sheet(snap.relay_pairs, snap.station_pairs),
+            encryptors_sheet(encryptors),
+        ],
+    )

@@ -1,5 +1,6 @@
 """Create the demo's work folder: PKI, key-encryption keys, node configs and databases,
-and the manifest ``demo.json`` that people and scripts use to reach the running demo."""
+the manifest ``demo.json`` that people and scripts use to reach the running demo, and
+``encryptors.toml``, the encryptor emulator's configuration for the demo's pairs."""
 
 from __future__ import annotations
 
@@ -21,6 +22,8 @@ from keystrata.storage.db import Database
 CHECKPOINT_SECONDS = 1.0
 
 MANIFEST = "demo.json"
+#: The encryptor pairs of the demo, in the format of ``keystrata-encryptors --config``.
+ENCRYPTORS = "encryptors.toml"
 
 
 @dataclass(frozen=True)
@@ -132,6 +135,7 @@ def write_manifest(workdir: Path, nodes: list[DemoNode]) -> Path:
     manifest = {
         "scenario": scenario.ORGANISATION,
         "ca": "pki/ca.crt",
+        "encryptors": ENCRYPTORS,
         "nodes": [
             {
                 "id": n.node_id,
@@ -152,4 +156,55 @@ def write_manifest(workdir: Path, nodes: list[DemoNode]) -> Path:
     }
     path = workdir / MANIFEST
     path.write_text(json.dumps(manifest, indent=2) + "\n")
+    return path
+
+
+def encryptor_pairs() -> list[tuple[str, str, str, str]]:
+    """(master SAE, its station, slave SAE, its station) of every demo encryptor pair:
+    for each station pair, one each way (first SAE of A to first SAE of B, second SAE
+    of B to second SAE of A)."""
+    out = []
+    for a, b in scenario.PAIRS:
+        sa, sb = scenario.station(a), scenario.station(b)
+        out += [(sa.saes[0], a, sb.saes[0], b), (sb.saes[1], b, sa.saes[1], a)]
+    return out
+
+
+def write_encryptor_config(workdir: Path, nodes: list[DemoNode]) -> Path:
+    """Write ``encryptors.toml`` naming this run's URLs and the SAEs' certificates
+    (paths relative to ``workdir``); the demo's own encryptors run from it too."""
+    url = {n.node_id: n.url for n in nodes}
+    lines = [
+        f"# {scenario.ORGANISATION}: the demo's encryptor pairs, written by `keystrata demo`.",
+        "# The URLs name this run's ports: valid while this demo runs. Against it:",
+        f"#   keystrata-encryptors --config {workdir / ENCRYPTORS} --rekeys 20",
+        "# Format: keystrata_client/emulators/encryptor_config.py; paths are relative",
+        "# to this file's folder.",
+        "",
+        "[emulator]",
+        "summary_seconds = 5.0",
+        "drain_seconds = 5.0",
+        "",
+        "[defaults]",
+        'ca = "pki/ca.crt"',
+        "key_size_bits = 256",
+        "keys_per_rekey = 2",
+        "interval_seconds = 1.0",
+    ]
+    for master, m_at, slave, s_at in encryptor_pairs():
+        lines += [
+            "",
+            "[[pair]]",
+            f"name = {json.dumps(f'{master} -> {slave}')}",
+            f"master_sae_id = {json.dumps(master)}",
+            f"master_url = {json.dumps(url[m_at])}",
+            f'master_cert = "pki/{master}.crt"',
+            f'master_key = "pki/{master}.key"',
+            f"slave_sae_id = {json.dumps(slave)}",
+            f"slave_url = {json.dumps(url[s_at])}",
+            f'slave_cert = "pki/{slave}.crt"',
+            f'slave_key = "pki/{slave}.key"',
+        ]
+    path = workdir / ENCRYPTORS
+    path.write_text("\n".join(lines) + "\n")
     return path
