@@ -20,7 +20,7 @@ from __future__ import annotations
 import json
 import os
 import tempfile
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
@@ -242,13 +242,18 @@ class ExportSummary:
 
 
 def write_export(
-    client: AuditClient, out_dir: str | os.PathLike[str], *, overwrite: bool = False
+    client: AuditClient,
+    out_dir: str | os.PathLike[str],
+    *,
+    overwrite: bool = False,
+    progress: Callable[[int, int], None] | None = None,
 ) -> ExportSummary:
     """Export a node's ledger into ``out_dir`` for :func:`verify_export`.
 
     The latest checkpoint is fetched first and the entries ``[0, tree_size)`` after it,
     so entries the node appends meanwhile stay out of the export. Each file is written
     to a temporary name and renamed into place, ``checkpoint.json`` last.
+    ``progress(entries written, tree size)`` is called after every page of entries.
 
     Returns:
         An :class:`ExportSummary`.
@@ -269,9 +274,13 @@ def write_export(
     size: int = latest["tree_size"]
     with _atomic(folder / ENTRIES_FILE) as out:
         written = 0
+        if progress is not None:
+            progress(0, size)
         for item in client.entries(0, size):
             out.write(_line(item))
             written += 1
+            if progress is not None and (written % PAGE == 0 or written == size):
+                progress(written, size)
 
     history: list[dict[str, Any]] = []
     before = size + 1

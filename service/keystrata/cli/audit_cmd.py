@@ -11,19 +11,24 @@ from typing import Any
 
 import click
 
+from keystrata.cli import progress
 from keystrata.cli.common import console, print_json, print_table
-from keystrata.cli.remote_cmd import client_errors, connection_options
+from keystrata.cli.connection import CommandError, client_errors, connection_options
+from keystrata.cli.units import Units
+from keystrata.ledger.entries import Event
 from keystrata_client import TlsIdentity
 from keystrata_client.audit import AuditClient, write_export
 from keystrata_client.audit.cli import checked, read_public_key, state_options
-from keystrata_client.audit.reconcile import read_entries, reconcile
+from keystrata_client.audit.reconcile import read_export, reconcile
 
-_TIME = "RFC 3339 time with offset, e.g. 2026-12-01T00:00:00Z"
+_TIME = "RFC 3339 time with an offset (2026-12-01T00:00:00Z)"
+#: Every event name the ledger records, from the ledger's own list.
+EVENT_NAMES = ", ".join(e.value for e in Event)
 
 
 @click.group("audit")
 def audit() -> None:
-    """Export, search and reconcile ledgers (role auditor)."""
+    """Export, search and reconcile ledgers (role auditor; reconcile runs offline)."""
 
 
 def _client(url: str, ca: Path, cert: Path, key: Path) -> AuditClient:
@@ -35,14 +40,14 @@ def _client(url: str, ca: Path, cert: Path, key: Path) -> AuditClient:
     "--out",
     required=True,
     type=click.Path(file_okay=False, path_type=Path),
-    help="folder to write entries.jsonl, checkpoint.json and checkpoints.jsonl",
+    help="Folder to write entries.jsonl, checkpoint.json and checkpoints.jsonl into.",
 )
-@click.option("--overwrite", is_flag=True, help="replace an earlier export in that folder")
+@click.option("--overwrite", is_flag=True, help="Replace an earlier export in that folder.")
 @click.option(
     "--public-key",
     metavar="B64_OR_FILE",
-    help="the node's Ed25519 ledger key, obtained out of band (Base64, or a file); "
-    "pins it in the state folder",
+    help="The node's Ed25519 ledger key, obtained out of band (Base64, or a file); "
+    "pins it in the state folder.",
 )
 @state_options
 @connection_options
@@ -57,17 +62,22 @@ def export_cmd(
     cert: Path,
     key: Path,
     as_json: bool,
+    exact: bool,
 ) -> None:
     """Export the ledger up to the node's latest signed checkpoint, then verify the copy
     against the state folder (the node's pinned key, the last checkpoint seen of it).
 
     Check it again anywhere, later, with `keystrata-ledger-check OUT`."""
     pinned = None if public_key is None else read_public_key(public_key)
-    with client_errors(), _client(url, ca, cert, key) as client:
+    with (
+        client_errors(),
+        _client(url, ca, cert, key) as client,
+        progress.bar(f"exporting {url}") as bar,
+    ):
         try:
-            summary = write_export(client, out, overwrite=overwrite)
-        except (FileExistsError, ValueError) as exc:
-            raise click.ClickException(str(exc)) from None
+            summary = write_export(client, out, overwrite=overwrite, progress=bar.update)
+        except (FileExistsError, NotADirectoryError) as exc:
+            raise CommandError(str(exc), "give an empty folder, or --overwrite") from None
     report = checked(out, state, public_key=pinned, trust_new_key=trust_new_key)
     if as_json:
         print_json(
@@ -93,15 +103,24 @@ def export_cmd(
 
 
 @audit.command("search")
-@click.option("--since", help=f"entries recorded at or after this {_TIME}")
-@click.option("--until", help=f"entries recorded before this {_TIME}")
-@click.option("--event", "events", multiple=True, help="event name (repeat for any of several)")
-@click.option("--pair", help="entries naming this pair")
-@click.option("--sae", help="entries naming this SAE")
-@click.option("--node", help="entries naming this node")
-@click.option("--segment", help="entries naming this segment (relay operation)")
-@click.option("--key-id", help="entries naming this key ID")
-@click.option("--limit", type=click.IntRange(1), default=100, show_default=True)
+@click.option("--since", metavar="TIME", help=f"Entries recorded at or after TIME, an {_TIME}.")
+@click.option("--until", metavar="TIME", help=f"Entries recorded before TIME, an {_TIME}.")
+@click.option(
+    "--event",
+    "events",
+    multiple=True,
+    type=click.Choice([e.value for e in Event]),
+    metavar="EVENT",
+    help=f"Entries of this event (repeat for any of several): {EVENT_NAMES}.",
+)
+@click.option("--pair", help="Entries naming this pair.")
+@click.option("--sae", help="Entries naming this SAE.")
+@click.option("--node", help="Entries naming this node.")
+@click.option("--segment", help="Entries naming this segment (relay operation).")
+@click.option("--key-id", help="Entries naming this key ID.")
+@click.option(
+    "--limit", type=click.IntRange(1), default=100, show_default=True, help="The most entries."
+)
 @connection_options
 def search_cmd(
     since: str | None,
@@ -118,8 +137,9 @@ def search_cmd(
     cert: Path,
     key: Path,
     as_json: bool,
+    exact: bool,
 ) -> None:
-    """Find ledger entries; every given filter must hold."""
+    """Find ledger entries, oldest first; every filter given must hold."""
     with client_errors(), _client(url, ca, cert, key) as client:
         found = list(
             client.search(
@@ -162,9 +182,11 @@ def _names(entry: dict[str, Any]) -> str:
 
 
 @audit.command("accounting")
-@click.option("--since", help=f"from this {_TIME}")
-@click.option("--until", help=f"up to this {_TIME}")
-@click.option("--csv", "as_csv", is_flag=True, help="one CSV row per day and pair or SAE")
+@click.option("--since", metavar="TIME", help=f"From TIME, an {_TIME}.")
+@click.option("--until", metavar="TIME", help=f"Up to TIME, an {_TIME}.")
+@click.option(
+    "--csv", "as_csv", is_flag=True, help="One CSV row per day and pair or SAE (exact figures)."
+)
 @connection_options
 def accounting_cmd(
     since: str | None,
@@ -175,6 +197,7 @@ def accounting_cmd(
     cert: Path,
     key: Path,
     as_json: bool,
+    exact: bool,
 ) -> None:
     """Keys and bits per day, pair and SAE: to masters, to slaves, expired, refused,
     and (at the relay) link key used by relaying."""
@@ -187,7 +210,37 @@ def accounting_cmd(
     if as_csv:
         click.echo(_csv(rows), nl=False)
     else:
-        print_table(rows, list(rows[0]) if rows else ["day"], title=f"accounting at {url}")
+        console.print(accounting_table(answer, url, Units(exact)))
+
+
+def accounting_table(answer: dict[str, Any], url: str, units: Units) -> Any:
+    """The per-day answer for people: one line per day and pair, and per day and SAE."""
+    from rich import box
+    from rich.table import Table
+
+    table = Table(title=f"accounting at {url}", box=box.SIMPLE_HEAD, pad_edge=False)
+    for i, col in enumerate(
+        ("day", "pair or SAE", "to masters", "to slaves", "expired", "refused", "relayed")
+    ):
+        table.add_column(col, justify="left" if i < 2 else "right")
+
+    def keys(c: dict[str, int] | None) -> str:
+        return "" if c is None else f"{c['keys']:,} ({units.bits(c['bits'])})"
+
+    for day in answer["days"]:
+        for p in day["pairs"]:
+            relayed = p["relayed"]
+            table.add_row(
+                day["day"], p["pair_id"], keys(p["to_masters"]), keys(p["to_slaves"]),
+                keys(p["expired"]), "",
+                f"{units.bits(relayed['bits'])} (link {units.bits(relayed['link_bits'])})",
+            )  # fmt: skip
+        for sae in day["saes"]:
+            table.add_row(
+                day["day"], sae["sae_id"], keys(sae["as_master"]), keys(sae["as_slave"]),
+                "", units.count(sae["refused"]), "",
+            )  # fmt: skip
+    return table
 
 
 def accounting_rows(answer: dict[str, Any]) -> list[dict[str, Any]]:
@@ -241,34 +294,59 @@ def _csv(rows: list[dict[str, Any]]) -> str:
 @audit.command("reconcile")
 @click.argument("first", type=click.Path(exists=True, file_okay=False, path_type=Path))
 @click.argument("second", type=click.Path(exists=True, file_okay=False, path_type=Path))
-@click.option("--pair", help="only this pair (default: every pair of the two stations)")
+@click.option("--pair", help="Only this pair [default: every pair the two stations share].")
+@click.option(
+    "--as-of",
+    "as_of",
+    metavar="TIME",
+    help=f"Compare keys allocated up to TIME, an {_TIME} [default: the earlier of the "
+    "two exports' checkpoint times].",
+)
 @click.option(
     "--format",
     "fmt",
     type=click.Choice(["table", "json", "csv"]),
     default="table",
     show_default=True,
+    help="A summary per pair, or every key ID as JSON or CSV.",
 )
 @state_options
 def reconcile_cmd(
-    first: Path, second: Path, pair: str | None, fmt: str, state: Path | None, trust_new_key: bool
+    first: Path,
+    second: Path,
+    pair: str | None,
+    as_of: str | None,
+    fmt: str,
+    state: Path | None,
+    trust_new_key: bool,
 ) -> None:
-    """Reconcile two stations' exports key ID by key ID (offline).
+    """Reconcile two stations' exports key ID by key ID, offline, over the pairs the
+    two stations share.
 
     Both exports are verified first, each against the state folder (its node's pinned
-    key and the last checkpoint seen of it). Exit status 1 when a key ID was served
+    key and the last checkpoint seen of it). Keys allocated after the as-of time are
+    counted as later, keys on their way between the stations when the exports were
+    taken as in flight; neither is a failure. Exit status 1 when a key ID was served
     twice, is known on one side only, or the two sides disagree."""
     for folder in (first, second):
         report = checked(folder, state, trust_new_key=trust_new_key)
         if not report.ok:
-            raise click.ClickException(
+            raise CommandError(
                 f"{folder} does not verify (first bad entry {report.first_bad}): "
-                + "; ".join(report.findings[:3])
+                + "; ".join(report.findings[:3]),
+                f"check it with `keystrata-ledger-check {folder}`",
             )
+    exports = []
+    size = sum((f / "entries.jsonl").stat().st_size for f in (first, second))
     try:
-        result = reconcile(read_entries(first), read_entries(second), pair=pair)
+        with progress.bar("reading the exports", size, unit="bytes") as bar:
+            exports = [read_export(f, bar.advance) for f in (first, second)]
+        a, b = exports
+        result = reconcile(
+            a.entries, b.entries, pair=pair, as_of=as_of, first_time=a.time, second_time=b.time
+        )
     except ValueError as exc:
-        raise click.ClickException(str(exc)) from None
+        raise CommandError(str(exc)) from None
     if fmt == "json":
         print_json(result.to_json())
     elif fmt == "csv":
