@@ -92,12 +92,13 @@ def export_cmd(
             f"verified offline: {'yes' if report.ok else 'NO'}",
             highlight=False,
             soft_wrap=True,
+            markup=False,
         )
         for finding in report.findings:
-            console.print(f"  - {finding}", highlight=False, soft_wrap=True)
+            console.print(f"  - {finding}", highlight=False, soft_wrap=True, markup=False)
         for note in report.notes:
             if "pinned" in note or "last checkpoint seen" in note:  # key and continuity
-                console.print(f"  {note}", highlight=False, soft_wrap=True)
+                console.print(f"  {note}", highlight=False, soft_wrap=True, markup=False)
     if not report.ok:
         sys.exit(1)
 

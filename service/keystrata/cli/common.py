@@ -50,8 +50,9 @@ def config_option(f: F) -> F:
         "config_path",
         required=True,
         envvar="KEYSTRATA_CONFIG",
+        show_envvar=True,
         type=click.Path(dir_okay=False, path_type=Path),
-        help="the node's TOML file",
+        help="The node's TOML file.",
     )(f)
 
 

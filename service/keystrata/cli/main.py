@@ -32,6 +32,24 @@ COMMANDS = {
     "demo": "keystrata.demo.main:demo",
 }
 
+#: One line per command in ``keystrata --help`` (no module is imported to show them).
+SUMMARIES = {
+    "node": "Initialise this node's database and secrets; pin principals",
+    "serve": "Serve this node's API over HTTPS with client certificates",
+    "db": "Upgrade the database schema, or show its revision",
+    "kek": "Write key-encryption key files; re-seal under a new one",
+    "pki": "Create the network CA; issue and revoke certificates",
+    "registry": "List, show, create, change and retire a node's registry entries",
+    "pools": "Link key pools of the QKD links at a node",
+    "pairs": "Pair key buffers (at a relay: both stations, rate, target)",
+    "deliveries": "Keys delivered, waiting, expired and refused at a station",
+    "plan": "The key-supply plan of the link model: tables, JSON, plots",
+    "network": "Check, apply and watch the whole network's description file",
+    "keys": "ETSI GS QKD 014 calls as an SAE: status, get, get-by-id",
+    "audit": "Export, search and account ledgers; reconcile two stations",
+    "demo": "A loopback network (a relay, three stations) fed by emulators",
+}
+
 
 class LazyCommands(MutableMapping[str, click.Command]):
     """A group's commands by name (click reads ``Group.commands`` as a mapping), each
@@ -67,10 +85,33 @@ class LazyCommands(MutableMapping[str, click.Command]):
         return len(self._where)
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+class _Commands(click.Group):
+    """The top-level group: its help lists every command with its line of SUMMARIES."""
+
+    def list_commands(self, ctx: click.Context) -> list[str]:
+        return list(self.commands)  # in the order of COMMANDS: local, remote, audit, demo
+
+    def format_commands(self, ctx: click.Context, formatter: click.HelpFormatter) -> None:
+        rows = []
+        for name in self.list_commands(ctx):
+            summary = SUMMARIES.get(name)
+            if summary is None:  # a command added without a line here
+                summary = self.commands[name].get_short_help_str(limit=60)
+            rows.append((name, summary))
+        with formatter.section("Commands"):
+            formatter.write_dl(rows)
+
+
+@click.group(cls=_Commands, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="keystrata")
 def cli() -> None:
-    """keystrata: key manager for QKD networks with an airborne trusted relay."""
+    """keystrata: key manager for QKD networks with an airborne trusted relay.
+
+    Remote commands (registry, pools, pairs, deliveries, plan, keys, audit) take
+    --url, --ca, --cert and --key, or KEYSTRATA_URL, KEYSTRATA_CA, KEYSTRATA_CERT and
+    KEYSTRATA_KEY; local ones (node, serve, db, kek) --config or KEYSTRATA_CONFIG.
+    `keystrata COMMAND --help` tells more.
+    """
 
 
 cli.commands = LazyCommands(COMMANDS)

@@ -5,10 +5,12 @@ from __future__ import annotations
 
 import re
 from pathlib import Path
+from typing import Any
 
 import click
 
-from keystrata.cli.common import config_option, console, handled, settings_from
+from keystrata.cli import progress
+from keystrata.cli.common import config_option, handled, settings_from
 from keystrata.config import Settings
 from keystrata.crypto.certificates import fingerprint_sha256, subject_common_name
 from keystrata.crypto.kek import read_kek, write_new_kek
@@ -29,21 +31,29 @@ def _db(settings: Settings) -> Database:
 
 @click.group("node")
 def node() -> None:
-    """Set up and run this node."""
+    """Set up this node: initialise its database and secrets, pin principals."""
 
 
 @node.command("init")
 @config_option
-@click.option("--operator-subject", help="certificate subject (CN) of a first operator")
-@click.option("--operator-id", default="operator-1", show_default=True)
+@click.option(
+    "--operator-subject", metavar="CN", help="Certificate subject (CN) of a first operator."
+)
+@click.option(
+    "--operator-id",
+    default="operator-1",
+    show_default=True,
+    help="Principal ID of that first operator.",
+)
 @click.option(
     "--operator-cert",
     type=click.Path(exists=True, dir_okay=False, path_type=Path),
-    help="the first operator's certificate file: its SHA-256 becomes the pin",
+    help="The first operator's certificate file: its SHA-256 becomes the pin.",
 )
 @click.option(
     "--operator-sha256",
-    help="or the pin itself: hex SHA-256 of the operator's certificate (DER)",
+    metavar="HEX",
+    help="Or the pin itself: hex SHA-256 of the operator's certificate (DER).",
 )
 def node_init(
     config_path: Path,
@@ -62,7 +72,7 @@ def node_init(
         settings = settings_from(config_path)
         db = _db(settings)
         created = initialise(settings, db, load_keyring(settings))
-        console.print(
+        click.echo(
             f"node {settings.node.id}: "
             + ("initialised" if created else "already initialised, checked")
         )
@@ -81,9 +91,9 @@ def node_init(
                     ),
                     actor="local-admin",
                 )
-                console.print(f"operator {operator_id} ({operator_subject}) added")
+                click.echo(f"operator {operator_id} ({operator_subject}) added")
             except AlreadyExists:
-                console.print(f"operator {operator_id} already present")
+                click.echo(f"operator {operator_id} already present")
 
 
 def _operator_pin(subject: str | None, cert: Path | None, sha256: str | None) -> str | None:
@@ -116,13 +126,15 @@ def _pin(subject: str, cert: Path | None, sha256: str | None, flags: tuple[str, 
 
 @node.command("pin")
 @config_option
-@click.option("--principal", "principal_id", required=True, help="the principal's ID")
+@click.option("--principal", "principal_id", required=True, help="The principal's ID.")
 @click.option(
     "--cert",
     type=click.Path(exists=True, dir_okay=False, path_type=Path),
-    help="the principal's certificate file: its SHA-256 becomes the pin",
+    help="The principal's certificate file: its SHA-256 becomes the pin.",
 )
-@click.option("--sha256", help="or the pin itself: hex SHA-256 of the certificate (DER)")
+@click.option(
+    "--sha256", metavar="HEX", help="Or the pin itself: hex SHA-256 of the certificate (DER)."
+)
 def node_pin(config_path: Path, principal_id: str, cert: Path | None, sha256: str | None) -> None:
     """Pin a principal to its certificate, on this node's database directly.
 
@@ -146,22 +158,43 @@ def node_pin(config_path: Path, principal_id: str, cert: Path | None, sha256: st
             )
         finally:
             database.dispose()
-        console.print(f"principal {principal_id} pinned to {pin}")
+        click.echo(f"principal {principal_id} pinned to {pin}")
 
 
 @click.group("db")
 def db() -> None:
-    """Database schema."""
+    """The database schema: upgrade it, or show its revision."""
 
 
 @db.command("upgrade")
 @config_option
 def db_upgrade(config_path: Path) -> None:
-    """Apply pending schema migrations."""
+    """Apply pending schema migrations, one revision at a time."""
     with handled():
         engine = _db(settings_from(config_path)).engine
-        migrate.upgrade(engine)
-        console.print(f"schema at revision {migrate.current_revision(engine)}")
+        pending = _pending_revisions(engine)
+        with progress.bar("migrating the schema", len(pending)) as bar:
+            for revision in pending:
+                migrate.upgrade(engine, revision)
+                bar.advance(1)
+        migrate.upgrade(engine)  # nothing left, or a history the walk above cannot see
+        click.echo(
+            f"schema at revision {migrate.current_revision(engine)} "
+            f"({len(pending)} {'migration' if len(pending) == 1 else 'migrations'} applied)"
+        )
+
+
+def _pending_revisions(engine: Any) -> list[str]:
+    """The revisions between the database's and the newest, oldest first."""
+    from alembic.config import Config
+    from alembic.script import ScriptDirectory
+
+    config = Config()
+    config.set_main_option("script_location", "keystrata.storage:migrations")
+    script = ScriptDirectory.from_config(config)
+    current = migrate.current_revision(engine)
+    walk = script.iterate_revisions("heads", current)
+    return [r.revision for r in reversed(list(walk))]
 
 
 @db.command("status")
@@ -171,7 +204,7 @@ def db_status(config_path: Path) -> None:
     with handled():
         engine = _db(settings_from(config_path)).engine
         cur, head = migrate.current_revision(engine), migrate.head_revision(engine)
-        console.print(
+        click.echo(
             f"current {cur}, this version needs {head}: "
             + ("up to date" if cur == head else "run `keystrata db upgrade`")
         )
@@ -183,14 +216,19 @@ def kek() -> None:
 
 
 @kek.command("new")
-@click.option("--out", required=True, type=click.Path(dir_okay=False, path_type=Path))
+@click.option(
+    "--out",
+    required=True,
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="The file to write (never overwritten).",
+)
 def kek_new(out: Path) -> None:
     """Write a new random KEK file, readable by its owner only."""
     try:
         write_new_kek(out)
     except FileExistsError:
         raise click.ClickException(f"{out} exists; a KEK file is never overwritten") from None
-    console.print(f"wrote {out} (mode 0600); keep a copy in your key custody procedure")
+    click.echo(f"wrote {out} (mode 0600); keep a copy in your key custody procedure")
 
 
 @kek.command("rotate")
@@ -199,25 +237,37 @@ def kek_new(out: Path) -> None:
     "--new-kek",
     required=True,
     type=click.Path(dir_okay=False, path_type=Path),
-    help="the new KEK file (make it with `keystrata kek new`)",
+    help="The new KEK file (make it with `keystrata kek new`).",
 )
-@click.option("--batch", default=500, show_default=True, help="rows per transaction")
+@click.option(
+    "--batch", type=click.IntRange(1), default=500, show_default=True,
+    help="Rows per transaction.",
+)  # fmt: skip
 def kek_rotate(config_path: Path, new_kek: Path, batch: int) -> None:
     """Re-seal every row under a new KEK. Run with the node stopped; resumable.
 
     When it finishes, point [kek] file in the node's config at the new KEK file.
     """
-    with handled():
+    with handled(), progress.bar("re-sealing rows") as bar:
         settings = settings_from(config_path)
+        done = [0]
+
+        def count(rows_of_this_table: int) -> None:
+            # The rotation counts rows per table, from 0 for each table.
+            if rows_of_this_table < done[0]:
+                done[0] = 0
+            bar.advance(rows_of_this_table - done[0])
+            done[0] = rows_of_this_table
+
         report = kek_rotation.rotate(
             _db(settings),
             settings.node.id,
             read_kek(settings.kek.file),
             read_kek(new_kek),
             batch=batch,
-            progress=lambda n: console.print(f"  {n} blocks done"),
+            progress=count,
         )
-        console.print(
+        click.echo(
             f"re-sealed {report.resealed_blocks} link key blocks, "
             f"{report.resealed_segments} pair key segments and keys, {report.resealed_meta} "
             f"node secrets ({report.already_done} were already done). Now set "

@@ -40,7 +40,7 @@ def bar(description: str, total: int | None = None, *, unit: str = "") -> Iterat
     """Yield the :class:`Tracker` of one task of ``total`` (None: unknown) units; a rich
     progress bar on stderr while a terminal watches, else one that shows nothing.
     ``unit="bytes"`` shows sizes (kB, MB) instead of counts."""
-    if not wanted():
+    if not wanted() or total == 0:
         yield Tracker()
         return
     from rich.console import Console
