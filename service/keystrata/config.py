@@ -134,6 +134,14 @@ class PeerSection(_Section):
     url: Annotated[str, Field(pattern=r"^https://")]
 
 
+class PeerChecksSection(_Section):
+    """``[peer]``: what a node checks with the peers of its ``[[peers]]`` entries."""
+
+    #: How often the registry facts shared with each peer are compared with the peer's
+    #: (node/registry_watch.py).
+    registry_compare_seconds: Annotated[float, Field(gt=0, le=86_400)] = 60.0
+
+
 class IngestSection(_Section):
     max_block_bytes: Annotated[int, Field(ge=32, le=16 * 1024 * 1024)] = 1024 * 1024
     max_request_bytes: Annotated[int, Field(ge=1024, le=256 * 1024 * 1024)] = 16 * 1024 * 1024
@@ -200,6 +208,7 @@ class Settings(_Section):
     database: DatabaseSection
     kek: KekSection
     peers: list[PeerSection] = []
+    peer: PeerChecksSection = PeerChecksSection()
     ingest: IngestSection = IngestSection()
     relay: RelaySection = RelaySection()
     segments: SegmentsSection = SegmentsSection()

@@ -123,6 +123,8 @@ UNBOUND: dict[tuple[str, str], str] = {
     ("POST", "/api/v1/peer/messages/batch"): PER_MESSAGE,
     ("GET", "/api/v1/peer/allocations"): "bound by construction: answers only messages "
     "destined to the caller's node (test_pending_allocations_are_only_the_callers)",
+    ("GET", "/api/v1/peer/registry/shared"): "bound by construction: answers only the "
+    "registry facts shared with the caller's node (test_registry_comparison.py)",
 }
 
 

@@ -337,8 +337,8 @@ def test_live_and_ready_answer_and_change_nothing(station, api) -> None:
     checks = r.json()["checks"]
     assert r.json()["status"] == "ready"
     assert {
-        k: checks.pop(k) for k in ("database", "kek", "ledger", "pairs", "links")
-    } == dict.fromkeys(("database", "kek", "ledger", "pairs", "links"), "ok")
+        k: checks.pop(k) for k in ("database", "kek", "ledger", "pairs", "links", "registry")
+    } == dict.fromkeys(("database", "kek", "ledger", "pairs", "links", "registry"), "ok")
     # Test nodes run SQLite with synchronous=NORMAL and the override (conftest).
     durable = "ok" if station.ctx.db.backend == "postgresql" else "overridden: "
     assert checks == {"durability": checks["durability"]}

@@ -50,6 +50,8 @@ class Event(StrEnum):
     KEK_ROTATED = "kek.rotated"
     PAIR_HELD = "pair.held"
     PAIR_RELEASED = "pair.released"
+    REGISTRY_PEER_DISAGREES = "registry.peer_disagrees"
+    REGISTRY_PEER_AGREES = "registry.peer_agrees"
 
 
 def timestamp(at: datetime) -> str:
@@ -158,6 +160,7 @@ _REF_FIELDS: dict[str, Ref] = {
     "notice_station": Ref.NODE,
     "cipher_station": Ref.NODE,
     "partner": Ref.NODE,
+    "peer": Ref.NODE,  # registry.peer_disagrees / peer_agrees: the peer compared with
 }
 #: Registry kinds whose IDs are searchable, by the kind of reference they are.
 _REGISTRY_REFS = {"pairs": Ref.PAIR, "principals": Ref.SAE, "nodes": Ref.NODE}

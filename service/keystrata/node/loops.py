@@ -17,6 +17,7 @@ from keystrata.context import NodeContext
 from keystrata.delivery import slave_copy
 from keystrata.ledger import checkpoints
 from keystrata.node import history
+from keystrata.node.registry_watch import compare_once as compare_registry
 from keystrata.peering import outbox, sender
 from keystrata.peering.client import PeerClient
 from keystrata.relay import confirmation, scheduler
@@ -28,7 +29,9 @@ log = logging.getLogger("keystrata.node")
 
 class Background:
     """The loops of one worker process: outbox delivery everywhere, the scheduler on a
-    relay (only while this process holds the lease), segment expiry on a station."""
+    relay (only while this process holds the lease), segment expiry on a station, and
+    everywhere the comparison of shared registry facts with each peer (under a lease per
+    peer)."""
 
     def __init__(self, ctx: NodeContext, peers: PeerClient) -> None:
         self.ctx = ctx
@@ -66,6 +69,13 @@ class Background:
                     min(self.ctx.settings.restore_check.interval_seconds, loop.RETRY_SECONDS),
                 )
             )
+        loops.append(
+            (
+                "registry-compare",
+                lambda: compare_registry(self.ctx, self.peers, self.holder),
+                self.ctx.settings.peer.registry_compare_seconds,
+            )
+        )
         for name, step, idle in loops:
             t = threading.Thread(
                 target=self._loop, args=(name, step, idle), name=f"keystrata-{name}", daemon=True

@@ -10,6 +10,7 @@ per link and one per pair.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterable, Iterator
 from datetime import UTC, datetime
 
@@ -23,6 +24,7 @@ from keystrata.context import NodeContext
 from keystrata.delivery import accounting
 from keystrata.ledger import checkpoints
 from keystrata.links import pools
+from keystrata.node import registry_watch
 from keystrata.relay import buffers
 from keystrata.restore import holds
 from keystrata.storage.db import durability_risks
@@ -54,7 +56,33 @@ def collect(ctx: NodeContext) -> list[Metric]:
     out += _outbox(ctx)
     out += _ledger(ctx)
     out += _safety(ctx)
+    out += _registry(ctx)
     return out
+
+
+def _registry(ctx: NodeContext) -> list[Metric]:
+    """What the last comparison of shared registry facts with each peer found."""
+    differ = GaugeMetricFamily(
+        "keystrata_registry_disagreements",
+        "Registry facts this node shares with a peer node that the two hold differently "
+        "(or only one holds), as the last comparison that got an answer found; absent "
+        "until one did. Which facts: the readiness check registry, the ledger.",
+        labels=["peer"],
+    )
+    age = GaugeMetricFamily(
+        "keystrata_registry_compared_age_seconds",
+        "Time since the last comparison of shared registry facts with a peer node that "
+        "got an answer; +Inf until one did.",
+        labels=["peer"],
+    )
+    now = ctx.clock.now()
+    for view in registry_watch.views(ctx):
+        if view.checked_at is None:
+            age.add_metric([view.peer_id], math.inf)
+            continue
+        differ.add_metric([view.peer_id], len(view.disagreements))
+        age.add_metric([view.peer_id], max(0.0, (now - view.checked_at).total_seconds()))
+    return [differ, age]
 
 
 def _safety(ctx: NodeContext) -> list[Metric]:

@@ -22,6 +22,10 @@
   below the link model's plan for now (supply/observed.py) are named with their share
   of the plan: clouds, pointing trouble or a stopped QKD module. Readiness stays 200;
   the node serves what key it has and a restart fixes none of these.
+- ``registry`` (advisory): peers whose shared registry facts differ from this node's
+  (node/registry_watch.py) are named with the facts, names only (``disagrees with
+  relay-1 on pair pair-ab policy.priority``), and peers not compared yet or whose last
+  attempt got no answer. Readiness stays 200: which side is right is an operator's call.
 
 Problems are reported in fixed words of our own, never with the database's error text.
 """
@@ -38,6 +42,7 @@ from sqlalchemy.orm import Session
 
 from keystrata.context import NodeContext
 from keystrata.errors import KeystrataError
+from keystrata.node import registry_watch
 from keystrata.node.lifecycle import check_kek, describe_risks
 from keystrata.restore import holds
 from keystrata.storage.db import durability_risks
@@ -57,7 +62,9 @@ PROBE_EVENT = "readiness.probe"
 OVERRIDDEN = "overridden: "
 HELD = "held: "
 BELOW_PLAN = "below plan: "
-ADVISORY = ("durability", "pairs", "links")
+DISAGREES = "disagrees with "
+NOT_COMPARED = "not compared with "
+ADVISORY = ("durability", "pairs", "links", "registry")
 
 
 class NotReady(Exception):
@@ -82,7 +89,9 @@ class Readiness:
 def _passes(name: str, value: str) -> bool:
     if value == OK:
         return True
-    return name in ADVISORY and value.startswith((OVERRIDDEN, HELD, BELOW_PLAN))
+    return name in ADVISORY and value.startswith(
+        (OVERRIDDEN, HELD, BELOW_PLAN, DISAGREES, NOT_COMPARED)
+    )
 
 
 def assess(ctx: NodeContext) -> Readiness:
@@ -106,9 +115,13 @@ def assess(ctx: NodeContext) -> Readiness:
         checks["links"] = _advise(
             "links", lambda: _links(ctx), "link rates or their plan cannot be read"
         )
+        checks["registry"] = _advise(
+            "registry", lambda: _registry(ctx), "registry comparisons cannot be read"
+        )
     else:
         checks["kek"] = checks["ledger"] = NOT_CHECKED
         checks["durability"] = checks["pairs"] = checks["links"] = NOT_CHECKED
+        checks["registry"] = NOT_CHECKED
     return Readiness(checks)
 
 
@@ -147,6 +160,20 @@ def _links(ctx: NodeContext) -> str:
         f"{c.link_id} at {100 * (c.ratio or 0.0):.0f} % of plan (clouds, pointing or the module?)"
         for c in low
     )
+
+
+def _registry(ctx: NodeContext) -> str:
+    notes = []
+    for view in registry_watch.views(ctx):
+        if view.disagreements:
+            notes.append(
+                f"{DISAGREES}{view.peer_id} on {registry_watch.describe(view.disagreements)}"
+            )
+        if view.checked_at is None:
+            notes.append(f"{NOT_COMPARED}{view.peer_id} yet")
+        elif view.last_error is not None:
+            notes.append(f"{NOT_COMPARED}{view.peer_id} lately ({view.last_error})")
+    return "; ".join(notes) if notes else OK
 
 
 def _run(name: str, check: Callable[[], None], problem: str) -> str:

@@ -1,6 +1,7 @@
 """Answers a node reads from a peer's routes (not sent through the outbox): a station's
-buffer report for its relay, and a page of a station's consumption points for the
-restore check of the pair's other station. Strict, versioned models like the messages
+buffer report for its relay, a page of a station's consumption points for the restore
+check of the pair's other station, and the registry facts a node shares with the caller
+(registry/comparison.py). Strict, versioned models like the messages
 (:mod:`keystrata.peering.messages`): the answering node writes :meth:`Answer.to_json`,
 the asking node reads it back with :meth:`Answer.from_json` once.
 """
@@ -9,7 +10,7 @@ from __future__ import annotations
 
 from typing import Annotated, Any, ClassVar, Literal, Self
 
-from pydantic import Field, ValidationError, model_validator
+from pydantic import Field, StringConstraints, ValidationError, model_validator
 
 from keystrata.peering.messages import Count, NodeId, StrictModel, Time, Uuid, invalid_input
 
@@ -82,3 +83,55 @@ class ProgressReport(Answer):
     seen_fetched: Count | None = None
 
     what: ClassVar[str] = "progress report"
+
+
+#: Entries of one kind a shared-registry answer may carry.
+MAX_SHARED = 10_000
+PolicyName = Annotated[str, StringConstraints(strict=True, pattern=r"^[a-z][a-z0-9_]{0,63}$")]
+#: A policy value as the registry stores it: a number, null, or a list of SAE IDs.
+PolicyValue = (
+    Annotated[int, Field(strict=True, ge=-(2**62), le=2**62)]
+    | Annotated[float, Field(strict=True, allow_inf_nan=False)]
+    | Annotated[list[NodeId], Field(max_length=1024)]
+    | None
+)
+
+
+class NodeFact(StrictModel):
+    role: Literal["relay", "station"]
+    retired: bool
+
+
+class LinkFact(StrictModel):
+    relay_id: NodeId
+    station_id: NodeId
+    retired: bool
+
+
+class PairFact(StrictModel):
+    relay_id: NodeId
+    stations: Annotated[list[NodeId], Field(min_length=2, max_length=2)]
+    retired: bool
+    policy: Annotated[dict[PolicyName, PolicyValue], Field(max_length=64)]
+
+
+class SaeFact(StrictModel):
+    station_id: NodeId
+    retired: bool
+
+
+class SharedRegistry(Answer):
+    """The registry facts the answering node (``node``) shares with the calling node
+    (``peer``), from the answering node's rows (``GET /api/v1/peer/registry/shared``);
+    the members and what they hold are described in :mod:`keystrata.registry.comparison`.
+    """
+
+    v: Literal[1] = 1
+    node: NodeId
+    peer: NodeId
+    nodes: Annotated[dict[NodeId, NodeFact], Field(max_length=MAX_SHARED)]
+    links: Annotated[dict[NodeId, LinkFact], Field(max_length=MAX_SHARED)]
+    pairs: Annotated[dict[NodeId, PairFact], Field(max_length=MAX_SHARED)]
+    saes: Annotated[dict[NodeId, SaeFact], Field(max_length=MAX_SHARED)]
+
+    what: ClassVar[str] = "shared registry"

@@ -163,6 +163,25 @@ class PeerClient:
             return None
         return answer if isinstance(answer, dict) else None
 
+    def registry_shared(self, node_id: str) -> dict[str, Any]:
+        """The registry facts ``node_id`` shares with this node, as it answered them
+        (a JSON object, not yet parsed: :class:`keystrata.peering.answers.SharedRegistry`).
+
+        Raises:
+            PeerUnavailable: no ``[[peers]]`` entry, no answer, a status other than 200,
+                or an answer that is not a JSON object; the message is in our own words.
+        """
+        r = self._send("GET", node_id, "/api/v1/peer/registry/shared")
+        if r.status_code != 200:
+            raise PeerUnavailable(f"{node_id}: answered {r.status_code}")
+        try:
+            answer = r.json()
+        except ValueError:
+            answer = None
+        if not isinstance(answer, dict):
+            raise PeerUnavailable(f"{node_id}: the answer is not a JSON object")
+        return answer
+
 
 def _batch(bodies: Sequence[dict[str, Any] | bytes]) -> bytes:
     """The request body ``{"messages": [...]}``. A body given as bytes is JSON as the

@@ -7,6 +7,10 @@
 of its refusal: 409 when it cannot be applied yet (the sender's outbox retries) or would
 reuse link key, 400 for a malformed message, 403 for a claim that is not the sender's.
 It stops at the first message not applied.
+
+``GET /api/v1/peer/registry/shared`` answers the registry facts this node shares with
+the caller's own node (registry/comparison.py), and nothing about pairs, links or SAEs
+the caller is not part of.
 """
 
 from __future__ import annotations
@@ -27,7 +31,9 @@ from keystrata.context import NodeContext
 from keystrata.errors import InvalidInput, NotFound
 from keystrata.node import dispatch
 from keystrata.peering import outbox
+from keystrata.peering.answers import SharedRegistry
 from keystrata.peering.messages import MAX_BATCH, MessageResult
+from keystrata.registry import comparison
 from keystrata.registry.principals import Caller
 from keystrata.registry.specs import PrincipalRole
 from keystrata.relay import buffers
@@ -151,3 +157,20 @@ def pair_progress(
         raise InvalidInput("after: a segment ID", details=[{"field": "after"}])
     assert caller.node_id is not None  # peers are bound to a node (registry rule)
     return points.report(ctx, caller.node_id, pair_id, after)
+
+
+@router.get(
+    "/registry/shared",
+    summary="The registry facts this node shares with the calling node",
+    operation_id="peer_registry_shared",
+    responses=error_responses(401, 403, 503),
+)
+def registry_shared(request: Request, caller: Peer) -> dict[str, Any]:
+    """Pairs both nodes belong to, the QKD links between them, the nodes those name and,
+    for two stations of a pair, both stations' SAEs: from this node's rows, for the
+    node the caller's principal is bound to (nothing the request names). No key
+    material; the caller compares them with its own (node/registry_watch.py)."""
+    ctx: NodeContext = request.app.state.ctx
+    assert caller.node_id is not None  # peers are bound to a node (registry rule)
+    facts = comparison.shared_facts(ctx, caller.node_id)
+    return SharedRegistry.model_validate(facts).to_json()
