@@ -172,10 +172,22 @@ def test_config_resolves_paths_and_defaults() -> None:
 
 def test_table_shows_counts_and_failures_by_kind() -> None:
     stats = PairStats("karsvik -> tollmere", rekeys_attempted=12, keys_delivered=20)
-    stats.matches, stats.mismatches, stats.waiting, stats.keys_lost = 19, 1, 2, 2
+    stats.matches, stats.mismatches, stats.times_waited_for_key, stats.keys_lost = 19, 1, 2, 2
+    stats.bits_delivered = 5120
     stats.errors = {"enc_keys:401": 1, "dec_keys:transport": 1}
     header, rule, row = table({stats.name: stats}).splitlines()
-    assert header.startswith("pair") and "mismatch" in header and "failures" in header
+    assert header.startswith("encryptors") and "mismatch" in header and "failures" in header
+    # A running total is named as a count, not as a state.
+    assert "times waited for key" in header and "keys lost" in header
     assert set(rule) <= {"-", " "}
-    assert row.split()[3:9] == ["12", "20", "0", "19", "1", "2"]
+    assert row.split()[3:11] == ["12", "20", "5.12", "kbit", "19", "1", "2", "2"]
     assert row.endswith("dec_keys:transport=1 enc_keys:401=1")
+
+
+def test_the_demo_and_the_emulator_name_the_counts_alike() -> None:
+    """The demo's encryptor columns are the emulator's headers (one set of names)."""
+    from keystrata.demo.view import ENCRYPTOR_COLUMNS
+    from keystrata_client.emulators.encryptors import COLUMNS
+
+    demo = [c.header for c in ENCRYPTOR_COLUMNS]
+    assert demo and set(demo) <= set(COLUMNS.values()), set(demo) - set(COLUMNS.values())

@@ -813,7 +813,7 @@ def test_emulator_counts_matching_keys_and_503s_as_waiting(caplog) -> None:
     s = emulate(stations, 0.3)
     # ETSI GS QKD 014 V1.1.1: 503 is "error on the server side", from memory; a
     # station with no key ready yet answers so, and the emulator counts it as waiting.
-    assert s.waiting == 3
+    assert s.times_waited_for_key == 3
     assert s.errors == {}
     assert s.last_error is None
     assert s.rekeys_attempted == 3 + stations.enc_ok
@@ -844,7 +844,7 @@ def test_emulator_counts_a_corrupted_key_as_a_mismatch(caplog) -> None:
 def test_emulator_slave_waits_out_503s_at_its_station() -> None:
     stations = TwoStations(dec_waiting=2)
     s = emulate(stations, 0.2)
-    assert s.slave_waiting == 2
+    assert s.slave_retries == 2
     assert s.errors == {}
     assert s.keys_delivered == s.keys_obtained == s.matches > 0
 

@@ -6,8 +6,9 @@ Reads the TOML file described in ``encryptor_config.py`` and runs every pair (se
 ``encryptors.py``): the master SAE calls Get key at its station, passes the key IDs and
 the SHA-256 of each key to its slave, the slave calls Get key with key IDs at the other
 station and compares digests. Every ``summary_seconds`` and at the end it prints a table,
-one row per pair: rekeys, keys delivered, matches, mismatches, 503s while no key was
-ready, keys lost and failures by kind. Never key bytes, only counts.
+one row per pair: rekeys, keys delivered, matches, mismatches, times it waited for key
+(503s while no key was ready: a running total), keys lost and failures by kind. Never
+key bytes, only counts.
 
 The run ends after ``--duration`` seconds, when every pair has handed ``--rekeys`` sets
 of keys to its slave, or on Ctrl-C (or SIGTERM), whichever comes first; then slaves
@@ -25,7 +26,6 @@ import contextlib
 import json
 import logging
 import signal
-import ssl
 import sys
 from dataclasses import asdict
 from datetime import datetime
@@ -34,10 +34,12 @@ from typing import Any
 
 import click
 
+from keystrata_client._errors import ConnectionProblem
 from keystrata_client._tls import TlsIdentity
+from keystrata_client._units import si
 from keystrata_client.emulators.config import ConfigError
 from keystrata_client.emulators.encryptor_config import EncryptorConfig, load_encryptor_config
-from keystrata_client.emulators.encryptors import EncryptorEmulator, PairStats
+from keystrata_client.emulators.encryptors import COLUMNS, EncryptorEmulator, PairStats
 from keystrata_client.keys import AsyncKeyClient
 
 __all__ = ["EXIT_MISMATCH", "build_emulator", "main", "table"]
@@ -45,17 +47,19 @@ __all__ = ["EXIT_MISMATCH", "build_emulator", "main", "table"]
 #: Exit code when a key differed between the two ends of a pair.
 EXIT_MISMATCH = 3
 
-_COLUMNS = (
-    ("pair", "<"),
-    ("rekeys", ">"),
-    ("keys delivered", ">"),
-    ("bits", ">"),
-    ("match", ">"),
-    ("mismatch", ">"),
-    ("no key yet", ">"),
-    ("lost", ">"),
-    ("failures", "<"),
+#: (stats field, alignment) of the table's columns; headers from :data:`COLUMNS`.
+_FIELDS = (
+    ("name", "<"),
+    ("rekeys_attempted", ">"),
+    ("keys_delivered", ">"),
+    ("bits_delivered", ">"),
+    ("matches", ">"),
+    ("mismatches", ">"),
+    ("times_waited_for_key", ">"),
+    ("keys_lost", ">"),
+    ("errors", "<"),
 )
+_COLUMNS = tuple((COLUMNS[name], align) for name, align in _FIELDS)
 
 
 def _failures(stats: PairStats) -> str:
@@ -67,13 +71,13 @@ def table(stats: dict[str, PairStats]) -> str:
     rows = [
         (
             name,
-            str(st.rekeys_attempted),
-            str(st.keys_delivered),
-            str(st.bits_delivered),
-            str(st.matches),
-            str(st.mismatches),
-            str(st.waiting),
-            str(st.keys_lost),
+            f"{st.rekeys_attempted:,}",
+            f"{st.keys_delivered:,}",
+            si(st.bits_delivered, "bit"),
+            f"{st.matches:,}",
+            f"{st.mismatches:,}",
+            f"{st.times_waited_for_key:,}",
+            f"{st.keys_lost:,}",
             _failures(st),
         )
         for name, st in sorted(stats.items())
@@ -109,17 +113,10 @@ def _emit(stats: dict[str, PairStats], as_json: bool, final: bool) -> None:
 def _check_identity(name: str, end: str, identity: TlsIdentity | None) -> None:
     if identity is None:
         return
-    for path in (identity.ca, identity.cert, identity.key):
-        if not path.is_file():
-            raise ConfigError(f"pair {name}, {end}: no file {path}")
     try:
-        identity.ssl_context()
-    except ssl.SSLError as exc:
-        raise ConfigError(f"pair {name}, {end}: TLS files unusable ({exc.reason or exc})") from exc
-    except OSError as exc:
-        raise ConfigError(
-            f"pair {name}, {end}: cannot read a TLS file ({exc.strerror or exc})"
-        ) from exc
+        identity.checked_ssl_context()
+    except ConnectionProblem as exc:
+        raise ConfigError(f"pair {name}, {end}: {exc}") from exc
 
 
 def build_emulator(config: EncryptorConfig) -> EncryptorEmulator:

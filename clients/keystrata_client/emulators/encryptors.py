@@ -14,14 +14,15 @@ the *slave* SAE at station B, each with its own TLS identity and its own node UR
 
 Keys themselves never leave the two clients: not in the channel, the stats, nor a log.
 
-Failures and what they count (see :class:`PairStats`):
+Failures and what they count (see :class:`PairStats`; :data:`COLUMNS` names the counts
+in words, as the emulator's table and the demo's screen show them):
 
 * a 503 at ``enc_keys`` is normal while a station has no key ready yet (at start, after
-  an outage): it counts as ``waiting``, not as an error, and the master tries again at
-  its next tick;
+  an outage): it counts in ``times_waited_for_key``, not as an error, and the master
+  tries again at its next tick;
 * at ``dec_keys`` a 503 (or a transport error before the request left) is retried every
-  ``slave_retry_seconds`` for up to ``slave_patience_seconds``, counted as
-  ``slave_waiting``: station B may learn of an allocation made at station A a little
+  ``slave_retry_seconds`` for up to ``slave_patience_seconds``, counted in
+  ``slave_retries``: station B may learn of an allocation made at station A a little
   later. A 503 means the node answered with an error and delivered nothing, so asking
   again cannot make a key be served twice;
 * any other failure counts in ``errors`` under ``"<call>:<status>"`` (``enc_keys:401``,
@@ -51,7 +52,7 @@ from keystrata_client._errors import ApiError, KeystrataClientError, TransportEr
 from keystrata_client._tls import TlsIdentity
 from keystrata_client.keys import AsyncKeyClient, KeyContainer, UncertainDeliveryError
 
-__all__ = ["EncryptorEmulator", "EncryptorPairSpec", "PairStats"]
+__all__ = ["COLUMNS", "EncryptorEmulator", "EncryptorPairSpec", "PairStats"]
 
 logger = logging.getLogger(__name__)
 
@@ -112,8 +113,9 @@ class PairStats:
         bits_delivered: bits of ``keys_delivered``.
         matches: delivered keys whose SHA-256 equals the master's.
         mismatches: delivered keys whose SHA-256 differs (the ends hold different keys).
-        waiting: 503 answers to ``enc_keys`` (no key ready yet); not errors.
-        slave_waiting: ``dec_keys`` attempts retried after a 503 or an unsent request.
+        times_waited_for_key: 503 answers to ``enc_keys`` (no key ready yet), a running
+            total; not errors.
+        slave_retries: ``dec_keys`` attempts retried after a 503 or an unsent request.
         keys_lost: keys the master obtained that the slave could not fetch.
         errors: other failures by ``"<call>:<status or kind>"``.
         last_error: the message of the latest failure (never key material).
@@ -128,8 +130,8 @@ class PairStats:
     bits_delivered: int = 0
     matches: int = 0
     mismatches: int = 0
-    waiting: int = 0
-    slave_waiting: int = 0
+    times_waited_for_key: int = 0
+    slave_retries: int = 0
     keys_lost: int = 0
     errors: dict[str, int] = field(default_factory=dict)
     last_error: str | None = None
@@ -137,8 +139,23 @@ class PairStats:
 
     @property
     def error_count(self) -> int:
-        """Return the number of failures in :attr:`errors` (``waiting`` not included)."""
+        """Return the number of failures in :attr:`errors` (waits for key not included)."""
         return sum(self.errors.values())
+
+
+#: The counts of a pair in words: stats field -> column header. The table of
+#: ``keystrata-encryptors`` and the demo's screen use these headers.
+COLUMNS = {
+    "name": "encryptors",
+    "rekeys_attempted": "rekeys",
+    "keys_delivered": "keys delivered",
+    "bits_delivered": "bits",
+    "matches": "match",
+    "mismatches": "mismatch",
+    "times_waited_for_key": "times waited for key",
+    "keys_lost": "keys lost",
+    "errors": "failures",
+}
 
 
 @dataclass(frozen=True, slots=True)
@@ -258,7 +275,7 @@ class EncryptorEmulator:
                     )
                 except ApiError as exc:
                     if exc.status == 503:
-                        stats.waiting += 1
+                        stats.times_waited_for_key += 1
                     else:
                         self._failed(pair, "enc_keys", exc)
                 except KeystrataClientError as exc:
@@ -298,7 +315,7 @@ class EncryptorEmulator:
                 )
                 served_nothing = isinstance(exc, ApiError) and exc.status == 503
                 if (unsent or served_nothing) and self._monotonic() < deadline:
-                    stats.slave_waiting += 1
+                    stats.slave_retries += 1
                     await asyncio.sleep(self.slave_retry_seconds)
                     continue
                 self._failed(pair, "dec_keys", exc)

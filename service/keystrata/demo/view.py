@@ -187,8 +187,8 @@ ENCRYPTOR_COLUMNS = (
     Column("bits", drop=3),
     Column("match", drop=2),
     Column("mismatch"),
-    Column("waiting for key", drop=1),
-    Column("errors"),
+    Column("times waited for key", drop=1),
+    Column("failures"),
 )
 
 
@@ -204,7 +204,7 @@ def encryptors_sheet(stats: dict[str, Any]) -> Sheet:
                 _bits(st.bits_delivered),
                 f"{st.matches:,}",
                 f"{st.mismatches:,}",
-                f"{st.waiting:,}",
+                f"{st.times_waited_for_key:,}",
                 f"{sum(st.errors.values()):,}",
             )
         )
