@@ -8,15 +8,19 @@ from __future__ import annotations
 
 import json
 import shutil
-from collections.abc import Iterator
+import time
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
+import httpx
 import pytest
+from prometheus_client.parser import text_string_to_metric_families
 
 from keystrata.loopback.configs import peers_section
 from keystrata.loopback.pki import PkiFiles
 from keystrata.loopback.processes import NodeProcess, free_ports, prepare_node, run_cli, stop_all
 from keystrata_client import OperatorClient, TlsIdentity
+from keystrata_client.audit import AuditClient
 
 NODES = {"relay-1": "relay", "station-a": "station", "station-b": "station"}
 
@@ -104,7 +108,7 @@ def network(
             role,
             f"sqlite:///{db}",
             port=ports[node_id],
-            extra=peers_section(peers),
+            extra="\n[peer]\nregistry_compare_seconds = 0.5\n" + peers_section(peers),
         )
     try:
         for node in nodes.values():
@@ -226,3 +230,67 @@ def test_status_asks_every_node(
     code, out = _cli("status", str(path))
     assert code == 1, out
     assert "station-b" in out
+
+
+def _disagreements(node: NodeProcess, pki: PkiFiles) -> dict[str, float]:
+    """keystrata_registry_disagreements by peer, from a real scrape (prometheus_client's
+    parser reads it)."""
+    identity = TlsIdentity(ca=pki.ca, cert=pki.cert("mon-cal"), key=pki.key("mon-cal"))
+    with httpx.Client(verify=identity.ssl_context()) as client:
+        text = client.get(node.url + "/api/v1/metrics").raise_for_status().text
+    return {
+        sample.labels["peer"]: sample.value
+        for family in text_string_to_metric_families(text)
+        if family.name == "keystrata_registry_disagreements"
+        for sample in family.samples
+    }
+
+
+def _until(what: str, check: Callable[[], bool], timeout: float = 30.0) -> None:
+    deadline = time.monotonic() + timeout
+    while not check():
+        assert time.monotonic() < deadline, f"no {what} within {timeout} s"
+        time.sleep(0.25)
+
+
+def test_a_registry_edited_behind_the_descriptions_back_raises_the_alert_on_both_sides(
+    network: dict[str, NodeProcess], pki: PkiFiles, tmp_path: Path
+) -> None:
+    urls = {n: p.url for n, p in network.items()}
+    path = tmp_path / "network.toml"
+    path.write_text(_description(urls, pki))
+    assert _cli("apply", str(path))[0] == 0
+    relay, a = network["relay-1"], network["station-a"]
+    _until("agreement", lambda: _disagreements(relay, pki) == {"station-a": 0, "station-b": 0})
+
+    # An operator raises the pair's priority at the relay alone, by hand.
+    with _ops(relay, pki) as ops:
+        ops.change("pairs", "pair-ab", {"policy": {"priority": 999}})
+    _until("alert at the relay", lambda: _disagreements(relay, pki).get("station-a", 0) > 0)
+    _until("alert at station-a", lambda: _disagreements(a, pki).get("relay-1", 0) > 0)
+    assert _disagreements(relay, pki) == {"station-a": 1, "station-b": 1}
+    assert _disagreements(a, pki) == {"relay-1": 1, "station-b": 0}  # A and B still agree
+    code, out = _cli("status", str(path))
+    assert "registry" in out and "pair-ab" in out, out
+    with _ops(a, pki) as ops:
+        note = ops.readiness()["checks"]["registry"]
+    assert "relay-1" in note and "pair-ab" in note and "priority" in note
+    assert "999" not in note  # names, never values
+    aud = TlsIdentity(ca=pki.ca, cert=pki.cert("aud-ben"), key=pki.key("aud-ben"))
+    for node in (relay, a):
+        with AuditClient(node.url, aud) as auditor:
+            found = list(auditor.search(event=["registry.peer_disagrees"]))
+        assert found, node.node_id
+        assert "999" not in json.dumps(found)
+
+    # The description knows better: check shows exactly the way back; apply clears it.
+    code, out = _cli("check", str(path))
+    assert code == 3 and "change pairs pair-ab: policy.priority" in out, out
+    assert out.count("change pairs") == 1, out
+    assert _cli("apply", str(path))[0] == 0
+    _until(
+        "agreement again", lambda: _disagreements(relay, pki) == {"station-a": 0, "station-b": 0}
+    )
+    _until("agreement at A", lambda: _disagreements(a, pki).get("relay-1") == 0)
+    with AuditClient(a.url, aud) as auditor:
+        assert list(auditor.search(event=["registry.peer_agrees"]))
