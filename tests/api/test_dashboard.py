@@ -25,7 +25,7 @@ from keystrata.registry.specs import Kind, PrincipalRole, PrincipalSpec
 
 DASHBOARD_ROLES = {PrincipalRole.OPERATOR, PrincipalRole.MONITOR}
 PAGES = ["/dashboard", "/dashboard/network"]
-ASSETS = ["dashboard.css", "common.js", "node.js", "network.js"]
+ASSETS = ["dashboard.css", "common.js", "node.js", "network.js", "icon.svg"]
 
 
 def _person(node: Any, pid: str, role: str) -> None:
@@ -74,7 +74,8 @@ def test_the_dashboard_admits_operators_and_monitors_only(station, api) -> None:
             assert api(station)(name).get(path).status_code == status, (name, path)
     for who in ("stranger", None):
         r = api(station)(who).get("/dashboard")
-        assert r.status_code == 401 and r.json() == {"message": "unauthorized"}
+        # No certificate at all: the same 401, with the hint (api/identity.NO_CERTIFICATE).
+        assert r.status_code == 401 and r.json()["message"].startswith("unauthorized")
 
 
 def test_pages_and_files_load_nothing_from_elsewhere(station, api) -> None:
@@ -297,4 +298,4 @@ def test_no_dashboard_answer_holds_key_material_or_key_ids(net, api) -> None:
             assert r.status_code == 200, (name, series, r.text)
             assert not [s for s in secrets if s in r.text], (name, series)
             seen += 1
-    assert seen == 3 * (8 + len(history.SERIES))
+    assert seen == 3 * (len(PAGES) + len(ASSETS) + 2 + len(history.SERIES))

@@ -112,27 +112,26 @@ export function table(headers, rows, empty) {
 /** Replace the contents of the element with ``id``. */
 export function fill(id, ...children) {
   const target = document.getElementById(id);
-  target.replaceChildren(...children.flat());
+  target.replaceChildren(...children.flat().filter((c) => c !== null && c !== undefined));
   return target;
 }
 
 // ---------------------------------------------------------------- link states
 
-/** The state a link is drawn in: flowing, below plan, idle (nothing planned or received)
- * or unknown (no node answered for it). */
+/** The state a link is drawn in: far below plan (the node's readiness note: a whole rate
+ * window under half the plan), key flowing, idle (no key over the rate window) or unknown
+ * (no node answered for it). */
 export function linkState(reading) {
   if (!reading) return "unknown";
-  if (reading.far_below || (reading.plan_ratio !== null && reading.plan_ratio < 0.5 && reading.rate_bps > 0))
-    return "low";
+  if (reading.far_below) return "low";
   if (reading.rate_bps > 0) return "flowing";
-  if (reading.planned_bps) return "low";
   return "idle";
 }
 
 export const STATE_WORDS = {
   flowing: "key flowing",
-  low: "below plan",
-  idle: "idle (nothing planned)",
+  low: "far below plan",
+  idle: "no key in the rate window",
   unknown: "no answer",
 };
 

@@ -186,15 +186,14 @@ function renderNodes() {
     return el(
       "tr",
       {},
-      el("td", {}, node.self ? el("a", { href: "/dashboard" }, node.id) : node.origin ? el("a", { href: `${node.origin}/dashboard` }, node.id) : node.id),
+      el("td", { title: node.description || "" }, node.self ? el("a", { href: "/dashboard" }, node.id) : node.origin ? el("a", { href: `${node.origin}/dashboard` }, node.id) : node.id),
       el("td", {}, node.role),
-      el("td", {}, node.description || ""),
       el("td", { class: o ? "good" : "bad" }, o ? "answering" : a.error || "asking"),
       el("td", { class: o && !o.ready ? "bad" : "" }, o ? (o.ready ? "ready" : "not ready") : "–"),
       el("td", { class: "num" }, o ? String(o.alerts.length) : "–"),
     );
   });
-  fill("nodes", table(["node", "role", "description", "dashboard", "readiness", "alerts"], rows, "no nodes"));
+  fill("nodes", table(["node", "role", "dashboard", "readiness", "alerts"], rows, "no nodes"));
 }
 
 function renderAlerts() {
@@ -261,7 +260,7 @@ function renderPairs() {
   fill(
     "pairs",
     table(
-      ["pair", "stations", "ready at first", "ready at second", "target", "on its way", "relayed", "until empty"],
+      ["pair", "stations", "ready at the first", "ready at the second", "target", "on its way", "relayed", "until empty"],
       rows,
       "no pairs in the registry",
     ),

@@ -74,7 +74,7 @@ function renderPairs(o) {
         ),
   );
   const headers = relay
-    ? ["pair", "stations", "ready at first (reported)", "ready at second (reported)", "target", "on its way", "relayed", "until empty"]
+    ? ["pair", "stations", "ready at the first (reported)", "ready at the second (reported)", "target", "on its way", "relayed", "until empty"]
     : ["pair", "stations", "ready here", "owned here", "confirming", "masters' demand", "owned key lasts"];
   fill("pairs", table(headers, rows, "no pairs here"));
 }

@@ -37,9 +37,11 @@ ASSETS = {
     "common.js": "text/javascript; charset=utf-8",
     "node.js": "text/javascript; charset=utf-8",
     "network.js": "text/javascript; charset=utf-8",
+    "icon.svg": "image/svg+xml",
 }
-#: Longest span one history request covers, and the default when ``since`` is absent.
+#: Most points per subject one history answer holds.
 MAX_POINTS = 2000
+#: The span of a history answer when ``since`` is absent.
 DEFAULT_SPAN = timedelta(hours=1)
 
 
