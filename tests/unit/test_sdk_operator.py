@@ -10,6 +10,7 @@ tests/e2e/test_sdk_operator_processes.py.
 
 from __future__ import annotations
 
+import ssl
 from collections.abc import Callable, Iterator
 from urllib.parse import unquote
 
@@ -22,6 +23,7 @@ from keystrata_client import (
     ConnectionProblem,
     KeystrataClientError,
     OperatorClient,
+    TlsIdentity,
     TransportError,
 )
 
@@ -191,3 +193,42 @@ def test_base_url_must_be_http() -> None:
 
 
 # ---------------------------------------------------------------- against a real node
+
+
+# ---------------------------------------------------------------- set-up mistakes
+
+
+def test_a_url_with_a_path_is_named_before_anything_is_sent() -> None:
+    with pytest.raises(ConnectionProblem) as caught:
+        OperatorClient("https://relay.test:8443/api/v1/registry")
+    assert caught.value.problem == (
+        "https://relay.test:8443/api/v1/registry is not a node's base URL: "
+        "it has the path '/api/v1/registry'"
+    )
+    assert caught.value.hint == "give the base URL only, https://relay.test:8443"
+    OperatorClient("https://relay.test:8443/").close()  # a trailing slash is no path
+
+
+def test_certificate_files_it_cannot_use_are_named(pki, tmp_path) -> None:
+    def problem(**files) -> str:
+        chosen = {"ca": pki.ca, "cert": pki.cert("ops-ada"), "key": pki.key("ops-ada")} | files
+        with pytest.raises(ConnectionProblem) as caught:
+            OperatorClient("https://relay.test", TlsIdentity(**chosen))
+        assert "BEGIN" not in str(caught.value)  # never the files' content
+        return caught.value.problem
+
+    assert problem(key=pki.key("aud-ben")) == (
+        f"the client key {pki.key('aud-ben')} does not belong to the certificate "
+        f"{pki.cert('ops-ada')}"
+    )
+    assert problem(ca=tmp_path / "none.crt") == (
+        f"the CA certificate file {tmp_path / 'none.crt'} does not exist"
+    )
+    assert problem(key=tmp_path) == f"the client key file {tmp_path} is not a file"
+    junk = tmp_path / "junk.pem"
+    junk.write_text("-----BEGIN NOTHING-----\n")
+    assert problem(ca=junk) == f"the CA certificate file {junk} holds no usable PEM certificate"
+    assert problem(cert=junk).startswith(f"the client certificate {junk} or its key")
+    # TlsIdentity.ssl_context() itself keeps raising what ssl raises, for its callers.
+    with pytest.raises(ssl.SSLError):
+        TlsIdentity(ca=pki.ca, cert=pki.cert("ops-ada"), key=pki.key("aud-ben")).ssl_context()
