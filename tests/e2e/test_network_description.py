@@ -118,8 +118,8 @@ def network(
         stop_all(nodes.values())
 
 
-def _cli(*args: str) -> tuple[int, str]:
-    result = run_cli("network", *args, check=False, env={"COLUMNS": "100"})
+def _cli(*args: str, columns: int = 100) -> tuple[int, str]:
+    result = run_cli("network", *args, check=False, env={"COLUMNS": str(columns)})
     assert "Traceback" not in result.stderr, result.stderr
     return result.returncode, result.stdout + result.stderr
 
@@ -217,10 +217,13 @@ def test_status_asks_every_node(
     path = tmp_path / "network.toml"
     path.write_text(_description(urls, pki))
     assert _cli("apply", str(path))[0] == 0
-    code, out = _cli("status", str(path))
+    code, out = _cli("status", str(path), columns=80)
     assert code == 0, out
     for name in ("relay-1", "station-a", "station-b", "link-a", "link-b", "pair-ab"):
         assert name in out
+    # An 80-column terminal: nothing cut, nothing wider.
+    assert "…" not in out and "..." not in out, out
+    assert max(len(line) for line in out.splitlines()) <= 80, out
     code, out = _cli("status", "--json", str(path))
     assert code == 0, out
     answer = json.loads(out)

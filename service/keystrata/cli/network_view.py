@@ -21,62 +21,75 @@ def render(
     *,
     exact: bool = False,
 ) -> None:
+    from rich import box
     from rich.table import Table
+
+    def table(title: str, *columns: tuple[str, str]) -> Table:
+        # No vertical rules and no cell ever wrapped or cut: with IDs of up to about
+        # 24 characters the tables fit 80 columns (a narrower terminal drops the
+        # planned rate, which "of plan" still shows as a share); headers wrap.
+        out = Table(title=title, title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
+        for name, justify in columns:
+            out.add_column(name, justify=justify, no_wrap=True, min_width=len(name))  # type: ignore[arg-type]
+        return out
+
+    wide = console.width >= 96
 
     units = Units(exact=exact)
     amount, rate = units.bits, units.rate
 
-    nodes = Table(title=f"{name}: nodes", title_justify="left")
-    for col in ("Node", "Role", "Up", "Version", "Alerts"):
-        nodes.add_column(col)
+    nodes = table(
+        f"{name}: nodes",
+        ("Node", "left"),
+        ("Role", "left"),
+        ("Up", "left"),
+        ("Version", "left"),
+        ("Alerts", "right"),
+    )
     for s in statuses:
         up = "[green]yes[/green]" if s.up and not s.error else "[red]no[/red]"
         nodes.add_row(s.node_id, s.role, up, s.version or "-", str(len(s.alerts)))
     console.print(nodes)
 
-    table = Table(title="QKD links", title_justify="left")
-    for col, justify in (
+    links_table = table(
+        "QKD links (received at the station over its rate window)",
         ("Link", "left"),
         ("Received", "right"),
         ("QBER", "right"),
-        ("Plan (share)", "right"),
+        *([("Planned", "right")] if wide else []),
+        ("Of plan", "right"),
         ("Relay pool", "right"),
         ("Station pool", "right"),
-    ):
-        table.add_column(col, justify=justify)  # type: ignore[arg-type]
+    )
     for r in links:
-        table.add_row(
+        links_table.add_row(
             r.link_id,
             rate(r.rate_bps),
             "-" if r.qber is None else f"{100 * r.qber:.1f} %",
-            rate(r.planned_bps)
-            + ("" if r.plan_ratio is None else f" ({units.share(r.plan_ratio)})"),
+            *([rate(r.planned_bps)] if wide else []),
+            units.share(r.plan_ratio),
             amount(r.relay_pool_bits),
             amount(r.station_pool_bits),
         )
-    console.print(table)
+    console.print(links_table)
 
-    table = Table(title="Pairs (ready key as each station reports it)", title_justify="left")
-    for col, justify in (
+    pairs_table = table(
+        "Pairs (ready at the first / second station; keys handed out)",
         ("Pair", "left"),
         ("Ready", "right"),
         ("Target", "right"),
         ("Lasts", "right"),
-        ("Keys out", "right"),
-    ):
-        table.add_column(col, justify=justify)  # type: ignore[arg-type]
+        ("Keys", "right"),
+    )
     for p in pairs:
-        ready = " / ".join(
-            f"{st} {amount(b)}" for st, b in zip(p.stations, p.ready_bits, strict=True)
-        )
-        table.add_row(
+        pairs_table.add_row(
             p.pair_id,
-            ready,
+            " / ".join(amount(b) for b in p.ready_bits),
             amount(p.target_bits),
             units.duration(p.time_until_empty_s),
             units.count(p.keys_delivered),
         )
-    console.print(table)
+    console.print(pairs_table)
 
     alerts = [(s.node_id, a) for s in statuses for a in s.alerts]
     down = [(s.node_id, s.error) for s in statuses if s.error]
