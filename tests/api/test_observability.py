@@ -26,6 +26,7 @@ import relaynet
 from conftest import _pg_admin
 from helpers import break_ledger, snapshot
 from keystrata import __version__
+from keystrata.api.identity import NO_CERTIFICATE
 from keystrata.crypto.hazmat import Keyring
 from keystrata.delivery import slave_copy
 from keystrata.ledger import checkpoints
@@ -457,5 +458,5 @@ def test_who_may_ask(station, api) -> None:
         for path, status in answers.items():
             r = client.get(path)
             assert r.status_code == status, (who, path, r.text)
-            if status == 401:
-                assert r.json() == {"message": "unauthorized"}
+            if status == 401:  # no certificate at all: the same 401, with the hint
+                assert r.json() == {"message": "unauthorized" if who else NO_CERTIFICATE}

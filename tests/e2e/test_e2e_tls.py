@@ -16,6 +16,7 @@ import httpx
 import pytest
 
 from conftest import database_for
+from keystrata.api.identity import NO_CERTIFICATE
 from keystrata.loopback.pki import PkiFiles
 from keystrata.loopback.processes import NodeProcess, prepare_node
 from keystrata_client import (
@@ -77,13 +78,76 @@ def _handshake_refused(url: str, pki: PkiFiles, cert: tuple[str, str] | None) ->
     raise AssertionError(f"expected the handshake to fail, got {r.status_code}")
 
 
-def test_client_without_certificate_is_refused(station_process, pki) -> None:
-    assert _handshake_refused(station_process.url, pki, None)
+def test_client_without_certificate_is_told_what_it_lacks(station_process, pki) -> None:
+    """The handshake completes without a client certificate, so every route answers 401
+    with a JSON body saying which certificate is needed (api/identity.NO_CERTIFICATE);
+    nothing is served."""
+    ctx = ssl.create_default_context(cafile=str(pki.ca))
+    with httpx.Client(verify=ctx, timeout=10) as client:
+        for method, path in (
+            ("GET", "/api/v1/node"),
+            ("GET", "/api/v1/registry/links"),
+            ("POST", "/api/v1/keys/sae-b1/enc_keys"),
+            ("GET", "/api/v1/metrics"),
+            ("GET", "/docs"),
+        ):
+            r = client.request(method, station_process.url + path)
+            assert r.status_code == 401, (path, r.text)
+            assert r.headers["content-type"].startswith("application/json")
+            assert r.json() == {"message": NO_CERTIFICATE}, path
+
+
+@pytest.mark.skipif(shutil.which("curl") is None, reason="curl is not installed")
+def test_curl_without_a_certificate_gets_the_hint(station_process, pki) -> None:
+    """curl without --cert used to see "Empty reply from server" (the handshake was
+    refused); now it gets the answer and exits 0 (no --fail)."""
+    out = subprocess.run(
+        [
+            "curl",
+            "-sS",
+            "--cacert",
+            str(pki.ca),
+            "-w",
+            "\n%{http_code}",
+            station_process.url + "/api/v1/registry/links",
+        ],
+        capture_output=True,
+        text=True,
+        timeout=30,
+        check=True,
+    )
+    body, status = out.stdout.rsplit("\n", 1)
+    assert status == "401"
+    assert json.loads(body) == {"message": NO_CERTIFICATE}
+    assert "client certificate" in body and "network's CA" in body
 
 
 def test_certificate_from_another_ca_is_refused(station_process, pki) -> None:
+    # A certificate presented must verify: one of another CA still ends the handshake.
     foreign = (str(pki.foreign_dir / "ops-ada.crt"), str(pki.foreign_dir / "ops-ada.key"))
     assert _handshake_refused(station_process.url, pki, foreign)
+
+
+@pytest.mark.skipif(shutil.which("curl") is None, reason="curl is not installed")
+def test_curl_with_a_certificate_of_another_ca_fails_the_handshake(station_process, pki) -> None:
+    out = subprocess.run(
+        [
+            "curl",
+            "-sS",
+            "--cacert",
+            str(pki.ca),
+            "--cert",
+            str(pki.foreign_dir / "ops-ada.crt"),
+            "--key",
+            str(pki.foreign_dir / "ops-ada.key"),
+            station_process.url + "/api/v1/node",
+        ],
+        capture_output=True,
+        text=True,
+        timeout=30,
+        check=False,
+    )
+    assert out.returncode != 0 and out.stdout == "", (out.returncode, out.stdout)
 
 
 def test_unregistered_certificate_gets_401(station_process, pki) -> None:
@@ -93,6 +157,7 @@ def test_unregistered_certificate_gets_401(station_process, pki) -> None:
     ):
         who.node_info()
     assert caught.value.status == 401
+    assert caught.value.message == "unauthorized"  # no hint: one answer for every reason
 
 
 def test_module_pushes_binary_blocks_and_operator_sees_the_pool(station_process, pki) -> None:

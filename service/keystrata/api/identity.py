@@ -28,6 +28,15 @@ from keystrata.registry import principals
 from keystrata.registry.principals import Caller
 from keystrata.registry.specs import PrincipalRole
 
+#: The answer to a caller that presented no certificate at all (the TLS handshake lets
+#: it through so that it can be told): the one 401, with what to do. A caller whose
+#: certificate is unknown, retired or wrong gets the plain ``unauthorized`` (no oracle);
+#: one without a certificate learns nothing it did not know.
+NO_CERTIFICATE = (
+    "unauthorized: no client certificate was presented; "
+    "connect with a certificate issued by the network's CA"
+)
+
 
 @lru_cache(maxsize=4096)
 def _parse(pem: str) -> tuple[str, str, x509.Certificate] | None:
@@ -43,11 +52,19 @@ def _parse(pem: str) -> tuple[str, str, x509.Certificate] | None:
     return cn, cert.fingerprint(hashes.SHA256()).hex(), cert
 
 
-def client_certificate_pem(request: Request, proxy_header: str | None) -> str | None:
-    """Return the leaf client certificate (PEM) of the request, or None."""
+def _handshake_certificate(request: Request) -> str | None:
+    """The leaf certificate our TLS layer verified in the handshake, if any."""
     tls = request.scope.get("extensions", {}).get("tls")
     if tls and tls.get("client_cert_chain"):
         return str(tls["client_cert_chain"][0])
+    return None
+
+
+def client_certificate_pem(request: Request, proxy_header: str | None) -> str | None:
+    """Return the leaf client certificate (PEM) of the request, or None."""
+    verified = _handshake_certificate(request)
+    if verified is not None:
+        return verified
     if proxy_header:
         value = request.headers.get(proxy_header)
         if value:
@@ -88,7 +105,8 @@ def admit(*roles: PrincipalRole, hide_role: bool = False) -> Callable[[Request],
 
     Raises (from the dependency):
         Unauthenticated: no certificate, or one that maps to no active principal (401,
-            the same answer for every reason).
+            the same answer for every reason but one: a caller that presented no
+            certificate at all is told to present one, ``NO_CERTIFICATE``).
         Forbidden: a known principal whose role this route does not admit (403).
     """
 
@@ -110,9 +128,11 @@ def admit(*roles: PrincipalRole, hide_role: bool = False) -> Callable[[Request],
                 route=route,
                 path=path,
             )
-            raise Unauthenticated()
+            raise Unauthenticated(NO_CERTIFICATE if pem is None else None)
         subject, sha256, cert = parsed
-        from_proxy = not request.scope.get("extensions", {}).get("tls")
+        # Only a certificate of the handshake was verified by our TLS layer; one from
+        # the proxy's header is checked here, also on a TLS connection without one.
+        from_proxy = _handshake_certificate(request) is None
         if from_proxy and not _verify_from_proxy(cert, request.app.state.ca_cert, ctx.clock.now()):
             principals.record_refusal(
                 ctx,

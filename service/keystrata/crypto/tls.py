@@ -9,11 +9,15 @@ Policy, the same on every context we build (and in the SDK, ``keystrata_client._
 * no session tickets or resumption on the server: a resumed session skips the
   certificate check, so a certificate revoked since would still get in.
 
-Server: client certificates are required (the network CA), and with ``[tls] crl`` each
-handshake checks the leaf against the CRL (``VERIFY_CRL_CHECK_LEAF``). A new CRL file is
-picked up without restart: the server context's ``sni_callback`` (which OpenSSL calls on
-every ClientHello, with or without a server name) swaps the connection's context for
-one built with the newest CRL that verified.
+Server: a client certificate is asked for and, when one is presented, must verify
+against the network CA (and, with ``[tls] crl``, not be listed in the CRL:
+``VERIFY_CRL_CHECK_LEAF``), or the handshake fails. A client that presents none still
+completes the handshake (``CERT_OPTIONAL``), so that it gets an HTTP answer saying what
+it lacks (401 from the identity dependency, which admits no caller without a
+certificate) instead of a connection closed without a word. A new CRL file is picked up
+without restart: the server context's ``sni_callback`` (which OpenSSL calls on every
+ClientHello, with or without a server name) swaps the connection's context for one
+built with the newest CRL that verified.
 
 Peer client: besides the CA chain and the host name of the URL, the certificate the
 peer presents must carry the node marker and name, as its common name, the node ID of
@@ -52,7 +56,9 @@ def apply_policy(context: ssl.SSLContext) -> ssl.SSLContext:
 
 def _server_base(tls: TlsSection, crl_pem: bytes | None) -> ssl.SSLContext:
     context = apply_policy(ssl.SSLContext(ssl.PROTOCOL_TLS_SERVER))
-    context.verify_mode = ssl.CERT_REQUIRED
+    # OpenSSL's SSL_VERIFY_PEER without FAIL_IF_NO_PEER_CERT: a certificate presented is
+    # verified and a bad one ends the handshake; none at all is left to the app to refuse.
+    context.verify_mode = ssl.CERT_OPTIONAL
     context.options |= ssl.OP_NO_TICKET
     context.num_tickets = 0  # TLS 1.3: no tickets, so no resumption
     context.load_cert_chain(str(tls.cert), str(tls.key))
