@@ -1,22 +1,147 @@
 """The demo as a person runs it: `keystrata demo --duration S --workdir DIR` exits 0, and
-while it runs, its manifest is enough to call the operator API with curl."""
+while it runs, its manifest is enough to call the operator API with curl; Ctrl-C at the
+terminal stops it with its summary, and a second one at once; its screen fits the
+terminal (80 and 120 columns, 24 lines); the encryptor configuration it writes works
+with `keystrata-encryptors`, and the README's SDK example runs against it."""
 
 from __future__ import annotations
 
+import contextlib
 import json
+import os
+import re
 import shutil
+import signal
 import subprocess
 import sys
+import threading
 import time
 from pathlib import Path
 
 import pytest
 
+REPO = Path(__file__).resolve().parents[2]
+#: The three pairs of the demo's scenario, as the screen names them.
+PAIR_ROWS = ("karsvik-tollmere", "brenhaven-karsvik", "brenhaven-tollmere")
+#: What rich prints where it cuts a cell, and the ASCII form of it.
+CUT_MARKS = ("\u2026", "...")
 
-def _wait_for_manifest(workdir: Path, proc: subprocess.Popen[str], timeout: float) -> dict:
+
+class Demo:
+    """`keystrata demo` started as a terminal starts a job: in a process group of its
+    own, so that a terminal's Ctrl-C is SIGINT to that whole group. Output is read by a
+    thread as it comes; the terminal's size is given as COLUMNS and LINES."""
+
+    def __init__(self, workdir: Path, duration: float, columns: int, lines: int = 24) -> None:
+        self.workdir = workdir
+        self.lines: list[str] = []
+        env = {**os.environ, "COLUMNS": str(columns), "LINES": str(lines)}
+        argv = ["demo", "--duration", str(duration), "--workdir", str(workdir)]
+        self.proc = subprocess.Popen(
+            [sys.executable, "-m", "keystrata", *argv],
+            stdout=subprocess.PIPE,
+            stderr=subprocess.STDOUT,
+            stdin=subprocess.DEVNULL,
+            text=True,
+            env=env,
+            process_group=0,
+        )
+        self._reader = threading.Thread(target=self._read, daemon=True)
+        self._reader.start()
+
+    def _read(self) -> None:
+        assert self.proc.stdout is not None
+        for line in self.proc.stdout:
+            self.lines.append(line.rstrip("\n"))
+
+    @property
+    def output(self) -> str:
+        return "\n".join(self.lines)
+
+    def wait_for(self, pattern: str, timeout: float) -> None:
+        deadline = time.monotonic() + timeout
+        while not re.search(pattern, self.output):
+            assert self.proc.poll() is None, f"demo exited {self.proc.returncode}:\n{self.output}"
+            assert time.monotonic() < deadline, f"no {pattern!r} in:\n{self.output}"
+            time.sleep(0.2)
+
+    def interrupt(self) -> None:
+        """Ctrl-C at the terminal: SIGINT to the demo's whole process group."""
+        os.killpg(self.proc.pid, signal.SIGINT)
+
+    def wait(self, timeout: float) -> int:
+        code = self.proc.wait(timeout)
+        self._reader.join(10)
+        return code
+
+    def close(self) -> None:
+        self._reader.join(10)
+        if self.proc.stdout is not None:
+            self.proc.stdout.close()
+
+    def kill(self) -> None:
+        """End the demo and any node it left (they run in sessions of their own)."""
+        if self.proc.poll() is None:
+            os.killpg(self.proc.pid, signal.SIGKILL)
+            self.proc.wait()
+        for pid in _serving(self.workdir):
+            with contextlib.suppress(ProcessLookupError):
+                os.kill(pid, signal.SIGKILL)
+        self.close()
+
+
+def _serving(workdir: Path) -> list[int]:
+    """Process IDs of `keystrata serve` processes whose configuration is in ``workdir``."""
+    found = []
+    for entry in Path("/proc").iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            argv = (entry / "cmdline").read_bytes().decode(errors="replace").split("\0")
+        except OSError:
+            continue  # ended meanwhile
+        if "serve" in argv and any(str(workdir) in a for a in argv):
+            found.append(int(entry.name))
+    return found
+
+
+def _screens(lines: list[str]) -> list[list[str]]:
+    """The live screens the demo printed (without a terminal it prints one every five
+    seconds): from the headline to the last encryptor row."""
+    screens = []
+    for i, line in enumerate(lines):
+        if not (line.startswith("Lowmarch Quantum Grid: ") or line.startswith("final levels")):
+            continue
+        rules, end = 0, i + 1
+        while end < len(lines) and rules < 3:
+            rules += lines[end].startswith("\u2500")
+            end += 1
+        while end < len(lines) and " -> " in lines[end]:
+            end += 1
+        screens.append(lines[i:end])
+    return screens
+
+
+def _check_screens(lines: list[str], columns: int, height: int = 24) -> list[list[str]]:
+    """Every screen fits ``columns`` x ``height``, cuts no cell and shows every pair."""
+    screens = _screens(lines)
+    assert screens, "\n".join(lines)
+    for screen in screens:
+        text = "\n".join(screen)
+        assert len(screen) <= height, text
+        assert max(len(line) for line in screen) <= columns, text
+        for mark in CUT_MARKS:
+            assert mark not in text, text
+        rows = [line.split()[0] for line in screen if line.split()]
+        for pair in PAIR_ROWS:
+            assert pair in rows, text
+    return screens
+
+
+def _wait_for_manifest(workdir: Path, demo: Demo, timeout: float) -> dict:
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
-        assert proc.poll() is None, proc.communicate()[0]
+        assert demo.proc.poll() is None, demo.output
         path = workdir / "demo.json"
         if path.exists():
             try:
@@ -30,14 +155,9 @@ def _wait_for_manifest(workdir: Path, proc: subprocess.Popen[str], timeout: floa
 @pytest.mark.skipif(shutil.which("curl") is None, reason="curl is not installed")
 def test_demo_runs_and_its_manifest_reaches_the_operator_api(tmp_path: Path) -> None:
     workdir = tmp_path / "demo"
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "keystrata", "demo", "--duration", "12", "--workdir", str(workdir)],
-        stdout=subprocess.PIPE,
-        stderr=subprocess.STDOUT,
-        text=True,
-    )
+    demo = Demo(workdir, duration=12, columns=120)
     try:
-        manifest = _wait_for_manifest(workdir, proc, 60)
+        manifest = _wait_for_manifest(workdir, demo, 60)
         assert {n["role"] for n in manifest["nodes"]} == {"relay", "station"}
         assert len(manifest["nodes"]) == 4 and len(manifest["pairs"]) == 3
         for p in manifest["principals"]:
@@ -76,14 +196,19 @@ def test_demo_runs_and_its_manifest_reaches_the_operator_api(tmp_path: Path) -> 
         pools = json.loads(out.stdout)
         assert pools["node_id"] == relay["id"]
         assert len(pools["pools"]) == 3
-        output, _ = proc.communicate(timeout=90)
+        code = demo.wait(90)
     finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait()
-    assert proc.returncode == 0, output
+        demo.kill()
+    output = demo.output
+    assert code == 0, output
     assert "used no link byte twice" in output
     assert "all matching" in output  # encryptor pairs: zero mismatches (else exit 1)
+    assert re.search(r"\bran 1\d s: the emulators drained", output), output
+    # At 120 columns the links table keeps every column, short sky cells at most.
+    screens = _check_screens(demo.lines, columns=120)
+    live = [s for s in screens if s[0].startswith("Lowmarch")]
+    assert live and all("QBER" in "\n".join(s) and "relay pool" in "\n".join(s) for s in live)
+    assert _serving(workdir) == []
     # Read both stations of every pair and every relay record ourselves.
     from keystrata.demo.verify import check_network
 
@@ -95,6 +220,107 @@ def test_demo_runs_and_its_manifest_reaches_the_operator_api(tmp_path: Path) -> 
     assert check.relay_ops > 0 and check.segments_ready_both > 0
     for pair in manifest["pairs"]:
         assert _ready_bits(workdir, configs, pair["id"], pair["stations"]) > 0, pair
+
+
+def _readme_sdk_example(workdir: Path) -> str:
+    """The README's SDK example, pointed at ``workdir`` instead of ``demo-work``."""
+    readme = (REPO / "README.md").read_text()
+    section = readme.split("## Encryptors: the emulator and the SDK", 1)[1].split("\n## ", 1)[0]
+    blocks = re.findall(r"```python\n(.*?)```", section, flags=re.DOTALL)
+    assert len(blocks) == 1, "the README's encryptor section has one Python example"
+    code = blocks[0]
+    assert 'Path("demo-work")' in code
+    return code.replace('Path("demo-work")', f"Path({str(workdir)!r})")
+
+
+def _run_readme_example(workdir: Path) -> subprocess.CompletedProcess[str]:
+    """Run the README's example as a reader would, in a fresh interpreter; a 503 (no
+    pair key ready at that instant: the demo's own encryptors use it too) is tried
+    again, as the README says."""
+    code = _readme_sdk_example(workdir)
+    for _ in range(10):
+        done = subprocess.run(
+            [sys.executable, "-c", code], capture_output=True, text=True, timeout=60
+        )
+        if done.returncode == 0 or "503" not in done.stderr:
+            return done
+        time.sleep(1)
+    return done
+
+
+def test_ctrl_c_stops_the_demo_with_its_summary_on_an_80_column_terminal(
+    tmp_path: Path,
+) -> None:
+    """Ctrl-C at the terminal (SIGINT to the demo's whole process group, as a terminal
+    sends it) reaches the demo alone: the nodes stay up while it drains and audits, then
+    it prints its summary, stops them and exits 0. Meanwhile the encryptor configuration
+    it wrote works with `keystrata-encryptors`, and the README's SDK example runs."""
+    workdir = tmp_path / "demo"
+    demo = Demo(workdir, duration=600, columns=80)
+    try:
+        demo.wait_for(r"Lowmarch Quantum Grid: sky over Lowmarch", 120)
+        config = workdir / "encryptors.toml"
+        assert f"encryptor pairs: {config}" in demo.output
+        # The written configuration, as a person would use it from another shell.
+        script = Path(sys.executable).with_name("keystrata-encryptors")
+        emulated = subprocess.run(
+            [str(script), "--config", str(config), "--rekeys", "2", "--json"],
+            capture_output=True,
+            text=True,
+            timeout=120,
+        )
+        assert emulated.returncode == 0, emulated.stdout + emulated.stderr
+        final = [json.loads(line) for line in emulated.stdout.splitlines()]
+        final = [row for row in final if row["final"]]
+        assert len(final) == 6  # every encryptor pair of the demo
+        assert all(row["mismatches"] == 0 and row["keys_delivered"] > 0 for row in final)
+        example = _run_readme_example(workdir)
+        assert example.returncode == 0, example.stderr
+        key_id, digest = example.stdout.split()
+        assert re.fullmatch(r"[0-9a-f-]{36}", key_id) and re.fullmatch(r"[0-9a-f]{64}", digest)
+        nodes = _serving(workdir)
+        assert len(nodes) == 4
+        demo.interrupt()
+        demo.wait_for(r"stopping; the emulators drain", 30)
+        assert sorted(_serving(workdir)) == sorted(nodes)  # untouched by the Ctrl-C
+        code = demo.wait(180)
+    finally:
+        demo.kill()
+    output = demo.output
+    assert "Traceback" not in output, output
+    assert code == 0, output
+    assert re.search(r"stopped by Ctrl-C after \d+ s: the emulators drained", output), output
+    assert "ok: " in output and "every pair reconciles" in output, output
+    assert _serving(workdir) == []
+    _check_screens(demo.lines, columns=80)
+    # The summary's tables fit too (their cells wrap at spaces rather than being cut).
+    summary = output.split("final levels", 1)[1]
+    for mark in CUT_MARKS:
+        assert mark not in summary, summary
+    for line in summary.splitlines():
+        assert len(line) <= 80, line
+
+
+def test_a_second_ctrl_c_stops_the_demo_at_once(tmp_path: Path) -> None:
+    workdir = tmp_path / "demo"
+    demo = Demo(workdir, duration=600, columns=80)
+    try:
+        demo.wait_for(r"Lowmarch Quantum Grid: sky over Lowmarch", 120)
+        demo.interrupt()
+        demo.wait_for(r"stopping; the emulators drain", 30)
+        demo.interrupt()
+        started = time.monotonic()
+        code = demo.wait(60)
+        took = time.monotonic() - started
+    finally:
+        demo.kill()
+    output = demo.output
+    assert "Traceback" not in output, output
+    assert code == 128 + signal.SIGINT, output
+    assert "stopped at once (Ctrl-C): the nodes are stopped" in output
+    assert "ok: " not in output
+    assert took < 30, took  # stopping the nodes, not draining and auditing
+    assert _serving(workdir) == []
 
 
 def _ready_bits(workdir: Path, configs: dict[str, Path], pair_id: str, stations: list[str]) -> int:

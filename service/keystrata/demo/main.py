@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import os
 import signal
 import sys
@@ -153,20 +154,31 @@ async def _watch(
     started = time.monotonic()
     last_print = -5.0
     observed = ObservedRates()
+
+    def show(snap: Snapshot, elapsed: float, *, now: bool = False) -> None:
+        nonlocal last_print
+        headline = _headline(emulator.stats, elapsed, duration, stopping.is_set())
+        view = screen(headline, snap, emulator.stats, encryptors.stats, observed)
+        if live is not None:
+            live.update(view, refresh=now)
+        elif now or elapsed - last_print >= 5.0:  # without a terminal: every 5 s
+            console.print(view)
+            last_print = elapsed
+
     while True:
         elapsed = time.monotonic() - started
         snap = await asyncio.to_thread(_read_nodes, nodes, identity, procs, elapsed)
         observed.add(snap)
-        headline = _headline(emulator.stats, elapsed, duration, stopping.is_set())
-        view = screen(headline, snap, emulator.stats, encryptors.stats, observed)
-        if live is not None:
-            live.update(view)
-        elif elapsed - last_print >= 5.0:
-            console.print(view)
-            last_print = elapsed
+        show(snap, elapsed)
         if snap.dead or (duration is not None and elapsed >= duration):
             stop()
-        await asyncio.sleep(1.0)
+        if stopping.is_set():
+            await asyncio.sleep(1.0)
+            continue
+        with contextlib.suppress(TimeoutError):
+            await asyncio.wait_for(stopping.wait(), 1.0)
+        if stopping.is_set():  # say at once that the demo is stopping
+            show(snap, time.monotonic() - started, now=True)
 
 
 async def _run(

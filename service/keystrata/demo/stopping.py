@@ -23,9 +23,10 @@ from types import FrameType
 SIGNALS = (signal.SIGINT, signal.SIGTERM, signal.SIGHUP)
 
 
-class StopNow(BaseException):
-    """A signal asked the demo to stop at once (a BaseException, as KeyboardInterrupt
-    is, so that no ``except Exception`` on the way swallows it)."""
+class StopNow(KeyboardInterrupt):
+    """A signal asked the demo to stop at once. A KeyboardInterrupt, so that no
+    ``except Exception`` on the way swallows it, and so that asyncio lets it out of the
+    event loop wherever it is raised (a task keeps any other BaseException to itself)."""
 
     def __init__(self, signum: int) -> None:
         super().__init__(signal.Signals(signum).name)
