@@ -92,10 +92,13 @@ def _checkpointed(node: NodeProcess, pki: PkiFiles) -> None:
 
 def _export(node: NodeProcess, pki: PkiFiles, out: Path) -> Path:
     _checkpointed(node, pki)
-    run_cli(
+    said = run_cli(
         "audit", "export", "--url", node.url, "--ca", str(pki.ca),
         "--cert", str(pki.cert("aud-ben")), "--key", str(pki.key("aud-ben")), "--out", str(out),
-    )  # fmt: skip
+    ).stdout  # fmt: skip
+    # The root as the ledger API gives it (Base64 root_hash), not another encoding.
+    root = json.loads((out / "checkpoint.json").read_text())["root_hash"]
+    assert f"root {root};" in said, said
     return out
 
 
