@@ -74,7 +74,7 @@ def _ctx(request: Request) -> NodeContext:
     summary="Dashboard page of this node",
     operation_id="dashboard_page",
     response_class=Response,
-    responses=error_responses(401, 403) | {200: {"content": {"text/html": {}}}},
+    responses=error_responses(401, 403, 503) | {200: {"content": {"text/html": {}}}},
 )
 def node_page(_: Viewer) -> Response:
     return Response(_file("index.html"), media_type="text/html", headers=_headers())
@@ -105,7 +105,7 @@ def _asset_route(name: str, media_type: str) -> None:
         summary=f"Dashboard file {name}",
         operation_id="dashboard_asset_" + name.replace(".", "_"),
         response_class=Response,
-        responses=error_responses(401, 403),
+        responses=error_responses(401, 403, 503),
     )
 
 
