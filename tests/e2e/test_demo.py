@@ -7,6 +7,7 @@ with `keystrata-encryptors`, and the README's SDK example runs against it."""
 from __future__ import annotations
 
 import contextlib
+import io
 import json
 import os
 import re
@@ -222,6 +223,86 @@ def test_demo_runs_and_its_manifest_reaches_the_operator_api(tmp_path: Path) -> 
         assert _ready_bits(workdir, configs, pair["id"], pair["stations"]) > 0, pair
 
 
+def _day_of_sky(workdir: Path, nodes: list) -> list[dict]:
+    """LinkStats of the demo's links as its link emulator fills them (the physical link
+    model of each link, from the demo's own link specs), every two hours of its day."""
+    from datetime import UTC, datetime
+
+    from keystrata.demo.main import SKY_START, _link_specs
+    from keystrata_client.emulators import EndStats, LinkStats
+    from keystrata_client.emulators.physical import rate_model
+
+    specs = _link_specs(workdir, nodes)
+    start = SKY_START.timestamp()
+    models = {s.link_id: rate_model(s.model, seed=s.seed, start=start) for s in specs}
+    day = []
+    for hour in range(0, 24, 2):
+        t = start + hour * 3600.0
+        stats = {}
+        for spec in specs:
+            state = models[spec.link_id].state_at(t)
+            stats[spec.link_id] = LinkStats(
+                spec.link_id,
+                relay=EndStats(spec.relay_url),
+                station=EndStats(spec.station_url),
+                mode="physical",
+                rate_bps=state.rate_bps,
+                planned_rate_bps=state.planned_rate_bps,
+                planned_qber=state.planned_qber,
+                weather=state.weather.value,
+                on_station=state.on_station,
+                sun_elevation_deg=state.sun_elevation_deg,
+                emulated_at=datetime.fromtimestamp(t, UTC),
+            )
+        day.append(stats)
+    return day
+
+
+def _render_real_state(workdir: Path, encryptor_rows: list[dict]) -> None:
+    """The demo's screen rendered by rich's recording console at 80 and 120 columns and
+    24 lines, from real demo state: pools and pairs read from the running nodes as the
+    demo reads them, the counts of a real `keystrata-encryptors` run, and the link
+    model's sky through a whole day."""
+    from rich.console import Console
+
+    from keystrata.demo.main import _read_nodes
+    from keystrata.demo.provision import operator_identity
+    from keystrata.demo.view import ObservedRates, screen
+    from keystrata.demo.workdir import DemoNode
+    from keystrata_client.emulators.encryptors import PairStats
+
+    manifest = json.loads((workdir / "demo.json").read_text())
+    nodes = [
+        DemoNode(n["id"], n["role"], int(n["url"].rsplit(":", 1)[1]), workdir / n["config"])
+        for n in manifest["nodes"]
+    ]
+    observed = ObservedRates()
+    for _ in range(2):
+        snap = _read_nodes(nodes, operator_identity(workdir), [], time.monotonic())
+        observed.add(snap)
+        time.sleep(1)
+    assert len(snap.relay_pairs) == 3 and len(snap.station_pairs) == 3
+    fields = set(PairStats.__dataclass_fields__)
+    encryptors = {
+        row["name"]: PairStats(**{k: v for k, v in row.items() if k in fields})
+        for row in encryptor_rows
+    }
+    for links in _day_of_sky(workdir, nodes):
+        for width in (80, 120):
+            console = Console(width=width, height=24, record=True, file=io.StringIO())
+            headline = "Lowmarch Quantum Grid: sky over Lowmarch 12:00; Ctrl-C stops, audits"
+            console.print(screen(headline, snap, links, encryptors, observed))
+            lines = console.export_text().splitlines()
+            text = "\n".join(lines)
+            assert len(lines) <= 24, text
+            assert max(len(line) for line in lines) <= width, text
+            for mark in CUT_MARKS:
+                assert mark not in text, text
+            starts = [line.split()[0] for line in lines if line.split()]
+            assert all(pair in starts for pair in PAIR_ROWS), text
+            assert sum(" -> " in line for line in lines) == 6, text
+
+
 def _readme_sdk_example(workdir: Path) -> str:
     """The README's SDK example, pointed at ``workdir`` instead of ``demo-work``."""
     readme = (REPO / "README.md").read_text()
@@ -278,6 +359,7 @@ def test_ctrl_c_stops_the_demo_with_its_summary_on_an_80_column_terminal(
         assert example.returncode == 0, example.stderr
         key_id, digest = example.stdout.split()
         assert re.fullmatch(r"[0-9a-f-]{36}", key_id) and re.fullmatch(r"[0-9a-f]{64}", digest)
+        _render_real_state(workdir, final)
         nodes = _serving(workdir)
         assert len(nodes) == 4
         demo.interrupt()
