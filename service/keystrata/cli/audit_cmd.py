@@ -12,8 +12,8 @@ from typing import Any
 import click
 
 from keystrata.cli import progress
-from keystrata.cli.common import console, print_json, print_table
-from keystrata.cli.connection import CommandError, client_errors, connection_options
+from keystrata.cli.common import CommandError, console, print_json, print_table
+from keystrata.cli.connection import client_errors, connection_options
 from keystrata.cli.units import Units
 from keystrata.ledger.entries import Event
 from keystrata_client import TlsIdentity

@@ -6,12 +6,13 @@ prints nothing through them (``keystrata serve``) does not import rich.
 
 from __future__ import annotations
 
+import functools
 import json
 import sys
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, TypeVar
+from typing import IO, TYPE_CHECKING, Any, TypeVar
 
 import click
 
@@ -42,6 +43,24 @@ def __getattr__(name: str) -> Any:
     if name not in _CONSOLES:
         raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
     return _console(name)
+
+
+class CommandError(click.ClickException):
+    """A failure shown as ``error: SENTENCE``, an optional ``hint:`` line and detail
+    lines; exit status 1. Never a traceback."""
+
+    def __init__(self, message: str, hint: str = "", details: Sequence[str] = ()) -> None:
+        super().__init__(message)
+        self.hint = hint
+        self.details = list(details)
+
+    def show(self, file: IO[Any] | None = None) -> None:
+        echo = functools.partial(click.echo, err=True, file=file)
+        echo(f"error: {self.message}")
+        for line in self.details:
+            echo(f"  {line}")
+        if self.hint:
+            echo(f"hint: {self.hint}")
 
 
 def config_option(f: F) -> F:

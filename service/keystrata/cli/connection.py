@@ -9,14 +9,15 @@ CLI reads the environment), and a missing one is named with both ways to give it
 from __future__ import annotations
 
 import functools
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import IO, Any, TypeVar
+from typing import Any, TypeVar
 
 import click
 
 from keystrata.cli import render
+from keystrata.cli.common import CommandError
 from keystrata.cli.units import exact_option
 from keystrata_client import (
     ApiError,
@@ -41,24 +42,6 @@ REGISTER_HINT = (
     "principals` (README: 'Running a node by hand'; for a monitoring certificate "
     "'Monitoring')"
 )
-
-
-class CommandError(click.ClickException):
-    """A failure shown as ``error: SENTENCE``, an optional ``hint:`` line and detail
-    lines; exit status 1. Never a traceback."""
-
-    def __init__(self, message: str, hint: str = "", details: Sequence[str] = ()) -> None:
-        super().__init__(message)
-        self.hint = hint
-        self.details = list(details)
-
-    def show(self, file: IO[Any] | None = None) -> None:
-        echo = functools.partial(click.echo, err=True, file=file)
-        echo(f"error: {self.message}")
-        for line in self.details:
-            echo(f"  {line}")
-        if self.hint:
-            echo(f"hint: {self.hint}")
 
 
 def connection_options(f: F) -> F:

@@ -10,7 +10,7 @@ from typing import Any
 import click
 
 from keystrata.cli import progress
-from keystrata.cli.common import config_option, handled, settings_from
+from keystrata.cli.common import CommandError, config_option, handled, settings_from
 from keystrata.config import Settings
 from keystrata.crypto.certificates import fingerprint_sha256, subject_common_name
 from keystrata.crypto.kek import read_kek, write_new_kek
@@ -227,7 +227,7 @@ def kek_new(out: Path) -> None:
     try:
         write_new_kek(out)
     except FileExistsError:
-        raise click.ClickException(f"{out} exists; a KEK file is never overwritten") from None
+        raise CommandError(f"{out} exists; a KEK file is never overwritten") from None
     click.echo(f"wrote {out} (mode 0600); keep a copy in your key custody procedure")
 
 

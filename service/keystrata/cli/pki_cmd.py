@@ -2,7 +2,7 @@
 revoke certificates (a CRL signed by the CA, ``crl.pem`` in the PKI folder).
 
 A thin layer over :mod:`keystrata.crypto.pki`: it parses options, calls one function and
-prints what was written. Errors of the service become :class:`click.ClickException`, so
+prints what was written. Errors of the service become :class:`CommandError`, so
 the user sees one line and exit status 1, never a traceback or file content.
 """
 
@@ -19,6 +19,7 @@ from cryptography import x509
 from cryptography.hazmat.primitives import hashes
 from cryptography.x509.oid import ExtendedKeyUsageOID
 
+from keystrata.cli.common import CommandError
 from keystrata.crypto import revocation
 from keystrata.crypto.certificates import NODE_MARKER, fingerprint_sha256, load_certificate
 from keystrata.crypto.pki import CLIENT_ROLES, PkiDir, WrittenFiles
@@ -246,8 +247,8 @@ def _errors() -> Iterator[None]:
     try:
         yield
     except KeystrataError as exc:
-        raise click.ClickException(exc.message) from exc
+        raise CommandError(exc.message) from exc
     except OSError as exc:
         # strerror and the path only: an OSError never carries file content.
         where = f"{exc.filename}: " if exc.filename else ""
-        raise click.ClickException(f"{where}{exc.strerror or 'input/output error'}") from exc
+        raise CommandError(f"{where}{exc.strerror or 'input/output error'}") from exc
