@@ -255,6 +255,6 @@ interval_seconds = 0.3
     )
     assert shown.returncode == 0, shown.stdout + shown.stderr
     header, _rule, *rows = shown.stdout.strip().split("\n\n")[-1].splitlines()
-    assert header.split()[:3] == ["pair", "rekeys", "keys"] and "mismatch" in header
+    assert header.split()[:3] == ["encryptors", "rekeys", "keys"] and "mismatch" in header
     assert [r.split()[0] for r in rows] == ["a1-b1", "b2-a2"]
-    assert all(r.split()[5] == "0" for r in rows)  # the mismatch column
+    assert all(r.split()[6] == "0" for r in rows)  # the mismatch column (bits: "512 bit")
