@@ -40,7 +40,10 @@ ARTIFACTS = Path(__file__).resolve().parents[2] / "build" / "artifacts" / "dashb
 BETWEEN = 12.0
 
 
-def _need_browser() -> Any:
+@pytest.fixture
+def sync_api() -> Any:
+    """Playwright's sync API, once Debian's Chromium is known to be there (asked before a
+    demo is started for nothing)."""
     if not CHROMIUM.exists():
         if os.environ.get("CI"):
             pytest.fail(f"{CHROMIUM} is missing (Debian package chromium); CI must run this")
@@ -148,8 +151,7 @@ def _live(page: Any) -> dict[str, str]:
     return dict(figures)
 
 
-def test_the_network_page_of_a_running_demo(demo, monkeypatch) -> None:
-    sync_api = _need_browser()
+def test_the_network_page_of_a_running_demo(sync_api, demo, monkeypatch) -> None:
     workdir, manifest, proc = demo
     ca = workdir / manifest["ca"]
     operator = next(p for p in manifest["principals"] if p["role"] == "operator")
@@ -217,7 +219,8 @@ def test_the_network_page_of_a_running_demo(demo, monkeypatch) -> None:
                 assert drawn.nth(i).get_attribute("data-state") != "unknown"  # the relay answered
             assert page.locator("#plots figure").count() >= 3 * len(links)
 
-            assert set(first) == set(second) and len(first) >= 20
+            # Rows may appear (a pair's first delivery), never go.
+            assert set(first) <= set(second) and len(first) >= 20
             changed = [k for k in first if first[k] != second[k]]
             assert changed, "no live figure changed between the two screenshots"
             assert any(k.startswith(("pool-", "rate-", "map-rate-")) for k in changed), changed
