@@ -2,20 +2,30 @@
 serve` on SQLite, mutual TLS on loopback): every TLS, URL and certificate mistake is one
 sentence and a hint on stderr, exit status 1, never a traceback; registry lists and
 error details are text, never Python reprs, and --json is JSON; `deliveries` at a relay
-says it is a station command."""
+says it is a station command; long work shows a progress bar on a terminal only."""
 
 from __future__ import annotations
 
 import json
+import os
+import pty
 import re
 import shutil
+import subprocess
 from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 
+from keystrata.loopback.configs import write_config
 from keystrata.loopback.pki import PkiFiles
-from keystrata.loopback.processes import NodeProcess, free_port, prepare_node, run_cli
+from keystrata.loopback.processes import (
+    KEYSTRATA,
+    NodeProcess,
+    free_port,
+    prepare_node,
+    run_cli,
+)
 
 
 @pytest.fixture(scope="module")
@@ -178,3 +188,36 @@ def test_a_missing_option_names_its_variable(pki: PkiFiles) -> None:
     assert "--url is needed: give --url or set KEYSTRATA_URL" in result.stderr
     help_text = run_cli("pools", "--help", env={"COLUMNS": "100"}).stdout
     assert "[env var: KEYSTRATA_URL]" in help_text and "required" not in help_text
+
+
+def _on_a_terminal(args: list[str]) -> str:
+    """Run ``keystrata ARGS`` with stdout and stderr on a pseudo-terminal; return all it
+    wrote there."""
+    main, child = pty.openpty()
+    proc = subprocess.Popen([*KEYSTRATA, *args], stdout=child, stderr=child)
+    os.close(child)
+    out = b""
+    while True:
+        try:
+            chunk = os.read(main, 4096)
+        except OSError:  # EIO: the child closed the terminal
+            break
+        if not chunk:
+            break
+        out += chunk
+    assert proc.wait(timeout=120) == 0, out
+    os.close(main)
+    return out.decode(errors="replace")
+
+
+def test_long_work_shows_a_progress_bar_on_a_terminal_only(pki: PkiFiles, tmp_path: Path) -> None:
+    configs = [
+        write_config(tmp_path / name, node_id="station-a", role="station", pki=pki,
+                     db_url=f"sqlite:///{tmp_path / name}.db")
+        for name in ("piped", "terminal")
+    ]  # fmt: skip
+    piped = run_cli("db", "upgrade", "--config", str(configs[0]))
+    assert "migrating the schema" not in piped.stdout + piped.stderr
+    assert re.fullmatch(r"schema at revision \w+ \(\d+ migrations applied\)\n", piped.stdout)
+    shown = _on_a_terminal(["db", "upgrade", "--config", str(configs[1])])
+    assert "migrating the schema" in shown and "migrations applied" in shown
