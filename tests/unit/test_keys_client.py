@@ -675,7 +675,7 @@ def test_cli_turns_errors_into_status_and_message(cli) -> None:
     result = cli(refused, "get", "sae-orlin-1")
     assert result.exit_code == 1
     assert "(HTTP 401): not authorised for this pair" in result.stderr
-    assert "registry create principals" in result.stderr  # the hint
+    assert "check --url names that station" in result.stderr  # the hint
     assert "Traceback" not in result.output
     bad = cli(GOOD, "get", "sae-orlin-1", "--size", "100")
     assert bad.exit_code == 2

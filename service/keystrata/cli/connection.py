@@ -75,14 +75,15 @@ def connection_options(f: F) -> F:
 
 
 @contextmanager
-def client_errors() -> Iterator[None]:
-    """Show the SDK's errors as one sentence, a hint and detail lines (exit status 1)."""
+def client_errors(hints: dict[int, str] | None = None) -> Iterator[None]:
+    """Show the SDK's errors as one sentence, a hint and detail lines (exit status 1);
+    ``hints`` gives a command's own hint for an HTTP status."""
     try:
         yield
     except ApiError as exc:
         raise CommandError(
             f"the node refused the request (HTTP {exc.status}): {exc.message}",
-            _status_hint(exc.status),
+            (hints or {}).get(exc.status) or _status_hint(exc.status),
             render.details(exc.details, said=exc.message),
         ) from None
     except ConnectionProblem as exc:

@@ -31,6 +31,14 @@ SHOW_KEY_WARNING = (
 )
 
 
+#: Key delivery's refusals are all 401 (ETSI GS QKD 014; the ledger tells them apart).
+SAE_HINTS = {
+    401: "keys are delivered by the SAE's own station, to an SAE registered there and "
+    "allowed in the pair, once per key ID: check --url names that station, and the SAE "
+    "IDs (the station's ledger records why: `keystrata audit search --event key.refused`)",
+}
+
+
 def open_client(url: str, ca: Path, cert: Path, key: Path) -> KeyClient:
     """Return a client for the node at ``url`` that presents the SAE's certificate.
 
@@ -46,7 +54,7 @@ def sae(url: str, ca: Path, cert: Path, key: Path) -> Iterator[KeyClient]:
     """Yield a client; SDK errors shown as one sentence and a hint, exit status 1."""
     client = open_client(url, ca, cert, key)
     try:
-        with client_errors():
+        with client_errors(SAE_HINTS):
             yield client
     finally:
         client.close()
