@@ -228,11 +228,11 @@ def _day_of_sky(workdir: Path, nodes: list) -> list[dict]:
     model of each link, from the demo's own link specs), every two hours of its day."""
     from datetime import UTC, datetime
 
-    from keystrata.demo.main import SKY_START, _link_specs
+    from keystrata.demo.run import SKY_START, link_specs
     from keystrata_client.emulators import EndStats, LinkStats
     from keystrata_client.emulators.physical import rate_model
 
-    specs = _link_specs(workdir, nodes)
+    specs = link_specs(workdir, nodes)
     start = SKY_START.timestamp()
     models = {s.link_id: rate_model(s.model, seed=s.seed, start=start) for s in specs}
     day = []
@@ -265,8 +265,8 @@ def _render_real_state(workdir: Path, encryptor_rows: list[dict]) -> None:
     model's sky through a whole day."""
     from rich.console import Console
 
-    from keystrata.demo.main import _read_nodes
     from keystrata.demo.provision import operator_identity
+    from keystrata.demo.run import read_nodes
     from keystrata.demo.view import ObservedRates, screen
     from keystrata.demo.workdir import DemoNode
     from keystrata_client.emulators.encryptors import PairStats
@@ -278,7 +278,7 @@ def _render_real_state(workdir: Path, encryptor_rows: list[dict]) -> None:
     ]
     observed = ObservedRates()
     for _ in range(2):
-        snap = _read_nodes(nodes, operator_identity(workdir), [], time.monotonic())
+        snap = read_nodes(nodes, operator_identity(workdir), [], time.monotonic())
         observed.add(snap)
         time.sleep(1)
     assert len(snap.relay_pairs) == 3 and len(snap.station_pairs) == 3

@@ -3,28 +3,23 @@
 from __future__ import annotations
 
 import asyncio
-import contextlib
 import os
 import signal
 import sys
-import time
-from collections.abc import Callable
-from dataclasses import dataclass
-from datetime import UTC, datetime
 from pathlib import Path
 
 import click
 from rich.console import Console
-from rich.live import Live
 
 from keystrata.demo import scenario
 from keystrata.demo.audit import audit, ledgers_table, reconciliation_table
-from keystrata.demo.provision import operator_identity, provision
+from keystrata.demo.provision import provision
+from keystrata.demo.run import Run
+from keystrata.demo.run import run as live_run
 from keystrata.demo.stopping import StopNow, Stopper
 from keystrata.demo.verify import check_network
 from keystrata.demo.view import ObservedRates, Snapshot, screen
 from keystrata.demo.workdir import (
-    ENCRYPTORS,
     DemoNode,
     build_pki,
     init_databases,
@@ -35,23 +30,12 @@ from keystrata.demo.workdir import (
 )
 from keystrata.loopback.pki import PkiFiles
 from keystrata.loopback.processes import NodeProcess, free_ports, stop_all
-from keystrata_client import OperatorClient, TlsIdentity
-from keystrata_client.emulators import LinkEmulator, LinkSpec, LinkStats, PhysicalProfile
-from keystrata_client.emulators.encryptor_cli import build_emulator
-from keystrata_client.emulators.encryptor_config import load_encryptor_config
-from keystrata_client.emulators.encryptors import EncryptorEmulator, PairStats
-from keystrata_physics.optics import LinkOptics, Platform, StationSky, from_mapping
 
 # A terminal gives its own size, and so does COLUMNS; a file or a pipe gets every column.
 console = Console(width=None if sys.stdout.isatty() or "COLUMNS" in os.environ else 140)
-#: What the live screen says about stopping, and what the summary reports after it.
-STOP_HINT = "Ctrl-C stops, audits and exits"
 
 #: Seconds each node gets to answer after it was started.
 START_TIMEOUT = 30.0
-#: Emulated sky: one day every two minutes, starting at dusk.
-TIME_SCALE = 720.0
-SKY_START = datetime(2026, 6, 21, 17, 0, tzinfo=UTC)
 
 
 def _nodes(workdir: Path) -> list[DemoNode]:
@@ -61,176 +45,6 @@ def _nodes(workdir: Path) -> list[DemoNode]:
         DemoNode(node_id=n, role=r, port=p, config=workdir / n / "node.toml")
         for (n, r), p in zip(ids, ports, strict=True)
     ]
-
-
-def _link_specs(workdir: Path, nodes: list[DemoNode]) -> list[LinkSpec]:
-    url = {n.node_id: n.url for n in nodes}
-    specs = []
-    for i, st in enumerate(scenario.STATIONS):
-        ident = TlsIdentity(
-            ca=workdir / "pki/ca.crt",
-            cert=workdir / f"pki/{st.module}.crt",
-            key=workdir / f"pki/{st.module}.key",
-        )
-        specs.append(
-            LinkSpec(
-                link_id=st.link_id,
-                relay_url=url[scenario.RELAY],
-                station_url=url[st.node_id],
-                relay_identity=ident,
-                station_identity=ident,
-                seed=11 + i,
-                block_bytes=4096,
-                model=PhysicalProfile(
-                    optics=from_mapping(LinkOptics, st.optics),
-                    platform=from_mapping(Platform, scenario.PLATFORM),
-                    station=from_mapping(StationSky, st.physical),
-                ),
-            )
-        )
-    return specs
-
-
-def _read_nodes(
-    nodes: list[DemoNode], identity: TlsIdentity, procs: list[NodeProcess], elapsed: float
-) -> Snapshot:
-    """Pool levels and pair buffers, as an operator reads them from each node."""
-    snap = Snapshot(pools={}, elapsed=elapsed, dead=[p.node_id for p in procs if not p.running])
-    for node in nodes:
-        try:
-            with OperatorClient(node.url, identity, timeout=3.0) as client:
-                for pool in client.pools()["pools"]:
-                    snap.pools[(node.node_id, pool["link_id"])] = pool
-                pairs = client.pairs()["pairs"]
-        except Exception:  # noqa: S112 - a node that does not answer shows as "-"
-            continue
-        if node.role == "relay":
-            snap.relay_pairs = pairs
-        else:
-            snap.station_pairs[node.node_id] = pairs
-    return snap
-
-
-def _headline(
-    stats: dict[str, LinkStats], elapsed: float, duration: float | None, stopping: bool
-) -> str:
-    if stopping:
-        return (
-            f"{scenario.ORGANISATION}: stopping; the emulators drain, then every ledger "
-            "is audited (Ctrl-C again stops at once)"
-        )
-    sky = next((s.emulated_at for s in stats.values() if s.emulated_at), None)
-    clock = f"sky over Lowmarch {sky:%H:%M}" if sky else "starting"
-    left = f"; {duration - elapsed:.0f} s left" if duration is not None else ""
-    return f"{scenario.ORGANISATION}: {clock}{left}; {STOP_HINT}"
-
-
-@dataclass
-class Run:
-    """How the run went: the final levels, the emulators' counts, how it ended."""
-
-    snap: Snapshot
-    links: dict[str, LinkStats]
-    encryptors: dict[str, PairStats]
-    elapsed: float
-    #: The signal that stopped the load, or None when ``--duration`` ended it (or a
-    #: node stopped: ``snap.dead``).
-    stopped_by: int | None
-
-
-async def _watch(
-    emulator: LinkEmulator,
-    encryptors: EncryptorEmulator,
-    procs: list[NodeProcess],
-    nodes: list[DemoNode],
-    duration: float | None,
-    live: Live | None,
-    identity: TlsIdentity,
-    stopping: asyncio.Event,
-    stop: Callable[[], None],
-) -> None:
-    """Show the screen every second (every five without a terminal) until cancelled;
-    stop the load when ``duration`` is over or a node stopped."""
-    started = time.monotonic()
-    last_print = -5.0
-    observed = ObservedRates()
-
-    def show(snap: Snapshot, elapsed: float, *, now: bool = False) -> None:
-        nonlocal last_print
-        headline = _headline(emulator.stats, elapsed, duration, stopping.is_set())
-        view = screen(headline, snap, emulator.stats, encryptors.stats, observed)
-        if live is not None:
-            live.update(view, refresh=now)
-        elif now or elapsed - last_print >= 5.0:  # without a terminal: every 5 s
-            console.print(view)
-            last_print = elapsed
-
-    while True:
-        elapsed = time.monotonic() - started
-        snap = await asyncio.to_thread(_read_nodes, nodes, identity, procs, elapsed)
-        observed.add(snap)
-        show(snap, elapsed)
-        if snap.dead or (duration is not None and elapsed >= duration):
-            stop()
-        if stopping.is_set():
-            await asyncio.sleep(1.0)
-            continue
-        with contextlib.suppress(TimeoutError):
-            await asyncio.wait_for(stopping.wait(), 1.0)
-        if stopping.is_set():  # say at once that the demo is stopping
-            show(snap, time.monotonic() - started, now=True)
-
-
-async def _run(
-    workdir: Path,
-    nodes: list[DemoNode],
-    procs: list[NodeProcess],
-    duration: float | None,
-    stopper: Stopper,
-) -> Run:
-    """Run the link and encryptor emulators under the live screen until ``duration``
-    is over, a node stops or a signal comes; then let both drain and read the levels."""
-    identity = operator_identity(workdir)
-    emulator = LinkEmulator(
-        _link_specs(workdir, nodes),
-        time_scale=TIME_SCALE,
-        start=SKY_START.timestamp(),
-        drain_seconds=5.0,
-    )
-    # The demo's encryptors run from the file it wrote for people to reuse.
-    encryptors = build_emulator(load_encryptor_config(workdir / ENCRYPTORS))
-    stopping = asyncio.Event()
-
-    def stop() -> None:
-        stopper.load_stopped()
-        stopping.set()
-        emulator.stop()
-        encryptors.stop()
-
-    started = time.monotonic()
-    stopper.load_started(asyncio.get_running_loop(), stop)
-    emulating = asyncio.create_task(emulator.run())
-    rekeying = asyncio.create_task(encryptors.run())
-    live = Live(console=console, refresh_per_second=2) if sys.stdout.isatty() else None
-    watching: asyncio.Task[None] | None = None
-    try:
-        if live is not None:
-            live.start()
-        watching = asyncio.create_task(
-            _watch(emulator, encryptors, procs, nodes, duration, live, identity, stopping, stop)
-        )
-        # Both emulators run until stop() and drain after it; the screen stays live.
-        link_stats, enc_stats = await asyncio.gather(emulating, rekeying)
-        elapsed = time.monotonic() - started
-    finally:
-        stop()
-        if watching is not None:
-            watching.cancel()
-        if live is not None:
-            live.stop()
-    # After the emulator drained its queues, both ends of each link must agree.
-    snap = await asyncio.to_thread(_read_nodes, nodes, identity, procs, elapsed)
-    return Run(snap, link_stats, enc_stats, elapsed, stopper.stopped_by)
 
 
 def _disagreements(snap: Snapshot) -> list[str]:
@@ -309,7 +123,7 @@ def _demo(workdir: Path, duration: float | None, stopper: Stopper) -> None:
         with console.status("provisioning links, pairs and principals"):
             sent = provision(workdir, nodes)
         _intro(workdir, nodes, manifest, encryptors, sent)
-        run = asyncio.run(_run(workdir, nodes, procs, duration, stopper))
+        run = asyncio.run(live_run(console, workdir, nodes, procs, duration, stopper))
         with console.status("exporting, verifying and reconciling every ledger as an auditor"):
             audited = audit(workdir, nodes)
     finally:
