@@ -215,33 +215,42 @@ def accounting_cmd(
 
 
 def accounting_table(answer: dict[str, Any], url: str, units: Units) -> Any:
-    """The per-day answer for people: one line per day and pair, and per day and SAE."""
+    """The per-day answer for people: a table of pairs and one of SAEs, a line per UTC
+    day above its rows, each figure as keys over bits."""
     from rich import box
+    from rich.console import Group
     from rich.table import Table
 
-    table = Table(title=f"accounting at {url}", box=box.SIMPLE_HEAD, pad_edge=False)
-    for i, col in enumerate(
-        ("day", "pair or SAE", "to masters", "to slaves", "expired", "refused", "relayed")
-    ):
-        table.add_column(col, justify="left" if i < 2 else "right")
+    def table(title: str, columns: tuple[str, ...]) -> Table:
+        made = Table(title=title, box=box.SIMPLE_HEAD, pad_edge=False)
+        for i, col in enumerate(columns):
+            made.add_column(col, justify="right" if i else "left", no_wrap=True)
+        return made
 
-    def keys(c: dict[str, int] | None) -> str:
-        return "" if c is None else f"{c['keys']:,} ({units.bits(c['bits'])})"
+    def keys(c: dict[str, int]) -> str:
+        return f"{c['keys']:,} {'key' if c['keys'] == 1 else 'keys'}\n{units.bits(c['bits'])}"
 
+    pairs = table(
+        f"accounting at {url}: pairs",
+        ("day, pair", "to masters", "to slaves", "expired", "relayed (link)"),
+    )
+    saes = table("SAEs", ("day, SAE", "as master", "as slave", "refused requests"))
     for day in answer["days"]:
+        pairs.add_row(f"[bold]{day['day']}[/bold]")
+        saes.add_row(f"[bold]{day['day']}[/bold]")
         for p in day["pairs"]:
             relayed = p["relayed"]
-            table.add_row(
-                day["day"], p["pair_id"], keys(p["to_masters"]), keys(p["to_slaves"]),
-                keys(p["expired"]), "",
-                f"{units.bits(relayed['bits'])} (link {units.bits(relayed['link_bits'])})",
+            pairs.add_row(
+                f"  {p['pair_id']}", keys(p["to_masters"]), keys(p["to_slaves"]),
+                keys(p["expired"]),
+                f"{units.bits(relayed['bits'])}\n({units.bits(relayed['link_bits'])})",
             )  # fmt: skip
         for sae in day["saes"]:
-            table.add_row(
-                day["day"], sae["sae_id"], keys(sae["as_master"]), keys(sae["as_slave"]),
-                "", units.count(sae["refused"]), "",
+            saes.add_row(
+                f"  {sae['sae_id']}", keys(sae["as_master"]), keys(sae["as_slave"]),
+                units.count(sae["refused"]),
             )  # fmt: skip
-    return table
+    return Group(pairs, saes)
 
 
 def accounting_rows(answer: dict[str, Any]) -> list[dict[str, Any]]:
