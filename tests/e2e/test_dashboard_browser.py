@@ -198,7 +198,8 @@ def test_the_network_page_of_a_running_demo(sync_api, demo, monkeypatch) -> None
             )
             page.wait_for_selector("#plots figure", timeout=60_000)
             secrets = _take_keys(workdir, manifest, proc)
-            page.wait_for_timeout(6_000)  # a refresh that includes the keys just taken
+            # Some history, and a refresh that includes the keys just taken.
+            page.wait_for_timeout(20_000)
             page.screenshot(path=str(ARTIFACTS / "network-1.png"), full_page=True)
             first = _live(page)
             page.wait_for_timeout(BETWEEN * 1000)

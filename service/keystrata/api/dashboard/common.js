@@ -172,13 +172,17 @@ export function linePlot({ title, unit, lines, id }) {
   }
   for (const t of timeTicks(t0, t1)) {
     plot.append(svg("line", { x1: x(t), x2: x(t), y1: top, y2: H - bottom, class: "grid" }));
-    plot.append(svg("text", { x: x(t), y: H - 10, "text-anchor": "middle", class: "tick" }, clock(t)));
+    const anchor = x(t) > W - right - 24 ? "end" : "middle"; // keep the last label inside
+    plot.append(svg("text", { x: x(t), y: H - 10, "text-anchor": anchor, class: "tick" }, clock(t)));
   }
   plot.append(svg("rect", { x: left, y: top, width: W - left - right, height: H - top - bottom, class: "frame" }));
   lines.forEach((line, i) => {
     if (!line.points.length) return;
     const d = line.points.map((p) => `${x(p[0]).toFixed(1)},${y(p[1]).toFixed(1)}`).join(" ");
     plot.append(svg("polyline", { points: d, class: `line line-${line.cls || i % 6}` }));
+    // The newest sample as a dot, so a series of one sample shows too.
+    const [t, v] = line.points[line.points.length - 1];
+    plot.append(svg("circle", { cx: x(t), cy: y(v), r: 2.5, class: `dot line-${line.cls || i % 6}` }));
   });
   const legend = el(
     "ul",
