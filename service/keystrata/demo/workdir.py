@@ -63,6 +63,10 @@ def build_pki(workdir: Path, nodes: list[DemoNode]) -> PkiFiles:
     return make_pki(workdir / "pki", scenario.CA_NAME, [n.node_id for n in nodes], clients)
 
 
+#: Seconds between comparisons of shared registry facts with each peer.
+REGISTRY_COMPARE_SECONDS = 10
+
+
 def _peers(node_id: str, nodes: list[DemoNode]) -> list[DemoNode]:
     if node_id == scenario.RELAY:
         return [n for n in nodes if n.node_id != node_id]
@@ -88,7 +92,12 @@ def write_configs(workdir: Path, nodes: list[DemoNode]) -> None:
                 key=f"../pki/{node.node_id}.key",
                 db_url=f"sqlite:///{node.node_id}.db",
                 kek="kek.b64",
-                extra=f"\n[ledger]\ncheckpoint_seconds = {CHECKPOINT_SECONDS}\n{peers}",
+                extra=(
+                    f"\n[ledger]\ncheckpoint_seconds = {CHECKPOINT_SECONDS}\n"
+                    # Registries are compared with the peers' often enough to be seen
+                    # within a short run (the default is a minute).
+                    f"\n[peer]\nregistry_compare_seconds = {REGISTRY_COMPARE_SECONDS}\n{peers}"
+                ),
             )
         )
 
