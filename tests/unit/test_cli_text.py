@@ -6,6 +6,7 @@ search --event` lists the ledger's own event names."""
 
 from __future__ import annotations
 
+import io
 from datetime import UTC, datetime
 
 import click
@@ -160,3 +161,54 @@ def test_audit_search_lists_every_event_of_the_ledger() -> None:
     assert "DEVELOPERS.md" not in text
     wrong = CliRunner().invoke(cli, ["audit", "search", "--event", "key.stolen"])
     assert wrong.exit_code == 2 and "key.allocated" in wrong.output
+
+
+POOLS = {
+    "node_id": "relay-vela",
+    "pools": [
+        {
+            "link_id": f"link-{name}", "peer_node_id": name, "bits_available": 1_048_576,
+            "bits_used": 123_456_789, "rate_bps": 412_000.0, "planned_rate_bps": 433_000.0,
+            "plan_ratio": 0.95, "last_block_at": "2026-12-04T02:00:00+00:00",
+        }
+        for name in ("karsvik", "tollmere", "brenhaven")
+    ],
+}  # fmt: skip
+RELAY_PAIRS = {
+    "node_id": "relay-vela", "role": "relay",
+    "pairs": [{
+        "pair_id": "pair-karsvik-tollmere", "in_flight_bits": 24_000, "relay_rate_bps": 320e3,
+        "target_bits": 1_048_576, "time_until_empty_s": 200.0,
+        "sides": [
+            {"station": "karsvik", "ready_bits": 1_048_576, "owned_ready_bits": 524_288,
+             "pending_bits": 48_000},
+            {"station": "tollmere", "ready_bits": 10**6, "owned_ready_bits": 5 * 10**5,
+             "pending_bits": 0},
+        ],
+    }],
+}  # fmt: skip
+
+
+def _printed(renderable, width: int) -> str:
+    from rich.console import Console
+
+    console = Console(width=width, record=True, file=io.StringIO())
+    console.print(renderable)
+    return console.export_text()
+
+
+def test_screens_fit_80_columns_turning_a_wide_table_instead_of_cutting_words() -> None:
+    from keystrata.cli.screens_cmd import pairs_table, pools_table
+
+    narrow = _printed(pools_table(POOLS), 80)
+    assert "…" not in narrow and max(len(line) for line in narrow.splitlines()) <= 80
+    # Turned: one line per figure, one column per link.
+    assert any(line.split()[:1] == ["available"] for line in narrow.splitlines())
+    wide = _printed(pools_table(POOLS), 160)
+    assert any(line.split()[:2] == ["link", "peer"] for line in wide.splitlines() if line.strip())
+    relay = _printed(pairs_table(RELAY_PAIRS), 80)
+    assert "…" not in relay and max(len(line) for line in relay.splitlines()) <= 80
+    for words in ("1.05 Mbit", "320 kbit/s", "3 min 20 s", "karsvik", "tollmere", "relaying"):
+        assert words in relay
+    exact = _printed(pairs_table(RELAY_PAIRS, Units(exact=True)), 200)
+    assert "1,048,576 bit" in exact and "200 s" in exact

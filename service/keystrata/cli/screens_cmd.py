@@ -10,7 +10,7 @@ from typing import Any
 
 import click
 from rich import box
-from rich.console import Group
+from rich.console import Console, ConsoleOptions, Group, RenderResult
 from rich.live import Live
 from rich.table import Table
 
@@ -51,15 +51,45 @@ def _show(
             pass
 
 
-def _table(title: str, columns: tuple[str, ...], left: int = 1) -> Table:
-    table = Table(title=title, box=box.SIMPLE_HEAD, pad_edge=False)
-    for i, col in enumerate(columns):
-        table.add_column(col, justify="left" if i < left else "right", no_wrap=i >= left)
-    return table
+class Sheet:
+    """A table that fits the terminal: one row per item when that fits, else turned
+    (one column per item, one line per figure), never cut words."""
+
+    def __init__(self, title: str, columns: tuple[str, ...], left: int = 1) -> None:
+        self.title, self.columns, self.left = title, columns, left
+        self.rows: list[tuple[str, ...]] = []
+
+    def add_row(self, *cells: str) -> None:
+        self.rows.append(cells)
+
+    def wide(self) -> Table:
+        table = Table(title=self.title, box=box.SIMPLE_HEAD, pad_edge=False)
+        for i, col in enumerate(self.columns):
+            table.add_column(col, justify="left" if i < self.left else "right", no_wrap=True)
+        for row in self.rows:
+            table.add_row(*row)
+        return table
+
+    def turned(self) -> Table:
+        table = Table(title=self.title, box=box.SIMPLE_HEAD, pad_edge=False)
+        table.add_column("", no_wrap=True)
+        for row in self.rows:
+            table.add_column("\n".join(c for c in row[: self.left] if c), justify="right")
+        for i, name in enumerate(self.columns[self.left :], start=self.left):
+            table.add_row(name, *(row[i] for row in self.rows))
+        return table
+
+    def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
+        wide = self.wide()
+        unbounded = options.update_width(100_000)
+        if not self.rows or console.measure(wide, options=unbounded).maximum <= options.max_width:
+            yield wide
+        else:
+            yield self.turned()
 
 
-def pools_table(answer: dict[str, Any], units: Units = HUMAN) -> Table:
-    table = _table(
+def pools_table(answer: dict[str, Any], units: Units = HUMAN) -> Sheet:
+    table = Sheet(
         f"link key pools at {answer['node_id']}",
         ("link", "peer", "available", "used", "rate", "plan", "of plan", "last block"),
         left=2,
@@ -90,36 +120,31 @@ def pools(
         _show(client.pools, lambda a: pools_table(a, units), watch=watch, as_json=as_json)
 
 
-def pairs_table(answer: dict[str, Any], units: Units = HUMAN) -> Table:
-    """The pair buffers a node reports, as a table (relay and station views differ)."""
+def pairs_table(answer: dict[str, Any], units: Units = HUMAN) -> Group:
+    """The pair buffers a node reports (relay and station views differ): at a relay
+    each station's side, then each pair's relaying."""
     title = f"pair key at {answer['node_id']} ({answer['role']})"
     if answer["role"] == "relay":
-        table = _table(
-            title,
-            ("pair", "station", "ready", "owned", "pending", "on its way", "relay rate",
-             "target", "until empty"),
-            left=2,
-        )  # fmt: skip
+        sides = Sheet(title, ("pair", "station", "ready", "owned", "pending"), left=2)
+        relaying = Sheet("relaying", ("pair", "on its way", "relay rate", "target", "until empty"))
         for p in answer["pairs"]:
             for i, side in enumerate(p["sides"]):
-                first = i == 0
-                table.add_row(
-                    p["pair_id"] if first else "",
+                sides.add_row(
+                    "" if i else p["pair_id"],
                     side["station"],
                     units.bits(side["ready_bits"]),
                     units.bits(side["owned_ready_bits"]),
                     units.bits(side["pending_bits"]),
-                    units.bits(p["in_flight_bits"]) if first else "",
-                    units.rate(p["relay_rate_bps"]) if first else "",
-                    units.bits(p["target_bits"]) if first else "",
-                    units.duration(p["time_until_empty_s"]) if first else "",
                 )
-        return table
-    table = _table(
-        title,
-        ("pair", "partner", "ready", "owned here", "owned by partner", "pending"),
-        left=2,
-    )
+            relaying.add_row(
+                p["pair_id"],
+                units.bits(p["in_flight_bits"]),
+                units.rate(p["relay_rate_bps"]),
+                units.bits(p["target_bits"]),
+                units.duration(p["time_until_empty_s"]),
+            )
+        return Group(sides, relaying)
+    table = Sheet(title, ("pair", "partner", "ready", "owned here", "partner's", "pending"), left=2)
     for p in answer["pairs"]:
         table.add_row(
             p["pair_id"],
@@ -129,7 +154,7 @@ def pairs_table(answer: dict[str, Any], units: Units = HUMAN) -> Table:
             units.bits(p["partner_owned_ready_bits"]),
             units.bits(p["pending_bits"]),
         )
-    return table
+    return Group(table)
 
 
 @click.command("pairs")
@@ -147,8 +172,11 @@ def pairs(
 
 def deliveries_tables(answer: dict[str, Any], units: Units = HUMAN) -> Group:
     """Key delivery accounting of a station: one table per pair, one per SAE."""
-    cell = units.keys_and_bits
-    pairs = _table(
+
+    def cell(counts: dict[str, int]) -> str:
+        return units.keys_and_bits(counts).replace(" (", "\n(", 1)
+
+    pairs = Sheet(
         f"key delivery at {answer['node_id']}: pairs",
         ("pair", "to masters", "to slaves", "waiting", "expired"),
     )
@@ -157,7 +185,7 @@ def deliveries_tables(answer: dict[str, Any], units: Units = HUMAN) -> Group:
             p["pair_id"], cell(p["to_masters"]), cell(p["to_slaves"]), cell(p["waiting"]),
             cell(p["expired"]),
         )  # fmt: skip
-    saes = _table("SAEs", ("SAE", "as master", "as slave", "expired", "refused requests"))
+    saes = Sheet("SAEs", ("SAE", "as master", "as slave", "expired", "refused requests"))
     for s in answer["saes"]:
         saes.add_row(
             s["sae_id"], cell(s["as_master"]), cell(s["as_slave"]), cell(s["expired"]),
