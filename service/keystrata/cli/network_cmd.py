@@ -44,13 +44,21 @@ def _identity(
 def _options(f: Any) -> Any:
     for name, envvar, text in reversed(
         (
-            ("--ca", "KEYSTRATA_CA", "network CA certificate (PEM); default: [network] ca"),
+            (
+                "--ca",
+                "KEYSTRATA_CA",
+                "The network CA certificate (PEM); default: the file's [network] ca.",
+            ),
             (
                 "--cert",
                 "KEYSTRATA_CERT",
-                "your operator certificate (PEM); default: [network] cert",
+                "Your operator certificate (PEM); default: the file's [network] cert.",
             ),
-            ("--key", "KEYSTRATA_KEY", "your private key (PEM); default: [network] key"),
+            (
+                "--key",
+                "KEYSTRATA_KEY",
+                "Your private key (PEM); default: the file's [network] key.",
+            ),
         )
     ):
         f = click.option(name, envvar=envvar, show_envvar=True, type=_PEM, help=text)(f)
@@ -121,9 +129,9 @@ def _survey_json(surveys: list[applying.NodeSurvey]) -> list[dict[str, Any]]:
 @network.command()
 @_options
 @click.option(
-    "--retire-unlisted", is_flag=True, help="also retire active entries the file does not list"
+    "--retire-unlisted", is_flag=True, help="Also retire active entries the file does not list."
 )
-@click.option("--json", "as_json", is_flag=True, help="print JSON for scripts")
+@click.option("--json", "as_json", is_flag=True, help="Print JSON for scripts.")
 def check(
     path: Path,
     ca: Path | None,
@@ -158,7 +166,7 @@ def check(
 @network.command("apply")
 @_options
 @click.option(
-    "--retire-unlisted", is_flag=True, help="also retire active entries the file does not list"
+    "--retire-unlisted", is_flag=True, help="Also retire active entries the file does not list."
 )
 def apply_cmd(
     path: Path, ca: Path | None, cert: Path | None, key: Path | None, retire_unlisted: bool
@@ -223,7 +231,7 @@ def _apply_with_progress(
 
 @network.command("status")
 @_options
-@click.option("--json", "as_json", is_flag=True, help="print JSON for scripts (exact bits)")
+@click.option("--json", "as_json", is_flag=True, help="Print JSON for scripts (exact bits).")
 @exact_option
 def status_cmd(
     path: Path, ca: Path | None, cert: Path | None, key: Path | None, as_json: bool, exact: bool

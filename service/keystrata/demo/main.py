@@ -71,7 +71,8 @@ def _disagreements(snap: Snapshot) -> list[str]:
     type=click.Path(file_okay=False, path_type=Path),
     default=Path("demo-work"),
     show_default=True,
-    help="folder for PKI, configs, databases, logs, demo.json and encryptors.toml",
+    help="Folder for the PKI, configs, databases, logs, network.toml, demo.json and "
+    "encryptors.toml.",
 )
 def demo(duration: float | None, workdir: Path) -> None:
     """Run one relay and three stations on loopback, fed by emulated QKD links and
