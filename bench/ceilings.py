@@ -1,6 +1,6 @@
 """The ceiling of key delivery: a bare endpoint in the same framework (FastAPI) and the
 same server (uvicorn, run with exactly the options of ``keystrata.server.serve``: the
-client-certificate protocol class, ``CERT_REQUIRED`` against the network CA, the same
+client-certificate protocol class, ``CERT_OPTIONAL`` against the network CA, the same
 log level and worker count) that answers Get key and Get key with key IDs with a key
 container of the standard's shape from ``os.urandom``: no database, no ledger, no
 identity lookup. What the real endpoints reach as a share of it is what the service's
@@ -76,7 +76,7 @@ def main(argv: list[str] | None = None) -> None:
         ssl_certfile=args.cert,
         ssl_keyfile=args.key,
         ssl_ca_certs=args.ca,
-        ssl_cert_reqs=ssl.CERT_REQUIRED,
+        ssl_cert_reqs=ssl.CERT_OPTIONAL,
         log_level="info",
         proxy_headers=False,
         server_header=False,

@@ -1,5 +1,6 @@
 """Run a node: start-up checks, the composition root, then uvicorn over HTTPS with
-required client certificates.
+client certificates (a handshake without one completes, so the caller gets a 401 that
+says what is missing; one that does not verify fails the handshake).
 
 The composition root (:func:`compose`) is the one place where a process's parts meet:
 the node's context, one peer client for the process (shared by the background loops and
@@ -156,7 +157,7 @@ def serve(settings: Settings, config_path: str) -> None:
         ssl_certfile=str(settings.tls.cert),
         ssl_keyfile=str(settings.tls.key),
         ssl_ca_certs=str(settings.tls.ca),
-        ssl_cert_reqs=ssl.CERT_REQUIRED,
+        ssl_cert_reqs=ssl.CERT_OPTIONAL,  # as crypto/tls.server_context builds it
         ssl_context_factory=ssl_context_factory,
         log_level="info",
         proxy_headers=False,
