@@ -187,3 +187,29 @@ def test_text_of_the_document_is_escaped() -> None:
     out = docs_page.render(document, [route], hostile)
     assert hostile not in out and html.escape(hostile) in out
     assert not [a for _, a in _parse(out).tags if any(k.startswith("on") for k in a)]
+
+
+def test_every_reference_of_the_document_resolves(station, api) -> None:
+    """A JSON pointer ``$ref`` (RFC 6901) that names nothing leaves a body undocumented:
+    every one must point at a schema the document holds."""
+    document = api(station)("ops-ada").get("/openapi.json").json()
+    refs: list[str] = []
+
+    def walk(node: Any) -> None:
+        if isinstance(node, dict):
+            if isinstance(node.get("$ref"), str):
+                refs.append(node["$ref"])
+            for value in node.values():
+                walk(value)
+        elif isinstance(node, list):
+            for value in node:
+                walk(value)
+
+    walk(document)
+    assert refs
+    for ref in refs:
+        target: Any = document
+        assert ref.startswith("#/"), ref
+        for part in ref[2:].split("/"):
+            assert isinstance(target, dict) and part in target, ref
+            target = target[part]

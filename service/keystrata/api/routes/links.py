@@ -111,13 +111,30 @@ def _from_json(raw: bytes, max_blocks: int) -> list[BlockIn]:
     return out
 
 
+def _inlined(model: type[BaseModel]) -> dict[str, Any]:
+    """``model``'s JSON schema with its nested models written in place, so the body the
+    OpenAPI document shows refers to nothing outside itself."""
+    schema = model.model_json_schema()
+    defs = schema.pop("$defs", {})
+
+    def walk(node: Any) -> Any:
+        if isinstance(node, dict):
+            ref = node.get("$ref", "")
+            if ref.startswith("#/$defs/"):
+                return walk(defs[ref.removeprefix("#/$defs/")])
+            return {k: walk(v) for k, v in node.items()}
+        if isinstance(node, list):
+            return [walk(v) for v in node]
+        return node
+
+    return walk(schema)  # type: ignore[no-any-return]
+
+
 _INGEST_BODY = {
     "requestBody": {
         "required": True,
         "content": {
-            "application/json": {
-                "schema": BlocksJson.model_json_schema(ref_template="#/components/schemas/{model}")
-            },
+            "application/json": {"schema": _inlined(BlocksJson)},
             "application/octet-stream": {
                 "schema": {
                     "type": "string",
