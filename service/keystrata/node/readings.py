@@ -145,7 +145,7 @@ def _station_pairs(ctx: NodeContext) -> list[PairReading]:
     out = []
     for view in buffers.station_view(ctx):
         report = buffers.station_report(ctx, view["pair_id"])
-        demand = (report.delivered_bits + report.unmet_bits) / max(report.window_seconds, 1)
+        demand = buffers.demand_bps(report)
         a, b = sorted((ctx.node_id, view["partner"]))
         out.append(
             PairReading(

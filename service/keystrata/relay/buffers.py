@@ -200,9 +200,9 @@ def pairs_through(s: Session, relay_id: str) -> list[Pair]:
     )
 
 
-def _demand_bps(report: PairBuffer) -> float:
+def demand_bps(report: PairBuffer | answers.BufferReport) -> float:
     """A station's demand for its pair: bits its masters asked for per second (delivered,
-    or refused for lack of ready key)."""
+    or refused for lack of ready key), from its report (as sent, or as the relay keeps it)."""
     return (report.delivered_bits + report.unmet_bits) / max(report.window_seconds, 1)
 
 
@@ -243,13 +243,13 @@ def relay_view(ctx: NodeContext, *, now: datetime | None = None) -> list[PairVie
                         "ready_bits": r.ready_bits if r else None,
                         "owned_ready_bits": r.owned_ready_bits if r else None,
                         "pending_bits": r.pending_bits if r else None,
-                        "demand_bps": _demand_bps(r) if r else None,
+                        "demand_bps": demand_bps(r) if r else None,
                         "reported_at": r.reported_at.isoformat() if r else None,
                     }
                 )
             consumption = None
-            if len(reports) == 2 and any(_demand_bps(r) for r in reports.values()):
-                consumption = sum(_demand_bps(r) for r in reports.values())
+            if len(reports) == 2 and any(demand_bps(r) for r in reports.values()):
+                consumption = sum(demand_bps(r) for r in reports.values())
             ready = min(int(side["ready_bits"] or 0) for side in sides)
             target = planning.buffer_target(
                 consumption_bps=consumption,
