@@ -152,3 +152,15 @@ def test_no_module_is_much_longer_than_400_lines(folder: Path) -> None:
         if lines > LONG_MODULES.get(rel, MAX_LINES):
             long[rel] = lines
     assert not long, f"split these modules (or list them in LONG_MODULES with a reason): {long}"
+
+
+def test_test_modules_have_names_of_their_own() -> None:
+    """pytest imports test modules by their file name (the folders are not packages), so
+    two tiers with a test file of the same name stop the whole run at collection."""
+    seen: dict[str, Path] = {}
+    twice = []
+    for path in sorted((ROOT / "tests").rglob("test_*.py")):
+        if path.name in seen:
+            twice.append(f"{seen[path.name].relative_to(ROOT)} and {path.relative_to(ROOT)}")
+        seen[path.name] = path
+    assert not twice, twice
