@@ -155,9 +155,9 @@ def explain_transport(exc: httpx.TransportError) -> ConnectionProblem | None:
         )
     if url.scheme == "https" and isinstance(exc, (httpx.RemoteProtocolError, httpx.ReadError)):
         return ConnectionProblem(
-            f"the node at {where} closed the connection without an answer; a node does that "
-            "when it refuses the client certificate",
-            _REFUSED_HINT,
+            f"the node at {where} closed the connection without an answer (it may be "
+            "stopping or restarting, or it refused the client certificate)",
+            "try again in a moment; if it goes on, " + _REFUSED_HINT,
         )
     return None
 

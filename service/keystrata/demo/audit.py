@@ -13,7 +13,7 @@ from keystrata.demo.layout import Column, Fitted, Sheet
 from keystrata.demo.workdir import CHECKPOINT_SECONDS, DemoNode
 from keystrata_client import TlsIdentity
 from keystrata_client.audit import AuditClient, Report, verify_export, write_export
-from keystrata_client.audit.reconcile import Reconciliation, read_entries, reconcile
+from keystrata_client.audit.reconcile import HEADERS, Reconciliation, read_entries, reconcile
 
 
 def auditor_identity(workdir: Path) -> TlsIdentity:
@@ -107,15 +107,21 @@ def reconciliation_table(result: AuditResult) -> Fitted:
         "delivered": 0,
         "expired": 2,
         "waiting": 1,
+        "in_flight": 1,
+        "after_cutoff": 2,
         "served_twice": 0,
         "one_sided": 0,
         "mismatch": 0,
+        "unsettled": 0,
     }
     sheet = Sheet(
         "reconciliation per pair (both stations' ledgers, key ID by key ID)",
         (
             Column("pair", "left"),
-            *(Column(name.replace("_", " "), drop=rank) for name, rank in columns.items()),
+            *(
+                Column(HEADERS.get(name, name.replace("_", " ")), drop=rank)
+                for name, rank in columns.items()
+            ),
         ),
     )
     for pair, rec in result.pairs.items():
