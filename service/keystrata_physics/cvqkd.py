@@ -158,7 +158,11 @@ def gg02(transmittance: float, params: CvParams) -> CvRate:
             + 2.0 * t * (v * v - 1.0)
         ) / norm**2
         d = ((v + sqrt_b * chi_det) / norm) ** 2
-    chi_be = _eigenvalue_entropy(a, b) - _eigenvalue_entropy(c, d)
+    # Near a pure state (T -> 1, no noise) the discriminant under the square root
+    # cancels, so each entropy carries an error of about sqrt(machine epsilon) times
+    # log2 of its inverse (~1e-7 bit); their difference can come out a hair below zero,
+    # which the Holevo quantity never is.
+    chi_be = max(0.0, _eigenvalue_entropy(a, b) - _eigenvalue_entropy(c, d))
     raw = params.reconciliation_efficiency * i_ab - chi_be
     return CvRate(
         key_per_symbol=max(0.0, raw),
