@@ -28,6 +28,10 @@ FORM = {
 #: fetch(url, {credentials: "include"}) from a page of another site.
 FETCH = {"origin": EVIL, "sec-fetch-site": "cross-site", "sec-fetch-mode": "cors"}
 
+#: The page is drawn from the routes, the browser rules run before any route: what is
+#: checked here does not depend on the database.
+pytestmark = pytest.mark.one_backend
+
 
 @pytest.fixture
 def net(make_node, db_factory) -> relaynet.RelayNet:

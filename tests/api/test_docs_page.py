@@ -33,6 +33,10 @@ CERT_OF_ROLE = {
 #: the same document, so the same roles read it.
 PAGE_ROLES = {PrincipalRole.OPERATOR, PrincipalRole.MONITOR}
 
+#: The page is drawn from the routes, the browser rules run before any route: what is
+#: checked here does not depend on the database.
+pytestmark = pytest.mark.one_backend
+
 
 class _Page(HTMLParser):
     """Everything of the page an outside reader (the standard library's HTML parser)

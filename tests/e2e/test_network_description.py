@@ -89,11 +89,13 @@ role = "monitor"
 """
 
 
-@pytest.fixture
+@pytest.fixture(scope="module")
 def network(
-    tmp_path: Path, pki: PkiFiles, sqlite_template: Path
+    tmp_path_factory: pytest.TempPathFactory, pki: PkiFiles, sqlite_template: Path
 ) -> Iterator[dict[str, NodeProcess]]:
-    """Three nodes that know nothing but their own entry and their first operator."""
+    """Three nodes that know nothing but their own entry and their first operator when
+    the module starts; its tests run in order on them (the last one stops station-b)."""
+    tmp_path = tmp_path_factory.mktemp("network")
     ports = dict(zip(NODES, free_ports(len(NODES)), strict=True))
     urls = {n: f"https://127.0.0.1:{p}" for n, p in ports.items()}
     nodes = {}
@@ -210,31 +212,6 @@ def test_a_description_builds_the_network_and_applying_again_changes_nothing(
         assert changed[n] == expected
 
 
-def test_status_asks_every_node(
-    network: dict[str, NodeProcess], pki: PkiFiles, tmp_path: Path
-) -> None:
-    urls = {n: p.url for n, p in network.items()}
-    path = tmp_path / "network.toml"
-    path.write_text(_description(urls, pki))
-    assert _cli("apply", str(path))[0] == 0
-    code, out = _cli("status", str(path), columns=80)
-    assert code == 0, out
-    for name in ("relay-1", "station-a", "station-b", "link-a", "link-b", "pair-ab"):
-        assert name in out
-    # An 80-column terminal: nothing cut, nothing wider.
-    assert "…" not in out and "..." not in out, out
-    assert max(len(line) for line in out.splitlines()) <= 80, out
-    code, out = _cli("status", "--json", str(path))
-    assert code == 0, out
-    answer = json.loads(out)
-    assert [n["up"] for n in answer["nodes"]] == [True, True, True]
-    assert [r["link_id"] for r in answer["links"]] == ["link-a", "link-b"]
-    network["station-b"].stop()
-    code, out = _cli("status", str(path))
-    assert code == 1, out
-    assert "station-b" in out
-
-
 def _disagreements(node: NodeProcess, pki: PkiFiles) -> dict[str, float]:
     """keystrata_registry_disagreements by peer, from a real scrape (prometheus_client's
     parser reads it)."""
@@ -297,3 +274,28 @@ def test_a_registry_edited_behind_the_descriptions_back_raises_the_alert_on_both
     _until("agreement at A", lambda: _disagreements(a, pki).get("relay-1") == 0)
     with AuditClient(a.url, aud) as auditor:
         assert list(auditor.search(event=["registry.peer_agrees"]))
+
+
+def test_status_asks_every_node(
+    network: dict[str, NodeProcess], pki: PkiFiles, tmp_path: Path
+) -> None:
+    urls = {n: p.url for n, p in network.items()}
+    path = tmp_path / "network.toml"
+    path.write_text(_description(urls, pki))
+    assert _cli("apply", str(path))[0] == 0
+    code, out = _cli("status", str(path), columns=80)
+    assert code == 0, out
+    for name in ("relay-1", "station-a", "station-b", "link-a", "link-b", "pair-ab"):
+        assert name in out
+    # An 80-column terminal: nothing cut, nothing wider.
+    assert "…" not in out and "..." not in out, out
+    assert max(len(line) for line in out.splitlines()) <= 80, out
+    code, out = _cli("status", "--json", str(path))
+    assert code == 0, out
+    answer = json.loads(out)
+    assert [n["up"] for n in answer["nodes"]] == [True, True, True]
+    assert [r["link_id"] for r in answer["links"]] == ["link-a", "link-b"]
+    network["station-b"].stop()
+    code, out = _cli("status", str(path))
+    assert code == 1, out
+    assert "station-b" in out
