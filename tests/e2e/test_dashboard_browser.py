@@ -100,10 +100,14 @@ def demo(tmp_path: Path) -> Iterator[tuple[Path, dict[str, Any], subprocess.Pope
         )
         yield workdir, manifest, proc
     finally:
-        # The demo stops its nodes on SIGTERM; if it does not, it and they are killed
+        # A second SIGTERM stops the demo and its nodes at once (the first would drain
+        # and audit, which the demo tests check); if it does not, it and they are killed
         # by process ID (read while the demo lives, so the IDs are still its children's).
         if proc.poll() is None:
             proc.send_signal(signal.SIGTERM)
+            time.sleep(0.5)
+            if proc.poll() is None:
+                proc.send_signal(signal.SIGTERM)
             try:
                 proc.wait(timeout=120)
             except subprocess.TimeoutExpired:
