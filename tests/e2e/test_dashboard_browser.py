@@ -37,7 +37,7 @@ from keystrata_client import KeyClient, KeystrataClientError, TlsIdentity
 CHROMIUM = Path("/usr/bin/chromium")
 ARTIFACTS = Path(__file__).resolve().parents[2] / "build" / "artifacts" / "dashboard"
 #: Seconds between the two screenshots: the page reads every node each 5 s.
-BETWEEN = 12.0
+BETWEEN = 8.0
 
 
 @pytest.fixture
@@ -203,7 +203,7 @@ def test_the_network_page_of_a_running_demo(sync_api, demo, monkeypatch) -> None
             page.wait_for_selector("#plots figure", timeout=60_000)
             secrets = _take_keys(workdir, manifest, proc)
             # Some history, and a refresh that includes the keys just taken.
-            page.wait_for_timeout(20_000)
+            page.wait_for_timeout(10_000)
             page.screenshot(path=str(ARTIFACTS / "network-1.png"), full_page=True)
             first = _live(page)
             page.wait_for_timeout(BETWEEN * 1000)
