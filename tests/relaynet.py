@@ -261,24 +261,30 @@ def report_third(net: RelayNet, c: Node) -> None:
 SAES = {"sae-a1": "station-a", "sae-a2": "station-a", "sae-b1": "station-b", "sae-b2": "station-b"}
 
 
+def add_person(node: Any, pid: str, role: str) -> None:
+    """Register the test certificate ``pid`` at ``node`` as a principal of ``role``,
+    pinned to the certificate."""
+    provisioning.create(
+        node.ctx,
+        Kind.PRINCIPALS,
+        PrincipalSpec.model_validate(
+            {
+                "principal_id": pid,
+                "role": role,
+                "cert_subject": pid,
+                "cert_sha256": cert_pin(node.ctx.settings.tls.cert.parent, pid),
+            }
+        ),
+        actor="test",
+    )
+
+
 def provision_saes(net: RelayNet) -> None:
     """The test SAEs at both stations (each station knows its partner's SAEs), and the
     test operator and auditor."""
     for node in (net.a, net.b):
         for pid, role in (("ops-ada", "operator"), ("aud-ben", "auditor")):
-            provisioning.create(
-                node.ctx,
-                Kind.PRINCIPALS,
-                PrincipalSpec.model_validate(
-                    {
-                        "principal_id": pid,
-                        "role": role,
-                        "cert_subject": pid,
-                        "cert_sha256": cert_pin(node.ctx.settings.tls.cert.parent, pid),
-                    }
-                ),
-                actor="test",
-            )
+            add_person(node, pid, role)
         for sae, station in SAES.items():
             provisioning.create(
                 node.ctx,

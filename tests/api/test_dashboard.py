@@ -17,31 +17,16 @@ import relaynet
 from helpers import SteppedClock
 from keystrata.api.app import route_table
 from keystrata.links import pools
-from keystrata.loopback.pki import cert_pin
 from keystrata.node import history
 from keystrata.observability.dashboard import origin_of
-from keystrata.registry import provisioning
-from keystrata.registry.specs import Kind, PrincipalRole, PrincipalSpec
+from keystrata.registry.specs import PrincipalRole
 
 DASHBOARD_ROLES = {PrincipalRole.OPERATOR, PrincipalRole.MONITOR}
 PAGES = ["/dashboard", "/dashboard/network"]
 ASSETS = ["dashboard.css", "common.js", "node.js", "network.js", "icon.svg"]
 
 
-def _person(node: Any, pid: str, role: str) -> None:
-    provisioning.create(
-        node.ctx,
-        Kind.PRINCIPALS,
-        PrincipalSpec.model_validate(
-            {
-                "principal_id": pid,
-                "role": role,
-                "cert_subject": pid,
-                "cert_sha256": cert_pin(node.ctx.settings.tls.cert.parent, pid),
-            }
-        ),
-        actor="test",
-    )
+_person = relaynet.add_person
 
 
 @pytest.fixture

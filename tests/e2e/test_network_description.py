@@ -126,6 +126,14 @@ def _cli(*args: str, columns: int = 100) -> tuple[int, str]:
     return result.returncode, result.stdout + result.stderr
 
 
+def _applied(network: dict[str, NodeProcess], pki: PkiFiles, tmp_path: Path) -> Path:
+    """The description of ``network`` written to ``tmp_path`` and applied."""
+    path = tmp_path / "network.toml"
+    path.write_text(_description({n: p.url for n, p in network.items()}, pki))
+    assert _cli("apply", str(path))[0] == 0
+    return path
+
+
 def _ops(node: NodeProcess, pki: PkiFiles) -> OperatorClient:
     return OperatorClient(
         node.url, TlsIdentity(ca=pki.ca, cert=pki.cert("ops-ada"), key=pki.key("ops-ada"))
@@ -236,10 +244,7 @@ def _until(what: str, check: Callable[[], bool], timeout: float = 30.0) -> None:
 def test_a_registry_edited_behind_the_descriptions_back_raises_the_alert_on_both_sides(
     network: dict[str, NodeProcess], pki: PkiFiles, tmp_path: Path
 ) -> None:
-    urls = {n: p.url for n, p in network.items()}
-    path = tmp_path / "network.toml"
-    path.write_text(_description(urls, pki))
-    assert _cli("apply", str(path))[0] == 0
+    path = _applied(network, pki, tmp_path)
     relay, a = network["relay-1"], network["station-a"]
     _until("agreement", lambda: _disagreements(relay, pki) == {"station-a": 0, "station-b": 0})
 
@@ -279,10 +284,7 @@ def test_a_registry_edited_behind_the_descriptions_back_raises_the_alert_on_both
 def test_status_asks_every_node(
     network: dict[str, NodeProcess], pki: PkiFiles, tmp_path: Path
 ) -> None:
-    urls = {n: p.url for n, p in network.items()}
-    path = tmp_path / "network.toml"
-    path.write_text(_description(urls, pki))
-    assert _cli("apply", str(path))[0] == 0
+    path = _applied(network, pki, tmp_path)
     code, out = _cli("status", str(path), columns=80)
     assert code == 0, out
     for name in ("relay-1", "station-a", "station-b", "link-a", "link-b", "pair-ab"):
