@@ -131,8 +131,12 @@ async def _watch(
     last_print = -5.0
     observed = ObservedRates()
 
+    announced = False  # the stopping headline has been shown
+
     def show(snap: Snapshot, elapsed: float, *, now: bool = False) -> None:
-        nonlocal last_print
+        nonlocal last_print, announced
+        if stopping.is_set() and not announced:  # whenever the stop came, say it at once
+            announced = now = True
         headline = _headline(emulator.stats, elapsed, duration, stopping.is_set())
         view = screen(headline, snap, emulator.stats, encryptors.stats, observed)
         if live is not None:
@@ -153,8 +157,8 @@ async def _watch(
             continue
         with contextlib.suppress(TimeoutError):
             await asyncio.wait_for(stopping.wait(), 1.0)
-        if stopping.is_set():  # say at once that the demo is stopping
-            show(snap, time.monotonic() - started, now=True)
+        if stopping.is_set():
+            show(snap, time.monotonic() - started)
 
 
 async def run(
