@@ -26,8 +26,11 @@ def _transposed(
     table = Table(title=title)
     table.add_column("")
     names = [str(row[key]) for row in rows]
-    # IDs that all start alike ("pair-", "link-") lose that start in the header.
-    cut = os.path.commonprefix(names).rpartition("-")[0]  # noqa: RUF071 (by character)
+    # IDs that all start alike ("pair-", "link-") lose that start in the header; a
+    # single ID is shown whole (it starts like itself).
+    cut = ""
+    if len(set(names)) > 1:
+        cut = os.path.commonprefix(names).rpartition("-")[0]  # noqa: RUF071 (by character)
     for name in names:
         table.add_column(name[len(cut) + 1 :] if cut else name, justify="right")
     for label, show in lines:
