@@ -193,6 +193,7 @@ def test_no_answer_keeps_the_last_finding_and_says_why(
 ) -> None:
     ops = api(net.a)("ops-ada")
     assert registry_watch.compare_with(net.a.ctx, ports["station-a"], "station-b") == []
+    assert ops.get(READY).json()["checks"]["registry"] == "not compared with relay-1 yet"
     ports["station-a"].down.add("relay-1")
     assert registry_watch.compare_with(net.a.ctx, ports["station-a"], "relay-1") is None
     metrics = scrape(ops)
@@ -201,7 +202,10 @@ def test_no_answer_keeps_the_last_finding_and_says_why(
     assert frozenset({("peer", "relay-1")}) not in metrics.samples(
         "keystrata_registry_disagreements"
     )
-    assert ops.get(READY).json()["checks"]["registry"] == "not compared with relay-1 yet"
+    # A peer away from the start: why is said too, not only that it is not compared.
+    assert ops.get(READY).json()["checks"]["registry"] == (
+        "not compared with relay-1 yet (relay-1: ConnectError)"
+    )
 
     ports["station-a"].down.clear()
     _set_priority(net.relay, 9)

@@ -153,7 +153,8 @@ def record(ctx: NodeContext, peer: str, findings: list[comparison.Finding]) -> b
 
 
 def _failed(ctx: NodeContext, peer: str, why: str) -> None:
-    """Note why ``peer`` gave no usable answer; what was found before stays."""
+    """Note why ``peer`` gave no usable answer; what was found before stays (a peer
+    never compared gets its row now, with no ``checked_at``)."""
     why = why[:255]
     logged: dict[str, str] = ctx.process_state.setdefault(_LOGGED, {})
     if logged.get(peer) != why:
@@ -161,7 +162,15 @@ def _failed(ctx: NodeContext, peer: str, why: str) -> None:
         logged[peer] = why
     with ctx.db.write() as s:
         row = s.get(PeerRegistryView, peer, with_for_update=True)
-        if row is not None and row.last_error != why:
+        if row is None:  # away from the start: no comparison yet, and why
+            s.execute(
+                upsert_insert(ctx.db.backend)(PeerRegistryView)
+                .values(peer_id=peer, checked_at=None, disagreements="[]", count=0)
+                .on_conflict_do_nothing(index_elements=["peer_id"])
+            )
+            row = s.get(PeerRegistryView, peer, with_for_update=True, populate_existing=True)
+            assert row is not None  # inserted now, or committed by another worker
+        if row.last_error != why:
             row.last_error = why
 
 

@@ -170,7 +170,8 @@ def _registry(ctx: NodeContext) -> str:
                 f"{DISAGREES}{view.peer_id} on {registry_watch.describe(view.disagreements)}"
             )
         if view.checked_at is None:
-            notes.append(f"{NOT_COMPARED}{view.peer_id} yet")
+            why = f" ({view.last_error})" if view.last_error is not None else ""
+            notes.append(f"{NOT_COMPARED}{view.peer_id} yet{why}")
         elif view.last_error is not None:
             notes.append(f"{NOT_COMPARED}{view.peer_id} lately ({view.last_error})")
     return "; ".join(notes) if notes else OK

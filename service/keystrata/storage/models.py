@@ -510,7 +510,9 @@ class PeerRegistryView(Base):
 
     __tablename__ = "peer_registry_view"
     peer_id: Mapped[str] = mapped_column(String(ID_LEN), primary_key=True)
-    checked_at: Mapped[datetime] = mapped_column(comment="the last comparison that got an answer")
+    checked_at: Mapped[datetime | None] = mapped_column(
+        comment="the last comparison that got an answer (NULL: none has yet)"
+    )
     disagreements: Mapped[str] = mapped_column(
         Text, comment="JSON list of {kind, id, field}: the shared facts the two nodes differ on"
     )

@@ -26,8 +26,8 @@ def upgrade() -> None:
         sa.Column(
             "checked_at",
             sa.DateTime(timezone=True),
-            nullable=False,
-            comment="the last comparison that got an answer",
+            nullable=True,
+            comment="the last comparison that got an answer (NULL: none has yet)",
         ),
         sa.Column(
             "disagreements",
