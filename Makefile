@@ -4,6 +4,8 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 ARGS   ?=
+## pytest workers for make test (pytest-xdist; "auto" is one per core, 0 runs in-process)
+TEST_WORKERS ?= auto
 
 .PHONY: all test test-fast faults bench load demo lint typecheck clean
 
@@ -23,7 +25,7 @@ test: $(STAMP)
 	$(BIN)/ruff check service clients tests deploy bench loadtest
 	$(BIN)/ruff format --check service clients tests deploy bench loadtest
 	$(BIN)/mypy
-	$(BIN)/python -m pytest -m "not slow" $(ARGS)
+	$(BIN)/python -m pytest -m "not slow" -n $(TEST_WORKERS) --dist loadfile $(ARGS)
 
 ## make test-fast: domain and SQLite tests only, no server processes
 test-fast: $(STAMP)
