@@ -4,12 +4,16 @@ from __future__ import annotations
 
 import base64
 import hashlib
+import os
+import pty
+import subprocess
 from datetime import datetime, timedelta
 from typing import Any
 
 from sqlalchemy import select, text
 
 from keystrata.context import NodeContext
+from keystrata.loopback.processes import KEYSTRATA
 from keystrata.storage.db import Database
 from keystrata.storage.models import Base, LedgerEntry, LinkBlock
 from keystrata.storage.sealed import block_context
@@ -105,3 +109,25 @@ class SteppedClock:
 
     def advance(self, seconds: float) -> None:
         self.at += timedelta(seconds=seconds)
+
+
+def on_a_terminal(args: list[str], env: dict[str, str] | None = None) -> str:
+    """Run ``keystrata ARGS`` with stdout and stderr on a pseudo-terminal, as a person
+    at a terminal would; return all it wrote there (it must exit 0)."""
+    main, child = pty.openpty()
+    proc = subprocess.Popen(
+        [*KEYSTRATA, *args], stdout=child, stderr=child, env={**os.environ, **(env or {})}
+    )
+    os.close(child)
+    out = b""
+    while True:
+        try:
+            chunk = os.read(main, 4096)
+        except OSError:  # EIO: the child closed the terminal
+            break
+        if not chunk:
+            break
+        out += chunk
+    assert proc.wait(timeout=120) == 0, out
+    os.close(main)
+    return out.decode(errors="replace")

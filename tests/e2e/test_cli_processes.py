@@ -7,20 +7,17 @@ says it is a station command; long work shows a progress bar on a terminal only.
 from __future__ import annotations
 
 import json
-import os
-import pty
 import re
 import shutil
-import subprocess
 from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 
+from helpers import on_a_terminal
 from keystrata.loopback.configs import write_config
 from keystrata.loopback.pki import PkiFiles
 from keystrata.loopback.processes import (
-    KEYSTRATA,
     NodeProcess,
     free_port,
     prepare_node,
@@ -190,26 +187,6 @@ def test_a_missing_option_names_its_variable(pki: PkiFiles) -> None:
     assert "[env var: KEYSTRATA_URL]" in help_text and "required" not in help_text
 
 
-def _on_a_terminal(args: list[str]) -> str:
-    """Run ``keystrata ARGS`` with stdout and stderr on a pseudo-terminal; return all it
-    wrote there."""
-    main, child = pty.openpty()
-    proc = subprocess.Popen([*KEYSTRATA, *args], stdout=child, stderr=child)
-    os.close(child)
-    out = b""
-    while True:
-        try:
-            chunk = os.read(main, 4096)
-        except OSError:  # EIO: the child closed the terminal
-            break
-        if not chunk:
-            break
-        out += chunk
-    assert proc.wait(timeout=120) == 0, out
-    os.close(main)
-    return out.decode(errors="replace")
-
-
 def test_long_work_shows_a_progress_bar_on_a_terminal_only(pki: PkiFiles, tmp_path: Path) -> None:
     configs = [
         write_config(tmp_path / name, node_id="station-a", role="station", pki=pki,
@@ -219,5 +196,11 @@ def test_long_work_shows_a_progress_bar_on_a_terminal_only(pki: PkiFiles, tmp_pa
     piped = run_cli("db", "upgrade", "--config", str(configs[0]))
     assert "migrating the schema" not in piped.stdout + piped.stderr
     assert re.fullmatch(r"schema at revision \w+ \(\d+ migrations applied\)\n", piped.stdout)
-    shown = _on_a_terminal(["db", "upgrade", "--config", str(configs[1])])
+    shown = on_a_terminal(["db", "upgrade", "--config", str(configs[1])])
     assert "migrating the schema" in shown and "migrations applied" in shown
+    # KEK rotation of that node (initialised, stopped), on the terminal.
+    run_cli("node", "init", "--config", str(configs[1]))
+    new_kek = tmp_path / "next.kek"
+    run_cli("kek", "new", "--out", str(new_kek))
+    shown = on_a_terminal(["kek", "rotate", "--config", str(configs[1]), "--new-kek", str(new_kek)])
+    assert "re-sealing rows" in shown and "re-sealed" in shown

@@ -7,6 +7,7 @@ nodes' comparison of shared facts raises the disagreement alert on both sides)."
 from __future__ import annotations
 
 import json
+import re
 import shutil
 import time
 from collections.abc import Callable, Iterator
@@ -16,6 +17,7 @@ import httpx
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
 
+from helpers import on_a_terminal
 from keystrata.loopback.configs import peers_section
 from keystrata.loopback.pki import PkiFiles
 from keystrata.loopback.processes import NodeProcess, free_ports, prepare_node, run_cli, stop_all
@@ -209,8 +211,10 @@ def test_a_description_builds_the_network_and_applying_again_changes_nothing(
         s["node_id"]: [(a["verb"], a["kind"], a["entry_id"], a["fields"]) for a in s["actions"]]
         for s in planned
     } == {n: [("change", "pairs", "pair-ab", ["policy.priority"])] for n in NODES}
-    code, out = _cli("apply", str(path))
-    assert code == 0, out
+    # Applied from a terminal this time: a progress bar while it works (none when piped).
+    shown = on_a_terminal(["network", "apply", str(path)])
+    assert re.search(r"(relay-1|station-a|station-b): change pairs pair-ab", shown), shown
+    assert "━" in shown and "━" not in out
     changed = {n: _without_times(_held(p, pki)) for n, p in network.items()}
     for n in NODES:
         pair = changed[n]["pairs"][0]

@@ -18,6 +18,7 @@ from typing import Any
 import pytest
 
 from e2enet import add_auditor, quiet, stock_and_stop
+from helpers import on_a_terminal
 from keystrata.loopback.network import NETWORK, PAIR, feed_links, start_network
 from keystrata.loopback.pki import PkiFiles
 from keystrata.loopback.processes import NodeProcess, run_cli, stop_all
@@ -142,6 +143,10 @@ def test_healthy_exports_reconcile_with_keys_in_flight_and_later(network, pki, t
     assert found["as_of"] == read_export(export_b).time < read_export(export_a).time
     table = run_cli("audit", "reconcile", str(export_b), str(export_a))
     assert "in flight" in table.stdout and "later" in table.stdout
+    assert "reading the exports" not in table.stdout + table.stderr  # piped: no bar
+    # From a terminal, reconciliation shows its progress bar (export: at the end).
+    shown = on_a_terminal(["audit", "reconcile", str(export_b), str(export_a)])
+    assert "reading the exports" in shown and "in flight" in shown
     assert "no key served twice, one-sided, mismatched or unsettled" in table.stdout
     # With the cut-off at A's export, the keys after B's export are compared: B's
     # export has no trace of them, nor of anything after them, so they are in flight.
@@ -165,3 +170,10 @@ def test_healthy_exports_reconcile_with_keys_in_flight_and_later(network, pki, t
     result = reconcile(read_export(final_a).entries, entries_b)
     assert [(k.key_id, k.status) for k in result.flagged] == [(lost, "one_sided")]
     assert not result.ok
+
+    # An export from a terminal shows its progress bar (after the others: the auditor's
+    # state remembers the newest checkpoint seen, and older exports would be refused).
+    identity = {"KEYSTRATA_CA": str(pki.ca), "KEYSTRATA_CERT": str(pki.cert("aud-ben")),
+                "KEYSTRATA_KEY": str(pki.key("aud-ben")), "KEYSTRATA_URL": b.url}  # fmt: skip
+    shown = on_a_terminal(["audit", "export", "--out", str(tmp_path / "b-tty")], env=identity)
+    assert f"exporting {b.url}" in shown and "verified offline: yes" in shown
