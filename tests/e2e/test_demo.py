@@ -360,6 +360,15 @@ def test_ctrl_c_stops_the_demo_with_its_summary_on_an_80_column_terminal(
         key_id, digest = example.stdout.split()
         assert re.fullmatch(r"[0-9a-f-]{36}", key_id) and re.fullmatch(r"[0-9a-f]{64}", digest)
         _render_real_state(workdir, final)
+        # The network the demo built is the one its description file says.
+        checked = subprocess.run(
+            [sys.executable, "-m", "keystrata", "network", "check", str(workdir / "network.toml")],
+            capture_output=True,
+            text=True,
+            timeout=120,
+        )
+        assert checked.returncode == 0, checked.stdout + checked.stderr
+        assert checked.stdout.count(": in line (") == 4, checked.stdout
         nodes = _serving(workdir)
         assert len(nodes) == 4
         demo.interrupt()
