@@ -383,6 +383,11 @@ def test_ctrl_c_stops_the_demo_with_its_summary_on_an_80_column_terminal(
     assert re.search(r"stopped by Ctrl-C after \d+ s: the emulators drained", output), output
     assert "ok: " in output and "every pair reconciles" in output, output
     assert _serving(workdir) == []
+    # Each ledger's root is shown as the ledger API gives it: the start of the Base64
+    # root_hash of the export's checkpoint (no other encoding anywhere).
+    for node in ("relay-vela", "karsvik", "tollmere", "brenhaven"):
+        root = json.loads((workdir / "audit" / node / "checkpoint.json").read_text())["root_hash"]
+        assert re.search(rf"{node}\s+\d+\s+{re.escape(root[:12])}\s+yes", output), output
     _check_screens(demo.lines, columns=80)
     # The summary's tables fit too (their cells wrap at spaces rather than being cut).
     summary = output.split("final levels", 1)[1]
