@@ -51,6 +51,10 @@ from keystrata.ids import ID_PATTERN
 ENV_PREFIX = "KEYSTRATA_"
 #: Where `keystrata serve` tells its worker processes which config file to load.
 CONFIG_ENV = "KEYSTRATA_CONFIG"
+#: Set by a supervisor that starts `keystrata serve` in a session of its own (the
+#: loopback harness: tests, the demo, benchmarks, the load test) to its own process ID:
+#: the node stops, as on SIGTERM, once that process is no longer its parent.
+PARENT_ENV = "KEYSTRATA_STOP_WITH_PARENT"
 
 
 class Role(StrEnum):

@@ -25,7 +25,10 @@ for _name in SERVER_LEAVES_OUT:
 
 import logging
 import os
+import signal
 import ssl
+import threading
+import time
 from collections.abc import Callable
 from datetime import UTC, datetime
 
@@ -34,7 +37,7 @@ from fastapi import FastAPI
 
 from keystrata.api.app import create_app
 from keystrata.api.tls import ClientCertHttpToolsProtocol
-from keystrata.config import CONFIG_ENV, Settings, load_settings
+from keystrata.config import CONFIG_ENV, PARENT_ENV, Settings, load_settings
 from keystrata.context import NodeContext
 from keystrata.crypto import tls
 from keystrata.crypto.certificates import load_certificate
@@ -123,8 +126,29 @@ def _check_crl(settings: Settings) -> None:
         )
 
 
+def _stop_with_parent(value: str) -> None:
+    """With ``KEYSTRATA_STOP_WITH_PARENT`` set to a process ID, watch that process stay
+    this one's parent; when it is gone (this process was handed to another), stop as a
+    SIGTERM stops: uvicorn drains and, with several workers, stops them too."""
+    try:
+        parent = int(value)
+    except ValueError:
+        raise ConfigError(f"{PARENT_ENV} must be a process ID") from None
+
+    def watch() -> None:
+        while os.getppid() == parent:
+            time.sleep(0.5)
+        log.warning("its parent process is gone; stopping")
+        os.kill(os.getpid(), signal.SIGTERM)
+
+    threading.Thread(target=watch, name="keystrata-parent-watch", daemon=True).start()
+
+
 def serve(settings: Settings, config_path: str) -> None:
     """Check the node once in this process, then serve until interrupted."""
+    parent = os.environ.pop(PARENT_ENV, None)  # the supervisor only, not its workers
+    if parent is not None:
+        _stop_with_parent(parent)
     for path, what in (
         (settings.tls.cert, "certificate"),
         (settings.tls.key, "private key"),

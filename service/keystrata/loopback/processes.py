@@ -20,6 +20,7 @@ from pathlib import Path
 
 import httpx
 
+from keystrata.config import PARENT_ENV
 from keystrata.loopback.configs import FAST_SQLITE, write_config
 from keystrata.loopback.pki import PkiFiles
 
@@ -99,7 +100,10 @@ class NodeProcess:
                 stdout=log,
                 stderr=subprocess.STDOUT,
                 stdin=subprocess.DEVNULL,
+                # Its own session, so that a terminal's Ctrl-C reaches the harness alone;
+                # and it stops by itself should the harness die without stopping it.
                 start_new_session=True,
+                env={**os.environ, PARENT_ENV: str(os.getpid())},
             )
         return self
 
