@@ -571,13 +571,13 @@ def test_every_error_answer_is_documented_with_the_error_object() -> None:
                     assert ref.rsplit("/", 1)[1] == "ErrorBody", (path, status)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="Starlette's 405 names the methods of the first route matching the path only; "
-    "the registry's item paths are three routes (reported, not fixed here)",
-)
 def test_allow_lists_every_method(target: AsAdmittedCaller) -> None:
     """RFC 9110 section 15.5.6: a 405 answer lists the target's supported methods."""
     r = _once(target, "PUT", "/api/v1/registry/nodes/station-b")
     assert r.status_code == 405
     assert set(r.headers["allow"].replace(" ", "").split(",")) == {"GET", "PATCH", "DELETE"}
+    assert r.json()["message"] == "Method Not Allowed"
+    # ETSI GS QKD 014 section 5.1: Get key is GET or POST on the same path.
+    r = _once(target, "PUT", "/api/v1/keys/sae-b1/enc_keys")
+    assert r.status_code == 405
+    assert set(r.headers["allow"].replace(" ", "").split(",")) == {"GET", "POST"}

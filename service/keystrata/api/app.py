@@ -122,7 +122,7 @@ def create_app(
     app.state.allocation_source = allocation_source
     app.state.progress_source = progress_source
     app.state.ca_cert = x509.load_pem_x509_certificate(ctx.settings.tls.ca.read_bytes())
-    errors.install(app)
+    errors.install(app, route_table())
     for router in ROUTERS:
         app.include_router(router)
     app.add_middleware(

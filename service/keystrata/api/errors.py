@@ -5,11 +5,13 @@ route), without echoing any input value: a rejected value might be key material.
 from __future__ import annotations
 
 import logging
+from collections.abc import Sequence
 from typing import Any
 
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
+from fastapi.routing import APIRoute
 from starlette.exceptions import HTTPException
 
 from keystrata.delivery.schemas import ErrorBody
@@ -59,7 +61,18 @@ def _validation_details(exc: RequestValidationError) -> list[dict[str, Any]]:
     return out
 
 
-def install(app: FastAPI) -> None:
+def allowed_methods(routes: Sequence[APIRoute], path: str) -> list[str]:
+    """Every method of every route whose path matches ``path``, sorted."""
+    methods: set[str] = set()
+    for route in routes:
+        if route.methods and route.path_regex.match(path):
+            methods |= route.methods
+    return sorted(methods)
+
+
+def install(app: FastAPI, routes: Sequence[APIRoute]) -> None:
+    """Install the handlers; ``routes`` are the app's routes (for a 405's Allow)."""
+
     @app.exception_handler(KeystrataError)
     async def _ours(_: Request, exc: KeystrataError) -> JSONResponse:
         if exc.status >= 500:
@@ -73,11 +86,14 @@ def install(app: FastAPI) -> None:
         return JSONResponse(error_body(f"invalid request: {summary}", details), status_code=400)
 
     @app.exception_handler(HTTPException)
-    async def _http(_: Request, exc: HTTPException) -> JSONResponse:
+    async def _http(request: Request, exc: HTTPException) -> JSONResponse:
         message = exc.detail if isinstance(exc.detail, str) else "request refused"
-        return JSONResponse(
-            error_body(message), status_code=exc.status_code, headers=getattr(exc, "headers", None)
-        )
+        headers = dict(getattr(exc, "headers", None) or {})
+        if exc.status_code == 405:
+            # Starlette names the methods of the first route matching the path only;
+            # RFC 9110 section 15.5.6 wants every method the target supports.
+            headers["Allow"] = ", ".join(allowed_methods(routes, request.scope["path"]))
+        return JSONResponse(error_body(message), status_code=exc.status_code, headers=headers)
 
     @app.exception_handler(Exception)
     async def _unexpected(_: Request, exc: Exception) -> JSONResponse:
