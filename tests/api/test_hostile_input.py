@@ -154,11 +154,6 @@ CONFIG = schemathesis.Config.from_dict(
         },
         "cache": {"enabled": False},
         "checks": {
-            # Starlette answers a wrong method with the Allow header of the first route
-            # whose path matches, so the registry's item paths (GET, PATCH, DELETE as
-            # three routes) list one method. Reported; test_allow_lists_every_method
-            # holds the defect until the service fixes it.
-            "allow_header_conformance": {"enabled": False},
             # "Schema-valid input is accepted" does not hold here by design: rules across
             # fields (a link's two ends differ), the node's state (an index below the
             # ledger's size) and the binary block format are checked by the service,
