@@ -16,6 +16,7 @@ from typing import Any
 
 import click
 
+from keystrata.cli import progress
 from keystrata.cli.common import console, print_json
 from keystrata.cli.units import exact_option
 from keystrata_client import KeystrataClientError, TlsIdentity
@@ -216,15 +217,11 @@ def _apply_with_progress(
     identity: TlsIdentity,
     total: int,
 ) -> list[applying.NodeOutcome]:
-    if not console.is_terminal or total == 0:
-        return applying.apply(net, surveys, identity)
-    from rich.progress import Progress
-
-    with Progress(console=console, transient=True) as bar:
-        task = bar.add_task("applying", total=total)
+    with progress.bar("applying", total) as bar:
 
         def step(node_id: str, action: Any, error: str | None) -> None:
-            bar.update(task, advance=1, description=f"{node_id}: {action.describe()}"[:60])
+            bar.describe(f"{node_id}: {action.describe()}"[:60])
+            bar.advance(1)
 
         return applying.apply(net, surveys, identity, progress=step)
 

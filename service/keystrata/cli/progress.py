@@ -1,5 +1,6 @@
-"""Progress bars for long work (exports, reconciliation, KEK rotation, migrations),
-shown on stderr only when stdout is a terminal: scripts and pipes see nothing of them."""
+"""Progress bars for long work (exports, reconciliation, KEK rotation, migrations,
+applying a network description), shown on stderr only when stdout is a terminal:
+scripts and pipes see nothing of them."""
 
 from __future__ import annotations
 
@@ -18,6 +19,9 @@ class Tracker:
     def update(self, done: int, total: int | None) -> None:
         """Set the work done so far and the total (None: unknown)."""
 
+    def describe(self, text: str) -> None:
+        """Say what is being done now (the bar's text)."""
+
 
 class _Shown(Tracker):
     def __init__(self, progress: Any, task: Any) -> None:
@@ -28,6 +32,9 @@ class _Shown(Tracker):
 
     def update(self, done: int, total: int | None) -> None:
         self._progress.update(self._task, completed=done, total=total)
+
+    def describe(self, text: str) -> None:
+        self._progress.update(self._task, description=text)
 
 
 def wanted() -> bool:
