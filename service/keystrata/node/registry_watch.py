@@ -28,6 +28,7 @@ from datetime import datetime, timedelta
 from typing import Any, Protocol
 
 from sqlalchemy import select
+from sqlalchemy.orm import Session
 
 from keystrata.context import NodeContext
 from keystrata.errors import InvalidInput, PeerUnavailable
@@ -120,15 +121,7 @@ def record(ctx: NodeContext, peer: str, findings: list[comparison.Finding]) -> b
     DO NOTHING``), so of two workers recording the same finding only the first writes."""
     with ctx.db.write() as s:
         now = ctx.clock.now()
-        row = s.get(PeerRegistryView, peer, with_for_update=True)
-        if row is None:
-            s.execute(
-                upsert_insert(ctx.db.backend)(PeerRegistryView)
-                .values(peer_id=peer, checked_at=now, disagreements="[]", count=0)
-                .on_conflict_do_nothing(index_elements=["peer_id"])
-            )
-            row = s.get(PeerRegistryView, peer, with_for_update=True, populate_existing=True)
-            assert row is not None  # inserted now, or committed by another worker
+        row = _locked_row(ctx, s, peer)
         previous = _findings(row.disagreements)
         row.checked_at = now
         row.disagreements = json.dumps(findings, separators=(",", ":"))
@@ -161,17 +154,24 @@ def _failed(ctx: NodeContext, peer: str, why: str) -> None:
         log.warning("registry comparison with %s: no usable answer (%s)", peer, why)
         logged[peer] = why
     with ctx.db.write() as s:
-        row = s.get(PeerRegistryView, peer, with_for_update=True)
-        if row is None:  # away from the start: no comparison yet, and why
-            s.execute(
-                upsert_insert(ctx.db.backend)(PeerRegistryView)
-                .values(peer_id=peer, checked_at=None, disagreements="[]", count=0)
-                .on_conflict_do_nothing(index_elements=["peer_id"])
-            )
-            row = s.get(PeerRegistryView, peer, with_for_update=True, populate_existing=True)
-            assert row is not None  # inserted now, or committed by another worker
+        row = _locked_row(ctx, s, peer)
         if row.last_error != why:
             row.last_error = why
+
+
+def _locked_row(ctx: NodeContext, s: Session, peer: str) -> PeerRegistryView:
+    """The view row of ``peer``, locked; made first when missing (no comparison yet:
+    ``ON CONFLICT DO NOTHING``, so two workers make one, and each then waits its turn)."""
+    row = s.get(PeerRegistryView, peer, with_for_update=True)
+    if row is None:
+        s.execute(
+            upsert_insert(ctx.db.backend)(PeerRegistryView)
+            .values(peer_id=peer, checked_at=None, disagreements="[]", count=0)
+            .on_conflict_do_nothing(index_elements=["peer_id"])
+        )
+        row = s.get(PeerRegistryView, peer, with_for_update=True, populate_existing=True)
+        assert row is not None  # inserted now, or committed by another worker
+    return row
 
 
 def _findings(text: str) -> list[comparison.Finding]:
