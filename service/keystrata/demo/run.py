@@ -133,10 +133,11 @@ async def _watch(
 
     announced = False  # the stopping headline has been shown
 
-    def show(snap: Snapshot, elapsed: float, *, now: bool = False) -> None:
+    def show(snap: Snapshot, elapsed: float) -> None:
         nonlocal last_print, announced
-        if stopping.is_set() and not announced:  # whenever the stop came, say it at once
-            announced = now = True
+        # The first screen after the stop is drawn at once, whenever the stop came.
+        now = stopping.is_set() and not announced
+        announced = announced or now
         headline = _headline(emulator.stats, elapsed, duration, stopping.is_set())
         view = screen(headline, snap, emulator.stats, encryptors.stats, observed)
         if live is not None:
