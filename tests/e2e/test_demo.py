@@ -21,6 +21,8 @@ from pathlib import Path
 
 import pytest
 
+from keystrata.loopback.processes import run_cli
+
 REPO = Path(__file__).resolve().parents[2]
 #: The three pairs of the demo's scenario, as the screen names them.
 PAIR_ROWS = ("karsvik-tollmere", "brenhaven-karsvik", "brenhaven-tollmere")
@@ -361,12 +363,7 @@ def test_ctrl_c_stops_the_demo_with_its_summary_on_an_80_column_terminal(
         assert re.fullmatch(r"[0-9a-f-]{36}", key_id) and re.fullmatch(r"[0-9a-f]{64}", digest)
         _render_real_state(workdir, final)
         # The network the demo built is the one its description file says.
-        checked = subprocess.run(
-            [sys.executable, "-m", "keystrata", "network", "check", str(workdir / "network.toml")],
-            capture_output=True,
-            text=True,
-            timeout=120,
-        )
+        checked = run_cli("network", "check", str(workdir / "network.toml"), check=False)
         assert checked.returncode == 0, checked.stdout + checked.stderr
         assert checked.stdout.count(": in line (") == 4, checked.stdout
         nodes = _serving(workdir)

@@ -81,9 +81,15 @@ def test_two_workers_sample_the_dashboard_history_once_per_interval(
     from keystrata_client import OperatorClient
 
     db_url = pg_factory()
-    node = prepare_node(tmp_path, pki, "station-a", "station", db_url)
-    config = node.config.read_text().replace("[server]\n", "[server]\nworkers = 2\n", 1)
-    node.config.write_text(config + "\n[dashboard]\nsample_seconds = 1\n")
+    node = prepare_node(
+        tmp_path,
+        pki,
+        "station-a",
+        "station",
+        db_url,
+        server_extra="workers = 2\n",
+        extra="\n[dashboard]\nsample_seconds = 1\n",
+    )
     node.start(pki)
     try:
         with OperatorClient(node.url, pki.identity("ops-ada")) as ops:

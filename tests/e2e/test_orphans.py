@@ -26,9 +26,9 @@ from keystrata.loopback.processes import prepare_node
 
 base, pki = Path(sys.argv[1]), PkiFiles(Path(sys.argv[2]))
 shutil.copy(sys.argv[3], base / "station-a.db")
-node = prepare_node(base / "station-a", pki, "station-a", "station", f"sqlite:///{base}/station-a.db")
-config = node.config.read_text()
-node.config.write_text(config.replace("[server]\n", f"[server]\nworkers = {sys.argv[4]}\n", 1))
+db = f"sqlite:///{base}/station-a.db"
+workers = f"workers = {sys.argv[4]}\n"
+node = prepare_node(base / "station-a", pki, "station-a", "station", db, server_extra=workers)
 node.start(pki)
 print(node.proc.pid, flush=True)
 time.sleep(600)
